@@ -1,0 +1,22 @@
+"""fringegauge optics core: materials, transfer-matrix stacks and colour.
+
+Pure numerics (numpy in, numpy out); no user-interface imports.
+"""
+
+from .errors import InputError, WavelengthRangeError
+from .materials import (Material, ConstantMaterial, CauchyMaterial, SellmeierMaterial,
+                        TabulatedMaterial, DatabaseMaterial, material, list_materials,
+                        search_materials, curated_materials, database_version)
+from .stack import Layer, Stack, sweep
+from .color import (spectrum_to_xyz, xyz_to_lab, xyz_to_srgb, delta_e_2000, srgb_out_of_gamut,
+                    spectra_to_srgb, illuminant_white_xyz, srgb_to_hex, lab_to_xyz, srgb_to_xyz)
+
+__all__ = [
+    "InputError", "WavelengthRangeError",
+    "Material", "ConstantMaterial", "CauchyMaterial", "SellmeierMaterial", "TabulatedMaterial",
+    "DatabaseMaterial", "material", "list_materials", "search_materials", "curated_materials",
+    "database_version",
+    "Layer", "Stack", "sweep",
+    "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "delta_e_2000", "srgb_out_of_gamut",
+    "spectra_to_srgb", "illuminant_white_xyz", "srgb_to_hex", "lab_to_xyz", "srgb_to_xyz",
+]
