@@ -8,8 +8,9 @@ XYZ = Σ R(λᵢ) wᵢ reduces to a (n_wavelength, 3) weight matrix computed onc
 cached, so millions of spectra cost one matrix product. The weights integrate
 illuminant × colour-matching function on colour-science's 1 nm table against the
 piecewise-linear interpolant of the samples (each sample's "hat" function), so a
-coarse grid (5, 10, 20 nm) keeps most of the accuracy of a 1 nm one; they are
-normalised so that a perfect reflector has Y = 1.
+coarse grid (5, 10, 20 nm) keeps most of the accuracy of a 1 nm one; beyond the
+sampled band the end values are held constant; the weights are normalised so that
+a perfect reflector has Y = 1.
 
 Conventions: XYZ scaled so a perfect reflector has Y = 1; CIELAB L* in 0..100;
 sRGB values are display-encoded in 0..1 (IEC 61966-2-1). Colours under an
@@ -121,7 +122,12 @@ def user_spd_on_fine_grid(wavelength_nm, values) -> np.ndarray:
 
 
 def _hat_matrix(wavelength_nm: np.ndarray) -> np.ndarray:
-    """(n_samples, 471) weights of each sample's linear-interpolation hat on the 1 nm grid."""
+    """(n_samples, 471) weights of each sample's linear-interpolation hat on the 1 nm grid.
+
+    Beyond the sampled band the end values are held constant (as colour-science
+    extends a spectral distribution), so a perfect reflector sampled on 380-780 nm
+    has exactly the illuminant's white.
+    """
     fine = np.arange(360, 831, dtype=float)
     n = wavelength_nm.size
     H = np.zeros((n, fine.size))
@@ -131,7 +137,7 @@ def _hat_matrix(wavelength_nm: np.ndarray) -> np.ndarray:
     for i in range(n):
         y = np.zeros(n)
         y[i] = 1.0
-        H[i] = np.interp(fine, wavelength_nm, y, left=0.0, right=0.0)
+        H[i] = np.interp(fine, wavelength_nm, y)      # end samples held constant beyond the grid
     return H
 
 
