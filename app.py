@@ -1,11 +1,29 @@
-"""fringegauge browser page: `panel serve app.py`."""
+"""fringegauge browser page. Serve with `panel serve app.py` (http://localhost:5006/app)."""
 
 import panel as pn
 
-pn.extension()
+from views.explorer import FilmExplorer
+from views.urlstate import apply_query, state_to_query
 
-pn.pages = None
-pn.Column(
-    "# fringegauge",
-    "The optics core is in place (`physics/`); the film explorer page is being built.",
-).servable(title="fringegauge")
+pn.extension(design="native", notifications=False)
+
+
+def page():
+    explorer = FilmExplorer()
+    args = pn.state.session_args or {}
+    if args:
+        errors = apply_query(explorer.state, args)
+        explorer._sync_widgets()
+        if errors:
+            explorer.file_msg.show_error(" ".join(errors))
+    if pn.state.location is not None:
+        location = pn.state.location
+
+        def write_address(*_):
+            location.search = state_to_query(explorer.state)
+        explorer.state.param.watch(write_address, list(explorer.state.param))
+        pn.state.onload(write_address)
+    return explorer.panel()
+
+
+page().servable(title="fringegauge · film explorer")

@@ -1,0 +1,283 @@
+"""What an observer sees from a stack: colour over thickness and viewing angle, a viewing cone, fringe orders.
+
+A microscope objective or a loupe collects light over a cone of directions of
+numerical aperture NA = n₀ sin α_max around the viewing direction. The colour
+seen is the average reflectance over that cone. With the pupil uniformly filled
+(Köhler illumination, common practice for inspection microscopes) each ray's
+weight is proportional to its projected solid angle, sin α cos α dα dφ. A ray at
+cone angle α and azimuth φ around a viewing direction tilted by θᵥ meets the
+sample at the incidence angle
+
+    cos θ = cos θᵥ cos α + sin θᵥ sin α cos φ
+
+(spherical law of cosines). Rays that would arrive from below the surface
+(θ >= 90°) are dropped. With a cone, "s" and "p" refer to each ray's own plane
+of incidence.
+
+Fringe order: the optical path difference of one round trip in the swept layer,
+OPD = 2 d Re(N cos θ_layer), in units of a reference wavelength; a colour of
+order m lies between OPD/λ₀ = m − 1 and m (interface phase shifts not counted).
+
+References
+----------
+M. Born and E. Wolf, Principles of Optics, 7th ed., sec. 8.5 (image-forming
+pencils and numerical aperture); sec. 7.6 (fringes of equal thickness).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .color import spectrum_to_xyz, xyz_to_lab, _linear_srgb, GAMUT_TOLERANCE
+from .errors import InputError, WavelengthRangeError, require_finite
+from .stack import MAX_ANGLE_DEG, Stack, _Optics, sweep, _check_layer_index
+
+__all__ = ["ColorMap", "color_map", "cone_rays", "cone_reflectance", "interference_order",
+           "order_thicknesses_nm", "colour_band_nm", "DEFAULT_BAND_NM", "MAX_NA", "point_color",
+           "scaled_colors", "PointColor", "BRIGHTNESS"]
+
+#: The colour band used by default: CIE tables are significant from 380 to 780 nm.
+DEFAULT_BAND_NM = (380.0, 780.0)
+#: Reference wavelength for fringe orders: near the peak of the eye's sensitivity.
+ORDER_WAVELENGTH_NM = 550.0
+#: Largest numerical aperture accepted (dry objectives stop near 0.95).
+MAX_NA = 0.95
+#: Largest incidence angle kept on a cone's grid (90° is grazing and never seen).
+_GRAZING_DEG = 89.9
+#: Gauss-Legendre points across the cone radius and around half its rim.
+_CONE_RADIAL, _CONE_AZIMUTH = 8, 12
+#: Step of the incidence-angle grid on which a cone-averaged map is interpolated.
+_CONE_GRID_STEP_DEG = 0.5
+
+
+def colour_band_nm(stack: Stack, step_nm: float = 5.0) -> np.ndarray:
+    """Wavelengths (nm) for colour: 380-780 nm at ``step_nm``, cut to where every medium has data.
+
+    Raises
+    ------
+    WavelengthRangeError
+        When the stack's materials leave less than 420-680 nm, too little for a colour.
+    """
+    lo, hi = stack.wavelength_range_nm()
+    lo, hi = max(DEFAULT_BAND_NM[0], lo), min(DEFAULT_BAND_NM[1], hi)
+    if lo > 420 or hi < 680:
+        raise WavelengthRangeError(
+            f"The stack's materials have data only from {lo:g} to {hi:g} nm together; a colour needs "
+            "at least 420-680 nm. Choose material pages that cover the visible.")
+    start = np.ceil(lo / step_nm) * step_nm
+    return np.arange(start, hi + 1e-9, step_nm)
+
+
+def cone_rays(view_deg, na: float, ambient_n: float = 1.0):
+    """Incidence angles and weights of the rays in a viewing cone.
+
+    Parameters
+    ----------
+    view_deg : array_like, (A,)
+        Viewing directions, degrees from the normal.
+    na : float
+        Numerical aperture n₀ sin α_max (0 = a single ray).
+    ambient_n : float
+        Index of the ambient (n₀).
+
+    Returns
+    -------
+    (angles, weights) : arrays (A, K) of incidence angles in degrees and weights
+        summing to 1 along K; dropped rays have weight 0.
+    """
+    view = np.atleast_1d(require_finite("angle_deg", view_deg, minimum=0.0, maximum=MAX_ANGLE_DEG,
+                                        max_inclusive=False, unit="deg")).ravel()
+    na = float(require_finite("na", na, minimum=0.0, maximum=MAX_NA))
+    if na == 0.0:
+        return view[:, None].copy(), np.ones((view.size, 1))
+    if na >= ambient_n:
+        raise InputError(f"NA = {na:g} is not possible in an ambient of index {ambient_n:g}; NA < n₀.")
+    amax = np.arcsin(na / ambient_n)
+    # Gauss-Legendre in α on [0, α_max] and in φ on [0, π] (the cone is symmetric about the plane of incidence)
+    xa, wa = np.polynomial.legendre.leggauss(_CONE_RADIAL)
+    alpha = 0.5 * amax * (xa + 1)
+    w_alpha = 0.5 * amax * wa * np.sin(alpha) * np.cos(alpha)
+    xp, wp = np.polynomial.legendre.leggauss(_CONE_AZIMUTH)
+    phi = 0.5 * np.pi * (xp + 1)
+    w_phi = 0.5 * np.pi * wp
+    a, p = np.meshgrid(alpha, phi, indexing="ij")
+    w = (w_alpha[:, None] * w_phi[None, :]).ravel()
+    tv = np.radians(view)[:, None]
+    cos_t = np.cos(tv) * np.cos(a.ravel())[None, :] + np.sin(tv) * np.sin(a.ravel())[None, :] * np.cos(p.ravel())[None, :]
+    theta = np.degrees(np.arccos(np.clip(cos_t, -1.0, 1.0)))
+    weights = np.where(theta < _GRAZING_DEG, w[None, :], 0.0)
+    total = weights.sum(axis=1, keepdims=True)
+    if np.any(total <= 0):
+        raise InputError("The viewing cone lies wholly below the surface at some viewing angle; "
+                         "lower the angle or the NA.")
+    return np.minimum(theta, _GRAZING_DEG), weights / total
+
+
+def cone_reflectance(stack: Stack, wavelength_nm, view_deg=0.0, na: float = 0.0,
+                     polarization: str = "unpolarized", quantity: str = "reflectance") -> np.ndarray:
+    """R (or T) averaged over a viewing cone; shape ``shape(view_deg) + shape(wavelength_nm)``."""
+    view = np.asarray(view_deg, dtype=float)
+    wl = np.asarray(wavelength_nm, dtype=float)
+    n0 = float(np.real(stack.ambient.nk(np.atleast_1d(wl)).min())) if wl.size else 1.0
+    angles, weights = cone_rays(view, na, n0)
+    uniq, inverse = np.unique(angles, return_inverse=True)
+    if quantity == "reflectance":
+        vals = stack.reflectance(wl.ravel(), uniq, polarization)
+    elif quantity == "transmittance":
+        vals = stack.transmittance(wl.ravel(), uniq, polarization)
+    else:
+        raise InputError(f"quantity must be 'reflectance' or 'transmittance'; got {quantity!r}.")
+    per_ray = vals[inverse.reshape(angles.shape)]                       # (A, K, W)
+    out = np.einsum("ak,akw->aw", weights, per_ray)
+    return out.reshape(view.shape + wl.shape)
+
+
+def _cone_matrix(view_deg: np.ndarray, na: float, n0: float):
+    """(grid angles G, matrix (A, G)) that maps R on an angle grid to cone-averaged R per view angle."""
+    angles, weights = cone_rays(view_deg, na, n0)
+    lo, hi = float(angles[weights > 0].min()), float(angles[weights > 0].max())
+    n_grid = max(2, int(np.ceil((hi - lo) / _CONE_GRID_STEP_DEG)) + 1)
+    grid = np.linspace(lo, hi, n_grid)
+    pos = np.interp(angles, grid, np.arange(n_grid))
+    i0 = np.clip(np.floor(pos).astype(int), 0, n_grid - 2)
+    f = pos - i0
+    M = np.zeros((view_deg.size, n_grid))
+    rows = np.repeat(np.arange(view_deg.size), angles.shape[1])
+    np.add.at(M, (rows, i0.ravel()), (weights * (1 - f)).ravel())
+    np.add.at(M, (rows, i0.ravel() + 1), (weights * f).ravel())
+    return grid, M
+
+
+@dataclass(frozen=True)
+class ColorMap:
+    """Colours over a (thickness, angle) grid. Arrays are ordered (thickness, angle, ...).
+
+    Attributes
+    ----------
+    thickness_nm : (T,)   angle_deg : (A,)   wavelength_nm : (W,)
+    xyz, lab, rgb : (T, A, 3)  CIE XYZ (Y = 1 perfect reflector, before brightness scaling),
+        CIELAB (after scaling) and display sRGB 0..1 (after scaling).
+    out_of_gamut : (T, A) bool
+    scale : float  brightness factor applied (1 for absolute; 1/Y_max for normalized).
+    """
+
+    thickness_nm: np.ndarray
+    angle_deg: np.ndarray
+    wavelength_nm: np.ndarray
+    xyz: np.ndarray
+    lab: np.ndarray
+    rgb: np.ndarray
+    out_of_gamut: np.ndarray
+    scale: float
+
+
+BRIGHTNESS = ("absolute", "normalized")
+
+
+def _scale_for(xyz, brightness):
+    if brightness not in BRIGHTNESS:
+        raise InputError(f"brightness must be 'absolute' or 'normalized'; got {brightness!r}.")
+    if brightness == "absolute":
+        return 1.0
+    ymax = float(xyz[..., 1].max()) if xyz.size else 0.0
+    return 1.0 / ymax if ymax > 0 else 1.0
+
+
+def scaled_colors(xyz, illuminant="D65", observer="2", scale: float = 1.0):
+    """Display sRGB (0..1), CIELAB and the out-of-gamut flag of XYZ times a brightness ``scale``.
+
+    Returns
+    -------
+    (rgb, lab, out_of_gamut) : (..., 3), (..., 3), (...)
+    """
+    lin = _linear_srgb(xyz * scale, illuminant, observer)
+    oog = np.any((lin < -GAMUT_TOLERANCE) | (lin > 1 + GAMUT_TOLERANCE), axis=-1)
+    np.clip(lin, 0.0, 1.0, out=lin)
+    # IEC 61966-2-1 encoding (checked against colour-science in tests/test_color.py)
+    rgb = np.where(lin <= 0.0031308, 12.92 * lin, 1.055 * np.power(lin, 1 / 2.4) - 0.055)
+    return rgb, xyz_to_lab(xyz * scale, illuminant, observer), oog
+
+
+def color_map(stack: Stack, layer: int, thickness_nm, angle_deg, wavelength_nm=None, *,
+              illuminant="D65", observer="2", polarization="unpolarized", na: float = 0.0,
+              brightness: str = "absolute") -> ColorMap:
+    """Colour seen for each (thickness of one layer, viewing angle).
+
+    Parameters
+    ----------
+    stack : Stack
+    layer : int
+        Swept layer, 0 = top.
+    thickness_nm : array_like (T,)
+    angle_deg : array_like (A,)
+        Viewing angles, degrees, 0 <= angle < 90.
+    wavelength_nm : array_like (W,), optional
+        Default :func:`colour_band_nm` (380-780 nm at 5 nm, cut to the materials' data).
+    illuminant, observer : see :func:`physics.spectrum_to_xyz`.
+    polarization : {"s", "p", "unpolarized"}
+    na : float
+        Viewing-cone numerical aperture (0 = a single direction).
+    brightness : {"absolute", "normalized"}
+        "normalized" scales so the brightest colour of the map is display white.
+
+    Returns
+    -------
+    ColorMap
+    """
+    wl = colour_band_nm(stack) if wavelength_nm is None else np.asarray(wavelength_nm, dtype=float)
+    ang = np.atleast_1d(require_finite("angle_deg", angle_deg, minimum=0.0, maximum=MAX_ANGLE_DEG,
+                                       max_inclusive=False, unit="deg")).ravel()
+    d = np.atleast_1d(np.asarray(thickness_nm, dtype=float)).ravel()
+    if na and na > 0:
+        n0 = float(stack.ambient.nk(wl).real.min())
+        grid, M = _cone_matrix(ang, na, n0)
+        R_grid = sweep(stack, layer, d, grid, wl, polarization)          # (T, G, W)
+        R = np.einsum("ag,tgw->taw", M, R_grid)
+    else:
+        R = sweep(stack, layer, d, ang, wl, polarization)                # (T, A, W)
+    xyz = spectrum_to_xyz(R, wl, illuminant, observer)
+    scale = _scale_for(xyz, brightness)
+    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
+    return ColorMap(d, ang, wl, xyz, lab, rgb, oog, scale)
+
+
+@dataclass(frozen=True)
+class PointColor:
+    """The colour at one (thickness, angle): XYZ (unscaled), CIELAB, sRGB, xy, gamut flag."""
+
+    xyz: np.ndarray
+    lab: np.ndarray
+    rgb: np.ndarray
+    xy: tuple
+    out_of_gamut: bool
+
+
+def point_color(R, wavelength_nm, *, illuminant="D65", observer="2", scale: float = 1.0) -> PointColor:
+    """Colour of one spectrum ``R`` (W,), with a brightness factor ``scale``."""
+    xyz = spectrum_to_xyz(R, wavelength_nm, illuminant, observer)
+    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
+    s = float(xyz.sum())
+    xy = (float(xyz[0] / s), float(xyz[1] / s)) if s > 0 else (float("nan"), float("nan"))
+    return PointColor(xyz, lab, rgb, xy, bool(oog))
+
+
+def interference_order(stack: Stack, layer: int, thickness_nm, angle_deg=0.0,
+                       wavelength_nm: float = ORDER_WAVELENGTH_NM) -> np.ndarray:
+    """Round-trip optical path in the layer in waves, OPD/λ₀ = 2 d Re(N cos θ)/λ₀; shape of thickness_nm.
+
+    The fringe order of a colour is ``floor(value) + 1``.
+    """
+    _check_layer_index(stack, layer)
+    d = require_finite("thickness_nm", thickness_nm, minimum=0.0, unit="nm")
+    kz = _Optics(stack, np.array([float(wavelength_nm)]), np.array([float(angle_deg)])).kz[layer + 1, 0, 0]
+    return 2.0 * d * kz.real / wavelength_nm
+
+
+def order_thicknesses_nm(stack: Stack, layer: int, angle_deg: float, thickness_max_nm: float,
+                         wavelength_nm: float = ORDER_WAVELENGTH_NM) -> np.ndarray:
+    """Thicknesses (nm) where the round-trip path is a whole number m = 1, 2, ... of λ₀, up to the maximum."""
+    per_wave = 1.0 / float(interference_order(stack, layer, 1.0, angle_deg, wavelength_nm))
+    m = np.arange(1, int(thickness_max_nm / per_wave) + 1)
+    return m * per_wave

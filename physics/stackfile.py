@@ -1,0 +1,512 @@
+"""Stack files: a layer stack and its viewing settings as plain JSON.
+
+One format serves the shipped presets (``presets/*.json``) and the files users
+save and load. Version 1 looks like this::
+
+    {
+      "format": "fringegauge-stack",
+      "version": 1,
+      "name": "Thermal oxide on silicon",
+      "scenario": "Invented scenario: ...",
+      "ambient": "air",
+      "layers": [{"material": "SiO2", "thickness_nm": 100.0}],
+      "substrate": "Si",
+      "substrate_thickness_mm": null,
+      "swept_layer": 0,
+      "view": {"angle_deg": 0.0, "polarization": "unpolarized", "illuminant": "D65",
+               "observer": "2", "na": 0.0, "thickness_max_nm": 1000.0}
+    }
+
+Layers are listed from the ambient side down. A material is a string (curated
+name, alias, ``"shelf/book/page"`` or a number written as text) or a material
+description object as written by ``Material.spec()``. ``presets/README.md``
+lists every field with its type, range and default.
+
+Reading never evaluates anything: the text is parsed as JSON and every field is
+checked; any problem raises :class:`~physics.errors.InputError` whose message
+starts with the offending field (e.g. ``layers[2].thickness_nm``) and says what
+is allowed.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import reprlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .errors import InputError
+from .materials import Material, material
+from .stack import Layer, Stack
+
+__all__ = [
+    "StackFile", "stack_from_dict", "stack_to_dict", "load_stack_file", "dump_stack_file",
+    "load_preset", "list_presets", "FORMAT", "VERSION", "MAX_LAYERS", "MAX_FILE_BYTES",
+    "VIEW_DEFAULTS", "PRESET_DIR",
+]
+
+#: Value of the "format" field.
+FORMAT = "fringegauge-stack"
+#: The one format version this module reads and writes.
+VERSION = 1
+#: Most layers in a stack file.
+MAX_LAYERS = 12
+#: Largest layer thickness accepted, nm.
+MAX_THICKNESS_NM = 100_000.0
+#: Largest file accepted, bytes (1 MB), checked before parsing.
+MAX_FILE_BYTES = 1_000_000
+#: Longest name and scenario, characters.
+MAX_NAME_CHARS = 200
+MAX_SCENARIO_CHARS = 1000
+#: Longest material string (a name, an alias, a page or a number), characters.
+MAX_MATERIAL_CHARS = 200
+#: Where the shipped presets live.
+PRESET_DIR = Path(__file__).resolve().parent.parent / "presets"
+
+DEFAULT_NAME = "untitled stack"
+#: Viewing settings used for keys missing from "view".
+VIEW_DEFAULTS = {"angle_deg": 0.0, "polarization": "unpolarized", "illuminant": "D65",
+                 "observer": "2", "na": 0.0, "thickness_max_nm": 1000.0}
+POLARIZATIONS = ("s", "p", "unpolarized")
+ILLUMINANTS = ("D65", "D50", "A", "F2", "F11")
+OBSERVERS = ("2", "10")
+#: (lowest, highest, unit) of each numeric view setting.
+VIEW_RANGES = {"angle_deg": (0.0, 89.9, "deg"), "na": (0.0, 0.95, ""),
+               "thickness_max_nm": (10.0, 100_000.0, "nm")}
+
+_REQUIRED = ("format", "version", "ambient", "layers", "substrate")
+_TOP_FIELDS = ("format", "version", "name", "scenario", "ambient", "layers", "substrate",
+               "substrate_thickness_mm", "swept_layer", "view")
+_LAYER_FIELDS = ("material", "thickness_nm")
+#: Fields of a material description object, by kind (as written by Material.spec()).
+_MATERIAL_FIELDS = {
+    "constant": (("n",), ("k", "name")),
+    "cauchy": (("coefficients",), ("range_nm", "name", "source")),
+    "sellmeier": (("B", "C"), ("range_nm", "name", "source")),
+    "table": (("wavelength_nm", "n"), ("k", "name", "source")),
+    "database": (("page",), ()),
+    "curated": (("name",), ()),
+}
+
+
+@dataclass(frozen=True)
+class StackFile:
+    """A stack read from a stack file, with its name, scenario and viewing settings.
+
+    Attributes
+    ----------
+    name : str
+        Display name (at most 200 characters).
+    scenario : str
+        Free text describing the situation ("" when absent; at most 1000 characters).
+    stack : Stack
+        Ambient, layers (top to bottom) and substrate.
+    swept_layer : int
+        Index of the layer whose thickness the views sweep (0 = top); 0 for a stack without layers.
+    view : dict
+        Viewing settings, every key of :data:`VIEW_DEFAULTS` present: angle_deg (deg),
+        polarization, illuminant, observer, na, thickness_max_nm (nm).
+    """
+
+    name: str
+    scenario: str
+    stack: Stack
+    swept_layer: int = 0
+    view: dict = field(default_factory=lambda: dict(VIEW_DEFAULTS))
+
+
+# ---------------------------------------------------------------------- checks
+def _fail(where: str, message: str):
+    raise InputError(f"{where}: {message}")
+
+
+_SHORT = reprlib.Repr()
+_SHORT.maxstring = _SHORT.maxother = 60
+_SHORT.maxlevel = 3
+
+
+def _describe(value) -> str:
+    """A short, bounded repr of a value for messages (safe on deep or huge structures)."""
+    return _SHORT.repr(value)
+
+
+def _type_name(value) -> str:
+    return {dict: "an object", list: "a list", tuple: "a list", str: "a string", bool: "true/false",
+            type(None): "null", int: "a number", float: "a number"}.get(type(value), type(value).__name__)
+
+
+def _check_fields(where: str, obj: dict, allowed, required=()):
+    unknown = [k for k in obj if k not in allowed]
+    if unknown:
+        _fail(where, f"unknown field {_describe(unknown[0])}; the allowed fields are "
+                     f"{', '.join(allowed)}. Remove it or correct its spelling.")
+    for k in required:
+        if k not in obj:
+            _fail(f"{where}.{k}" if where != "file" else k,
+                  f"missing; {where if where != 'file' else 'the file'} needs the field {k!r}.")
+
+
+def _number(where: str, value, lo=None, hi=None, unit="") -> float:
+    """A finite real number (not true/false) in [lo, hi], as float."""
+    u = f" {unit}" if unit else ""
+    in_unit = f" (in {unit})" if unit else ""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        _fail(where, f"must be a number{in_unit}, got {_type_name(value)} {_describe(value)}.")
+    try:
+        x = float(value)
+    except OverflowError:
+        x = math.inf
+    if not math.isfinite(x):
+        _fail(where, f"must be a finite number{in_unit}, got {_describe(value)}.")
+    if lo is not None and x < lo or hi is not None and x > hi:
+        allowed = (f"from {lo:g} to {hi:g}{u}" if lo is not None and hi is not None
+                   else f">= {lo:g}{u}" if lo is not None else f"<= {hi:g}{u}")
+        _fail(where, f"{x:g}{u} is out of range; give a value {allowed}.")
+    return x
+
+
+def _string(where: str, value, max_chars: int) -> str:
+    if not isinstance(value, str):
+        _fail(where, f"must be a string (text in double quotes), got {_type_name(value)} {_describe(value)}.")
+    if len(value) > max_chars:
+        _fail(where, f"is {len(value)} characters long; shorten it to at most {max_chars}.")
+    return value
+
+
+def _number_list(where: str, value, min_len=1, max_len=None) -> list:
+    if not isinstance(value, (list, tuple)):
+        _fail(where, f"must be a list of numbers, got {_type_name(value)} {_describe(value)}.")
+    if len(value) < min_len or (max_len is not None and len(value) > max_len):
+        size = f"{min_len}" if max_len == min_len else (
+            f"{min_len} to {max_len}" if max_len is not None else f"at least {min_len}")
+        _fail(where, f"has {len(value)} entries; give {size}.")
+    return [_number(f"{where}[{i}]", v) for i, v in enumerate(value)]
+
+
+def _material_description(where: str, d: dict) -> dict:
+    """Check a material description object's fields and types; return a clean copy."""
+    kind = d.get("kind")
+    if not isinstance(kind, str) or kind not in _MATERIAL_FIELDS:
+        _fail(f"{where}.kind", f"must be one of {', '.join(_MATERIAL_FIELDS)}, got {_describe(kind)}.")
+    required, optional = _MATERIAL_FIELDS[kind]
+    _check_fields(where, d, ("kind", *required, *optional), required)
+    out = {"kind": kind}
+    for key, value in d.items():
+        w = f"{where}.{key}"
+        if key == "kind":
+            continue
+        if key in ("name", "source", "page"):
+            out[key] = _string(w, value, MAX_MATERIAL_CHARS if key != "source" else MAX_SCENARIO_CHARS)
+        elif key == "range_nm":
+            out[key] = _number_list(w, value, 2, 2)
+        elif key == "coefficients":
+            out[key] = _number_list(w, value, 1, 3)
+        elif kind == "constant":             # n, k
+            out[key] = _number(w, value)
+        else:                                # B, C, wavelength_nm, n, k of sellmeier/table
+            out[key] = _number_list(w, value, 1, 10_000)
+    return out
+
+
+def _material(where: str, value) -> Material:
+    """A material from a file field (string or description object), errors prefixed by ``where``."""
+    if isinstance(value, str):
+        _string(where, value, MAX_MATERIAL_CHARS)
+        spec = value
+    elif isinstance(value, dict):
+        spec = _material_description(where, value)
+    else:
+        _fail(where, f"must be a material name or page as a string (e.g. \"SiO2\", "
+                     f"\"main/Si/Green-2008\", \"1.46\") or a material description object "
+                     f"(e.g. {{\"kind\": \"constant\", \"n\": 1.46, \"k\": 0.0}}); "
+                     f"got {_type_name(value)} {_describe(value)}.")
+    try:
+        return material(spec)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
+    except (TypeError, ValueError, ArithmeticError, IndexError, KeyError) as exc:
+        raise InputError(f"{where}: not a usable material description ({exc}); "
+                         "check its fields and numbers.") from None
+
+
+def _check_view(view) -> dict:
+    if view is None:
+        view = {}
+    if not isinstance(view, dict):
+        _fail("view", f"must be an object of viewing settings, got {_type_name(view)} {_describe(view)}.")
+    _check_fields("view", view, tuple(VIEW_DEFAULTS))
+    out = dict(VIEW_DEFAULTS)
+    for key, value in view.items():
+        w = f"view.{key}"
+        if key in VIEW_RANGES:
+            lo, hi, unit = VIEW_RANGES[key]
+            out[key] = _number(w, value, lo, hi, unit)
+        else:
+            allowed = {"polarization": POLARIZATIONS, "illuminant": ILLUMINANTS,
+                       "observer": OBSERVERS}[key]
+            if not isinstance(value, str) or value not in allowed:
+                _fail(w, f"must be one of {', '.join(repr(a) for a in allowed)} (a string), "
+                         f"got {_describe(value)}.")
+            out[key] = value
+    return out
+
+
+def _check_swept(value, n_layers: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int):
+        _fail("swept_layer", f"must be a whole number (a layer index), got {_type_name(value)} "
+                             f"{_describe(value)}.")
+    if n_layers == 0:
+        if value != 0:
+            _fail("swept_layer", f"is {value} but the stack has no layers; use 0.")
+    elif not 0 <= value < n_layers:
+        _fail("swept_layer", f"is {value}; with {n_layers} layers use an index from 0 "
+                             f"(top, next to the ambient) to {n_layers - 1}.")
+    return value
+
+
+# ---------------------------------------------------------------------- public API
+def stack_from_dict(data: dict) -> StackFile:
+    """Check a parsed stack file and build its :class:`StackFile`.
+
+    Parameters
+    ----------
+    data : dict
+        The file's top-level object (as from ``json.loads``).
+
+    Returns
+    -------
+    StackFile
+        Missing optional fields take their defaults: name "untitled stack",
+        scenario "", substrate_thickness_mm None (semi-infinite), swept_layer 0,
+        and :data:`VIEW_DEFAULTS` for missing view settings.
+
+    Raises
+    ------
+    InputError
+        Any field missing, unknown, of the wrong type or out of range; the
+        message starts with the field's path, e.g. ``layers[1].thickness_nm``.
+    """
+    if not isinstance(data, dict):
+        raise InputError(f"A stack file must hold one JSON object {{...}} at the top level; "
+                         f"got {_type_name(data)}.")
+    _check_fields("file", data, _TOP_FIELDS)
+    for key in _REQUIRED:
+        if key not in data:
+            _fail(key, f"missing; a stack file needs the fields {', '.join(_REQUIRED)}.")
+    if data["format"] != FORMAT or not isinstance(data["format"], str):
+        _fail("format", f"must be {FORMAT!r}, got {_describe(data['format'])}; this is not a "
+                        "fringegauge stack file or its header is damaged.")
+    version = data["version"]
+    if isinstance(version, bool) or not isinstance(version, int):
+        _fail("version", f"must be the whole number {VERSION}, got {_describe(version)}.")
+    if version != VERSION:
+        _fail("version", f"{version} is not supported; this fringegauge reads version {VERSION}. "
+                         "Open the file with the fringegauge that wrote it, or rewrite it as version 1.")
+    name = _string("name", data.get("name", DEFAULT_NAME), MAX_NAME_CHARS)
+    scenario = _string("scenario", data.get("scenario", ""), MAX_SCENARIO_CHARS)
+
+    raw_layers = data["layers"]
+    if not isinstance(raw_layers, list):
+        _fail("layers", f"must be a list of layers [{{\"material\": ..., \"thickness_nm\": ...}}, ...], "
+                        f"got {_type_name(raw_layers)}.")
+    if len(raw_layers) > MAX_LAYERS:
+        _fail("layers", f"has {len(raw_layers)} layers; a stack file holds at most {MAX_LAYERS}. "
+                        "Remove layers or merge thin ones.")
+    layers = []
+    for i, raw in enumerate(raw_layers):
+        where = f"layers[{i}]"
+        if not isinstance(raw, dict):
+            _fail(where, f"must be an object {{\"material\": ..., \"thickness_nm\": ...}}, "
+                         f"got {_type_name(raw)} {_describe(raw)}.")
+        _check_fields(where, raw, _LAYER_FIELDS, _LAYER_FIELDS)
+        thickness = _number(f"{where}.thickness_nm", raw["thickness_nm"], 0.0, MAX_THICKNESS_NM, "nm")
+        layers.append(Layer(_material(f"{where}.material", raw["material"]), thickness))
+
+    ambient = _material("ambient", data["ambient"])
+    substrate = _material("substrate", data["substrate"])
+    d_mm = data.get("substrate_thickness_mm")
+    if d_mm is not None:
+        d_mm = _number("substrate_thickness_mm", d_mm, unit="mm")
+        if d_mm <= 0:
+            _fail("substrate_thickness_mm", f"{d_mm:g} mm is not allowed; give a plate thickness "
+                                            "> 0 mm, or null for a semi-infinite substrate.")
+    swept = _check_swept(data.get("swept_layer", 0), len(layers))
+    view = _check_view(data.get("view"))
+    try:
+        stack = Stack(layers, substrate=substrate, ambient=ambient, substrate_thickness_mm=d_mm)
+    except InputError as exc:  # pragma: no cover - every part is checked above
+        raise InputError(f"stack: {exc}") from None
+    return StackFile(name=name, scenario=scenario, stack=stack, swept_layer=swept, view=view)
+
+
+def stack_to_dict(stack: Stack, *, name: str = DEFAULT_NAME, scenario: str = "",
+                  swept_layer: int = 0, view: dict | None = None) -> dict:
+    """The stack-file object for a stack (the inverse of :func:`stack_from_dict`).
+
+    Parameters
+    ----------
+    stack : Stack
+        Layers (at most 12, each 0 to 100000 nm), substrate and ambient.
+    name : str
+        Display name, at most 200 characters.
+    scenario : str
+        Free text, at most 1000 characters.
+    swept_layer : int
+        Index of the layer the views sweep (0 = top).
+    view : dict or None
+        Viewing settings; missing keys take :data:`VIEW_DEFAULTS`.
+
+    Returns
+    -------
+    dict
+        JSON-friendly object with every field written out (view complete);
+        materials as ``Material.spec()``.
+
+    Raises
+    ------
+    InputError
+        The result would not be a valid stack file (the same checks as reading).
+    """
+    if not isinstance(stack, Stack):
+        raise InputError(f"stack_to_dict needs a Stack; got {type(stack).__name__}.")
+    full_view = _check_view(view)
+    data = {
+        "format": FORMAT,
+        "version": VERSION,
+        "name": name,
+        "scenario": scenario,
+        "ambient": stack.ambient.spec(),
+        "layers": [{"material": layer.material.spec(), "thickness_nm": layer.thickness_nm}
+                   for layer in stack.layers],
+        "substrate": stack.substrate.spec(),
+        "substrate_thickness_mm": stack.substrate_thickness_mm,
+        "swept_layer": swept_layer,
+        "view": full_view,
+    }
+    stack_from_dict(data)   # write only what reads back
+    return data
+
+
+def load_stack_file(content: bytes | str) -> StackFile:
+    """Parse and check the text of a stack file.
+
+    Parameters
+    ----------
+    content : bytes or str
+        The file's content; bytes are decoded as UTF-8 (a leading byte-order mark is allowed).
+        At most 1 MB.
+
+    Returns
+    -------
+    StackFile
+
+    Raises
+    ------
+    InputError
+        Too large, not UTF-8, not JSON (with line and column), or any field check of
+        :func:`stack_from_dict`.
+    """
+    limit = f"{MAX_FILE_BYTES:,} bytes (1 MB)"
+    if isinstance(content, (bytearray, memoryview)):
+        content = bytes(content)
+    if isinstance(content, bytes):
+        if len(content) > MAX_FILE_BYTES:
+            raise InputError(f"The file is {len(content):,} bytes; a stack file may be at most {limit}.")
+        try:
+            text = content.decode("utf-8-sig")
+        except UnicodeDecodeError as exc:
+            raise InputError(f"The file is not UTF-8 text (bad byte at position {exc.start}); "
+                             "save it as UTF-8 JSON.") from None
+    elif isinstance(content, str):
+        size = len(content) if len(content) > MAX_FILE_BYTES else len(
+            content.encode("utf-8", errors="surrogatepass"))
+        if size > MAX_FILE_BYTES:
+            raise InputError(f"The file is {size:,} bytes; a stack file may be at most {limit}.")
+        text = content[1:] if content.startswith("\ufeff") else content
+    else:
+        raise InputError(f"A stack file's content is text or bytes; got {type(content).__name__}.")
+    return stack_from_dict(_parse_json(text))
+
+
+def _reject_constant(token: str):
+    raise InputError(f"The file is not valid JSON: {token} is not a JSON number; "
+                     "write a finite number.")
+
+
+def _no_duplicates(pairs):
+    out = {}
+    for key, value in pairs:
+        if key in out:
+            raise InputError(f"The file is not a valid stack file: the field {key!r} appears twice "
+                             "in one object; keep one.")
+        out[key] = value
+    return out
+
+
+def _parse_json(text: str):
+    try:
+        return json.loads(text, parse_constant=_reject_constant, object_pairs_hook=_no_duplicates)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"The file is not valid JSON: {exc.msg} at line {exc.lineno}, "
+                         f"column {exc.colno}. Fix the text there (a missing comma, quote or "
+                         "bracket is the usual cause).") from None
+    except RecursionError:
+        raise InputError("The file is not a usable stack file: its brackets nest too deeply.") from None
+    except InputError:
+        raise
+    except ValueError as exc:   # e.g. an integer with too many digits
+        raise InputError(f"The file is not a usable stack file: {exc}.") from None
+
+
+def dump_stack_file(stack: Stack, *, name: str = DEFAULT_NAME, scenario: str = "",
+                    swept_layer: int = 0, view: dict | None = None) -> str:
+    """The text of a stack file: :func:`stack_to_dict` as JSON, 2-space indent, final newline.
+
+    Parameters and errors are those of :func:`stack_to_dict`.
+
+    Returns
+    -------
+    str
+        UTF-8-ready JSON text.
+    """
+    data = stack_to_dict(stack, name=name, scenario=scenario, swept_layer=swept_layer, view=view)
+    return json.dumps(data, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def list_presets() -> list[tuple[str, str]]:
+    """The shipped presets as ``(file stem, display name)``, sorted by file stem.
+
+    Returns
+    -------
+    list of (str, str)
+        Pass the stem to :func:`load_preset`.
+    """
+    return [(path.stem, load_preset(path.stem).name) for path in sorted(PRESET_DIR.glob("*.json"))]
+
+
+def load_preset(name: str) -> StackFile:
+    """Read one shipped preset.
+
+    Parameters
+    ----------
+    name : str
+        The preset's file stem, e.g. ``"thermal_oxide_on_silicon"``.
+
+    Returns
+    -------
+    StackFile
+
+    Raises
+    ------
+    InputError
+        No preset of that name (the message lists them), or the file is invalid.
+    """
+    stems = sorted(p.stem for p in PRESET_DIR.glob("*.json"))
+    if not isinstance(name, str) or name not in stems:
+        raise InputError(f"No preset {_describe(name)}; the presets are {', '.join(stems) or '(none)'}.")
+    path = PRESET_DIR / f"{name}.json"
+    try:
+        return load_stack_file(path.read_bytes())
+    except InputError as exc:
+        raise InputError(f"preset {name}: {exc}") from None

@@ -1,0 +1,167 @@
+"""The film explorer built and driven from its param state, without a browser."""
+
+import csv
+import io
+import json
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from physics import Stack, spectrum_to_xyz, xyz_to_srgb, srgb_to_hex
+from physics.appearance import colour_band_nm
+from physics.stackfile import list_presets, load_preset
+from views.explorer import FilmExplorer
+from views.state import ExplorerState, compute_point
+
+
+@pytest.fixture(scope="module")
+def explorer():
+    return FilmExplorer()
+
+
+def _physics_hex(stack: Stack, angle: float = 0.0, illuminant="D65", observer="2") -> str:
+    wl = colour_band_nm(stack)
+    xyz = spectrum_to_xyz(stack.reflectance(wl, angle), wl, illuminant, observer)
+    return srgb_to_hex(xyz_to_srgb(xyz, illuminant, observer))
+
+
+@pytest.mark.parametrize("stem", [stem for stem, _ in list_presets()])
+def test_preset_swatch_matches_physics(stem):
+    ex = FilmExplorer()
+    ex.preset.value = stem
+    sf = load_preset(stem)
+    assert ex.state.stack_json and ex._point.hex == _physics_hex(sf.stack, sf.view["angle_deg"], sf.view["illuminant"],
+                                                                    sf.view["observer"])
+    assert ex.swatch.object.count(ex._point.hex) >= 2
+    assert ex.map_src.data["image"][0].shape == (91, 400)
+
+
+def test_thickness_slider_changes_swatch(explorer):
+    explorer.thickness_slider.value = 250.0
+    assert explorer.state.thickness_nm == 250.0
+    assert explorer._point.hex == _physics_hex(explorer.state.stack)
+    assert explorer.vspan.location == 250.0
+
+
+@pytest.mark.parametrize("text", ["abc", "-5", "1e9", "nan", ""])
+def test_bad_thickness_text_keeps_state_and_shows_message(text):
+    ex = FilmExplorer()
+    before = ex.state.thickness_nm
+    ex.thickness.input.value = text
+    assert ex.state.thickness_nm == before
+    assert ex.thickness.message.visible and "Thickness" in ex.thickness.message.object
+    ex.thickness.input.value = "123.5"
+    assert ex.state.thickness_nm == 123.5 and not ex.thickness.message.visible
+
+
+@pytest.mark.parametrize("text", ["95", "-1", "x"])
+def test_bad_angle(text):
+    ex = FilmExplorer()
+    ex.angle.input.value = text
+    assert ex.state.angle_deg == 0.0 and ex.angle.message.visible
+
+
+def test_url_round_trip_restores_the_state():
+    """The page address carries the state."""
+    from views.urlstate import URL_KEYS, apply_query, state_to_query
+
+    ex = FilmExplorer()
+    ex.preset.value = "nitride_on_oxide_on_silicon"
+    ex.state.param.update(angle_deg=33.0, thickness_nm=77.0, illuminant="F11", observer="10", na=0.2,
+                          brightness="normalized", swept_layer=1)
+    query = state_to_query(ex.state)
+    assert "stack=" in query and "angle=33" in query
+    fresh = ExplorerState()
+    assert apply_query(fresh, query) == []
+    for name in URL_KEYS:
+        assert getattr(fresh, name) == getattr(ex.state, name), name
+    assert compute_point(fresh).hex == compute_point(ex.state).hex
+
+
+@pytest.mark.parametrize("query, key", [("?stack=garbage", "stack"), ("?angle=95", "angle"), ("?obs=7", "obs"),
+                                        ("?d=-3", "d"), ("?pol=circular", "pol"), ("?layer=x", "layer")])
+def test_bad_link_fields_are_reported_and_skipped(query, key):
+    from views.urlstate import apply_query
+
+    s = ExplorerState()
+    before = s.param.values()
+    errors = apply_query(s, query)
+    assert len(errors) == 1 and f"'{key}'" in errors[0]
+    assert s.param.values() == before
+
+
+def test_malformed_stack_file_changes_nothing():
+    ex = FilmExplorer()
+    before = ex.state.param.values()
+    for content in (b"{not json", b'{"format": "fringegauge-stack", "version": 1, "layers": [], "bogus": 1}',
+                    b'{"format": "fringegauge-stack", "version": 1, "layers": [{"material": "unobtainium", '
+                    b'"thickness_nm": 5}], "substrate": "Si"}', b"\xff\xfe\x00"):
+        ex.file_in.value = content
+        assert ex.file_msg.message.visible
+        assert ex.state.param.values() == before
+
+
+def test_save_and_load_round_trip():
+    ex = FilmExplorer()
+    ex.preset.value = "broadband_ar_on_bk7"
+    ex.state.angle_deg = 12.0
+    saved = ex._stack_file_bytes().getvalue()
+    other = FilmExplorer()
+    other.file_in.value = saved.encode()
+    assert not other.file_msg.message.visible
+    assert other._point.hex == ex._point.hex
+    assert json.loads(other.state.stack_json)["layers"] == json.loads(ex.state.stack_json)["layers"]
+
+
+def test_layer_editing():
+    ex = FilmExplorer()
+    ex._on_add_layer()
+    assert len(ex.state.layer_rows()) == 2 and ex.state.swept_layer == 1
+    ex._on_layer_action(1, "dup")
+    assert len(ex.state.layer_rows()) == 3
+    ex._on_layer_action(2, "up")
+    ex._on_layer_action(0, "del")
+    assert len(ex.state.layer_rows()) == 2
+    row = ex.layers_box.objects[0]
+    mat = row.objects[0].objects[0]
+    mat.value = "Si3N4"
+    assert ex.state.layer_rows()[0]["material"] == "Si3N4"
+    mat.value = "kryptonite"
+    assert ex.state.layer_rows()[0]["material"] == "Si3N4"
+    assert row.objects[1].visible and "Unknown material" in row.objects[1].object
+    mat.value = "1.7+0.01i"
+    assert ex.state.layer_rows()[0]["material"] == {"kind": "constant", "n": 1.7, "k": 0.01}
+    bad_k = "1.5-0.1i"
+    mat.value = bad_k
+    assert "k" in row.objects[1].object
+
+
+def test_downloads_open_and_parse():
+    ex = FilmExplorer()
+    text = ex._spectrum_csv().getvalue()
+    rows = [r for r in csv.reader(io.StringIO(text)) if r and not r[0].startswith("#")]
+    assert rows[0][0] == "wavelength_nm" and len(rows) > 300
+    assert abs(float(rows[1][0]) - 300.0) < 1e-9
+    for fn in (ex._map_png, ex._strip_png):
+        img = Image.open(fn())
+        assert img.format == "PNG" and img.size[0] >= 600
+
+
+def test_custom_lamp_spectrum():
+    ex = FilmExplorer()
+    wl = np.arange(380, 781, 5)
+    content = "wavelength,power\n" + "\n".join(f"{w},{1.0 + 0.001 * w}" for w in wl)
+    ex.spd_in.value = content.encode()
+    assert ex.state.illuminant == "custom" and not ex.spd_msg.message.visible
+    ex.spd_in.value = b"one,two\nthree,four"
+    assert ex.spd_msg.message.visible and ex.state.illuminant == "custom"
+
+
+def test_viewing_cone_and_brightness_change_the_map():
+    ex = FilmExplorer()
+    before = ex.map_src.data["image"][0].copy()
+    ex.na_slider.value = 0.5
+    assert not np.array_equal(before, ex.map_src.data["image"][0])
+    ex.brightness.value = "normalized"
+    assert ex._scale > 1.0

@@ -1,0 +1,1 @@
+"""Drawing for the page and for print: figures built from ``physics`` results."""

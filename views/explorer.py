@@ -1,0 +1,727 @@
+"""The film explorer page: stack editor, viewing controls, spectrum, swatch, colour map and strip.
+
+The page only displays: each number comes from :mod:`views.state`, which calls
+``physics``. Work runs off the event loop in a thread pool; inputs that arrive
+while a computation runs are coalesced, so only the newest state is computed
+(stale work is dropped) and sliders keep answering.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import io
+import json
+import logging
+import threading
+from concurrent.futures import ThreadPoolExecutor
+from datetime import date
+from functools import partial
+
+import numpy as np
+import panel as pn
+from bokeh.models import ColumnDataSource, HoverTool, Label, Range1d, Span, TapTool
+from bokeh.events import Tap
+from bokeh.plotting import figure
+
+from physics import InputError, search_materials, list_materials
+from physics.stackfile import list_presets, load_stack_file, dump_stack_file
+
+from . import render
+from .state import (ANGLE_MAX_DEG, MAX_LAYERS, THICKNESS_LIMITS_NM, ExplorerState, compute_map, compute_point,
+                    compute_strip, default_state, parse_material, parse_number, parse_spd_csv)
+
+log = logging.getLogger("fringegauge")
+
+#: Threads shared by all sessions for heavy work (2-core machines: two workers).
+EXECUTOR = ThreadPoolExecutor(max_workers=2, thread_name_prefix="fringegauge")
+
+CAUTIONS = (
+    "**Cautions.** Computed colours are estimates, not certified metrology: confirm thickness "
+    "with a calibrated instrument before a release decision. The sRGB colours on this screen, a "
+    "camera's and your eye's all differ with display, lamp and adaptation. Handle wafers, "
+    "solvents and oil samples as your site's safety rules and local codes require."
+)
+
+CSS = """
+.fg-label { font-size: 12px; color: #444; margin: 0 0 -6px 2px; }
+.fg-error { color: #b00020; font-size: 12px; margin: -4px 0 0 2px; }
+.fg-swatch-values { font-family: ui-monospace, monospace; font-size: 13px; line-height: 1.5; }
+.fg-status { font-size: 12px; color: #555; }
+"""
+
+
+def _label(text: str) -> pn.pane.HTML:
+    return pn.pane.HTML(f'<div class="fg-label">{text}</div>', margin=(4, 5, 0, 5))
+
+
+class Field:
+    """A typed value with its own inline message: the state changes only when the text is valid."""
+
+    def __init__(self, label: str, width: int = 120, placeholder: str = ""):
+        self.input = pn.widgets.TextInput(label=label, width=width, placeholder=placeholder, margin=(2, 5))
+        self.message = pn.pane.HTML("", css_classes=["fg-error"], margin=(0, 5), visible=False)
+
+    def show_error(self, text: str | None) -> None:
+        self.message.object = f'<div class="fg-error" role="alert">{text}</div>' if text else ""
+        self.message.visible = bool(text)
+
+    def set_text(self, text: str) -> None:
+        if self.input.value != text:
+            self.input.value = text
+
+    def view(self):
+        return pn.Column(self.input, self.message, margin=0)
+
+
+def _fmt(x: float, digits: int = 1) -> str:
+    return f"{x:.{digits}f}".rstrip("0").rstrip(".") if digits else f"{x:.0f}"
+
+
+class FilmExplorer:
+    """One session's page."""
+
+    def __init__(self, state: ExplorerState | None = None):
+        self.state = state or default_state()
+        self._dirty: set[str] = set()
+        self._running = False
+        self._lock = threading.Lock()
+        self._map = None
+        self._point = None
+        self._strip = None
+        self._scale = 1.0
+        self.generation = 0          # results applied so far (tests and benchmarks watch it)
+        self._syncing = False
+        self._build_widgets()
+        self._build_plots()
+        self._wire()
+        self.refresh(("map", "strip", "point"), sync=True)
+
+    # ------------------------------------------------------------------ widgets
+    def _build_widgets(self):
+        s = self.state
+        presets = list_presets()
+        self.preset = pn.widgets.Select(label="Preset stack", options={"(choose a preset)": ""} | {n: stem for stem, n in presets},
+                                        value=s.preset_name if s.preset_name in dict(presets) else "",
+                                        width=300, margin=(2, 5))
+        self.file_in = pn.widgets.FileInput(accept=".json", multiple=False, width=300, margin=(2, 5))
+        self.file_msg = Field("")
+        self.file_out = pn.widgets.FileDownload(callback=self._stack_file_bytes, filename="stack.json",
+                                                label="Save stack file (.json)", color="default",
+                                                width=300, margin=(2, 5))
+        curated = [n for n, _, _ in list_materials()]
+        self.ambient = pn.widgets.AutocompleteInput(label="Ambient (light comes from)", options=curated,
+                                                    case_sensitive=False, search_strategy="includes",
+                                                    restrict=False, min_characters=1, width=300, margin=(2, 5))
+        self.ambient_msg = Field("")
+        self.substrate = pn.widgets.AutocompleteInput(label="Substrate", options=curated, case_sensitive=False,
+                                                      search_strategy="includes", restrict=False,
+                                                      min_characters=1, width=300, margin=(2, 5))
+        self.substrate_msg = Field("")
+        self.plate = pn.widgets.Checkbox(label="Thick plate: add its back face (incoherent)", margin=(4, 5))
+        self.plate_mm = Field("Plate thickness (mm)", width=140)
+        self.layers_box = pn.Column(margin=0)
+        self.add_layer = pn.widgets.Button(label="+ Add layer", color="light", width=120, margin=(4, 5))
+        self.db_search = pn.widgets.TextInput(label="Find a material (curated names and the whole database)",
+                                              placeholder="e.g. nitride, GaN, Johnson", width=300, margin=(2, 5))
+        self.db_results = pn.pane.HTML("", width=300, margin=(0, 5), styles={"font-size": "12px"})
+
+        self.swept = pn.widgets.Select(label="Swept layer (map and strip)", options={}, width=300, margin=(2, 5))
+        self.thickness_slider = pn.widgets.FloatSlider(label="Thickness of the swept layer (nm)", start=0.0,
+                                                       end=s.thickness_max_nm, step=0.5, value=s.thickness_nm,
+                                                       width=300, margin=(2, 5))
+        self.thickness = Field("Thickness (nm)", width=140)
+        self.tmax = Field("Map up to (nm)", width=140)
+        self.angle_slider = pn.widgets.FloatSlider(label="Viewing angle (° from normal)", start=0.0, end=ANGLE_MAX_DEG,
+                                                   step=0.1, value=s.angle_deg, width=300, margin=(2, 5))
+        self.angle = Field("Angle (°)", width=140)
+        self.polarization = pn.widgets.RadioButtonGroup.from_param(s.param.polarization, label="Polarization",
+                                                                   color="default", margin=(2, 5))
+        self.illuminant = pn.widgets.Select.from_param(s.param.illuminant, label="Illuminant (lamp)", width=140,
+                                                       margin=(2, 5))
+        self.spd_in = pn.widgets.FileInput(accept=".csv,.txt", width=300, margin=(2, 5))
+        self.spd_msg = Field("")
+        self.observer = pn.widgets.RadioButtonGroup(label="Observer", options={"2° (CIE 1931)": "2", "10° (CIE 1964)": "10"},
+                                                    value=s.observer, margin=(2, 5))
+        self.na_slider = pn.widgets.FloatSlider(label="Viewing cone NA (0 = eye at a distance)", start=0.0, end=0.95,
+                                                step=0.01, value=s.na, width=300, margin=(2, 5))
+        self.brightness = pn.widgets.RadioButtonGroup(label="Brightness", options={"absolute": "absolute",
+                                                      "brightest = white": "normalized"}, value=s.brightness,
+                                                      margin=(2, 5))
+        self.dl_csv = pn.widgets.FileDownload(callback=self._spectrum_csv, filename="spectrum.csv",
+                                              label="Spectrum (.csv)", width=300, margin=(2, 5))
+        self.dl_map = pn.widgets.FileDownload(callback=self._map_png, filename="colour_map.png",
+                                              label="Colour map (.png)", width=300, margin=(2, 5))
+        self.dl_strip = pn.widgets.FileDownload(callback=self._strip_png, filename="reference_chart.png",
+                                                label="Reference chart to print (.png)", width=300, margin=(2, 5))
+        self.status = pn.pane.HTML("", css_classes=["fg-status"], margin=(0, 5))
+        self.error = pn.pane.Alert("", alert_type="danger", visible=False, margin=(5, 5))
+        self.swatch = pn.pane.HTML("", margin=(5, 5), min_width=260, width=270)
+        self.scenario = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#555"})
+
+    def _build_plots(self):
+        tools = "pan,wheel_zoom,box_zoom,reset,save"
+        self.spec_src = ColumnDataSource(dict(wl=[], R=[], Rs=[], Rp=[], T=[]))
+        p = figure(height=250, sizing_mode="stretch_width", tools=tools, title="Spectrum at the current point",
+                   x_axis_label="wavelength (nm)", y_axis_label="reflectance, transmittance (%)")
+        self.line_R = p.line("wl", "R", source=self.spec_src, line_width=2.5, color="#1b1b1b", legend_label="R")
+        self.line_Rs = p.line("wl", "Rs", source=self.spec_src, line_width=1.2, color="#1f6fb4", line_dash="dashed",
+                              legend_label="R s")
+        self.line_Rp = p.line("wl", "Rp", source=self.spec_src, line_width=1.2, color="#c0392b", line_dash="dotted",
+                              legend_label="R p")
+        self.line_T = p.line("wl", "T", source=self.spec_src, line_width=1.5, color="#2e8b57", legend_label="T")
+        p.legend.location = "top_right"
+        p.legend.background_fill_alpha = 0.7
+        p.legend.click_policy = "hide"
+        p.legend.label_text_font_size = "11px"
+        p.add_tools(HoverTool(renderers=[self.line_R], mode="vline",
+                              tooltips=[("λ", "@wl{0} nm"), ("R", "@R{0.00} %"), ("R s", "@Rs{0.00} %"),
+                                        ("R p", "@Rp{0.00} %"), ("T", "@T{0.00} %")]))
+        self.spec_fig = p
+
+        self.map_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], x=[], y=[], dw=[], dh=[]))
+        m = figure(height=330, sizing_mode="stretch_width", tools=tools, title="Colour vs thickness and viewing angle",
+                   x_axis_label="thickness of the swept layer (nm)", y_axis_label="viewing angle (°)")
+        img = m.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.map_src)
+        m.add_tools(HoverTool(renderers=[img], tooltips=[("thickness", "$x{0.0} nm"), ("angle", "$y{0.0}°"),
+                                                          ("L*, a*, b*", "@L{0.0}, @a{0.0}, @b{0.0}")]))
+        m.add_tools(TapTool())
+        self.vspan = Span(location=0, dimension="height", line_color="white", line_width=1.5, line_dash="dashed")
+        self.hspan = Span(location=0, dimension="width", line_color="white", line_width=1.5, line_dash="dashed")
+        m.add_layout(self.vspan)
+        m.add_layout(self.hspan)
+        m.x_range = Range1d(0, 1000)
+        m.y_range = Range1d(0, ANGLE_MAX_DEG)
+        m.on_event(Tap, self._on_map_tap)
+        self.map_fig = m
+
+        self.strip_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], x=[], y=[], dw=[], dh=[]))
+        st = figure(height=150, sizing_mode="stretch_width", tools="xpan,xwheel_zoom,reset,save",
+                    title="Reference strip at the current angle (dashed: start of each fringe order at 550 nm)",
+                    x_axis_label="thickness (nm)", y_range=Range1d(0, 1))
+        sim = st.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.strip_src)
+        st.add_tools(HoverTool(renderers=[sim], tooltips=[("thickness", "$x{0.0} nm"),
+                                                           ("L*, a*, b*", "@L{0.0}, @a{0.0}, @b{0.0}")]))
+        st.yaxis.visible = False
+        st.ygrid.visible = False
+        st.xaxis.minor_tick_line_color = "black"
+        st.xaxis.minor_tick_out = 4
+        self.strip_mark = Span(location=0, dimension="height", line_color="black", line_width=2)
+        st.add_layout(self.strip_mark)
+        self.order_src = ColumnDataSource(dict(x=[], label=[]))
+        st.segment(x0="x", x1="x", y0=0, y1=1, source=self.order_src, line_color="white", line_dash="dashed",
+                   line_width=1.2)
+        st.text(x="x", y=0.98, text="label", source=self.order_src, text_font_size="10px", text_color="white",
+                text_baseline="top", x_offset=3)
+        st.x_range = Range1d(0, 1000)
+        self.strip_fig = st
+
+    # ------------------------------------------------------------------ wiring
+    def _wire(self):
+        s = self.state
+        self.preset.param.watch(self._on_preset, "value")
+        self.file_in.param.watch(self._on_file, "value")
+        self.ambient.param.watch(partial(self._on_medium, "ambient"), "value")
+        self.substrate.param.watch(partial(self._on_medium, "substrate"), "value")
+        self.plate.param.watch(self._on_plate, "value")
+        self.plate_mm.input.param.watch(self._on_plate, "value")
+        self.add_layer.on_click(self._on_add_layer)
+        self.db_search.param.watch(self._on_db_search, "value_input")
+        self.swept.param.watch(self._on_swept, "value")
+        self.thickness_slider.param.watch(self._on_thickness_slider, "value")
+        self.thickness.input.param.watch(self._on_thickness_text, "value")
+        self.tmax.input.param.watch(self._on_tmax, "value")
+        self.angle_slider.param.watch(self._on_angle_slider, "value")
+        self.angle.input.param.watch(self._on_angle_text, "value")
+        self.spd_in.param.watch(self._on_spd, "value")
+        self.observer.param.watch(lambda e: setattr(s, "observer", e.new), "value")
+        self.na_slider.param.watch(lambda e: setattr(s, "na", round(float(e.new), 3)), "value")
+        self.brightness.param.watch(lambda e: setattr(s, "brightness", e.new), "value")
+        s.param.watch(self._on_state, list(s.param))
+        self._sync_widgets()
+
+    def _sync_widgets(self):
+        """Show the state in the widgets (after a preset, a file, a URL or a tap)."""
+        s = self.state
+        self._syncing = True
+        try:
+            d = json.loads(s.stack_json)
+            self.ambient.value = _spec_text(d["ambient"])
+            self.substrate.value = _spec_text(d["substrate"])
+            self.plate.value = d.get("substrate_thickness_mm") is not None
+            self.plate_mm.set_text(_fmt(d["substrate_thickness_mm"], 3) if d.get("substrate_thickness_mm") else "1")
+            self.plate_mm.input.visible = self.plate.value
+            self._rebuild_layers(d["layers"])
+            self.swept.options = {f"{i}: {_spec_text(l['material'])}": i for i, l in enumerate(d["layers"])} or {"(no layer)": 0}
+            self.swept.value = s.swept_layer
+            self.thickness_slider.end = max(s.thickness_max_nm, s.thickness_nm)
+            self.thickness_slider.value = s.thickness_nm
+            self.thickness.set_text(_fmt(s.thickness_nm, 2))
+            self.tmax.set_text(_fmt(s.thickness_max_nm, 1))
+            self.angle_slider.value = s.angle_deg
+            self.angle.set_text(_fmt(s.angle_deg, 2))
+            self.observer.value = s.observer
+            self.na_slider.value = s.na
+            self.brightness.value = s.brightness
+            sc = d.get("scenario", "")
+            self.scenario.object = f"<i>{_esc(d.get('name', ''))}</i>" + (f" — {_esc(sc)}" if sc else "")
+        finally:
+            self._syncing = False
+
+    def _rebuild_layers(self, layers):
+        rows = []
+        for i, layer in enumerate(layers):
+            mat = pn.widgets.AutocompleteInput(options=[n for n, _, _ in list_materials()], value=_spec_text(layer["material"]),
+                                               case_sensitive=False, search_strategy="includes", restrict=False,
+                                               min_characters=1, width=120, margin=(2, 2), label=f"Layer {i}")
+            thick = pn.widgets.TextInput(value=_fmt(layer["thickness_nm"], 2), width=80, margin=(2, 2), label="nm")
+            msg = pn.pane.HTML("", visible=False, margin=(0, 5))
+            buttons = []
+            for label, action, tip in (("↑", "up", "move up"), ("↓", "down", "move down"),
+                                       ("⊕", "dup", "duplicate"), ("✕", "del", "remove")):
+                b = pn.widgets.Button(label=label, width=26, height=30, margin=(18, 1, 2, 1), color="light",
+                                      description=f"{tip} layer {i}")
+                b.on_click(partial(self._on_layer_action, i, action))
+                buttons.append(b)
+            mat.param.watch(partial(self._on_layer_edit, i, "material", msg), "value")
+            thick.param.watch(partial(self._on_layer_edit, i, "thickness_nm", msg), "value")
+            rows.append(pn.Column(pn.Row(mat, thick, *buttons, margin=0), msg, margin=0))
+        self.layers_box.objects = rows
+        self.add_layer.disabled = len(layers) >= MAX_LAYERS
+
+    # ------------------------------------------------------------------ input handlers
+    def _guard(self, field, fn):
+        """Run a state change; show InputError next to the field and keep the previous state."""
+        try:
+            fn()
+        except InputError as exc:
+            field.show_error(str(exc))
+            return False
+        field.show_error(None)
+        return True
+
+    def _on_preset(self, event):
+        if not event.new:
+            return
+        self.file_msg.show_error(None)
+        self.state.load_preset(event.new)
+        self._sync_widgets()
+
+    def _on_file(self, event):
+        if not event.new:
+            return
+
+        def load():
+            sf = load_stack_file(event.new)
+            self.state.load(sf, self.file_in.filename or sf.name)
+        if self._guard(self.file_msg, load):
+            self._sync_widgets()
+
+    def _on_medium(self, which, event):
+        if self._syncing:
+            return
+        field = self.ambient_msg if which == "ambient" else self.substrate_msg
+        self._guard(field, lambda: self.state.set_stack(**{which: parse_material(event.new)}))
+
+    def _on_plate(self, event):
+        if self._syncing:
+            return
+        self.plate_mm.input.visible = self.plate.value
+
+        def apply():
+            mm = None
+            if self.plate.value:
+                mm = parse_number(self.plate_mm.input.value, "Plate thickness", 0.001, 1000.0, "mm")
+            self.state.set_stack(substrate_thickness_mm=mm)
+        self._guard(self.plate_mm, apply)
+
+    def _on_layer_edit(self, index, key, msg, event):
+        if self._syncing:
+            return
+        layers = self.state.layer_rows()
+        try:
+            if key == "material":
+                layers[index]["material"] = parse_material(event.new)
+            else:
+                layers[index]["thickness_nm"] = parse_number(event.new, f"Layer {index} thickness",
+                                                             *THICKNESS_LIMITS_NM, "nm")
+            self.state.set_stack(layers=layers)
+        except InputError as exc:
+            msg.object = f'<div class="fg-error" role="alert">{_esc(str(exc))}</div>'
+            msg.visible = True
+            return
+        msg.visible = False
+        if key == "material" or index == self.state.swept_layer:
+            self._sync_widgets()
+
+    def _on_layer_action(self, index, action, _event=None):
+        layers = self.state.layer_rows()
+        swept = self.state.swept_layer
+        if action == "up" and index > 0:
+            layers[index - 1], layers[index] = layers[index], layers[index - 1]
+            swept = {index: index - 1, index - 1: index}.get(swept, swept)
+        elif action == "down" and index < len(layers) - 1:
+            layers[index + 1], layers[index] = layers[index], layers[index + 1]
+            swept = {index: index + 1, index + 1: index}.get(swept, swept)
+        elif action == "dup" and len(layers) < MAX_LAYERS:
+            layers.insert(index + 1, dict(layers[index]))
+            swept = swept + 1 if swept > index else swept
+        elif action == "del":
+            layers.pop(index)
+            swept = swept - 1 if swept > index else min(swept, max(len(layers) - 1, 0))
+        else:
+            return
+        if self._guard(self.file_msg, lambda: self.state.set_stack(layers=layers, swept_layer=swept)):
+            self._sync_widgets()
+
+    def _on_add_layer(self, _event=None):
+        layers = self.state.layer_rows()
+        layers.append({"material": "SiO2", "thickness_nm": 100.0})
+        if self._guard(self.file_msg, lambda: self.state.set_stack(layers=layers, swept_layer=len(layers) - 1)):
+            self._sync_widgets()
+
+    def _on_db_search(self, event):
+        text = (event.new or "").strip()
+        if len(text) < 2:
+            self.db_results.object = ""
+            return
+        rows = search_materials(text, limit=12)
+        if not rows:
+            self.db_results.object = "<i>No match.</i>"
+            return
+        items = "".join(f"<li><code>{_esc(spec)}</code> {_esc(desc)}</li>" for spec, desc in rows)
+        self.db_results.object = (f"<ul style='padding-left:16px;margin:2px 0'>{items}</ul>"
+                                  "<span>Type a name or a <code>shelf/book/page</code> into a material field.</span>")
+
+    def _on_swept(self, event):
+        if self._syncing or event.new is None:
+            return
+        if self._guard(self.file_msg, lambda: self.state.set_stack(swept_layer=int(event.new))):
+            self._sync_widgets()
+
+    def _on_thickness_slider(self, event):
+        if self._syncing:
+            return
+        self.state.thickness_nm = float(event.new)
+        self.thickness.set_text(_fmt(event.new, 2))
+        self.thickness.show_error(None)
+
+    def _on_thickness_text(self, event):
+        if self._syncing:
+            return
+
+        def apply():
+            value = parse_number(event.new, "Thickness", *THICKNESS_LIMITS_NM, "nm")
+            self.state.thickness_nm = value
+            if value > self.thickness_slider.end:
+                self.state.thickness_max_nm = value
+        if self._guard(self.thickness, apply):
+            self._sync_widgets()
+
+    def _on_tmax(self, event):
+        if self._syncing:
+            return
+
+        def apply():
+            self.state.thickness_max_nm = parse_number(event.new, "Map range", 10.0, THICKNESS_LIMITS_NM[1], "nm")
+        if self._guard(self.tmax, apply):
+            self._sync_widgets()
+
+    def _on_angle_slider(self, event):
+        if self._syncing:
+            return
+        self.state.angle_deg = float(event.new)
+        self.angle.set_text(_fmt(event.new, 2))
+        self.angle.show_error(None)
+
+    def _on_angle_text(self, event):
+        if self._syncing:
+            return
+
+        def apply():
+            self.state.angle_deg = parse_number(event.new, "Angle", 0.0, ANGLE_MAX_DEG, "°")
+        if self._guard(self.angle, apply):
+            self._sync_widgets()
+
+    def _on_spd(self, event):
+        if not event.new:
+            return
+        self._guard(self.spd_msg, lambda: self.state.set_spd(*parse_spd_csv(event.new)))
+
+    def _on_map_tap(self, event):
+        if event.x is None or event.y is None:
+            return
+        s = self.state
+        s.param.update(thickness_nm=float(np.clip(event.x, 0, s.thickness_max_nm)),
+                       angle_deg=float(np.clip(event.y, 0, ANGLE_MAX_DEG)))
+        self._sync_widgets()
+
+    def _on_state(self, *events):
+        names = {e.name for e in events}
+        kinds = {"point"}
+        if names & {"stack_json", "swept_layer", "thickness_max_nm", "polarization", "illuminant", "spd_json",
+                    "observer", "na", "brightness"}:
+            kinds |= {"map", "strip"}
+        if "angle_deg" in names:
+            kinds.add("strip")
+        self.refresh(kinds)
+
+    # ------------------------------------------------------------------ computing
+    def refresh(self, kinds, sync: bool = False):
+        """Recompute ``kinds`` ("map", "strip", "point"); off the event loop when served."""
+        with self._lock:
+            self._dirty |= set(kinds)
+            if self._running and not sync:
+                return
+            self._running = True
+        if sync or pn.state.curdoc is None or pn.state.curdoc.session_context is None:
+            try:
+                while self._dirty:
+                    with self._lock:
+                        todo, self._dirty = self._dirty, set()
+                    self._apply(self._compute(self._snapshot(), todo, self._scale))
+            finally:
+                self._running = False
+            return
+        self.status.object = "computing…"
+        pn.state.execute(self._worker)
+
+    async def _worker(self):
+        loop = asyncio.get_running_loop()
+        doc = pn.state.curdoc
+        try:
+            while True:
+                with self._lock:
+                    todo, self._dirty = self._dirty, set()
+                    if not todo:
+                        self._running = False
+                        break
+                snap = self._snapshot()
+                result = await loop.run_in_executor(EXECUTOR, self._compute, snap, todo, self._scale)
+                doc.add_next_tick_callback(partial(self._apply, result))
+        except Exception:  # never lose the session to one failed computation
+            log.exception("film explorer computation failed")
+            with self._lock:
+                self._running = False
+
+    def _snapshot(self) -> ExplorerState:
+        return ExplorerState(**{k: v for k, v in self.state.param.values().items() if k != "name"})
+
+    @staticmethod
+    def _compute(s: ExplorerState, kinds, scale):
+        out = {"kinds": kinds, "state": s, "error": None}
+        try:
+            if "map" in kinds:
+                out["map"] = compute_map(s)
+                scale = out["map"].scale
+            out["scale"] = scale
+            if "strip" in kinds:
+                out["strip"] = compute_strip(s, scale)
+            if "point" in kinds:
+                out["point"] = compute_point(s, scale)
+        except InputError as exc:
+            out["error"] = str(exc)
+        return out
+
+    def _apply(self, result):
+        """Push computed results into the plots (runs with the document lock when served)."""
+        self.generation += 1
+        self.status.object = "" if not self._dirty else "computing…"
+        if result["error"]:
+            self.error.object = result["error"]
+            self.error.visible = True
+            return
+        self.error.visible = False
+        s = result["state"]
+        self._scale = result["scale"]
+        if "map" in result:
+            self._map = cm = result["map"]
+            rgb = np.transpose(cm.rgb, (1, 0, 2))          # rows = angle
+            lab = np.transpose(cm.lab, (1, 0, 2))
+            d0, d1 = cm.thickness_nm[0], cm.thickness_nm[-1]
+            a0, a1 = cm.angle_deg[0], cm.angle_deg[-1]
+            dd = (d1 - d0) / max(cm.thickness_nm.size - 1, 1)
+            da = (a1 - a0) / max(cm.angle_deg.size - 1, 1)
+            self.map_src.data = dict(image=[_rgba(rgb)], L=[lab[..., 0]], a=[lab[..., 1]], b=[lab[..., 2]],
+                                     x=[d0 - dd / 2], y=[a0 - da / 2], dw=[d1 - d0 + dd], dh=[a1 - a0 + da])
+            self.map_fig.x_range.update(start=d0, end=d1)
+            self.map_fig.y_range.update(start=a0, end=a1)
+            self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer} and viewing angle — "
+                                       f"{s.illuminant}, {s.observer}° observer, {s.polarization}"
+                                       + (f", cone NA {s.na:g}" if s.na else "")
+                                       + (", brightest = white" if s.brightness == "normalized" else ""))
+        if "strip" in result:
+            self._strip = st = result["strip"]
+            d = st.thickness_nm
+            dd = (d[-1] - d[0]) / max(d.size - 1, 1)
+            self.strip_src.data = dict(image=[_rgba(st.rgb[None, :, :])], L=[st.lab[None, :, 0]],
+                                       a=[st.lab[None, :, 1]], b=[st.lab[None, :, 2]], x=[d[0] - dd / 2], y=[0],
+                                       dw=[d[-1] - d[0] + dd], dh=[1])
+            self.order_src.data = dict(x=list(st.order_marks), label=[f"order {i + 2}" for i in range(len(st.order_marks))])
+            self.strip_fig.x_range.update(start=d[0], end=d[-1])
+        if "point" in result:
+            self._point = pt = result["point"]
+            T = pt.T * 100 if pt.T is not None else np.full_like(pt.R, np.nan)
+            self.spec_src.data = dict(wl=pt.wavelength_nm, R=pt.R * 100, Rs=pt.Rs * 100, Rp=pt.Rp * 100, T=T)
+            self.line_T.visible = pt.T is not None
+            self.line_Rs.visible = self.line_Rp.visible = s.polarization == "unpolarized"
+            self.spec_fig.title.text = (f"Spectrum at {s.thickness_nm:.1f} nm, {s.angle_deg:.1f}°"
+                                        + (f", cone NA {s.na:g}" if s.na else ""))
+            self.swatch.object = _swatch_html(pt, s)
+            self.vspan.location = s.thickness_nm
+            self.hspan.location = s.angle_deg
+            self.strip_mark.location = s.thickness_nm
+
+    # ------------------------------------------------------------------ downloads
+    def _stack_file_bytes(self):
+        return io.StringIO(dump_stack_file_from_state(self.state))
+
+    def _spectrum_csv(self):
+        s = self._snapshot()
+        pt = compute_point(s, self._scale, np.arange(*_spectrum_range(s), 1.0))
+        lines = [
+            "# fringegauge spectrum (computed; not certified metrology)",
+            f"# date: {date.today().isoformat()}",
+            f"# stack (top to bottom): {_stack_text(s)}",
+            f"# swept layer {s.swept_layer} thickness_nm: {s.thickness_nm:g}; angle_deg: {s.angle_deg:g}; "
+            f"cone NA: {s.na:g}; polarization: {s.polarization}",
+            f"# colour: illuminant {s.illuminant}, observer {s.observer} deg: sRGB {pt.hex}, "
+            f"L*a*b* {pt.lab[0]:.2f} {pt.lab[1]:.2f} {pt.lab[2]:.2f}",
+            "wavelength_nm,R_percent,R_s_percent,R_p_percent,T_percent",
+        ]
+        T = pt.T if pt.T is not None else np.full_like(pt.R, np.nan)
+        for row in zip(pt.wavelength_nm, pt.R * 100, pt.Rs * 100, pt.Rp * 100, T * 100):
+            lines.append(",".join("" if not np.isfinite(v) else f"{v:.6g}" for v in row))
+        return io.StringIO("\n".join(lines) + "\n")
+
+    def _map_png(self):
+        s = self._snapshot()
+        cm = self._map if self._map is not None else compute_map(s)
+        png = render.map_png(np.transpose(cm.rgb, (1, 0, 2)), cm.thickness_nm, cm.angle_deg,
+                             x_label="thickness of the swept layer (nm)", y_label="viewing angle (°)",
+                             title=f"Film colour: {_stack_text(s)}", subtitle=_light_text(s),
+                             crosshair=(s.thickness_nm, s.angle_deg), footer=_footer())
+        return io.BytesIO(png)
+
+    def _strip_png(self):
+        s = self._snapshot()
+        st = compute_strip(s, self._scale)
+        marks = [(float(x), f"order {i + 2}") for i, x in enumerate(st.order_marks)]
+        png = render.strip_png(st.rgb, st.thickness_nm, title=f"Reference colours: {_stack_text(s)}",
+                               subtitle=f"layer {s.swept_layer} swept; viewing angle {s.angle_deg:g}°; " + _light_text(s),
+                               order_marks=marks, footer=_footer())
+        return io.BytesIO(png)
+
+    # ------------------------------------------------------------------ layout
+    def panel(self):
+        s = self.state
+        section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
+        sidebar = pn.Column(
+            pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge · film explorer</h2>"),
+            pn.Card(pn.pane.Markdown(CAUTIONS, styles={"font-size": "12px"}), title="Cautions", collapsed=True,
+                    width=310, margin=(2, 5)),
+            section("Stack"),
+            self.preset, _label("Open a stack file"), self.file_in, self.file_msg.message, self.file_out,
+            self.scenario,
+            self.ambient, self.ambient_msg.message,
+            _label("Layers, top (next to the ambient) to bottom: material, thickness (nm)"),
+            self.layers_box, self.add_layer,
+            self.substrate, self.substrate_msg.message, self.plate, self.plate_mm.view(),
+            self.db_search, self.db_results,
+            section("Swept layer"),
+            self.swept, self.thickness_slider, pn.Row(self.thickness.view(), self.tmax.view(), margin=0),
+            section("Viewing and light"),
+            self.angle_slider, self.angle.view(), _label("Polarization"), self.polarization,
+            self.illuminant, _label("Lamp spectrum (CSV: nm, power) → illuminant 'custom'"), self.spd_in,
+            self.spd_msg.message, _label("Observer"), self.observer, self.na_slider, _label("Brightness"),
+            self.brightness,
+            section("Downloads"),
+            self.dl_csv, self.dl_map, self.dl_strip,
+            width=330, scroll=True, sizing_mode="stretch_height", margin=(0, 5),
+            styles={"background": "#f6f6f4", "border-right": "1px solid #ddd"},
+        )
+        main = pn.Column(
+            pn.Row(self.status, self.error, margin=0),
+            pn.Row(self.swatch, pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
+            pn.pane.Bokeh(self.map_fig, sizing_mode="stretch_width"),
+            pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
+            pn.pane.Markdown("Tap the map to set thickness and angle. " + CAUTIONS.split("**Cautions.** ")[1],
+                             styles={"font-size": "11px", "color": "#555"}),
+            sizing_mode="stretch_both", scroll=True, margin=(0, 10),
+        )
+        return pn.Row(sidebar, main, sizing_mode="stretch_both", stylesheets=[CSS])
+
+
+# ---------------------------------------------------------------------- helpers
+def dump_stack_file_from_state(s: ExplorerState) -> str:
+    d = s.to_file_dict()
+    return dump_stack_file(s.stack, name=d.get("name", "untitled stack"), scenario=d.get("scenario", ""),
+                           swept_layer=s.swept_layer, view=d.get("view"))
+
+
+def _spectrum_range(s: ExplorerState):
+    lo, hi = s.stack.wavelength_range_nm()
+    return max(300.0, np.ceil(lo)), min(1000.0, np.floor(hi)) + 1.0
+
+
+def _rgba(rgb: np.ndarray) -> np.ndarray:
+    """(..., 3) floats 0..1 → uint32 RGBA image as Bokeh's image_rgba wants it."""
+    u8 = np.clip(np.round(rgb * 255), 0, 255).astype(np.uint8)
+    out = np.empty(rgb.shape[:-1] + (4,), dtype=np.uint8)
+    out[..., :3] = u8
+    out[..., 3] = 255
+    return out.view(np.uint32).reshape(rgb.shape[:-1])
+
+
+def _spec_text(spec) -> str:
+    if isinstance(spec, str):
+        return spec
+    if isinstance(spec, dict) and spec.get("kind") == "constant":
+        n, k = spec.get("n"), spec.get("k", 0.0)
+        return f"{n:g}" if not k else f"{n:g}+{k:g}i"
+    if isinstance(spec, dict):
+        return spec.get("name", spec.get("kind", "custom"))
+    return str(spec)
+
+
+def _stack_text(s: ExplorerState) -> str:
+    d = json.loads(s.stack_json)
+    parts = [_spec_text(d["ambient"])]
+    for i, l in enumerate(d["layers"]):
+        t = s.thickness_nm if i == s.swept_layer else l["thickness_nm"]
+        parts.append(f"{_spec_text(l['material'])} {t:g} nm")
+    sub = _spec_text(d["substrate"])
+    if d.get("substrate_thickness_mm"):
+        sub += f" ({d['substrate_thickness_mm']:g} mm plate)"
+    parts.append(sub)
+    return " / ".join(parts)
+
+
+def _light_text(s: ExplorerState) -> str:
+    return (f"illuminant {s.illuminant}, CIE {s.observer}° observer, {s.polarization}"
+            + (f", cone NA {s.na:g}" if s.na else "") + (", brightest = white" if s.brightness == "normalized" else ""))
+
+
+def _footer() -> str:
+    return (f"fringegauge {date.today().isoformat()} · computed colours, not certified metrology · "
+            "screen, camera and eye colours differ")
+
+
+def _esc(text: str) -> str:
+    return (str(text).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;"))
+
+
+def _swatch_html(pt, s: ExplorerState) -> str:
+    L, a, b = pt.lab
+    gamut = ("<div style='color:#b00020'>outside the sRGB gamut: the screen shows the nearest colour</div>"
+             if pt.out_of_gamut else "<div style='color:#2e7d32'>inside the sRGB gamut</div>")
+    return f"""
+<div role="img" aria-label="colour swatch {pt.hex}" data-hex="{pt.hex}"
+     style="width:240px;height:110px;border:1px solid #888;border-radius:4px;background:{pt.hex}"></div>
+<div class="fg-swatch-values" style="margin-top:6px">
+<b>{s.thickness_nm:.1f} nm</b> at <b>{s.angle_deg:.1f}°</b>, fringe order {pt.order}<br>
+sRGB <span class="fg-hex">{pt.hex}</span><br>
+L*a*b* {L:.1f}, {a:.1f}, {b:.1f}<br>
+xy {pt.xy[0]:.4f}, {pt.xy[1]:.4f}<br>
+{gamut}
+<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer. Not certified metrology.</div>
+</div>"""

@@ -1,0 +1,297 @@
+"""Page state of the film explorer, declared with param, and the physics calls it drives.
+
+Every number the page shows comes from one function here, and every function
+here calls ``physics``: the widgets in :mod:`views.explorer` only display.
+The state holds only valid values; a rejected input leaves it as it was.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+
+import numpy as np
+import param
+
+from physics import InputError, Layer, Stack, material
+from physics.appearance import (ColorMap, color_map, colour_band_nm, cone_reflectance, interference_order,
+                                order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
+from physics.color import srgb_to_hex, user_spd_on_fine_grid
+from physics.stackfile import StackFile, load_preset, stack_from_dict, stack_to_dict
+
+#: Map grid: at least 400 thicknesses x 91 angles (colour over 81 wavelengths, 380-780 nm at 5 nm).
+MAP_THICKNESS_POINTS = 400
+MAP_ANGLE_POINTS = 91
+#: Largest viewing angle on the page (90° is grazing: nothing is seen).
+ANGLE_MAX_DEG = 89.9
+#: Thickness limits a user may type (nm).
+THICKNESS_LIMITS_NM = (0.0, 100_000.0)
+#: Largest number of coherent layers in the editor.
+MAX_LAYERS = 12
+#: Points along the reference strip.
+STRIP_POINTS = 600
+ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom"]
+DEFAULT_PRESET = "thermal_oxide_on_silicon"
+
+
+class ExplorerState(param.Parameterized):
+    """Everything that defines the view; the URL carries all of it."""
+
+    stack_json = param.String(default="", doc="The stack (ambient, layers, substrate) as compact JSON.")
+    swept_layer = param.Integer(default=0, bounds=(0, MAX_LAYERS - 1), doc="Layer whose thickness is swept (0 = top).")
+    thickness_nm = param.Number(default=100.0, bounds=THICKNESS_LIMITS_NM, doc="Current thickness of the swept layer, nm.")
+    thickness_max_nm = param.Number(default=1000.0, bounds=(10.0, THICKNESS_LIMITS_NM[1]),
+                                    doc="Right end of the colour map and strip, nm.")
+    angle_deg = param.Number(default=0.0, bounds=(0.0, ANGLE_MAX_DEG), doc="Viewing angle from the normal, degrees.")
+    polarization = param.Selector(default="unpolarized", objects=["unpolarized", "s", "p"])
+    illuminant = param.Selector(default="D65", objects=ILLUMINANT_CHOICES)
+    spd_json = param.String(default="", doc="A custom lamp spectrum [[nm...], [values...]] (illuminant 'custom').")
+    observer = param.Selector(default="2", objects=["2", "10"], doc="CIE 1931 2° or CIE 1964 10° observer.")
+    na = param.Number(default=0.0, bounds=(0.0, MAX_NA), doc="Numerical aperture of the viewing cone (0 = one direction).")
+    brightness = param.Selector(default="absolute", objects=["absolute", "normalized"],
+                                doc="Absolute reflectance, or scaled so the brightest colour on the map is white.")
+    preset_name = param.String(default="", doc="Name of the loaded preset or file (for titles only).")
+
+    # ------------------------------------------------------------------ stack
+    def stack_file(self) -> StackFile:
+        """The stack as parsed from ``stack_json`` (raises InputError if malformed)."""
+        return stack_from_dict(json.loads(self.stack_json))
+
+    @property
+    def stack(self) -> Stack:
+        sf = self.stack_file()
+        layers = list(sf.stack.layers)
+        if layers:
+            j = min(self.swept_layer, len(layers) - 1)
+            layers[j] = Layer(layers[j].material, self.thickness_nm)
+        return Stack(layers, sf.stack.substrate, sf.stack.ambient, sf.stack.substrate_thickness_mm)
+
+    def layer_rows(self) -> list[dict]:
+        """The editor rows: [{"material": spec, "thickness_nm": float}, ...] top to bottom."""
+        return json.loads(self.stack_json)["layers"]
+
+    def set_stack(self, *, ambient=None, layers=None, substrate=None, substrate_thickness_mm=...,
+                  swept_layer=None) -> None:
+        """Replace parts of the stack after validating the whole; raises InputError and changes nothing if bad."""
+        d = json.loads(self.stack_json)
+        if ambient is not None:
+            d["ambient"] = ambient
+        if layers is not None:
+            if len(layers) > MAX_LAYERS:
+                raise InputError(f"At most {MAX_LAYERS} layers; remove one before adding another.")
+            d["layers"] = layers
+        if substrate is not None:
+            d["substrate"] = substrate
+        if substrate_thickness_mm is not ...:
+            d["substrate_thickness_mm"] = substrate_thickness_mm
+        n = len(d["layers"])
+        swept = self.swept_layer if swept_layer is None else swept_layer
+        swept = min(max(swept, 0), max(n - 1, 0))
+        d["swept_layer"] = swept
+        sf = stack_from_dict(d)                      # validates materials, thicknesses, fields
+        _ = colour_band_nm(sf.stack)                 # the stack must have data over the visible
+        thickness = sf.stack.layers[swept].thickness_nm if n else self.thickness_nm
+        with param.parameterized.batch_call_watchers(self):
+            self.stack_json = _compact(d)
+            self.swept_layer = swept
+            if n:
+                self.thickness_nm = min(thickness, THICKNESS_LIMITS_NM[1])
+
+    def load(self, sf: StackFile, name: str = "") -> None:
+        """Take a parsed stack file (a preset or an uploaded file) and its view settings."""
+        d = stack_to_dict(sf.stack, name=sf.name, scenario=sf.scenario, swept_layer=sf.swept_layer)
+        d.pop("view", None)
+        v = sf.view
+        n = len(sf.stack.layers)
+        with param.parameterized.batch_call_watchers(self):
+            self.stack_json = _compact(d)
+            self.swept_layer = min(sf.swept_layer, max(n - 1, 0))
+            if n:
+                self.thickness_nm = sf.stack.layers[self.swept_layer].thickness_nm
+            self.thickness_max_nm = max(float(v.get("thickness_max_nm", 1000.0)), 10.0)
+            self.angle_deg = float(v.get("angle_deg", 0.0))
+            self.polarization = v.get("polarization", "unpolarized")
+            ill = v.get("illuminant", "D65")
+            self.illuminant = ill if ill in ILLUMINANT_CHOICES else "D65"
+            self.observer = str(v.get("observer", "2"))
+            self.na = float(v.get("na", 0.0))
+            self.preset_name = name or sf.name
+
+    def load_preset(self, stem: str) -> None:
+        self.load(load_preset(stem), stem)
+
+    def to_file_dict(self) -> dict:
+        """The stack with its current thickness and view, as a stack file dictionary."""
+        sf = self.stack_file()
+        return stack_to_dict(self.stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
+                             view={"angle_deg": self.angle_deg, "polarization": self.polarization,
+                                   "illuminant": self.illuminant if self.illuminant != "custom" else "D65",
+                                   "observer": self.observer, "na": self.na,
+                                   "thickness_max_nm": self.thickness_max_nm})
+
+    # ------------------------------------------------------------------ light
+    def illuminant_spec(self):
+        """What physics.color takes: a name, or the custom SPD as (wavelengths, values)."""
+        if self.illuminant != "custom":
+            return self.illuminant
+        if not self.spd_json:
+            raise InputError("Illuminant 'custom' needs a lamp spectrum: upload a CSV of wavelength (nm), value.")
+        wl, v = json.loads(self.spd_json)
+        return (np.asarray(wl, dtype=float), np.asarray(v, dtype=float))
+
+    def set_spd(self, wavelength_nm, values) -> None:
+        """Store a custom lamp spectrum after validating it; selects illuminant 'custom'."""
+        user_spd_on_fine_grid(wavelength_nm, values)          # raises InputError if unusable
+        wl = np.asarray(wavelength_nm, dtype=float)
+        v = np.asarray(values, dtype=float)
+        order = np.argsort(wl)
+        wl, v = wl[order], v[order]
+        grid = np.arange(np.ceil(wl[0] / 5) * 5, wl[-1] + 1e-9, 5.0)
+        vals = np.interp(grid, wl, v)
+        vals = vals / vals.max()
+        with param.parameterized.batch_call_watchers(self):
+            self.spd_json = json.dumps([grid.round(1).tolist(), [float(f"{x:.4g}") for x in vals]],
+                                       separators=(",", ":"))
+            self.illuminant = "custom"
+
+    # ------------------------------------------------------------------ grids
+    def thickness_grid(self) -> np.ndarray:
+        return np.linspace(0.0, self.thickness_max_nm, MAP_THICKNESS_POINTS)
+
+    def angle_grid(self) -> np.ndarray:
+        return np.linspace(0.0, ANGLE_MAX_DEG, MAP_ANGLE_POINTS)
+
+    def map_key(self) -> tuple:
+        """Everything the colour map depends on (the current thickness and angle do not)."""
+        return (self.stack_json, self.swept_layer, self.thickness_max_nm, self.polarization, self.illuminant,
+                self.spd_json if self.illuminant == "custom" else "", self.observer, self.na, self.brightness)
+
+
+def _compact(d: dict) -> str:
+    return json.dumps(d, separators=(",", ":"), ensure_ascii=False)
+
+
+# ---------------------------------------------------------------------- computations
+@dataclass(frozen=True)
+class PointResult:
+    """What the page shows for the current thickness and angle."""
+
+    wavelength_nm: np.ndarray
+    R: np.ndarray
+    Rs: np.ndarray
+    Rp: np.ndarray
+    T: np.ndarray | None
+    rgb: np.ndarray
+    hex: str
+    lab: np.ndarray
+    xy: tuple
+    out_of_gamut: bool
+    order: int
+    opd_waves: float
+
+
+def compute_map(s: ExplorerState) -> ColorMap:
+    """The colour map over (thickness, angle) for the swept layer."""
+    stack = s.stack
+    if not stack.layers:
+        raise InputError("Add a layer to see how its colour changes with thickness.")
+    return color_map(stack, s.swept_layer, s.thickness_grid(), s.angle_grid(),
+                     illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.polarization,
+                     na=s.na, brightness=s.brightness)
+
+
+def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=None) -> PointResult:
+    """Spectrum and colour at the current thickness and angle (``scale``: the map's brightness factor)."""
+    stack = s.stack
+    wl_colour = colour_band_nm(stack)
+    wl = wl_colour if spectrum_wavelength_nm is None else spectrum_wavelength_nm
+    Rs = cone_reflectance(stack, wl, s.angle_deg, s.na, "s")
+    Rp = cone_reflectance(stack, wl, s.angle_deg, s.na, "p")
+    R = {"s": Rs, "p": Rp}.get(s.polarization, 0.5 * (Rs + Rp))
+    transmits = stack.substrate_thickness_mm is not None or not np.any(stack.substrate.nk(wl).imag > 0)
+    T = cone_reflectance(stack, wl, s.angle_deg, s.na, s.polarization, "transmittance") if transmits else None
+    Rc = R if spectrum_wavelength_nm is None else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization)
+    pc = point_color(Rc, wl_colour, illuminant=s.illuminant_spec(), observer=s.observer, scale=scale)
+
+    if stack.layers:
+        opd = float(interference_order(stack, s.swept_layer, s.thickness_nm, s.angle_deg))
+    else:
+        opd = 0.0
+    return PointResult(wl, R, Rs, Rp, T, pc.rgb, srgb_to_hex(pc.rgb), pc.lab, pc.xy, pc.out_of_gamut,
+                       int(np.floor(opd)) + 1, opd)
+
+
+@dataclass(frozen=True)
+class StripResult:
+    thickness_nm: np.ndarray
+    rgb: np.ndarray            # (n, 3)
+    lab: np.ndarray            # (n, 3)
+    order_marks: np.ndarray    # thicknesses where a new fringe order starts
+
+
+def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
+    """Colours along thickness at the current angle (the printable reference chart).
+
+    ``scale`` is the colour map's brightness factor, so strip and map agree.
+    """
+    stack = s.stack
+    d = np.linspace(0.0, s.thickness_max_nm, STRIP_POINTS)
+    ill = s.illuminant_spec()
+    cm = color_map(stack, s.swept_layer, d, [s.angle_deg], illuminant=ill, observer=s.observer,
+                   polarization=s.polarization, na=s.na)
+    rgb, lab, _ = scaled_colors(cm.xyz[:, 0, :], ill, s.observer, scale)
+    marks = order_thicknesses_nm(stack, s.swept_layer, s.angle_deg, s.thickness_max_nm)
+    return StripResult(d, rgb, lab, marks)
+
+
+def parse_number(text: str, name: str, lo: float, hi: float, unit: str = "") -> float:
+    """A typed number checked against its range; InputError with a sentence otherwise."""
+    u = f" {unit}" if unit else ""
+    try:
+        value = float(str(text).strip().replace(",", "."))
+    except ValueError:
+        raise InputError(f"{name}: '{text}' is not a number; type a value from {lo:g} to {hi:g}{u}.") from None
+    if not np.isfinite(value) or value < lo or value > hi:
+        raise InputError(f"{name}: {text} is outside {lo:g} to {hi:g}{u}; type a value in that range.")
+    return value
+
+
+def parse_material(text: str):
+    """A material field: a curated name, a page, or 'n' / 'n+ik'. Returns the spec to store."""
+    text = str(text).strip()
+    if not text:
+        raise InputError("Type a material: a name such as SiO2, a page shelf/book/page, or a number n or n+ik.")
+    m = material(text)                       # raises InputError with suggestions
+    spec = m.spec()
+    return spec if isinstance(spec, (dict, str)) else text
+
+
+def parse_spd_csv(content: bytes) -> tuple[np.ndarray, np.ndarray]:
+    """A lamp spectrum file: two numeric columns, wavelength (nm) and relative power."""
+    if len(content) > 2_000_000:
+        raise InputError("The lamp spectrum file is larger than 2 MB; give a CSV of two columns, nm and power.")
+    try:
+        text = content.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        raise InputError("The lamp spectrum file is not text; give a CSV of two columns, nm and power.") from None
+    rows = []
+    for line in text.splitlines():
+        parts = [p for p in line.replace(";", ",").replace("\t", ",").replace(" ", ",").split(",") if p]
+        if len(parts) < 2:
+            continue
+        try:
+            rows.append((float(parts[0]), float(parts[1])))
+        except ValueError:
+            continue                          # a header line
+    if len(rows) < 5:
+        raise InputError("The lamp spectrum needs at least 5 rows of two numeric columns: wavelength (nm), power.")
+    arr = np.array(rows)
+    if not np.all(np.isfinite(arr)):
+        raise InputError("The lamp spectrum contains NaN or infinite values; remove those rows.")
+    return arr[:, 0], arr[:, 1]
+
+
+def default_state() -> ExplorerState:
+    s = ExplorerState()
+    s.load_preset(DEFAULT_PRESET)
+    return s
