@@ -95,6 +95,8 @@ class Material:
         if not np.all(np.isfinite(out)):
             raise InputError(f"{self.name}: the data give no finite index at some wavelength "
                              "in the range asked; choose another page for this material.")
+        if np.any(out.real <= 0):
+            raise InputError(f"{self.name}: n <= 0 at some wavelength asked; check its coefficients or data.")
         if np.any(out.imag < 0):
             raise InputError(f"{self.name}: k < 0 in its data; fringegauge needs k >= 0 "
                              "(absorbing media). Use another page or a corrected table.")

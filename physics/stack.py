@@ -51,6 +51,9 @@ __all__ = ["Layer", "Stack", "sweep", "POLARIZATIONS", "MAX_ANGLE_DEG"]
 POLARIZATIONS = ("s", "p", "unpolarized")
 #: Largest viewing angle accepted: 90° itself is grazing incidence, where R = 1 and nothing is seen.
 MAX_ANGLE_DEG = 90.0
+#: Largest k of an ambient treated as transparent: water and glass pages carry k ~ 1e-8 in the
+#: visible, which over a viewing path of centimetres is negligible for colour (it is dropped).
+AMBIENT_K_MAX = 1e-6
 #: Branch test tolerance for Im(kz) near zero (Byrnes 2016 uses 100 machine epsilons).
 _BRANCH_EPS = 100 * np.finfo(float).eps
 #: Elements per chunk of a sweep: keeps the working arrays in cache and memory bounded.
@@ -235,9 +238,11 @@ class _Optics:
     def __init__(self, stack: Stack, wl: np.ndarray, ang_deg: np.ndarray):
         self.stack, self.wl = stack, wl
         N = np.array([_nk_in_role(m, wl, role) for m, role in zip(stack._media, stack.roles())])  # (M, W)
-        if np.any(N[0].imag != 0):
-            raise InputError(f"The ambient ({stack.ambient.name}) absorbs (k > 0) at some wavelength; "
-                             "light must come from a transparent medium. Choose a transparent ambient.")
+        if np.any(N[0].imag > AMBIENT_K_MAX):
+            raise InputError(f"The ambient ({stack.ambient.name}) absorbs (k up to {N[0].imag.max():.2g}) in the "
+                             f"band asked; light must come from a transparent medium (k <= {AMBIENT_K_MAX:g}). "
+                             "Choose a transparent ambient.")
+        N[0] = N[0].real                                              # weak absorption of the ambient is neglected
         beta = N[0].real[None, :] * np.sin(np.radians(ang_deg))[:, None]   # (A, W), real, conserved
         self.N = N
         self.kz = np.stack([_forward_kz(N[m][None, :], beta) for m in range(len(N))])  # (M, A, W)

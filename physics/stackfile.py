@@ -128,12 +128,24 @@ _SHORT.maxlevel = 3
 
 def _describe(value) -> str:
     """A short, bounded repr of a value for messages (safe on deep or huge structures)."""
-    return _SHORT.repr(value)
+    try:
+        return _SHORT.repr(value)
+    except ValueError:          # an integer too long to print
+        return "<a number too long to print>"
 
 
 def _type_name(value) -> str:
-    return {dict: "an object", list: "a list", tuple: "a list", str: "a string", bool: "true/false",
-            type(None): "null", int: "a number", float: "a number"}.get(type(value), type(value).__name__)
+    return {dict: "an object", list: "a list", tuple: "a list", str: "a string",
+            int: "a number", float: "a number"}.get(type(value), type(value).__name__)
+
+
+def _got(value) -> str:
+    """What was found, in JSON words: 'null', 'true', or the kind and a short repr."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    return f"{_type_name(value)} {_describe(value)}"
 
 
 def _check_fields(where: str, obj: dict, allowed, required=()):
@@ -152,7 +164,7 @@ def _number(where: str, value, lo=None, hi=None, unit="") -> float:
     u = f" {unit}" if unit else ""
     in_unit = f" (in {unit})" if unit else ""
     if isinstance(value, bool) or not isinstance(value, (int, float)):
-        _fail(where, f"must be a number{in_unit}, got {_type_name(value)} {_describe(value)}.")
+        _fail(where, f"must be a number{in_unit}, got {_got(value)}.")
     try:
         x = float(value)
     except OverflowError:
@@ -162,13 +174,13 @@ def _number(where: str, value, lo=None, hi=None, unit="") -> float:
     if lo is not None and x < lo or hi is not None and x > hi:
         allowed = (f"from {lo:g} to {hi:g}{u}" if lo is not None and hi is not None
                    else f">= {lo:g}{u}" if lo is not None else f"<= {hi:g}{u}")
-        _fail(where, f"{x:g}{u} is out of range; give a value {allowed}.")
+        _fail(where, f"{x:.10g}{u} is out of range; give a value {allowed}.")
     return x
 
 
 def _string(where: str, value, max_chars: int) -> str:
     if not isinstance(value, str):
-        _fail(where, f"must be a string (text in double quotes), got {_type_name(value)} {_describe(value)}.")
+        _fail(where, f"must be a string (text in double quotes), got {_got(value)}.")
     if len(value) > max_chars:
         _fail(where, f"is {len(value)} characters long; shorten it to at most {max_chars}.")
     return value
@@ -176,7 +188,7 @@ def _string(where: str, value, max_chars: int) -> str:
 
 def _number_list(where: str, value, min_len=1, max_len=None) -> list:
     if not isinstance(value, (list, tuple)):
-        _fail(where, f"must be a list of numbers, got {_type_name(value)} {_describe(value)}.")
+        _fail(where, f"must be a list of numbers, got {_got(value)}.")
     if len(value) < min_len or (max_len is not None and len(value) > max_len):
         size = f"{min_len}" if max_len == min_len else (
             f"{min_len} to {max_len}" if max_len is not None else f"at least {min_len}")
@@ -188,7 +200,7 @@ def _material_description(where: str, d: dict) -> dict:
     """Check a material description object's fields and types; return a clean copy."""
     kind = d.get("kind")
     if not isinstance(kind, str) or kind not in _MATERIAL_FIELDS:
-        _fail(f"{where}.kind", f"must be one of {', '.join(_MATERIAL_FIELDS)}, got {_describe(kind)}.")
+        _fail(f"{where}.kind", f"must be one of {', '.join(_MATERIAL_FIELDS)}, got {_got(kind)}.")
     required, optional = _MATERIAL_FIELDS[kind]
     _check_fields(where, d, ("kind", *required, *optional), required)
     out = {"kind": kind}
@@ -220,7 +232,7 @@ def _material(where: str, value) -> Material:
         _fail(where, f"must be a material name or page as a string (e.g. \"SiO2\", "
                      f"\"main/Si/Green-2008\", \"1.46\") or a material description object "
                      f"(e.g. {{\"kind\": \"constant\", \"n\": 1.46, \"k\": 0.0}}); "
-                     f"got {_type_name(value)} {_describe(value)}.")
+                     f"got {_got(value)}.")
     try:
         return material(spec)
     except InputError as exc:
@@ -234,7 +246,7 @@ def _check_view(view) -> dict:
     if view is None:
         view = {}
     if not isinstance(view, dict):
-        _fail("view", f"must be an object of viewing settings, got {_type_name(view)} {_describe(view)}.")
+        _fail("view", f"must be an object of viewing settings, got {_got(view)}.")
     _check_fields("view", view, tuple(VIEW_DEFAULTS))
     out = dict(VIEW_DEFAULTS)
     for key, value in view.items():
@@ -247,20 +259,19 @@ def _check_view(view) -> dict:
                        "observer": OBSERVERS}[key]
             if not isinstance(value, str) or value not in allowed:
                 _fail(w, f"must be one of {', '.join(repr(a) for a in allowed)} (a string), "
-                         f"got {_describe(value)}.")
+                         f"got {_got(value)}.")
             out[key] = value
     return out
 
 
 def _check_swept(value, n_layers: int) -> int:
     if isinstance(value, bool) or not isinstance(value, int):
-        _fail("swept_layer", f"must be a whole number (a layer index), got {_type_name(value)} "
-                             f"{_describe(value)}.")
+        _fail("swept_layer", f"must be a whole number (a layer index), got {_got(value)}.")
     if n_layers == 0:
         if value != 0:
-            _fail("swept_layer", f"is {value} but the stack has no layers; use 0.")
+            _fail("swept_layer", f"is {_describe(value)} but the stack has no layers; use 0.")
     elif not 0 <= value < n_layers:
-        _fail("swept_layer", f"is {value}; with {n_layers} layers use an index from 0 "
+        _fail("swept_layer", f"is {_describe(value)}; with {n_layers} layers use an index from 0 "
                              f"(top, next to the ambient) to {n_layers - 1}.")
     return value
 
@@ -289,19 +300,19 @@ def stack_from_dict(data: dict) -> StackFile:
     """
     if not isinstance(data, dict):
         raise InputError(f"A stack file must hold one JSON object {{...}} at the top level; "
-                         f"got {_type_name(data)}.")
+                         f"got {_got(data)}.")
     _check_fields("file", data, _TOP_FIELDS)
     for key in _REQUIRED:
         if key not in data:
             _fail(key, f"missing; a stack file needs the fields {', '.join(_REQUIRED)}.")
     if data["format"] != FORMAT or not isinstance(data["format"], str):
-        _fail("format", f"must be {FORMAT!r}, got {_describe(data['format'])}; this is not a "
+        _fail("format", f"must be {FORMAT!r}, got {_got(data['format'])}; this is not a "
                         "fringegauge stack file or its header is damaged.")
     version = data["version"]
     if isinstance(version, bool) or not isinstance(version, int):
-        _fail("version", f"must be the whole number {VERSION}, got {_describe(version)}.")
+        _fail("version", f"must be the whole number {VERSION}, got {_got(version)}.")
     if version != VERSION:
-        _fail("version", f"{version} is not supported; this fringegauge reads version {VERSION}. "
+        _fail("version", f"{_describe(version)} is not supported; this fringegauge reads version {VERSION}. "
                          "Open the file with the fringegauge that wrote it, or rewrite it as version 1.")
     name = _string("name", data.get("name", DEFAULT_NAME), MAX_NAME_CHARS)
     scenario = _string("scenario", data.get("scenario", ""), MAX_SCENARIO_CHARS)
@@ -309,7 +320,7 @@ def stack_from_dict(data: dict) -> StackFile:
     raw_layers = data["layers"]
     if not isinstance(raw_layers, list):
         _fail("layers", f"must be a list of layers [{{\"material\": ..., \"thickness_nm\": ...}}, ...], "
-                        f"got {_type_name(raw_layers)}.")
+                        f"got {_got(raw_layers)}.")
     if len(raw_layers) > MAX_LAYERS:
         _fail("layers", f"has {len(raw_layers)} layers; a stack file holds at most {MAX_LAYERS}. "
                         "Remove layers or merge thin ones.")
@@ -318,7 +329,7 @@ def stack_from_dict(data: dict) -> StackFile:
         where = f"layers[{i}]"
         if not isinstance(raw, dict):
             _fail(where, f"must be an object {{\"material\": ..., \"thickness_nm\": ...}}, "
-                         f"got {_type_name(raw)} {_describe(raw)}.")
+                         f"got {_got(raw)}.")
         _check_fields(where, raw, _LAYER_FIELDS, _LAYER_FIELDS)
         thickness = _number(f"{where}.thickness_nm", raw["thickness_nm"], 0.0, MAX_THICKNESS_NM, "nm")
         layers.append(Layer(_material(f"{where}.material", raw["material"]), thickness))

@@ -120,3 +120,8 @@ def test_search():
     assert any(p.startswith("main/GaN/") for p in pages)
     assert len(list_materials()) == len(curated_materials())
     assert all(ref for _, _, ref in list_materials())
+
+
+def test_non_positive_n_is_refused():
+    with pytest.raises(InputError, match="n <= 0"):
+        CauchyMaterial(-1.0, range_nm=(400, 800)).nk(500.0)

@@ -190,3 +190,9 @@ def test_no_nan_ever(layers, substrate, angle):
     stack = Stack([Layer(n, d) for n, d in layers], substrate=substrate)
     R, T = stack.reflectance_transmittance(np.linspace(300, 1000, 8), angle)
     assert np.all(np.isfinite(R)) and np.all(np.isfinite(T))
+
+
+def test_weakly_absorbing_ambient_is_treated_as_transparent():
+    """Water's page carries k ~ 2e-9 in the visible: it may be the ambient (oil seen from under water)."""
+    R = Stack([Layer("oil", 300.0)], substrate="air", ambient="water").reflectance(np.linspace(400, 700, 4), 20.0)
+    assert np.all(np.isfinite(R)) and np.all(R >= 0)

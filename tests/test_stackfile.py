@@ -65,6 +65,18 @@ def test_preset_loads_and_round_trips(stem):
     assert (PRESET_DIR / f"{stem}.json").read_text(encoding="utf-8") == text
 
 
+@pytest.mark.parametrize("stem", sorted(PRESET_STEMS))
+def test_preset_covers_colour_band_and_its_thickness_axis(stem):
+    sf = load_preset(stem)
+    lo, hi = sf.stack.wavelength_range_nm()
+    assert lo <= 360.0 and hi >= 830.0        # the CIE table span used by physics.color
+    swept = sf.stack.layers[sf.swept_layer].thickness_nm
+    assert 0 < swept < sf.view["thickness_max_nm"]
+    R = sf.stack.reflectance(np.arange(360.0, 830.001, 5.0), sf.view["angle_deg"],
+                             sf.view["polarization"])
+    assert np.all((R >= 0) & (R <= 1))
+
+
 def test_single_layer_ar_is_quarter_wave_at_550nm():
     sf = load_preset("mgf2_ar_on_bk7")
     (layer,) = sf.stack.layers

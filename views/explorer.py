@@ -32,6 +32,10 @@ from .state import (ANGLE_MAX_DEG, MAX_LAYERS, THICKNESS_LIMITS_NM, ExplorerStat
 
 log = logging.getLogger("fringegauge")
 
+#: Slider values are rounded to this many decimals (a 0.5 nm step sums to 101.00000000000001).
+SLIDER_DIGITS = 6
+#: Wavelength step of the plotted spectrum (nm); the CSV download uses 1 nm.
+SPECTRUM_STEP_NM = 2.0
 #: Threads shared by all sessions for heavy work (2-core machines: two workers).
 EXECUTOR = ThreadPoolExecutor(max_workers=2, thread_name_prefix="fringegauge")
 
@@ -57,8 +61,9 @@ def _label(text: str) -> pn.pane.HTML:
 class Field:
     """A typed value with its own inline message: the state changes only when the text is valid."""
 
-    def __init__(self, label: str, width: int = 120, placeholder: str = ""):
-        self.input = pn.widgets.TextInput(label=label, width=width, placeholder=placeholder, margin=(2, 5))
+    def __init__(self, label: str, width: int = 120, placeholder: str = "", css: str = ""):
+        self.input = pn.widgets.TextInput(label=label, width=width, placeholder=placeholder, margin=(2, 5),
+                                          css_classes=[css] if css else [])
         self.message = pn.pane.HTML("", css_classes=["fg-error"], margin=(0, 5), visible=False)
 
     def show_error(self, text: str | None) -> None:
@@ -128,12 +133,13 @@ class FilmExplorer:
         self.swept = pn.widgets.Select(label="Swept layer (map and strip)", options={}, width=300, margin=(2, 5))
         self.thickness_slider = pn.widgets.FloatSlider(label="Thickness of the swept layer (nm)", start=0.0,
                                                        end=s.thickness_max_nm, step=0.5, value=s.thickness_nm,
-                                                       width=300, margin=(2, 5))
-        self.thickness = Field("Thickness (nm)", width=140)
+                                                       width=300, margin=(2, 5), css_classes=["fg-thickness-slider"])
+        self.thickness = Field("Thickness (nm)", width=140, css="fg-thickness-field")
         self.tmax = Field("Map up to (nm)", width=140)
         self.angle_slider = pn.widgets.FloatSlider(label="Viewing angle (° from normal)", start=0.0, end=ANGLE_MAX_DEG,
-                                                   step=0.1, value=s.angle_deg, width=300, margin=(2, 5))
-        self.angle = Field("Angle (°)", width=140)
+                                                   step=0.1, value=s.angle_deg, width=300, margin=(2, 5),
+                                                   css_classes=["fg-angle-slider"])
+        self.angle = Field("Angle (°)", width=140, css="fg-angle-field")
         self.polarization = pn.widgets.RadioButtonGroup.from_param(s.param.polarization, label="Polarization",
                                                                    color="default", margin=(2, 5))
         self.illuminant = pn.widgets.Select.from_param(s.param.illuminant, label="Illuminant (lamp)", width=140,
@@ -148,14 +154,17 @@ class FilmExplorer:
                                                       "brightest = white": "normalized"}, value=s.brightness,
                                                       margin=(2, 5))
         self.dl_csv = pn.widgets.FileDownload(callback=self._spectrum_csv, filename="spectrum.csv",
-                                              label="Spectrum (.csv)", width=300, margin=(2, 5))
+                                              label="Spectrum (.csv)", width=300, margin=(2, 5),
+                                              css_classes=["fg-dl-csv"])
         self.dl_map = pn.widgets.FileDownload(callback=self._map_png, filename="colour_map.png",
-                                              label="Colour map (.png)", width=300, margin=(2, 5))
+                                              label="Colour map (.png)", width=300, margin=(2, 5),
+                                              css_classes=["fg-dl-map"])
         self.dl_strip = pn.widgets.FileDownload(callback=self._strip_png, filename="reference_chart.png",
-                                                label="Reference chart to print (.png)", width=300, margin=(2, 5))
+                                                label="Reference chart to print (.png)", width=300,
+                                                margin=(2, 5), css_classes=["fg-dl-strip"])
         self.status = pn.pane.HTML("", css_classes=["fg-status"], margin=(0, 5))
         self.error = pn.pane.Alert("", alert_type="danger", visible=False, margin=(5, 5))
-        self.swatch = pn.pane.HTML("", margin=(5, 5), min_width=260, width=270)
+        self.swatch = pn.pane.HTML("", margin=(5, 5), width=270, height=250, css_classes=["fg-swatch"])
         self.scenario = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#555"})
 
     def _build_plots(self):
@@ -299,6 +308,15 @@ class FilmExplorer:
         field.show_error(None)
         return True
 
+    def _show_text(self, field, text):
+        """Mirror a slider in its typed field without echoing back to the slider."""
+        self._syncing = True
+        try:
+            field.set_text(text)
+            field.show_error(None)
+        finally:
+            self._syncing = False
+
     def _on_preset(self, event):
         if not event.new:
             return
@@ -401,9 +419,8 @@ class FilmExplorer:
     def _on_thickness_slider(self, event):
         if self._syncing:
             return
-        self.state.thickness_nm = float(event.new)
-        self.thickness.set_text(_fmt(event.new, 2))
-        self.thickness.show_error(None)
+        self.state.thickness_nm = round(float(event.new), SLIDER_DIGITS)
+        self._show_text(self.thickness, _fmt(event.new, 2))
 
     def _on_thickness_text(self, event):
         if self._syncing:
@@ -429,9 +446,8 @@ class FilmExplorer:
     def _on_angle_slider(self, event):
         if self._syncing:
             return
-        self.state.angle_deg = float(event.new)
-        self.angle.set_text(_fmt(event.new, 2))
-        self.angle.show_error(None)
+        self.state.angle_deg = round(float(event.new), SLIDER_DIGITS)
+        self._show_text(self.angle, _fmt(event.new, 2))
 
     def _on_angle_text(self, event):
         if self._syncing:
@@ -517,7 +533,7 @@ class FilmExplorer:
             if "strip" in kinds:
                 out["strip"] = compute_strip(s, scale)
             if "point" in kinds:
-                out["point"] = compute_point(s, scale)
+                out["point"] = compute_point(s, scale, np.arange(*_spectrum_range(s), SPECTRUM_STEP_NM))
         except InputError as exc:
             out["error"] = str(exc)
         return out
@@ -652,6 +668,7 @@ class FilmExplorer:
 
 
 # ---------------------------------------------------------------------- helpers
+
 def dump_stack_file_from_state(s: ExplorerState) -> str:
     d = s.to_file_dict()
     return dump_stack_file(s.stack, name=d.get("name", "untitled stack"), scenario=d.get("scenario", ""),

@@ -17,7 +17,7 @@ from physics import InputError, Layer, Stack, material
 from physics.appearance import (ColorMap, color_map, colour_band_nm, cone_reflectance, interference_order,
                                 order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
 from physics.color import srgb_to_hex, user_spd_on_fine_grid
-from physics.stackfile import StackFile, load_preset, stack_from_dict, stack_to_dict
+from physics.stackfile import StackFile, load_preset, load_stack_file, stack_from_dict, stack_to_dict
 
 #: Map grid: at least 400 thicknesses x 91 angles (colour over 81 wavelengths, 380-780 nm at 5 nm).
 MAP_THICKNESS_POINTS = 400
@@ -28,6 +28,8 @@ ANGLE_MAX_DEG = 89.9
 THICKNESS_LIMITS_NM = (0.0, 100_000.0)
 #: Largest number of coherent layers in the editor.
 MAX_LAYERS = 12
+#: Substrates with k below this show a transmittance curve (light enters them and goes on).
+TRANSPARENT_SUBSTRATE_K = 0.01
 #: Points along the reference strip.
 STRIP_POINTS = 600
 ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom"]
@@ -55,7 +57,7 @@ class ExplorerState(param.Parameterized):
     # ------------------------------------------------------------------ stack
     def stack_file(self) -> StackFile:
         """The stack as parsed from ``stack_json`` (raises InputError if malformed)."""
-        return stack_from_dict(json.loads(self.stack_json))
+        return load_stack_file(self.stack_json)
 
     @property
     def stack(self) -> Stack:
@@ -208,7 +210,8 @@ def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=N
     Rs = cone_reflectance(stack, wl, s.angle_deg, s.na, "s")
     Rp = cone_reflectance(stack, wl, s.angle_deg, s.na, "p")
     R = {"s": Rs, "p": Rp}.get(s.polarization, 0.5 * (Rs + Rp))
-    transmits = stack.substrate_thickness_mm is not None or not np.any(stack.substrate.nk(wl).imag > 0)
+    transmits = (stack.substrate_thickness_mm is not None
+                 or bool(np.all(stack.substrate.nk(wl).imag < TRANSPARENT_SUBSTRATE_K)))
     T = cone_reflectance(stack, wl, s.angle_deg, s.na, s.polarization, "transmittance") if transmits else None
     Rc = R if spectrum_wavelength_nm is None else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization)
     pc = point_color(Rc, wl_colour, illuminant=s.illuminant_spec(), observer=s.observer, scale=scale)

@@ -14,7 +14,7 @@ import zlib
 from urllib.parse import parse_qsl, urlencode
 
 from physics import InputError
-from physics.stackfile import stack_from_dict
+from physics.stackfile import load_stack_file
 
 from .state import ExplorerState
 
@@ -42,7 +42,7 @@ def decode_stack(text: str) -> str:
         if d.unconsumed_tail:
             raise InputError("the stack in the link is too large")
         stack_json = data.decode("utf-8")
-        stack_from_dict(json.loads(stack_json))            # validate
+        load_stack_file(stack_json)                          # the same checks as an uploaded file
         return stack_json
     except InputError:
         raise

@@ -1,0 +1,74 @@
+"""Start `panel serve app.py` on a free loopback port for browser tests and benchmarks."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+CHROMIUM = "/usr/bin/chromium"
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-quic",
+                 "--no-first-run", "--disable-component-update", "--disable-sync"]
+#: Seconds to wait for the server to answer its first request.
+START_TIMEOUT_S = 60
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@contextlib.contextmanager
+def served_app(extra_args=()):
+    """Yield (url, log_path) of a running app; stop it afterwards."""
+    port = free_port()
+    log_path = ROOT / f".server-{port}.log"
+    log = open(log_path, "w")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "panel", "serve", "app.py", "--port", str(port), "--address", "127.0.0.1",
+         "--allow-websocket-origin", f"127.0.0.1:{port}", *extra_args],
+        cwd=ROOT, stdout=log, stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    url = f"http://127.0.0.1:{port}/app"
+    try:
+        deadline = time.time() + START_TIMEOUT_S
+        while True:
+            try:
+                urllib.request.urlopen(url, timeout=5).read(100)
+                break
+            except Exception:
+                if proc.poll() is not None or time.time() > deadline:
+                    raise RuntimeError("the app did not start:\n" + log_path.read_text())
+                time.sleep(0.3)
+        yield url, log_path
+    finally:
+        proc.terminate()
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        log.close()
+        with contextlib.suppress(OSError):
+            log_path.unlink()
+
+
+DEEP_TEXT_JS = """
+(sel) => {
+  const walk = (root) => {
+    const el = root.querySelector(sel);
+    if (el) return el;
+    for (const host of root.querySelectorAll('*')) {
+      if (host.shadowRoot) { const f = walk(host.shadowRoot); if (f) return f; }
+    }
+    return null;
+  };
+  const el = walk(document);
+  return el ? el.textContent : null;
+}
+"""

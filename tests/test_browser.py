@@ -1,0 +1,143 @@
+"""The film explorer in headless Chromium (Debian's /usr/bin/chromium, driven by Playwright)."""
+
+import csv
+import io
+import re
+from pathlib import Path
+
+import pytest
+from PIL import Image
+
+from tests.support.server import CHROMIUM, CHROMIUM_ARGS, DEEP_TEXT_JS, served_app
+
+pytestmark = pytest.mark.browser
+
+if not Path(CHROMIUM).exists():  # pragma: no cover - .ci/run installs it
+    pytest.skip("Chromium is not installed at /usr/bin/chromium (apt-get install -y chromium)",
+                allow_module_level=True)
+
+from playwright.sync_api import sync_playwright  # noqa: E402
+
+#: Console message types that count as page errors.
+ERROR_TYPES = {"error"}
+
+
+@pytest.fixture(scope="module")
+def server():
+    with served_app() as (url, log_path):
+        yield url, log_path
+
+
+@pytest.fixture(scope="module")
+def browser():
+    with sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+        yield b
+        b.close()
+
+
+@pytest.fixture()
+def page(browser, server):
+    url, log_path = server
+    ctx = browser.new_context(viewport={"width": 1366, "height": 768}, accept_downloads=True)
+    pg = ctx.new_page()
+    pg.console_errors = []
+    pg.on("console", lambda m: pg.console_errors.append(m.text) if m.type in ERROR_TYPES else None)
+    pg.on("pageerror", lambda e: pg.console_errors.append(str(e)))
+    pg.goto(url)
+    _wait_swatch(pg)
+    yield pg
+    ctx.close()
+    assert "Traceback" not in log_path.read_text(), log_path.read_text()
+
+
+def _swatch_text(pg):
+    return pg.evaluate(DEEP_TEXT_JS, ".fg-hex") or ""
+
+
+def _wait_swatch(pg, not_text=None, timeout=30_000):
+    pg.wait_for_function(
+        f"() => {{ const t = ({DEEP_TEXT_JS})('.fg-hex'); return t && t !== {not_text!r}; }}"
+        if not_text else f"() => !!({DEEP_TEXT_JS})('.fg-hex')", timeout=timeout)
+    return _swatch_text(pg)
+
+
+def _physics_hex(thickness_nm, angle_deg=0.0):
+    from physics import spectrum_to_xyz, srgb_to_hex, xyz_to_srgb
+    from physics.appearance import colour_band_nm
+    from physics.stackfile import load_preset
+
+    st = load_preset("thermal_oxide_on_silicon").stack.with_thickness(0, thickness_nm)
+    wl = colour_band_nm(st)
+    return srgb_to_hex(xyz_to_srgb(spectrum_to_xyz(st.reflectance(wl, angle_deg), wl)))
+
+
+def _swatch_thickness(pg):
+    text = pg.evaluate(DEEP_TEXT_JS, ".fg-swatch-values")
+    return float(re.search(r"([\d.]+) nm at", text).group(1))
+
+
+def test_page_loads_without_errors(page):
+    assert _swatch_text(page) == _physics_hex(100.0)
+    page.wait_for_timeout(1500)
+    assert page.console_errors == []
+
+
+def test_thickness_slider_moves_the_swatch_to_the_physics_value(page):
+    handle = page.locator(".fg-thickness-slider .noUi-handle").first
+    handle.focus()
+    before = _swatch_text(page)
+    for _ in range(60):                       # 60 steps of 0.5 nm
+        page.keyboard.press("ArrowRight")
+    page.wait_for_function(f"() => ({DEEP_TEXT_JS})('.fg-swatch-values').includes('130.0 nm')", timeout=30_000)
+    hex_now = _swatch_text(page)
+    assert hex_now != before
+    assert hex_now == _physics_hex(_swatch_thickness(page))
+    assert page.console_errors == []
+
+
+@pytest.mark.parametrize("bad", ["abc", "-5", "1e9"])
+def test_bad_thickness_shows_inline_message_and_page_keeps_working(page, bad):
+    field = page.locator(".fg-thickness-field input").first
+    field.fill(bad)
+    field.press("Enter")
+    page.get_by_role("alert").filter(has_text="Thickness").first.wait_for(timeout=15_000)
+    assert _swatch_thickness(page) == 100.0
+    field.fill("250")
+    field.press("Enter")
+    page.wait_for_function(f"() => ({DEEP_TEXT_JS})('.fg-swatch-values').includes('250.0 nm')", timeout=30_000)
+    assert _swatch_text(page) == _physics_hex(250.0)
+    assert page.console_errors == []
+
+
+def _download(page, css):
+    with page.expect_download(timeout=60_000) as info:
+        page.locator(f".{css} button, .{css} a").first.click()
+    path = info.value.path()
+    return Path(path).read_bytes()
+
+
+def test_downloads_open_and_parse(page):
+    page.locator(".fg-dl-csv").first.scroll_into_view_if_needed()
+    data = _download(page, "fg-dl-csv")
+    rows = [r for r in csv.reader(io.StringIO(data.decode())) if r and not r[0].startswith("#")]
+    assert rows[0][0] == "wavelength_nm" and len(rows) > 300
+    for css in ("fg-dl-map", "fg-dl-strip"):
+        img = Image.open(io.BytesIO(_download(page, css)))
+        assert img.format == "PNG" and img.size[0] >= 800
+    assert page.console_errors == []
+
+
+def test_link_opens_the_same_view(page, browser):
+    field = page.locator(".fg-thickness-field input").first
+    field.fill("321")
+    field.press("Enter")
+    page.wait_for_function(f"() => ({DEEP_TEXT_JS})('.fg-swatch-values').includes('321.0 nm')", timeout=30_000)
+    page.wait_for_function("() => window.location.search.includes('d=321')", timeout=15_000)
+    link = page.url
+    other = browser.new_page()
+    other.goto(link)
+    other.wait_for_function(f"() => ({DEEP_TEXT_JS})('.fg-swatch-values') && "
+                            f"({DEEP_TEXT_JS})('.fg-swatch-values').includes('321.0 nm')", timeout=30_000)
+    assert other.evaluate(DEEP_TEXT_JS, ".fg-hex") == _physics_hex(321.0)
+    other.close()
