@@ -165,3 +165,14 @@ def test_viewing_cone_and_brightness_change_the_map():
     assert not np.array_equal(before, ex.map_src.data["image"][0])
     ex.brightness.value = "normalized"
     assert ex._scale > 1.0
+
+
+def test_editing_another_layer_keeps_the_current_thickness():
+    ex = FilmExplorer()
+    ex.preset.value = "nitride_on_oxide_on_silicon"
+    ex.thickness_slider.value = 150.0
+    assert ex._row_thickness[0].value == "150"
+    ex._row_thickness[1].value = "25"
+    assert ex.state.thickness_nm == 150.0
+    assert ex.state.layer_rows()[1]["thickness_nm"] == 25.0
+    assert ex.state.stack.layers[0].thickness_nm == 150.0

@@ -259,7 +259,7 @@ class FilmExplorer:
             self.plate.value = d.get("substrate_thickness_mm") is not None
             self.plate_mm.set_text(_fmt(d["substrate_thickness_mm"], 3) if d.get("substrate_thickness_mm") else "1")
             self.plate_mm.input.visible = self.plate.value
-            self._rebuild_layers(d["layers"])
+            self._rebuild_layers(s.layer_rows())
             self.swept.options = {f"{i}: {_spec_text(l['material'])}": i for i, l in enumerate(d["layers"])} or {"(no layer)": 0}
             self.swept.value = s.swept_layer
             self.thickness_slider.end = max(s.thickness_max_nm, s.thickness_nm)
@@ -278,11 +278,13 @@ class FilmExplorer:
 
     def _rebuild_layers(self, layers):
         rows = []
+        self._row_thickness = []
         for i, layer in enumerate(layers):
             mat = pn.widgets.AutocompleteInput(options=[n for n, _, _ in list_materials()], value=_spec_text(layer["material"]),
                                                case_sensitive=False, search_strategy="includes", restrict=False,
                                                min_characters=1, width=120, margin=(2, 2), label=f"Layer {i}")
             thick = pn.widgets.TextInput(value=_fmt(layer["thickness_nm"], 2), width=80, margin=(2, 2), label="nm")
+            self._row_thickness.append(thick)
             msg = pn.pane.HTML("", visible=False, margin=(0, 5))
             buttons = []
             for label, action, tip in (("↑", "up", "move up"), ("↓", "down", "move down"),
@@ -473,6 +475,12 @@ class FilmExplorer:
 
     def _on_state(self, *events):
         names = {e.name for e in events}
+        if "thickness_nm" in names and self.state.swept_layer < len(getattr(self, "_row_thickness", [])):
+            self._syncing, was = True, self._syncing
+            try:
+                self._row_thickness[self.state.swept_layer].value = _fmt(self.state.thickness_nm, 2)
+            finally:
+                self._syncing = was
         kinds = {"point"}
         if names & {"stack_json", "swept_layer", "thickness_max_nm", "polarization", "illuminant", "spd_json",
                     "observer", "na", "brightness"}:

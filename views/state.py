@@ -69,8 +69,14 @@ class ExplorerState(param.Parameterized):
         return Stack(layers, sf.stack.substrate, sf.stack.ambient, sf.stack.substrate_thickness_mm)
 
     def layer_rows(self) -> list[dict]:
-        """The editor rows: [{"material": spec, "thickness_nm": float}, ...] top to bottom."""
-        return json.loads(self.stack_json)["layers"]
+        """The editor rows: [{"material": spec, "thickness_nm": float}, ...] top to bottom.
+
+        The swept layer's row carries the current thickness.
+        """
+        rows = json.loads(self.stack_json)["layers"]
+        if rows:
+            rows[min(self.swept_layer, len(rows) - 1)]["thickness_nm"] = self.thickness_nm
+        return rows
 
     def set_stack(self, *, ambient=None, layers=None, substrate=None, substrate_thickness_mm=...,
                   swept_layer=None) -> None:
