@@ -3,9 +3,10 @@
 import panel as pn
 
 from views.explorer import FilmExplorer
+from views.inverse import ColourToThickness
 from views.urlstate import apply_query, state_to_query
 
-pn.extension(design="native", notifications=False)
+pn.extension("filedropper", design="native", notifications=False)
 
 
 def page():
@@ -23,7 +24,8 @@ def page():
             location.search = state_to_query(explorer.state)
         explorer.state.param.watch(write_address, list(explorer.state.param))
         pn.state.onload(write_address)
-    return explorer.panel()
+    inverse = ColourToThickness(explorer)
+    return explorer.panel(extra_tabs=[("Colour → thickness", inverse.panel())])
 
 
 page().servable(title="fringegauge · film explorer")

@@ -361,3 +361,16 @@ def delta_e_2000(lab1, lab2) -> np.ndarray:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return np.asarray(colour.difference.delta_E_CIE2000(a, b), dtype=float)
+
+
+@functools.lru_cache(maxsize=2)
+def srgb_decode_table(bit_depth: int = 8) -> np.ndarray:
+    """Linear light of every sRGB code value (256 or 65536 entries), IEC 61966-2-1 via colour-science."""
+    if bit_depth not in (8, 16):
+        raise InputError(f"bit_depth is 8 or 16; got {bit_depth!r}.")
+    codes = np.arange(2 ** bit_depth, dtype=float) / (2 ** bit_depth - 1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table = np.asarray(colour.models.eotf_sRGB(codes), dtype=np.float32)
+    table.setflags(write=False)
+    return table

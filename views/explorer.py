@@ -636,7 +636,8 @@ class FilmExplorer:
         return io.BytesIO(png)
 
     # ------------------------------------------------------------------ layout
-    def panel(self):
+    def panel(self, extra_tabs=()):
+        """The page: sidebar and, as tabs, the explorer's views and any ``extra_tabs`` (title, layout)."""
         s = self.state
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
         sidebar = pn.Column(
@@ -672,6 +673,8 @@ class FilmExplorer:
                              styles={"font-size": "11px", "color": "#555"}),
             sizing_mode="stretch_both", scroll=True, margin=(0, 10),
         )
+        if extra_tabs:
+            main = pn.Tabs(("Film explorer", main), *extra_tabs, sizing_mode="stretch_both", dynamic=False)
         return pn.Row(sidebar, main, sizing_mode="stretch_both", stylesheets=[CSS])
 
 

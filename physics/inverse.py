@@ -1,0 +1,647 @@
+"""Thickness from colour: ranked candidates for an observed colour, and thickness maps of photos.
+
+One colour matches several thicknesses (one per fringe order), so the answer is
+a ranked list with the ambiguity stated, never a single number presented as
+certain. The method is a lookup: the colour of the stack is computed once over
+a dense grid of the unknown layer's thickness (the "colour path"), and observed
+colours are compared with it by CIEDE2000.
+
+Conventions: thicknesses in nm; a photo's pixels are display sRGB (IEC
+61966-2-1), decoded to linear light before any averaging or calibration;
+colours are compared in CIELAB relative to the chosen illuminant's white, the
+observed sRGB being read as the display of an eye adapted to that lamp (the
+inverse of :func:`physics.xyz_to_srgb`).
+
+Calibration of a photo: a box of bare substrate (the stack with the unknown
+layer at zero thickness), or of a grey card of known reflectance, fixes one gain
+per linear channel so that the box shows its computed colour; this corrects
+white balance and exposure together (a von Kries-type correction in the
+camera's linear RGB, taken as sRGB primaries).
+
+Order ambiguity in a map is resolved by continuity: pixels whose best match is
+clearly better than the best match of any other order set a smoothed reference
+thickness field, and every other pixel takes the candidate nearest to it (or to
+the nominal thickness, when given).
+
+References
+----------
+CIE 015:2018 (CIELAB); CIE 142-2001 and G. Sharma, W. Wu, E. N. Dalal, Color
+Res. Appl. 30, 21 (2005) (CIEDE2000); IEC 61966-2-1:1999 (sRGB);
+J. von Kries (1902), chromatic adaptation by independent channel gains.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+from scipy.spatial import cKDTree
+
+from .appearance import color_map, interference_order, scaled_colors
+from .color import (_linear_srgb, _xyz_to_linear_srgb_matrix, delta_e_2000, illuminant_white_xyz, srgb_decode_table,
+                    srgb_to_hex, srgb_to_xyz, xyz_to_lab)
+from .errors import InputError, require_finite
+from .stack import Stack, _check_layer_index
+
+__all__ = ["Candidate", "Candidates", "thickness_candidates", "thickness_map", "ThicknessMap", "parse_color",
+           "MATCH_DE_MAX", "AMBIGUOUS_DE"]
+
+#: Largest CIEDE2000 difference accepted as a match. Beyond about 5 a difference is obvious
+#: side by side (common practice); 6 leaves room for camera and display error.
+MATCH_DE_MAX = 6.0
+#: Two candidates closer than this in ΔE00 cannot be told apart by colour (about one just-noticeable
+#: difference, common practice).
+AMBIGUOUS_DE = 1.0
+#: Thickness step of the colour path (nm): fine enough that the path's ΔE00 steps stay well below 1.
+LUT_STEP_NM = 0.5
+#: Most points on a colour path (a wide window gets a coarser step).
+LUT_MAX_POINTS = 20_001
+#: Nearest path points (by CIELAB distance) examined per order before ranking by ΔE00.
+KNN_PER_ORDER = 6
+#: A pixel is "confident" when the best match of any other order is worse by at least this ΔE00.
+CONFIDENT_MARGIN_DE = 2.0
+#: Smoothing window of the reference thickness field, as a fraction of the image's larger side.
+CONTINUITY_WINDOW_FRACTION = 0.06
+#: A calibration box may have at most this fraction of clipped pixels.
+MAX_SATURATED_FRACTION = 0.01
+#: A calibration box darker than this (linear light) carries no usable colour.
+MIN_BOX_LINEAR = 0.003
+
+
+# ---------------------------------------------------------------------- colours
+_HEX = re.compile(r"^#?([0-9a-fA-F]{6}|[0-9a-fA-F]{3})$")
+_NUM = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
+_LAB = re.compile(rf"^\s*(?:lab|l\*?a\*?b\*?)\s*[:(]?\s*({_NUM})[\s,;]+({_NUM})[\s,;]+({_NUM})\s*\)?\s*$", re.I)
+_TRIPLE = re.compile(rf"^\s*(?:rgb)?\s*\(?\s*({_NUM})[\s,;]+({_NUM})[\s,;]+({_NUM})\s*\)?\s*$", re.I)
+
+
+def parse_color(value):
+    """Read a typed colour: ``("srgb", rgb 0..1)`` or ``("lab", (L*, a*, b*))``.
+
+    Accepted: ``"#4f719f"``, ``"4f719f"``, ``"#47a"``; a 0-255 triple ``"79, 113, 159"``,
+    ``"rgb(79 113 159)"`` or a tuple/list of three numbers; CIELAB ``"lab(52.1, -3.2, -27.5)"``
+    or ``"L*a*b* 52.1 -3.2 -27.5"``.
+
+    Raises
+    ------
+    InputError
+        When the value is not one of these forms or is out of range.
+    """
+    how = ("Give a colour as #rrggbb, as three 0-255 numbers 'r, g, b', or as 'lab(L, a, b)'.")
+    if isinstance(value, (tuple, list, np.ndarray)):
+        arr = np.asarray(value, dtype=float).ravel() if np.size(value) == 3 else None
+        if arr is None or not np.all(np.isfinite(arr)):
+            raise InputError(f"A colour needs three numbers; got {value!r}. {how}")
+        return _rgb255(arr, how)
+    if not isinstance(value, str):
+        raise InputError(f"{value!r} is not a colour. {how}")
+    text = value.strip()
+    m = _HEX.match(text)
+    if m:
+        h = m.group(1)
+        if len(h) == 3:
+            h = "".join(c * 2 for c in h)
+        return "srgb", np.array([int(h[i:i + 2], 16) for i in (0, 2, 4)], dtype=float) / 255.0
+    m = _LAB.match(text)
+    if m:
+        L, a, b = (float(x) for x in m.groups())
+        if not 0 <= L <= 100 or abs(a) > 200 or abs(b) > 200:
+            raise InputError(f"CIELAB {text!r} is out of range: L* 0-100, a* and b* within ±200.")
+        return "lab", np.array([L, a, b])
+    m = _TRIPLE.match(text)
+    if m:
+        return _rgb255(np.array([float(x) for x in m.groups()]), how)
+    raise InputError(f"{value!r} is not a colour. {how}")
+
+
+def _rgb255(arr, how):
+    if np.any(arr < 0) or np.any(arr > 255):
+        raise InputError(f"sRGB values run from 0 to 255; got {', '.join(f'{x:g}' for x in arr)}. {how}")
+    return "srgb", arr / 255.0
+
+
+def _observed_lab(value, illuminant, observer):
+    """(CIELAB of the observed colour, whether it came as display sRGB)."""
+    kind, v = parse_color(value)
+    if kind == "lab":
+        return v, False
+    return xyz_to_lab(srgb_to_xyz(v, illuminant, observer), illuminant, observer), True
+
+
+# ---------------------------------------------------------------------- colour path
+@dataclass(frozen=True)
+class _Path:
+    thickness_nm: np.ndarray     # (N,)
+    xyz: np.ndarray              # (N, 3)
+    lab: np.ndarray              # (N, 3)
+    lab_display: np.ndarray      # (N, 3) CIELAB of the display colour (clipped into the sRGB gamut)
+    order: np.ndarray            # (N,) fringe order of each point
+
+    def lab_for(self, display: bool) -> np.ndarray:
+        """Colours to compare with: sRGB observations (screens, cameras) are gamut-clipped like the path's
+        display colours; CIELAB measurements compare with the unclipped colour."""
+        return self.lab_display if display else self.lab
+
+
+def _window(thickness_nm, nominal_nm, tolerance_nm):
+    if nominal_nm is not None and tolerance_nm is not None and thickness_nm is None:
+        nominal = float(require_finite("nominal_nm", nominal_nm, minimum=0.0, unit="nm"))
+        tol = float(require_finite("tolerance_nm", tolerance_nm, minimum=0.0, min_inclusive=False, unit="nm"))
+        return max(0.0, nominal - tol), nominal + tol
+    if thickness_nm is None:
+        thickness_nm = (0.0, 1000.0)
+    w = require_finite("thickness_nm", thickness_nm, minimum=0.0, unit="nm").ravel()
+    if w.size != 2 or not w[0] < w[1]:
+        raise InputError(f"thickness_nm is a window (lowest, highest) in nm with lowest < highest; got {thickness_nm!r}.")
+    return float(w[0]), float(w[1])
+
+
+def _colour_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na) -> _Path:
+    n = int(min(LUT_MAX_POINTS, np.ceil((hi - lo) / LUT_STEP_NM) + 1))
+    d = np.linspace(lo, hi, max(n, 3))
+    cm = color_map(stack, layer, d, [angle_deg], illuminant=illuminant, observer=observer,
+                   polarization=polarization, na=na)
+    order = np.floor(interference_order(stack, layer, d, angle_deg)).astype(int) + 1
+    lab_display = xyz_to_lab(srgb_to_xyz(cm.rgb[:, 0, :], illuminant, observer), illuminant, observer)
+    return _Path(d, cm.xyz[:, 0, :], cm.lab[:, 0, :], lab_display, order)
+
+
+def _refine_minima(de: np.ndarray) -> np.ndarray:
+    """Indices of local minima of a sampled curve (ends included), best first."""
+    n = de.size
+    left = np.r_[np.inf, de[:-1]]
+    right = np.r_[de[1:], np.inf]
+    idx = np.flatnonzero((de <= left) & (de < right) | (de < left) & (de <= right))
+    if n == 1:
+        idx = np.array([0])
+    return idx[np.argsort(de[idx], kind="stable")]
+
+
+# ---------------------------------------------------------------------- candidates
+@dataclass(frozen=True)
+class Candidate:
+    """One thickness that matches the observed colour.
+
+    Attributes
+    ----------
+    thickness_nm : float
+    delta_e : float
+        CIEDE2000 difference (root mean square over the viewing angles given).
+    order : int
+        Fringe order (1 = first order) at the first viewing angle.
+    range_nm : (float, float)
+        Thicknesses around this one whose colour is within one ΔE00 of this match:
+        how precisely colour alone pins it down.
+    lab : (3,) predicted CIELAB at the first angle;  rgb : (3,) display sRGB;  hex : str
+    delta_e_per_angle : tuple of float
+    in_tolerance : bool or None
+        Inside nominal ± tolerance, when those were given.
+    """
+
+    thickness_nm: float
+    delta_e: float
+    order: int
+    range_nm: tuple
+    lab: np.ndarray
+    rgb: np.ndarray
+    hex: str
+    delta_e_per_angle: tuple
+    in_tolerance: bool | None = None
+
+
+class Candidates(list):
+    """Candidates best first, with the verdict on the whole list.
+
+    Attributes
+    ----------
+    acceptable : bool
+        The best match is within :data:`MATCH_DE_MAX`.
+    ambiguous : bool
+        Another candidate of a different order is within :data:`AMBIGUOUS_DE` of the best.
+    message : str
+        A sentence for the user saying what the colour tells and what would decide.
+    observed_lab : list of (3,) arrays, one per viewing angle.
+    window_nm : (lo, hi)
+    """
+
+    acceptable: bool = False
+    ambiguous: bool = False
+    message: str = ""
+    observed_lab: list = []
+    window_nm: tuple = (0.0, 0.0)
+
+
+def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), angle_deg=0.0,
+                         illuminant="D65", top: int = 5, *, observer="2", polarization="unpolarized",
+                         na: float = 0.0, nominal_nm: float | None = None,
+                         tolerance_nm: float | None = None) -> Candidates:
+    """Rank the thicknesses of one layer whose colour matches an observed colour.
+
+    Parameters
+    ----------
+    color : str, tuple, or a list of them
+        The observed colour (see :func:`parse_color`). A list gives the same spot
+        seen at several viewing angles; ``angle_deg`` is then a list of the same length.
+    stack : Stack
+        The stack as built; the unknown layer's thickness in it is ignored.
+    layer : int
+        Index of the unknown layer, 0 = top.
+    thickness_nm : (lo, hi)
+        Window searched, nm. ``None`` with ``nominal_nm`` and ``tolerance_nm`` searches nominal ± tolerance.
+    angle_deg : float or list of float
+        Viewing angle(s), degrees from the normal.
+    illuminant, observer, polarization, na :
+        As for :func:`physics.appearance.color_map`.
+    top : int
+        Most candidates returned.
+    nominal_nm, tolerance_nm : float, optional
+        The process target: marks candidates in tolerance and breaks near-ties toward the nominal.
+
+    Returns
+    -------
+    Candidates
+        A list of :class:`Candidate`, best first, with ``acceptable``, ``ambiguous`` and ``message``.
+    """
+    if not isinstance(stack, Stack):
+        raise InputError(f"thickness_candidates needs a Stack; got {type(stack).__name__}.")
+    _check_layer_index(stack, layer)
+    colors = list(color) if isinstance(color, list) else [color]
+    angles = list(np.atleast_1d(angle_deg).astype(float)) if np.ndim(angle_deg) else [float(angle_deg)] * len(colors)
+    if len(angles) != len(colors):
+        raise InputError(f"Give one viewing angle per colour: {len(colors)} colour(s) but {len(angles)} angle(s).")
+    if not isinstance(top, (int, np.integer)) or top < 1:
+        raise InputError(f"top must be a positive whole number; got {top!r}.")
+    lo, hi = _window(thickness_nm, nominal_nm, tolerance_nm)
+    obs = [_observed_lab(c, illuminant, observer) for c in colors]
+    observed = [o for o, _ in obs]
+    display = [dsp for _, dsp in obs]
+    paths = [_colour_path(stack, layer, lo, hi, a, illuminant, observer, polarization, na) for a in angles]
+    de_each = np.stack([delta_e_2000(p.lab_for(dsp), o[None, :])
+                        for p, o, dsp in zip(paths, observed, display)])   # (n_angles, N)
+    de = np.sqrt(np.mean(de_each ** 2, axis=0))
+    minima = _refine_minima(de)
+    path = paths[0]
+    result = Candidates()
+    for i in minima:
+        t = _parabolic_min(path.thickness_nm, de, i)
+        result.append(_candidate_at(t, i, de, de_each, path, stack, layer, angles, observed, display, illuminant,
+                                    observer, polarization, na, nominal_nm, tolerance_nm))
+    result.sort(key=lambda c: c.delta_e)
+    result = _break_ties_by_nominal(result, nominal_nm)
+    best = result[0]
+    others = [c for c in result[1:] if c.order != best.order and abs(c.thickness_nm - best.thickness_nm) > 2 * LUT_STEP_NM]
+    out = Candidates(_distinct(result)[:top])
+    out.observed_lab = observed
+    out.window_nm = (lo, hi)
+    out.acceptable = best.delta_e <= MATCH_DE_MAX
+    rival = others[0] if others else None
+    out.ambiguous = bool(out.acceptable and rival is not None and rival.delta_e - best.delta_e < AMBIGUOUS_DE)
+    out.message = _verdict(out, best, rival, lo, hi, nominal_nm, len(colors))
+    return out
+
+
+def _parabolic_min(d, de, i):
+    """Vertex of the parabola through the three samples around a minimum (clamped to them)."""
+    if 0 < i < d.size - 1:
+        y0, y1, y2 = de[i - 1], de[i], de[i + 1]
+        denom = y0 - 2 * y1 + y2
+        if denom > 0:
+            shift = 0.5 * (y0 - y2) / denom
+            return float(d[i] + np.clip(shift, -1, 1) * (d[i + 1] - d[i]))
+    return float(d[i])
+
+
+def _candidate_at(t, i, de, de_each, path, stack, layer, angles, observed, display, illuminant, observer,
+                  polarization, na, nominal_nm, tolerance_nm) -> Candidate:
+    per_angle = []
+    lab0 = rgb0 = None
+    for k, a in enumerate(angles):
+        cm = color_map(stack, layer, [t], [a], illuminant=illuminant, observer=observer, polarization=polarization, na=na)
+        lab_k = (xyz_to_lab(srgb_to_xyz(cm.rgb[0, 0], illuminant, observer), illuminant, observer)
+                 if display[k] else cm.lab[0, 0])
+        per_angle.append(float(delta_e_2000(lab_k, observed[k])))
+        if k == 0:
+            lab0, rgb0 = cm.lab[0, 0], cm.rgb[0, 0]
+    d_e = float(np.sqrt(np.mean(np.square(per_angle))))
+    if d_e > de[i]:                    # the vertex was no better than the sample
+        t, d_e, per_angle = float(path.thickness_nm[i]), float(de[i]), [float(x[i]) for x in de_each]
+        lab0, rgb0 = path.lab[i], scaled_colors(path.xyz[i], illuminant, observer)[0]
+    within = de <= d_e + AMBIGUOUS_DE
+    j0 = j1 = i
+    while j0 > 0 and within[j0 - 1]:
+        j0 -= 1
+    while j1 < de.size - 1 and within[j1 + 1]:
+        j1 += 1
+    order = int(np.floor(interference_order(stack, layer, t, angles[0]))) + 1
+    in_tol = None
+    if nominal_nm is not None and tolerance_nm is not None:
+        in_tol = bool(abs(t - nominal_nm) <= tolerance_nm)
+    return Candidate(t, d_e, order, (float(path.thickness_nm[j0]), float(path.thickness_nm[j1])), lab0, rgb0,
+                     srgb_to_hex(rgb0), tuple(per_angle), in_tol)
+
+
+def _distinct(cands):
+    """Drop candidates that fall inside a better candidate's range (the same minimum twice)."""
+    kept = []
+    for c in cands:
+        if not any(k.range_nm[0] <= c.thickness_nm <= k.range_nm[1] for k in kept):
+            kept.append(c)
+    return kept
+
+
+def _break_ties_by_nominal(cands, nominal_nm):
+    if nominal_nm is None or len(cands) < 2:
+        return cands
+    best = cands[0].delta_e
+    near = [c for c in cands if c.delta_e - best < AMBIGUOUS_DE]
+    near.sort(key=lambda c: abs(c.thickness_nm - nominal_nm))
+    rest = [c for c in cands if c not in near]
+    return near + rest
+
+
+def _verdict(out, best, rival, lo, hi, nominal_nm, n_angles) -> str:
+    if not out.acceptable:
+        return (f"No thickness in {lo:g}-{hi:g} nm matches this colour within ΔE00 {MATCH_DE_MAX:g}: the nearest is "
+                f"{best.thickness_nm:.0f} nm at ΔE00 {best.delta_e:.1f}. Check the stack, the lamp, the viewing "
+                "angle and the calibration, or widen the window; do not take the nearest as the answer.")
+    text = (f"Best match {best.thickness_nm:.0f} nm (order {best.order}, ΔE00 {best.delta_e:.1f}); colour alone "
+            f"places it within {best.range_nm[0]:.0f}-{best.range_nm[1]:.0f} nm.")
+    if out.ambiguous:
+        hint = [] if n_angles > 1 else ["a second viewing angle of the same spot"]
+        if nominal_nm is None:
+            hint.append("a nominal thickness")
+        hint.append("a measured spectrum")
+        text += (f" Colour alone cannot decide between {best.thickness_nm:.0f} nm (order {best.order}) and "
+                 f"{rival.thickness_nm:.0f} nm (order {rival.order}), ΔE00 {best.delta_e:.1f} vs "
+                 f"{rival.delta_e:.1f}: {', '.join(hint[:-1]) + ' or ' + hint[-1] if len(hint) > 1 else hint[0]} "
+                 "would decide.")
+    elif nominal_nm is not None and rival is not None and rival.delta_e - best.delta_e < AMBIGUOUS_DE:
+        text += " A near-equal match of another order was set aside as farther from the nominal thickness."
+    return text
+
+
+# ---------------------------------------------------------------------- photos
+@dataclass(frozen=True)
+class ThicknessMap:
+    """Per-pixel thickness of a photo.
+
+    Attributes
+    ----------
+    thickness_nm : (H, W) float, NaN where no acceptable match or outside the region of interest
+    delta_e : (H, W) float, ΔE00 of the chosen match (NaN outside the region)
+    margin : (H, W) float, ΔE00 of the best match of any other order minus the chosen one's
+        (large = the order is clear from colour alone; NaN when only one order exists in the window)
+    order : (H, W) int, fringe order of the chosen match (0 where none)
+    gains : (3,) linear RGB gains applied by the calibration (1 without)
+    stats : dict with mean_nm, std_nm, min_nm, max_nm, uniformity, valid_fraction, pixels
+    message : str
+    """
+
+    thickness_nm: np.ndarray
+    delta_e: np.ndarray
+    margin: np.ndarray
+    order: np.ndarray
+    gains: np.ndarray
+    stats: dict = field(default_factory=dict)
+    message: str = ""
+
+
+def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
+    white = illuminant_white_xyz(illuminant, observer)
+    M = np.linalg.inv(_xyz_to_linear_srgb_matrix(white.tobytes()))
+    return xyz_to_lab(lin @ M.T, illuminant, observer)
+
+
+def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminant, observer, polarization, na):
+    from .imageio import box_mean_linear, box_saturated_fraction
+
+    if box is None:
+        return np.ones(3)
+    sat = box_saturated_fraction(photo, box)
+    if sat > MAX_SATURATED_FRACTION:
+        raise InputError(f"The calibration box is overexposed: {sat:.0%} of its pixels are clipped. Draw it on an "
+                         "area that is not blown out, or take the photo with less exposure.")
+    measured = box_mean_linear(photo, box)
+    if np.any(measured < MIN_BOX_LINEAR):
+        raise InputError("The calibration box is too dark to read its colour; draw it on a lit area of bare "
+                         "substrate or the grey card, or expose the photo longer.")
+    if reference == "substrate":
+        bare = stack.with_thickness(layer, 0.0)
+        cm = color_map(bare, layer, [0.0], [angle_deg], illuminant=illuminant, observer=observer,
+                       polarization=polarization, na=na)
+        target = _linear_srgb(cm.xyz[0, 0], illuminant, observer)
+    else:
+        rho = float(require_finite("reference", reference, minimum=0.0, maximum=1.0, min_inclusive=False))
+        target = np.full(3, rho) @ np.eye(3)          # a grey card is neutral: equal linear RGB
+    return target / measured
+
+
+def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), reference_box=None,
+                  illuminant="D65", *, angle_deg: float = 0.0, observer="2", polarization="unpolarized",
+                  na: float = 0.0, reference="substrate", roi=None, nominal_nm: float | None = None,
+                  max_delta_e: float = MATCH_DE_MAX, progress=None) -> ThicknessMap:
+    """Thickness of one layer at every pixel of a photo.
+
+    Parameters
+    ----------
+    image : array (H, W, 3) uint8/uint16, bytes, path, or a loaded ``physics.imageio.Photo``
+        Display sRGB pixels; 16-bit values are read as 0..65535.
+    stack, layer, thickness_nm, illuminant, angle_deg, observer, polarization, na :
+        As for :func:`thickness_candidates`.
+    reference_box : (x0, y0, x1, y1) or None
+        Pixel box (x right, y down, ends exclusive) of the calibration reference; None = no calibration.
+    reference : "substrate" or float
+        What the box shows: bare substrate (the stack with the layer at zero thickness), or a grey
+        card of this reflectance (e.g. 0.18).
+    roi : (x0, y0, x1, y1) or None
+        Region of interest; pixels outside it are NaN.
+    nominal_nm : float, optional
+        Breaks order ambiguity where continuity cannot.
+    max_delta_e : float
+        Pixels whose best match is worse than this are left empty (NaN), not guessed.
+    progress : callable(fraction, text), optional
+
+    Returns
+    -------
+    ThicknessMap
+    """
+    from .imageio import Photo, load_image
+
+    say = progress or (lambda f, t: None)
+    photo = image if isinstance(image, Photo) else load_image(image)
+    if not isinstance(stack, Stack):
+        raise InputError(f"thickness_map needs a Stack; got {type(stack).__name__}.")
+    _check_layer_index(stack, layer)
+    lo, hi = _window(thickness_nm, None, None)
+    max_de = float(require_finite("max_delta_e", max_delta_e, minimum=0.0, min_inclusive=False))
+    H, W = photo.height, photo.width
+    x0, y0, x1, y1 = _box(roi, W, H, "roi") if roi is not None else (0, 0, W, H)
+    say(0.05, "calibrating")
+    gains = _calibration_gains(photo, reference_box, reference, stack, layer, angle_deg, illuminant, observer,
+                               polarization, na)
+    say(0.1, "computing the colour path")
+    path = _colour_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na)
+    say(0.2, "reading colours")
+    codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth)
+    lab = _lab_from_linear(lin * gains, illuminant, observer)
+    say(0.35, f"matching {len(codes):,} distinct colours")
+    t1, de1, o1, t2, de2, o2 = _match(lab, path)
+    say(0.75, "resolving orders by continuity")
+    shape = (y1 - y0, x1 - x0)
+    T, D, O, M = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm)
+    full = lambda a, fill: _embed(a, (H, W), (x0, y0, x1, y1), fill)  # noqa: E731
+    thick = full(T, np.nan)
+    stats = _stats(T)
+    msg = (f"{stats['valid_fraction']:.0%} of the region matched within ΔE00 {max_de:g}; "
+           f"mean {stats['mean_nm']:.1f} nm, range {stats['min_nm']:.1f}-{stats['max_nm']:.1f} nm."
+           if stats["pixels"] else f"No pixel matched within ΔE00 {max_de:g}: check the stack, lamp and calibration.")
+    say(1.0, "done")
+    return ThicknessMap(thick, full(D, np.nan), full(M, np.nan), full(O, 0), gains, stats, msg)
+
+
+def _box(box, W, H, name):
+    try:
+        x0, y0, x1, y1 = (int(round(float(v))) for v in box)
+    except (TypeError, ValueError):
+        raise InputError(f"{name} is a pixel box (x0, y0, x1, y1); got {box!r}.") from None
+    if not (0 <= x0 < x1 <= W and 0 <= y0 < y1 <= H):
+        raise InputError(f"{name} ({x0}, {y0}, {x1}, {y1}) is not inside the {W} x {H} image; "
+                         "give x0 < x1 <= width and y0 < y1 <= height.")
+    return x0, y0, x1, y1
+
+
+def _unique_linear(rgb: np.ndarray, bit_depth: int):
+    """Distinct pixel codes, the pixel → code index, and each code's linear RGB (sRGB decode)."""
+    table = srgb_decode_table(bit_depth)
+    flat = rgb.reshape(-1, 3)
+    if bit_depth == 8:
+        quad = np.zeros((flat.shape[0], 4), dtype=np.uint8)            # R, G, B, 0 → one little-endian uint32
+        quad[:, :3] = flat
+        packed = quad.view("<u4").ravel()
+        present = np.zeros(1 << 24, dtype=bool)
+        present[packed] = True
+        codes = np.flatnonzero(present).astype(np.uint32)
+        index = np.zeros(1 << 24, dtype=np.int32)                      # code -> position among distinct codes
+        index[codes] = np.arange(codes.size, dtype=np.int32)
+        inverse = index[packed]
+        channels = np.stack([codes & 255, (codes >> 8) & 255, (codes >> 16) & 255], axis=1)
+    else:
+        packed = (flat[:, 0].astype(np.uint64) << 32) | (flat[:, 1].astype(np.uint64) << 16) | flat[:, 2]
+        codes, inverse = np.unique(packed, return_inverse=True)
+        channels = np.stack([(codes >> 32) & 65535, (codes >> 16) & 65535, codes & 65535], axis=1).astype(np.int64)
+    lin = table[channels].astype(float)
+    return codes, inverse.ravel(), lin
+
+
+def _match(lab: np.ndarray, path: _Path):
+    """Best match overall and best match of any other order, for each colour (by ΔE00)."""
+    U = lab.shape[0]
+    orders = np.unique(path.order)
+    best_t = np.full((orders.size, U), np.nan)
+    best_de = np.full((orders.size, U), np.inf)
+    for k, o in enumerate(orders):
+        sel = np.flatnonzero(path.order == o)
+        ref = path.lab_display[sel]                                     # photos are gamut-clipped sRGB
+        tree = cKDTree(ref)
+        kk = min(KNN_PER_ORDER, sel.size)
+        _, idx = tree.query(lab, k=kk)
+        idx = idx.reshape(U, kk)
+        cand = ref[idx]                                                 # (U, kk, 3)
+        de = delta_e_2000(cand, lab[:, None, :])                        # (U, kk)
+        j = np.argmin(de, axis=1)
+        best_de[k] = de[np.arange(U), j]
+        best_t[k] = path.thickness_nm[sel][idx[np.arange(U), j]]
+    rank = np.argsort(best_de, axis=0)
+    cols = np.arange(U)
+    i1 = rank[0]
+    t1, de1, o1 = best_t[i1, cols], best_de[i1, cols], orders[i1]
+    if orders.size > 1:
+        i2 = rank[1]
+        t2, de2, o2 = best_t[i2, cols], best_de[i2, cols], orders[i2]
+    else:
+        t2, de2, o2 = np.full(U, np.nan), np.full(U, np.inf), np.zeros(U, dtype=int)
+    return t1, de1, o1, t2, de2, o2
+
+
+def _smooth_reference(T1, confident):
+    """Thickness averaged over confident pixels in a window (normalized box filter) on a reduced grid.
+
+    Returns ``(ref_small, step)``: the field on a grid ``step`` times coarser, NaN where no confident
+    pixel lies within the window.
+    """
+    h, w = T1.shape
+    size = max(3, int(round(CONTINUITY_WINDOW_FRACTION * max(h, w))))
+    step = max(1, size // 6)                                            # work on a reduced grid for speed
+    hh, ww = -(-h // step) * step, -(-w // step) * step
+    wgt = np.zeros((hh, ww), dtype=np.float32)
+    val = np.zeros((hh, ww), dtype=np.float32)
+    wgt[:h, :w] = confident
+    val[:h, :w] = np.where(confident, T1, np.float32(0))
+    if step > 1:
+        wgt = wgt.reshape(hh // step, step, ww // step, step).sum(axis=(1, 3))
+        val = val.reshape(hh // step, step, ww // step, step).sum(axis=(1, 3))
+    k = max(1, size // step)
+    num = ndimage.uniform_filter(val.astype(np.float64), k, mode="nearest")
+    den = ndimage.uniform_filter(wgt.astype(np.float64), k, mode="nearest")
+    return np.where(den > 1e-9, num / np.maximum(den, 1e-12), np.nan), step
+
+
+def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm):
+    """Choose per pixel between the best match and the best of another order.
+
+    Per distinct colour: the two candidates and whether the best is confident (its
+    margin over any other order is at least CONFIDENT_MARGIN_DE). Per pixel, only the
+    non-confident ones consult the smoothed reference field of confident neighbours.
+    """
+    margin_u = (de2 - de1).astype(np.float32)
+    confident_u = (de1 <= max_de) & (margin_u >= CONFIDENT_MARGIN_DE)
+    T = t1.astype(np.float32)[inverse].reshape(shape)
+    D = de1.astype(np.float32)[inverse].reshape(shape)
+    O = o1.astype(np.int16)[inverse].reshape(shape)
+    confident = confident_u[inverse].reshape(shape)
+    unsure = ~confident
+    if unsure.any() and np.any(de2 <= max_de):
+        iu = np.flatnonzero(unsure.ravel())
+        if confident.any():
+            ref_small, step = _smooth_reference(T, confident)
+            r = ref_small[(iu // shape[1]) // step, (iu % shape[1]) // step]
+        else:
+            r = np.full(iu.size, np.nan)
+        if nominal_nm is not None:
+            r = np.where(np.isnan(r), float(nominal_nm), r)
+        idx = inverse[iu]
+        a, b = t1[idx], t2[idx]
+        use2 = (de2[idx] <= max_de) & np.isfinite(r) & (np.abs(b - r) < np.abs(a - r))
+        pick = iu[use2]
+        T.ravel()[pick] = b[use2]
+        D.ravel()[pick] = de2[idx][use2]
+        O.ravel()[pick] = o2[idx][use2]
+    M = np.where(np.isfinite(margin_u), np.abs(margin_u), np.nan).astype(np.float32)[inverse].reshape(shape)
+    bad = D > max_de
+    T[bad] = np.nan
+    O[bad] = 0
+    return T, D, O, M
+
+
+def _embed(a, shape, box, fill):
+    x0, y0, x1, y1 = box
+    if (x0, y0, x1, y1) == (0, 0, shape[1], shape[0]):
+        return a
+    out = np.full(shape, fill, dtype=np.result_type(a.dtype, np.asarray(fill).dtype))
+    out[y0:y1, x0:x1] = a
+    return out
+
+
+def _stats(T):
+    v = T[np.isfinite(T)]
+    if v.size == 0:
+        return {"mean_nm": float("nan"), "std_nm": float("nan"), "min_nm": float("nan"), "max_nm": float("nan"),
+                "uniformity": float("nan"), "valid_fraction": 0.0, "pixels": 0}
+    v = v.astype(np.float64)
+    mean = float(v.sum() / v.size)
+    std = float(np.sqrt(max(float(np.dot(v, v)) / v.size - mean * mean, 0.0)))
+    return {"mean_nm": mean, "std_nm": std, "min_nm": float(v.min()), "max_nm": float(v.max()),
+            "uniformity": float((v.max() - v.min()) / (2 * mean)) if mean > 0 else float("nan"),
+            "valid_fraction": float(v.size / T.size), "pixels": int(v.size)}

@@ -1,0 +1,534 @@
+"""Colour → thickness page section: a typed colour, a picked point of a photo, a whole photo as a map.
+
+Shares the explorer's state: the stack, the unknown layer (the swept layer), the
+viewing angle, the lamp and the observer are the ones set there. Every number
+comes from ``physics.inverse``; photo maps run in the shared thread pool with a
+progress bar, and a new request supersedes an unfinished one.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import csv
+import io
+import json
+from datetime import date
+from functools import partial
+
+import numpy as np
+import panel as pn
+from bokeh.events import SelectionGeometry, Tap
+from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, HoverTool, LinearColorMapper, Range1d, Span)
+from bokeh.palettes import Viridis256, Magma256
+from bokeh.plotting import figure
+
+from physics import InputError, thickness_candidates, thickness_map
+from physics.appearance import colour_band_nm
+from physics.imageio import box_mean_linear, load_image
+from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
+
+from . import render
+from .explorer import EXECUTOR, Field, _esc, _fmt, _label, _rgba, _stack_text, _footer
+from .state import THICKNESS_LIMITS_NM, compute_strip
+
+#: Longest side of a photo as shown on the page (pixels); the map itself is computed at full size.
+DISPLAY_MAX_SIDE = 900
+#: Largest upload accepted through the page (bytes).
+MAX_UPLOAD_BYTES = 200 * 2**20
+#: Half-size of the square averaged when a point of a photo is picked (pixels).
+PICK_HALF_SIZE = 4
+
+
+class ColourToThickness:
+    """The colour → thickness section for one session, bound to a :class:`views.explorer.FilmExplorer`."""
+
+    def __init__(self, explorer):
+        self.ex = explorer
+        self.photo = None
+        self.calib_box = None
+        self.roi = None
+        self.result = None
+        self._job = 0
+        self.last_candidates = None
+        self._build()
+
+    # ------------------------------------------------------------------ widgets
+    def _build(self):
+        self.colour = Field("Observed colour", width=300, placeholder="#4f719f · 79, 113, 159 · lab(52, -3, -27)",
+                            css="fg-colour-field")
+        self.colour2 = Field("Same spot, tilted (optional colour)", width=190, placeholder="#6a7fae")
+        self.angle2 = Field("at angle (°)", width=100, placeholder="45")
+        self.win_lo = Field("Window from (nm)", width=140)
+        self.win_hi = Field("to (nm)", width=140)
+        self.nominal = Field("Nominal (nm, optional)", width=140)
+        self.tolerance = Field("± tolerance (nm)", width=140)
+        self.win_lo.set_text("0")
+        self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
+        self.find = pn.widgets.Button(label="Find thicknesses", color="primary", width=200, margin=(6, 5),
+                                      css_classes=["fg-find"])
+        self.verdict = pn.pane.Alert("Type a colour and press “Find thicknesses”. The stack, unknown layer (the swept "
+                                     "layer), viewing angle, lamp and observer are those of the film explorer.",
+                                     alert_type="light", margin=(5, 5), css_classes=["fg-verdict"])
+        self.table = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-candidates"])
+        self.cand_src = ColumnDataSource(dict(x=[], label=[]))
+        self.strip_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
+        st = figure(height=130, sizing_mode="stretch_width", tools="xpan,xwheel_zoom,reset,save",
+                    title="Candidates on the colour strip at the current angle", x_axis_label="thickness (nm)",
+                    x_range=Range1d(0, 1000), y_range=Range1d(0, 1))
+        st.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.strip_src)
+        st.scatter(x="x", y=0.5, size=16, marker="inverted_triangle", color="white", line_color="black",
+                   source=self.cand_src)
+        st.text(x="x", y=0.75, text="label", source=self.cand_src, text_font_size="11px", text_color="black",
+                text_align="center", background_fill_color="white", background_fill_alpha=0.8)
+        st.yaxis.visible = False
+        st.ygrid.visible = False
+        self.strip_fig = st
+
+        # photo
+        self.dropper = pn.widgets.FileDropper(accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif",
+                                                                  ".tiff", ".jpg", ".jpeg", ".png"],
+                                              max_file_size="200MB", multiple=False, height=110,
+                                              sizing_mode="stretch_width", margin=(2, 5))
+        self.photo_msg = Field("")
+        self.mode = pn.widgets.RadioButtonGroup(options={"calibration box": "calib", "region of interest": "roi",
+                                                         "pick a point": "pick"}, value="calib", margin=(2, 5))
+        self.reference = pn.widgets.RadioButtonGroup(options={"bare substrate": "substrate", "grey card": "grey"},
+                                                     value="substrate", margin=(2, 5))
+        self.grey = Field("Grey card reflectance (0-1)", width=160)
+        self.grey.set_text("0.18")
+        self.box_info = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"})
+        self.run_map = pn.widgets.Button(label="Make thickness map", color="primary", width=200, margin=(6, 5),
+                                         disabled=True)
+        self.progress = pn.indicators.Progress(value=0, max=100, width=300, visible=False, margin=(6, 5))
+        self.progress_text = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"})
+        self.map_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(5, 5))
+        self.photo_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
+        self.box_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[], color=[], name=[]))
+        pf = figure(height=380, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
+                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+                    title="Photo: drag to draw the box of the selected mode; tap to pick a point")
+        pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
+        pf.rect(x="x", y="y", width="w", height="h", fill_alpha=0.0, line_color="color", line_width=2,
+                source=self.box_src, legend_field="name")
+        pf.add_tools(BoxSelectTool())
+        pf.on_event(SelectionGeometry, self._on_box)
+        pf.on_event(Tap, self._on_pick)
+        pf.legend.location = "top_right"
+        pf.legend.label_text_font_size = "11px"
+        self.photo_fig = pf
+
+        self.tmap_src = ColumnDataSource(dict(image=[], de=[], x=[], y=[], dw=[], dh=[]))
+        self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
+        tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
+                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+                    title="Thickness map (grey: no acceptable match)")
+        img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
+        tm.add_tools(HoverTool(renderers=[img], tooltips=[("x, y", "$x{0}, $y{0} px"), ("thickness", "@image{0.0} nm"),
+                                                          ("ΔE00", "@de{0.0}")]))
+        tm.add_layout(ColorBar(color_mapper=self.tmapper, title="nm", width=12), "right")
+        self.tmap_fig = tm
+        self.cmap_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
+        self.cmapper = LinearColorMapper(palette=Magma256[::-1], low=0, high=MATCH_DE_MAX, nan_color="#d9d9d9")
+        cf = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
+                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+                    title="Confidence: ΔE00 of the match (lower is better)")
+        cf.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.cmap_src, color_mapper=self.cmapper)
+        cf.add_layout(ColorBar(color_mapper=self.cmapper, title="ΔE00", width=12), "right")
+        self.conf_fig = cf
+        self.hist_src = ColumnDataSource(dict(left=[], right=[], top=[]))
+        hf = figure(height=250, sizing_mode="stretch_width", tools="save", title="Histogram of thickness",
+                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+                    x_axis_label="thickness (nm)", y_axis_label="pixels")
+        hf.quad(left="left", right="right", top="top", bottom=0, source=self.hist_src, color="#3b6fa0")
+        self.hist_fig = hf
+        self.stats = pn.pane.HTML("", margin=(5, 5), css_classes=["fg-stats"])
+        self.dl_npy = pn.widgets.FileDownload(callback=self._npy, filename="thickness_map.npy",
+                                              label="Thickness map (.npy, float32 nm)", width=300, disabled=True)
+        self.dl_png = pn.widgets.FileDownload(callback=self._png, filename="thickness_map.png",
+                                              label="Thickness map with colour bar (.png)", width=300, disabled=True)
+        self.dl_csv = pn.widgets.FileDownload(callback=self._stats_csv, filename="thickness_statistics.csv",
+                                              label="Statistics (.csv)", width=300, disabled=True)
+
+        self.find.on_click(self._on_find)
+        self.colour.input.param.watch(lambda e: self._on_find(), "enter_pressed")
+        self.dropper.param.watch(self._on_upload, "value")
+        self.run_map.on_click(self._on_run_map)
+        self.ex.state.param.watch(self._on_state, ["stack_json", "swept_layer", "angle_deg", "illuminant",
+                                                    "observer", "polarization", "na", "thickness_max_nm"])
+
+    # ------------------------------------------------------------------ typed colour
+    def _window(self):
+        lo = self._num(self.win_lo, "Window from", *THICKNESS_LIMITS_NM)
+        hi = self._num(self.win_hi, "Window to", *THICKNESS_LIMITS_NM)
+        if lo is None or hi is None:
+            return None
+        if not lo < hi:
+            self.win_hi.show_error("The window's end must be above its start.")
+            return None
+        return lo, hi
+
+    def _num(self, field, name, lo, hi, optional=False):
+        text = field.input.value.strip()
+        if optional and not text:
+            field.show_error(None)
+            return None
+        from .state import parse_number
+        try:
+            v = parse_number(text, name, lo, hi, "nm" if "°" not in name else "°")
+        except InputError as exc:
+            field.show_error(str(exc))
+            raise _Stop from None
+        field.show_error(None)
+        return v
+
+    def _on_find(self, *_):
+        try:
+            self.find_candidates(self.colour.input.value)
+        except _Stop:
+            pass
+
+    def find_candidates(self, colour, lab=None):
+        """Rank thicknesses for a typed colour (or a picked point's CIELAB); shows the verdict and table."""
+        s = self.ex.state
+        window = self._window()
+        nominal = self._num(self.nominal, "Nominal", *THICKNESS_LIMITS_NM, optional=True)
+        tol = self._num(self.tolerance, "Tolerance", 0.001, THICKNESS_LIMITS_NM[1], optional=True)
+        second = self.colour2.input.value.strip()
+        colours, angles = [colour if lab is None else f"lab({lab[0]:.4f}, {lab[1]:.4f}, {lab[2]:.4f})"], [s.angle_deg]
+        if second:
+            a2 = self._num(self.angle2, "Second angle (°)", 0.0, 89.9)
+            if a2 is None:
+                self.angle2.show_error("Give the viewing angle of the second colour.")
+                return None
+            colours.append(second)
+            angles.append(a2)
+        try:
+            cands = thickness_candidates(colours if len(colours) > 1 else colours[0], s.stack, s.swept_layer,
+                                         window, angles if len(angles) > 1 else angles[0], s.illuminant_spec(), top=6,
+                                         observer=s.observer, polarization=s.polarization, na=s.na,
+                                         nominal_nm=nominal, tolerance_nm=tol)
+        except InputError as exc:
+            self.colour.show_error(str(exc))
+            return None
+        self.colour.show_error(None)
+        self.last_candidates = cands
+        self._show_candidates(cands, colours[0] if lab is None else None, lab)
+        return cands
+
+    def _show_candidates(self, cands, typed, lab):
+        kind = "danger" if not cands.acceptable else ("warning" if cands.ambiguous else "success")
+        self.verdict.alert_type = kind
+        self.verdict.object = _esc(cands.message) + (" Estimates from colour are not certified metrology."
+                                                     if cands.acceptable else "")
+        from physics import lab_to_xyz, xyz_to_srgb, srgb_to_hex
+        s = self.ex.state
+        obs_hex = srgb_to_hex(xyz_to_srgb(lab_to_xyz(cands.observed_lab[0], s.illuminant_spec(), s.observer),
+                                          s.illuminant_spec(), s.observer))
+        rows = "".join(
+            f"<tr><td>{i + 1}</td><td><b>{c.thickness_nm:.1f}</b></td><td>{c.range_nm[0]:.0f}–{c.range_nm[1]:.0f}</td>"
+            f"<td>{c.delta_e:.2f}</td><td>{c.order}</td>"
+            f"<td><span style='display:inline-block;width:36px;height:18px;background:{obs_hex};border:1px solid #888'></span>"
+            f"<span style='display:inline-block;width:36px;height:18px;background:{c.hex};border:1px solid #888'></span></td>"
+            + (f"<td>{'yes' if c.in_tolerance else 'no'}</td>" if c.in_tolerance is not None else "") + "</tr>"
+            for i, c in enumerate(cands))
+        tol_head = "<th>in tol.</th>" if cands and cands[0].in_tolerance is not None else ""
+        self.table.object = (
+            "<table style='font-size:13px;border-collapse:collapse' cellpadding='3'>"
+            "<tr><th>#</th><th>thickness (nm)</th><th>colour-equal range (nm)</th><th>ΔE00</th><th>order</th>"
+            f"<th>observed · predicted</th>{tol_head}</tr>{rows}</table>"
+            f"<div style='font-size:11px;color:#555'>ΔE00 ≤ {AMBIGUOUS_DE:g}: not distinguishable by eye; "
+            f"> {MATCH_DE_MAX:g}: not accepted as a match (common practice).</div>")
+        self.cand_src.data = dict(x=[c.thickness_nm for c in cands], label=[f"#{i + 1}" for i in range(len(cands))])
+        self._refresh_strip()
+
+    def _refresh_strip(self):
+        s = self.ex.state
+        try:
+            st = compute_strip(s)
+        except InputError:
+            return
+        d = st.thickness_nm
+        dd = (d[-1] - d[0]) / max(d.size - 1, 1)
+        self.strip_src.data = dict(image=[_rgba(st.rgb[None, :, :])], x=[d[0] - dd / 2], y=[0],
+                                   dw=[d[-1] - d[0] + dd], dh=[1])
+        self.strip_fig.x_range.update(start=d[0], end=d[-1])
+
+    def _on_state(self, *events):
+        if any(e.name == "thickness_max_nm" for e in events):
+            self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
+        self._refresh_strip()
+
+    # ------------------------------------------------------------------ photo
+    def _on_upload(self, event):
+        files = event.new or {}
+        if not files:
+            return
+        name, data = next(iter(files.items()))
+        self.load_photo(data if isinstance(data, bytes) else bytes(data), name)
+
+    def load_photo(self, data: bytes, name: str = "photo") -> bool:
+        """Read an uploaded photo; on a bad file say why and keep the previous photo."""
+        if len(data) > MAX_UPLOAD_BYTES:
+            self.photo_msg.show_error(f"{name} is {len(data) / 2**20:.0f} MB; the limit is "
+                                      f"{MAX_UPLOAD_BYTES / 2**20:.0f} MB.")
+            return False
+        try:
+            photo = load_image(data)
+        except InputError as exc:
+            self.photo_msg.show_error(f"{_esc(name)}: {_esc(str(exc))}")
+            return False
+        self.photo_msg.show_error(None)
+        self.photo, self.photo_name = photo, name
+        self.calib_box = self.roi = None
+        self.result = None
+        step = max(1, int(np.ceil(max(photo.width, photo.height) / DISPLAY_MAX_SIDE)))
+        small = photo.rgb[::step, ::step]
+        rgb = small.astype(float) / (65535.0 if photo.bit_depth == 16 else 255.0)
+        self.photo_src.data = dict(image=[_rgba(rgb)], x=[0], y=[0], dw=[photo.width], dh=[photo.height])
+        self.photo_fig.x_range.update(start=0, end=photo.width)
+        self.photo_fig.y_range.update(start=photo.height, end=0)
+        self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo.bit_depth}-bit"
+        self._draw_boxes()
+        self.run_map.disabled = False
+        return True
+
+    def _on_box(self, event):
+        g = event.geometry
+        if self.photo is None or g.get("type") != "rect":
+            return
+        box = (g["x0"], min(g["y0"], g["y1"]), g["x1"], max(g["y0"], g["y1"]))
+        self.set_box(self.mode.value if self.mode.value != "pick" else "calib", box)
+
+    def set_box(self, which, box):
+        """Set the calibration box or the region of interest (pixel box x0, y0, x1, y1)."""
+        W, H = self.photo.width, self.photo.height
+        x0, y0, x1, y1 = (int(round(v)) for v in box)
+        x0, x1 = sorted((min(max(x0, 0), W), min(max(x1, 0), W)))
+        y0, y1 = sorted((min(max(y0, 0), H), min(max(y1, 0), H)))
+        if x1 - x0 < 1 or y1 - y0 < 1:
+            self.photo_msg.show_error("The box is empty or outside the photo; drag a box over the photo.")
+            return
+        if which == "roi":
+            self.roi = (x0, y0, x1, y1)
+        else:
+            self.calib_box = (x0, y0, x1, y1)
+        self.photo_msg.show_error(None)
+        self._draw_boxes()
+
+    def _draw_boxes(self):
+        data = dict(x=[], y=[], w=[], h=[], color=[], name=[])
+        for box, color, name in ((self.calib_box, "#ff00ff", "calibration"), (self.roi, "#00e0ff", "region")):
+            if box:
+                x0, y0, x1, y1 = box
+                data["x"].append((x0 + x1) / 2)
+                data["y"].append((y0 + y1) / 2)
+                data["w"].append(x1 - x0)
+                data["h"].append(y1 - y0)
+                data["color"].append(color)
+                data["name"].append(name)
+        self.box_src.data = data
+        txt = []
+        if self.calib_box:
+            txt.append(f"calibration box {self.calib_box} ({self.reference.value})")
+        if self.roi:
+            txt.append(f"region {self.roi}")
+        self.box_info.object = "; ".join(txt) or "No calibration box: the photo's colours are taken as they are."
+
+    def _gains(self):
+        from physics.inverse import _calibration_gains
+        s = self.ex.state
+        ref = "substrate"
+        if self.reference.value == "grey":
+            ref = _grey_value(self.grey)
+        return _calibration_gains(self.photo, self.calib_box, ref, s.stack, s.swept_layer, s.angle_deg,
+                                  s.illuminant_spec(), s.observer, s.polarization, s.na)
+
+    def _on_pick(self, event):
+        if self.photo is None or self.mode.value != "pick" or event.x is None:
+            return
+        self.pick(event.x, event.y)
+
+    def pick(self, x, y):
+        """Candidates for the mean colour (linear light) of a small square around a photo point."""
+        W, H = self.photo.width, self.photo.height
+        h = PICK_HALF_SIZE
+        box = (max(0, int(x) - h), max(0, int(y) - h), min(W, int(x) + h + 1), min(H, int(y) + h + 1))
+        try:
+            gains = self._gains()
+            lin = box_mean_linear(self.photo, box) * gains
+        except (InputError, _Stop) as exc:
+            self.photo_msg.show_error(str(exc))
+            return None
+        s = self.ex.state
+        lab = _lab_from_linear(lin, s.illuminant_spec(), s.observer)
+        return self.find_candidates(None, lab=lab)
+
+    def _on_run_map(self, *_):
+        self.start_map()
+
+    def start_map(self, sync=False):
+        """Compute the thickness map of the photo (off the event loop when served)."""
+        if self.photo is None:
+            return
+        s = self.ex._snapshot()
+        try:
+            ref = "substrate" if self.reference.value == "substrate" else _grey_value(self.grey)
+            window = self._window()
+            nominal = self._num(self.nominal, "Nominal", *THICKNESS_LIMITS_NM, optional=True)
+        except (_Stop, InputError) as exc:
+            self.map_msg.object, self.map_msg.alert_type, self.map_msg.visible = str(exc), "danger", True
+            return
+        if window is None:
+            return
+        self._job += 1
+        job = self._job
+        args = dict(image=self.photo, stack=s.stack, layer=s.swept_layer, thickness_nm=window,
+                    reference_box=self.calib_box, illuminant=s.illuminant_spec(), angle_deg=s.angle_deg,
+                    observer=s.observer, polarization=s.polarization, na=s.na, reference=ref, roi=self.roi,
+                    nominal_nm=nominal)
+        self.progress.visible = True
+        self.progress.value = 0
+        self.run_map.disabled = True
+        doc = pn.state.curdoc
+        served = doc is not None and doc.session_context is not None
+
+        def report(fraction, text):
+            def show():
+                if job == self._job:
+                    self.progress.value = int(100 * fraction)
+                    self.progress_text.object = text
+            if served:
+                doc.add_next_tick_callback(show)
+            else:
+                show()
+
+        def work():
+            try:
+                return thickness_map(progress=report, **args), None
+            except InputError as exc:
+                return None, str(exc)
+
+        if sync or not served:
+            self._finish_map(job, s, *work())
+            return
+
+        async def run():
+            result = await asyncio.get_running_loop().run_in_executor(EXECUTOR, work)
+            doc.add_next_tick_callback(partial(self._finish_map, job, s, *result))
+        pn.state.execute(run)
+
+    def _finish_map(self, job, s, result, error):
+        if job != self._job:                      # superseded by a newer request
+            return
+        self.progress.visible = False
+        self.run_map.disabled = False
+        if error:
+            self.map_msg.object, self.map_msg.alert_type, self.map_msg.visible = error, "danger", True
+            return
+        self.result, self.result_state = result, s
+        st = result.stats
+        self.map_msg.object = _esc(result.message) + " Colour estimates are not certified metrology."
+        self.map_msg.alert_type = "success" if st["valid_fraction"] > 0.5 else "warning"
+        self.map_msg.visible = True
+        H, W = result.thickness_nm.shape
+        step = max(1, int(np.ceil(max(W, H) / DISPLAY_MAX_SIDE)))
+        T = result.thickness_nm[::step, ::step]
+        D = result.delta_e[::step, ::step]
+        self.tmap_src.data = dict(image=[T], de=[D], x=[0], y=[0], dw=[W], dh=[H])
+        self.cmap_src.data = dict(image=[D], x=[0], y=[0], dw=[W], dh=[H])
+        for f in (self.tmap_fig, self.conf_fig):
+            f.x_range.update(start=0, end=W)
+            f.y_range.update(start=H, end=0)
+        if st["pixels"]:
+            self.tmapper.update(low=st["min_nm"], high=max(st["max_nm"], st["min_nm"] + 1e-6))
+            v = result.thickness_nm[np.isfinite(result.thickness_nm)]
+            top, edges = np.histogram(v, bins=60)
+            self.hist_src.data = dict(left=edges[:-1], right=edges[1:], top=top)
+            self.hist_fig.x_range.update(start=edges[0], end=edges[-1])
+            self.hist_fig.y_range.update(start=0, end=max(1, top.max()) * 1.05)
+        else:
+            self.hist_src.data = dict(left=[], right=[], top=[])
+        g = result.gains
+        self.stats.object = (
+            "<table style='font-size:13px' cellpadding='2'>"
+            + "".join(f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in (
+                ("mean", f"{st['mean_nm']:.1f} nm"), ("standard deviation", f"{st['std_nm']:.1f} nm"),
+                ("min – max", f"{st['min_nm']:.1f} – {st['max_nm']:.1f} nm"),
+                ("uniformity (max − min)/(2 mean)", f"{100 * st['uniformity']:.1f} %"),
+                ("pixels matched", f"{st['pixels']:,} ({100 * st['valid_fraction']:.1f} % of region)"),
+                ("calibration gains R, G, B", f"{g[0]:.3f}, {g[1]:.3f}, {g[2]:.3f}")))
+            + "</table>")
+        for w in (self.dl_npy, self.dl_png, self.dl_csv):
+            w.disabled = False
+
+    # ------------------------------------------------------------------ downloads
+    def _npy(self):
+        buf = io.BytesIO()
+        np.save(buf, self.result.thickness_nm.astype(np.float32))
+        buf.seek(0)
+        return buf
+
+    def _png(self):
+        s = self.result_state
+        return io.BytesIO(render.colorbar_png(self.result.thickness_nm, label="thickness (nm)",
+                                              title=f"Thickness of layer {s.swept_layer}: {_stack_text(s)}",
+                                              footer=_footer()))
+
+    def _stats_csv(self):
+        s, st, g = self.result_state, self.result.stats, self.result.gains
+        out = io.StringIO()
+        out.write(f"# fringegauge thickness map statistics (computed from colour; not certified metrology)\n"
+                  f"# date: {date.today().isoformat()}\n# photo: {getattr(self, 'photo_name', '')}\n"
+                  f"# stack: {_stack_text(s)}; unknown layer {s.swept_layer}\n"
+                  f"# illuminant {s.illuminant}, observer {s.observer} deg, angle {s.angle_deg:g} deg\n"
+                  f"# calibration box: {self.calib_box}; region: {self.roi}\n")
+        w = csv.writer(out)
+        w.writerow(["mean_nm", "std_nm", "min_nm", "max_nm", "uniformity", "valid_fraction", "pixels",
+                    "gain_r", "gain_g", "gain_b"])
+        w.writerow([f"{st['mean_nm']:.3f}", f"{st['std_nm']:.3f}", f"{st['min_nm']:.3f}", f"{st['max_nm']:.3f}",
+                    f"{st['uniformity']:.5f}", f"{st['valid_fraction']:.5f}", st["pixels"],
+                    f"{g[0]:.5f}", f"{g[1]:.5f}", f"{g[2]:.5f}"])
+        out.seek(0)
+        return out
+
+    # ------------------------------------------------------------------ layout
+    def panel(self):
+        typed = pn.Column(
+            pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A colour to thickness candidates</h3>"),
+            self.colour.view(),
+            pn.Row(self.colour2.view(), self.angle2.view(), margin=0),
+            pn.Row(self.win_lo.view(), self.win_hi.view(), margin=0),
+            pn.Row(self.nominal.view(), self.tolerance.view(), margin=0),
+            self.find, width=340)
+        results = pn.Column(self.verdict, self.table, pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
+                            sizing_mode="stretch_width")
+        photo_controls = pn.Column(
+            pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A photo to a thickness map</h3>"),
+            _label("Photo (JPEG, PNG or TIFF, 8 or 16 bit)"), self.dropper, self.photo_msg.message,
+            _label("Dragging on the photo sets"), self.mode, _label("The calibration box shows"), self.reference,
+            self.grey.view(), self.box_info, self.run_map, self.progress, self.progress_text,
+            self.dl_npy, self.dl_png, self.dl_csv, width=340)
+        return pn.Column(
+            pn.Row(typed, results, sizing_mode="stretch_width"),
+            pn.layout.Divider(),
+            pn.Row(photo_controls, pn.Column(self.map_msg, pn.pane.Bokeh(self.photo_fig, sizing_mode="stretch_width"),
+                                             sizing_mode="stretch_width"), sizing_mode="stretch_width"),
+            pn.Row(pn.pane.Bokeh(self.tmap_fig, sizing_mode="stretch_width"),
+                   pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
+            pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
+            sizing_mode="stretch_width", scroll=True)
+
+
+class _Stop(Exception):
+    """A field was invalid; its message is already shown beside it."""
+
+
+def _grey_value(field):
+    from .state import parse_number
+    try:
+        v = parse_number(field.input.value, "Grey card reflectance", 0.001, 1.0)
+    except InputError as exc:
+        field.show_error(str(exc))
+        raise _Stop(str(exc)) from None
+    field.show_error(None)
+    return v
