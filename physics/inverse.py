@@ -32,6 +32,7 @@ J. von Kries (1902), chromatic adaptation by independent channel gains.
 
 from __future__ import annotations
 
+import functools
 import re
 from dataclasses import dataclass, field
 
@@ -59,7 +60,9 @@ LUT_STEP_NM = 0.5
 #: Most points on a colour path (a wide window gets a coarser step).
 LUT_MAX_POINTS = 20_001
 #: Nearest path points (by CIELAB distance) examined per order before ranking by ΔE00.
-KNN_PER_ORDER = 6
+KNN_PER_ORDER = 4
+#: Orders (nearest first by CIELAB distance) whose best match is ranked by ΔE00 for each colour.
+ORDERS_COMPARED = 3
 #: A pixel is "confident" when the best match of any other order is worse by at least this ΔE00.
 CONFIDENT_MARGIN_DE = 2.0
 #: Smoothing window of the reference thickness field, as a fraction of the image's larger side.
@@ -159,6 +162,15 @@ def _window(thickness_nm, nominal_nm, tolerance_nm):
 
 
 def _colour_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na) -> _Path:
+    """The colour path, cached for repeated look-ups with the same stack and viewing settings."""
+    key = (stack, layer, lo, hi, float(angle_deg), illuminant, str(observer), polarization, float(na))
+    try:
+        return _cached_path(*key)
+    except TypeError:                      # an unhashable part (a custom lamp spectrum): compute afresh
+        return _compute_path(*key)
+
+
+def _compute_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na) -> _Path:
     n = int(min(LUT_MAX_POINTS, np.ceil((hi - lo) / LUT_STEP_NM) + 1))
     d = np.linspace(lo, hi, max(n, 3))
     cm = color_map(stack, layer, d, [angle_deg], illuminant=illuminant, observer=observer,
@@ -166,6 +178,11 @@ def _colour_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polariza
     order = np.floor(interference_order(stack, layer, d, angle_deg)).astype(int) + 1
     lab_display = xyz_to_lab(srgb_to_xyz(cm.rgb[:, 0, :], illuminant, observer), illuminant, observer)
     return _Path(d, cm.xyz[:, 0, :], cm.lab[:, 0, :], lab_display, order)
+
+
+@functools.lru_cache(maxsize=16)
+def _cached_path(*key) -> _Path:
+    return _compute_path(*key)
 
 
 def _refine_minima(de: np.ndarray) -> np.ndarray:
@@ -536,30 +553,41 @@ def _unique_linear(rgb: np.ndarray, bit_depth: int):
 
 
 def _match(lab: np.ndarray, path: _Path):
-    """Best match overall and best match of any other order, for each colour (by ΔE00)."""
+    """Best match overall and best match of any other order, for each colour (by ΔE00).
+
+    Per order, a k-d tree gives the nearest path points in CIELAB (ΔE76); ΔE00 is then
+    evaluated only for the orders nearest by ΔE76 (:data:`ORDERS_COMPARED`), which holds the
+    best and the runner-up of any other order.
+    """
     U = lab.shape[0]
+    ref = path.lab_display                                              # photos are gamut-clipped sRGB
     orders = np.unique(path.order)
-    best_t = np.full((orders.size, U), np.nan)
-    best_de = np.full((orders.size, U), np.inf)
+    kk = KNN_PER_ORDER
+    all_idx = np.empty((orders.size, U, kk), dtype=np.int64)
+    all_d = np.empty((orders.size, U))
     for k, o in enumerate(orders):
         sel = np.flatnonzero(path.order == o)
-        ref = path.lab_display[sel]                                     # photos are gamut-clipped sRGB
-        tree = cKDTree(ref)
-        kk = min(KNN_PER_ORDER, sel.size)
-        _, idx = tree.query(lab, k=kk)
-        idx = idx.reshape(U, kk)
-        cand = ref[idx]                                                 # (U, kk, 3)
-        de = delta_e_2000(cand, lab[:, None, :])                        # (U, kk)
-        j = np.argmin(de, axis=1)
-        best_de[k] = de[np.arange(U), j]
-        best_t[k] = path.thickness_nm[sel][idx[np.arange(U), j]]
-    rank = np.argsort(best_de, axis=0)
+        tree = cKDTree(ref[sel])
+        dist, idx = tree.query(lab, k=min(kk, sel.size), workers=-1)
+        idx = idx.reshape(U, -1)
+        if idx.shape[1] < kk:                                           # a short order: repeat its points
+            idx = np.concatenate([idx, np.repeat(idx[:, -1:], kk - idx.shape[1], axis=1)], axis=1)
+        all_idx[k] = sel[idx]
+        all_d[k] = np.asarray(dist).reshape(U, -1)[:, 0]
+    n_cmp = min(ORDERS_COMPARED, orders.size)
+    near = np.argsort(all_d, axis=0)[:n_cmp]                            # (n_cmp, U) order positions
     cols = np.arange(U)
-    i1 = rank[0]
-    t1, de1, o1 = best_t[i1, cols], best_de[i1, cols], orders[i1]
-    if orders.size > 1:
-        i2 = rank[1]
-        t2, de2, o2 = best_t[i2, cols], best_de[i2, cols], orders[i2]
+    idx = all_idx[near, cols[None, :]]                                  # (n_cmp, U, kk) path indices
+    de = delta_e_2000(ref[idx], lab[None, :, None, :])                  # (n_cmp, U, kk)
+    j = np.argmin(de, axis=2)
+    best_de = np.take_along_axis(de, j[..., None], axis=2)[..., 0]      # (n_cmp, U)
+    best_i = np.take_along_axis(idx, j[..., None], axis=2)[..., 0]
+    rank = np.argsort(best_de, axis=0)
+    i1 = best_i[rank[0], cols]
+    t1, de1, o1 = path.thickness_nm[i1], best_de[rank[0], cols], path.order[i1]
+    if n_cmp > 1:
+        i2 = best_i[rank[1], cols]
+        t2, de2, o2 = path.thickness_nm[i2], best_de[rank[1], cols], path.order[i2]
     else:
         t2, de2, o2 = np.full(U, np.nan), np.full(U, np.inf), np.zeros(U, dtype=int)
     return t1, de1, o1, t2, de2, o2

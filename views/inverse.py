@@ -110,10 +110,13 @@ class ColourToThickness:
         pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
         pf.rect(x="x", y="y", width="w", height="h", fill_alpha=0.0, line_color="color", line_width=2,
                 source=self.box_src, legend_field="name")
-        pf.add_tools(BoxSelectTool())
+        box_tool = BoxSelectTool()
+        pf.add_tools(box_tool)
+        pf.toolbar.active_drag = box_tool                      # dragging draws the box; pan stays in the toolbar
         pf.on_event(SelectionGeometry, self._on_box)
         pf.on_event(Tap, self._on_pick)
         pf.legend.location = "top_right"
+        pf.legend.visible = False
         pf.legend.label_text_font_size = "11px"
         self.photo_fig = pf
 
@@ -225,7 +228,7 @@ class ColourToThickness:
         obs_hex = srgb_to_hex(xyz_to_srgb(lab_to_xyz(cands.observed_lab[0], s.illuminant_spec(), s.observer),
                                           s.illuminant_spec(), s.observer))
         rows = "".join(
-            f"<tr><td>{i + 1}</td><td><b>{c.thickness_nm:.1f}</b></td><td>{c.range_nm[0]:.0f}–{c.range_nm[1]:.0f}</td>"
+            f"<tr style='{'' if c.delta_e <= MATCH_DE_MAX else 'color:#999'}'><td>{i + 1}</td><td><b>{c.thickness_nm:.1f}</b></td><td>{c.range_nm[0]:.0f}–{c.range_nm[1]:.0f}</td>"
             f"<td>{c.delta_e:.2f}</td><td>{c.order}</td>"
             f"<td><span style='display:inline-block;width:36px;height:18px;background:{obs_hex};border:1px solid #888'></span>"
             f"<span style='display:inline-block;width:36px;height:18px;background:{c.hex};border:1px solid #888'></span></td>"
@@ -327,6 +330,7 @@ class ColourToThickness:
                 data["color"].append(color)
                 data["name"].append(name)
         self.box_src.data = data
+        self.photo_fig.legend.visible = bool(data["x"])
         txt = []
         if self.calib_box:
             txt.append(f"calibration box {self.calib_box} ({self.reference.value})")
