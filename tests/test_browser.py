@@ -141,3 +141,38 @@ def test_link_opens_the_same_view(page, browser):
                             f"({DEEP_TEXT_JS})('.fg-swatch-values').includes('321.0 nm')", timeout=30_000)
     assert other.evaluate(DEEP_TEXT_JS, ".fg-hex") == _physics_hex(321.0)
     other.close()
+
+
+def test_typed_colour_to_candidates_in_the_page(page):
+    page.get_by_text("Colour → thickness").click()
+    field = page.locator(".fg-colour-field input").first
+    field.fill("#525a84")
+    field.press("Enter")
+    page.get_by_text("Best match 100 nm").first.wait_for(timeout=30_000)
+    field.fill("not a colour")
+    field.press("Enter")
+    page.get_by_role("alert").filter(has_text="is not a colour").first.wait_for(timeout=15_000)
+    assert page.console_errors == []
+
+
+def test_photo_to_thickness_map_in_the_page(page, tmp_path):
+    """An invented bevelled oxide on a silicon monitor wafer, photographed with a colour cast."""
+    import numpy as np
+    from physics.appearance import color_map
+    from physics.stackfile import load_preset
+
+    st = load_preset("thermal_oxide_on_silicon").stack
+    d = np.concatenate([np.zeros(60), np.linspace(50, 600, 340)])
+    rgb = color_map(st, 0, d, [0.0]).rgb[:, 0, :]
+    lin = np.where(rgb <= 0.04045, rgb / 12.92, ((rgb + 0.055) / 1.055) ** 2.4) * np.array([1.1, 1.0, 0.9]) * 0.8
+    enc = np.where(lin <= 0.0031308, 12.92 * lin, 1.055 * lin ** (1 / 2.4) - 0.055)
+    img = np.repeat(np.round(enc * 255).astype(np.uint8)[None], 200, axis=0)
+    path = tmp_path / "wedge.png"
+    Image.fromarray(img).save(path)
+    page.get_by_text("Colour → thickness").click()
+    page.locator("input[type=file]").last.set_input_files(str(path))
+    page.get_by_text("No calibration box").first.wait_for(timeout=30_000)
+    page.get_by_text("Make thickness map").first.click()
+    page.get_by_text("of the region matched").first.wait_for(timeout=60_000)
+    page.get_by_text("uniformity (max − min)/(2 mean)").first.wait_for(timeout=10_000)
+    assert page.console_errors == []

@@ -153,7 +153,7 @@ class ColourToThickness:
                                               label="Statistics (.csv)", width=300, disabled=True)
 
         self.find.on_click(self._on_find)
-        self.colour.input.param.watch(lambda e: self._on_find(), "enter_pressed")
+        self.colour.input.param.watch(lambda e: _locked(self._on_find), "enter_pressed")
         self.dropper.param.watch(self._on_upload, "value")
         self.run_map.on_click(self._on_run_map)
         self.ex.state.param.watch(self._on_state, ["stack_json", "swept_layer", "angle_deg", "illuminant",
@@ -521,6 +521,16 @@ class ColourToThickness:
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
+
+
+def _locked(fn):
+    """Run ``fn`` where Bokeh models may be changed: on the next tick (document lock held) when served,
+    at once otherwise. Some Panel events arrive in coroutines that do not hold the lock."""
+    doc = pn.state.curdoc
+    if doc is not None and doc.session_context is not None:
+        doc.add_next_tick_callback(fn)
+    else:
+        fn()
 
 
 class _Stop(Exception):
