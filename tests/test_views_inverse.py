@@ -94,3 +94,10 @@ def test_saturated_calibration_box_is_refused(section):
     section.set_box("calib", (0, 0, 10, 10))
     section.start_map(sync=True)
     assert section.map_msg.visible and "overexposed" in section.map_msg.object
+
+
+def test_rectangle_pick_uses_the_mean_in_linear_light(section):
+    data, d = _wedge_png()
+    section.load_photo(data, "wedge.png")
+    cands = section.pick_box((90, 10, 95, 50))
+    assert cands is not None and abs(cands[0].thickness_nm - d[92]) < 15

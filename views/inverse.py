@@ -106,7 +106,7 @@ class ColourToThickness:
         self.box_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[], color=[], name=[]))
         pf = figure(height=380, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
                     x_range=Range1d(0, 1), y_range=Range1d(0, 1),
-                    title="Photo: drag to draw the box of the selected mode; tap to pick a point")
+                    title="Photo: drag to draw the selected box; in 'pick' mode tap a point or drag a rectangle")
         pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
         pf.rect(x="x", y="y", width="w", height="h", fill_alpha=0.0, line_color="color", line_width=2,
                 source=self.box_src, legend_field="name")
@@ -299,8 +299,11 @@ class ColourToThickness:
         g = event.geometry
         if self.photo is None or g.get("type") != "rect":
             return
-        box = (g["x0"], min(g["y0"], g["y1"]), g["x1"], max(g["y0"], g["y1"]))
-        self.set_box(self.mode.value if self.mode.value != "pick" else "calib", box)
+        box = (min(g["x0"], g["x1"]), min(g["y0"], g["y1"]), max(g["x0"], g["x1"]), max(g["y0"], g["y1"]))
+        if self.mode.value == "pick":
+            self.pick_box(box)
+        else:
+            self.set_box(self.mode.value, box)
 
     def set_box(self, which, box):
         """Set the calibration box or the region of interest (pixel box x0, y0, x1, y1)."""
@@ -354,9 +357,14 @@ class ColourToThickness:
 
     def pick(self, x, y):
         """Candidates for the mean colour (linear light) of a small square around a photo point."""
-        W, H = self.photo.width, self.photo.height
         h = PICK_HALF_SIZE
-        box = (max(0, int(x) - h), max(0, int(y) - h), min(W, int(x) + h + 1), min(H, int(y) + h + 1))
+        return self.pick_box((int(x) - h, int(y) - h, int(x) + h + 1, int(y) + h + 1))
+
+    def pick_box(self, box):
+        """Candidates for the mean colour (linear light, calibrated) of a rectangle of the photo."""
+        W, H = self.photo.width, self.photo.height
+        x0, y0, x1, y1 = (int(round(v)) for v in box)
+        box = (max(0, x0), max(0, y0), min(W, x1), min(H, y1))
         try:
             gains = self._gains()
             lin = box_mean_linear(self.photo, box) * gains

@@ -1,0 +1,523 @@
+"""Diffraction gratings: orders, angles, dispersion, resolution, overlaps, line shape and colour.
+
+Convention (stated once; the page shows it too)::
+
+    m·λ = d·(sin α + sin β)
+
+α is the angle of incidence and β the angle of diffraction, both measured from the
+grating normal and positive on the side of the incident beam; d = 1/(groove density)
+is the groove spacing. The zero order is then β = −α (the specular beam of a
+reflection grating; the undeviated beam of a transmission grating, whose β is
+measured on the far side mirrored through the grating plane so that the same
+equation holds). An order propagates when |m·λ/d − sin α| <= 1; otherwise it is
+evanescent and its angle is NaN, with the reason given by :func:`order_status`.
+Units: wavelengths in nm, groove density in lines per mm, angles in degrees,
+lengths in mm unless the name says otherwise.
+
+References
+----------
+C. Palmer and E. Loewen, Diffraction Grating Handbook, 8th ed. (MKS Newport, 2020),
+ch. 2 (grating equation, dispersion, resolving power, free spectral range, Littrow,
+blaze), ch. 9 (anomalies); M. Born and E. Wolf, Principles of Optics, 7th ed.,
+sec. 8.6.1 (N-slit diffraction pattern); E. G. Loewen and E. Popov, Diffraction
+Gratings and Applications (1997), ch. 4 (scalar efficiency of lamellar and blazed
+grooves).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .appearance import scaled_colors
+from .color import spectrum_to_xyz
+from .errors import InputError, require_finite
+
+__all__ = [
+    "groove_spacing_nm", "diffraction_angle_deg", "order_status", "propagating_orders", "order_band_nm",
+    "angular_dispersion_deg_per_nm", "linear_dispersion_mm_per_nm", "reciprocal_linear_dispersion_nm_per_mm",
+    "resolving_power", "resolvable_difference_nm", "free_spectral_range_nm", "free_spectral_range_exact_nm",
+    "order_overlaps", "order_sorting_filter_nm", "littrow_angle_deg", "blaze_wavelength_nm",
+    "blaze_wavelength_at_deviation_nm", "rayleigh_wavelength_nm", "n_slit_intensity", "groove_efficiency",
+    "grating_spectrum", "grating_color", "grating_color_map", "plan_spectrometer", "SpectrometerDesign",
+]
+
+#: Largest |incidence| accepted: 90° is grazing and illuminates nothing.
+MAX_INCIDENCE_DEG = 90.0
+#: Tolerance on |sin β| <= 1 so an order exactly at grazing counts as propagating (rounding).
+_GRAZING_TOL = 1e-12
+#: Wavelength band summed for a grating's colour (CIE tables are significant here).
+COLOUR_BAND_NM = (380.0, 780.0)
+#: Pixels per resolution element assumed when a spectrometer's resolution is quoted (Nyquist-type
+#: sampling of the slit image, common practice).
+PIXELS_PER_RESOLUTION_ELEMENT = 3.0
+
+
+# ---------------------------------------------------------------------- validation
+def _density(lines_per_mm):
+    return require_finite("lines_per_mm", lines_per_mm, minimum=0.0, min_inclusive=False, unit="lines/mm")
+
+
+def _incidence(incidence_deg):
+    a = require_finite("incidence_deg", incidence_deg, unit="deg")
+    if a.size and np.max(np.abs(a)) >= MAX_INCIDENCE_DEG:
+        raise InputError(f"incidence_deg = {a.flat[np.argmax(np.abs(a))]:g}° is grazing or beyond; the incidence "
+                         "must satisfy |angle| < 90° from the grating normal.")
+    return a
+
+
+def _wavelength(wavelength_nm, name="wavelength_nm"):
+    return require_finite(name, wavelength_nm, minimum=0.0, min_inclusive=False, unit="nm")
+
+
+def _order(order, *, nonzero=False, what="this quantity"):
+    o = np.asarray(order)
+    if not np.issubdtype(o.dtype, np.integer):
+        if not np.all(np.isfinite(o.astype(float))) or np.any(np.asarray(o, dtype=float) % 1 != 0):
+            raise InputError(f"order must be a whole number (…, −2, −1, 0, 1, 2, …); got {order!r}.")
+        o = o.astype(int)
+    if nonzero and np.any(o == 0):
+        raise InputError(f"The zero order does not disperse; {what} needs order ≠ 0.")
+    return o
+
+
+def groove_spacing_nm(lines_per_mm) -> np.ndarray:
+    """Groove spacing d in nm for a groove density in lines per mm (d = 10⁶ / density)."""
+    return 1e6 / _density(lines_per_mm)
+
+
+# ---------------------------------------------------------------------- angles
+def _sin_beta(wavelength_nm, lines_per_mm, order, incidence_deg):
+    wl = _wavelength(wavelength_nm)
+    d = groove_spacing_nm(lines_per_mm)
+    m = _order(order)
+    a = np.radians(_incidence(incidence_deg))
+    return m * wl / d - np.sin(a)
+
+
+def diffraction_angle_deg(wavelength_nm, lines_per_mm, order=1, incidence_deg=0.0):
+    """Angle β of diffraction order ``order`` (degrees); NaN where the order is evanescent.
+
+    Parameters broadcast against each other. See :func:`order_status` for the reason of a NaN.
+
+    References
+    ----------
+    Palmer & Loewen, Diffraction Grating Handbook, eq. 2-1 (grating equation).
+    """
+    s = _sin_beta(wavelength_nm, lines_per_mm, order, incidence_deg)
+    with np.errstate(invalid="ignore"):
+        beta = np.degrees(np.arcsin(np.clip(s, -1.0, 1.0)))
+    out = np.where(np.abs(s) <= 1.0 + _GRAZING_TOL, beta, np.nan)
+    return float(out) if out.ndim == 0 else out
+
+
+def order_status(wavelength_nm, lines_per_mm, order=1, incidence_deg=0.0) -> str:
+    """A sentence saying whether an order propagates, and if not, why (for one wavelength)."""
+    s = float(_sin_beta(wavelength_nm, lines_per_mm, order, incidence_deg))
+    if abs(s) <= 1.0 + _GRAZING_TOL:
+        return f"order {int(order)} propagates at β = {np.degrees(np.arcsin(np.clip(s, -1, 1))):.3f}°"
+    d = float(groove_spacing_nm(lines_per_mm))
+    return (f"order {int(order)} is evanescent at {float(wavelength_nm):g} nm: it would need sin β = {s:.3f}, "
+            f"beyond ±1 (groove spacing {d:.1f} nm is too fine for this order and wavelength)")
+
+
+def propagating_orders(wavelength_nm, lines_per_mm, incidence_deg=0.0) -> list[int]:
+    """All orders m (zero included) with |m·λ/d − sin α| <= 1, in increasing order."""
+    wl = float(_wavelength(wavelength_nm))
+    d = float(groove_spacing_nm(lines_per_mm))
+    sa = float(np.sin(np.radians(_incidence(incidence_deg))))
+    lo = int(np.ceil((sa - 1.0) * d / wl - 1e-9))
+    hi = int(np.floor((sa + 1.0) * d / wl + 1e-9))
+    return [m for m in range(lo, hi + 1) if abs(m * wl / d - sa) <= 1.0 + _GRAZING_TOL]
+
+
+def order_band_nm(lines_per_mm, order, incidence_deg=0.0, beta_min_deg=-90.0, beta_max_deg=90.0):
+    """Wavelengths (lo, hi) that order ``order`` sends into the angular window [β_min, β_max] (nm).
+
+    Returns None when no wavelength of that order reaches the window.
+    """
+    m = int(_order(order, nonzero=True, what="a wavelength band"))
+    d = float(groove_spacing_nm(lines_per_mm))
+    sa = float(np.sin(np.radians(_incidence(incidence_deg))))
+    b0, b1 = sorted((float(beta_min_deg), float(beta_max_deg)))
+    if b0 < -90 or b1 > 90:
+        raise InputError("The detector window must lie within −90° to 90° of the grating normal.")
+    lam = sorted(d * (sa + np.sin(np.radians(b))) / m for b in (b0, b1))
+    lo, hi = max(lam[0], 0.0), lam[1]
+    return None if hi <= 0 else (lo, hi)
+
+
+# ---------------------------------------------------------------------- dispersion and resolution
+def angular_dispersion_deg_per_nm(wavelength_nm, lines_per_mm, order=1, incidence_deg=0.0):
+    """dβ/dλ = m / (d cos β), in degrees per nm (NaN where the order is evanescent).
+
+    References
+    ----------
+    Palmer & Loewen, Diffraction Grating Handbook, eq. 2-13.
+    """
+    m = _order(order, nonzero=True, what="a dispersion")
+    beta = np.radians(np.asarray(diffraction_angle_deg(wavelength_nm, lines_per_mm, m, incidence_deg)))
+    d = groove_spacing_nm(lines_per_mm)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.degrees(m / (d * np.cos(beta)))
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def linear_dispersion_mm_per_nm(wavelength_nm, lines_per_mm, focal_length_mm, order=1, incidence_deg=0.0):
+    """Linear dispersion at the focal plane, f·dβ/dλ, in mm per nm (exit focal length in mm)."""
+    f = require_finite("focal_length_mm", focal_length_mm, minimum=0.0, min_inclusive=False, unit="mm")
+    out = f * np.radians(angular_dispersion_deg_per_nm(wavelength_nm, lines_per_mm, order, incidence_deg))
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def reciprocal_linear_dispersion_nm_per_mm(wavelength_nm, lines_per_mm, focal_length_mm, order=1, incidence_deg=0.0):
+    """Reciprocal linear dispersion d cos β / (m f), in nm per mm (Palmer & Loewen, eq. 2-16)."""
+    out = 1.0 / np.abs(linear_dispersion_mm_per_nm(wavelength_nm, lines_per_mm, focal_length_mm, order, incidence_deg))
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def resolving_power(lines_per_mm, illuminated_width_mm, order=1):
+    """Resolving power R = λ/Δλ = |m|·N for N illuminated grooves (Palmer & Loewen, eq. 2-17)."""
+    w = require_finite("illuminated_width_mm", illuminated_width_mm, minimum=0.0, min_inclusive=False, unit="mm")
+    m = _order(order, nonzero=True, what="a resolving power")
+    out = np.abs(m) * _density(lines_per_mm) * w
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def resolvable_difference_nm(wavelength_nm, lines_per_mm, illuminated_width_mm, order=1):
+    """Smallest separable wavelength difference Δλ = λ/R (nm)."""
+    out = _wavelength(wavelength_nm) / resolving_power(lines_per_mm, illuminated_width_mm, order)
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def free_spectral_range_nm(wavelength_nm, order=1):
+    """Free spectral range λ/|m| (nm): exact when λ is the short end of the band (see the exact form)."""
+    m = _order(order, nonzero=True, what="a free spectral range")
+    out = _wavelength(wavelength_nm) / np.abs(m)
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def free_spectral_range_exact_nm(wavelength_nm, order=1):
+    """Free spectral range from the overlap condition, for λ the LONG end of the band (nm).
+
+    Order m at λ shares its angle with order m+1 at λ·m/(m+1): the overlap-free band ending at λ
+    starts there, so FSR = λ/(|m|+1). (With λ the short end, the band is λ … λ(m+1)/m and FSR = λ/|m|.)
+    """
+    m = _order(order, nonzero=True, what="a free spectral range")
+    out = _wavelength(wavelength_nm) / (np.abs(m) + 1)
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def order_overlaps(band_nm, lines_per_mm, order=1, incidence_deg=0.0, source_band_nm=(200.0, 1100.0)):
+    """Other orders that land on the same angles as ``band_nm`` in ``order``.
+
+    For each other order m' ≠ 0 of the same sign, the wavelengths λ' = m·λ/m' (λ in the band)
+    that the source emits (``source_band_nm``) and that propagate.
+
+    Returns
+    -------
+    list of dict with keys ``order``, ``lo_nm``, ``hi_nm`` (the overlapping wavelengths), and
+    ``at_band_nm`` (lo, hi) (the part of the band they fall on); sorted by order.
+    """
+    lo, hi = _band(band_nm)
+    m = int(_order(order, nonzero=True, what="an order overlap"))
+    s_lo, s_hi = _band(source_band_nm, "source_band_nm")
+    beta = diffraction_angle_deg(np.linspace(lo, hi, 201), lines_per_mm, m, incidence_deg)
+    ok = ~np.isnan(beta)
+    if not ok.any():
+        raise InputError(f"Order {m} does not propagate anywhere in {lo:g}-{hi:g} nm at {float(incidence_deg):g}° "
+                         f"incidence with {float(np.asarray(lines_per_mm)):g} lines/mm; choose a coarser grating, "
+                         "a lower order or another band.")
+    lam = np.linspace(lo, hi, 201)[ok]
+    lo, hi = float(lam[0]), float(lam[-1])                              # the part of the band that propagates
+    rows = []
+    sign = 1 if m > 0 else -1
+    for k in range(1, 40):
+        mp = k * sign
+        if mp == m:
+            continue
+        a, b = m * lo / mp, m * hi / mp                                 # λ' = m·λ/m' shares β with λ
+        a, b = max(a, s_lo), min(b, s_hi)
+        if a >= b:
+            continue
+        rows.append({"order": mp, "lo_nm": float(a), "hi_nm": float(b),
+                     "at_band_nm": (float(mp * a / m), float(mp * b / m))})
+    return rows
+
+
+def order_sorting_filter_nm(band_nm, order=1, source_band_nm=(200.0, 1100.0)):
+    """Long-pass filter edges (nm) that remove other orders from a band observed in ``order``.
+
+    Higher orders m' > m bring shorter wavelengths m·λ/m' onto the band: a long-pass edge just
+    below the band's short end removes them where the band spans less than the factor (m+1)/m;
+    a wider band needs a second filter section whose edge starts where the next order's light
+    enters, at (m+1)/m times the short end. Lower orders (m' < m) bring longer wavelengths
+    m·λ/m' that only a short-pass filter or the source's own band can remove: they are listed.
+
+    Returns
+    -------
+    dict with ``edges_nm`` (long-pass edges, each applying from that wavelength of the band up),
+    ``longer_orders`` (lower orders whose longer wavelengths also land on the band, if the source
+    emits them) and ``note``.
+    """
+    lo, hi = _band(band_nm)
+    m = abs(int(_order(order, nonzero=True, what="order sorting")))
+    s_lo, s_hi = _band(source_band_nm, "source_band_nm")
+    edges = [lo]
+    nxt = lo * (m + 1) / m
+    while nxt < hi:
+        edges.append(nxt)
+        nxt = nxt * (m + 1) / m
+    longer = [mp for mp in range(1, m) if m * lo / mp < s_hi]
+    note = ("one long-pass filter with its edge just below {:.0f} nm suffices".format(lo) if len(edges) == 1 else
+            f"the band spans more than ×{(m + 1) / m:g}: use a stepped filter with long-pass sections from "
+            + ", ".join(f"{e:.0f}" for e in edges) + " nm")
+    if longer:
+        note += "; lower orders " + ", ".join(map(str, longer)) + " add longer wavelengths the source emits"
+    return {"edges_nm": edges, "longer_orders": longer, "note": note}
+
+
+# ---------------------------------------------------------------------- Littrow, blaze, anomalies
+def littrow_angle_deg(wavelength_nm, lines_per_mm, order=1):
+    """Littrow angle (α = β): sin θ = m·λ/(2d), degrees; NaN where m·λ > 2d (Palmer & Loewen, eq. 2-9)."""
+    s = _order(order) * _wavelength(wavelength_nm) / (2 * groove_spacing_nm(lines_per_mm))
+    with np.errstate(invalid="ignore"):
+        out = np.where(np.abs(s) <= 1.0, np.degrees(np.arcsin(np.clip(s, -1, 1))), np.nan)
+    return float(out) if out.ndim == 0 else out
+
+
+def blaze_wavelength_nm(blaze_angle_deg, lines_per_mm, order=1):
+    """Blaze wavelength in Littrow, λ_B = 2·d·sin θ_B / m (nm) (Palmer & Loewen, eq. 2-11)."""
+    tb = require_finite("blaze_angle_deg", blaze_angle_deg, minimum=0.0, maximum=90.0, max_inclusive=False, unit="deg")
+    m = _order(order, nonzero=True, what="a blaze wavelength")
+    out = 2 * groove_spacing_nm(lines_per_mm) * np.sin(np.radians(tb)) / m
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def blaze_wavelength_at_deviation_nm(blaze_angle_deg, lines_per_mm, order=1, deviation_deg=0.0):
+    """Blaze wavelength when the angle between incident and diffracted beams is ``deviation_deg``:
+    λ_B = (2d/m)·sin θ_B·cos(D/2) (Palmer & Loewen, eq. 2-12; D = 0 is Littrow)."""
+    dv = require_finite("deviation_deg", deviation_deg, minimum=0.0, maximum=180.0, max_inclusive=False, unit="deg")
+    out = blaze_wavelength_nm(blaze_angle_deg, lines_per_mm, order) * np.cos(np.radians(dv) / 2)
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def rayleigh_wavelength_nm(lines_per_mm, order=1, incidence_deg=0.0):
+    """Wavelength at which order ``order`` goes grazing (β = ±90°): a Rayleigh (Wood) anomaly, nm.
+
+    λ = d·(sin α + 1)/m for m > 0, d·(sin α − 1)/m for m < 0 (Palmer & Loewen, ch. 9).
+    """
+    m = _order(order, nonzero=True, what="a Rayleigh wavelength")
+    sa = np.sin(np.radians(_incidence(incidence_deg)))
+    out = groove_spacing_nm(lines_per_mm) * (sa + np.sign(m)) / m
+    return float(out) if np.ndim(out) == 0 else out
+
+
+# ---------------------------------------------------------------------- line shape and efficiency
+def n_slit_intensity(angle_deg, wavelength_nm, lines_per_mm, n_slits, slit_width_nm=None, incidence_deg=0.0):
+    """Far-field intensity of N slits of width a and period d, relative to one slit's central peak.
+
+    I = sinc²(π a u/λ) · [sin(N π d u/λ) / sin(π d u/λ)]², u = sin α + sin β. Principal maxima
+    reach N² (times the envelope); between them lie N − 2 secondary maxima; orders fall on zeros of
+    the single-slit envelope are missing (Born & Wolf, sec. 8.6.1).
+
+    Parameters
+    ----------
+    angle_deg : array_like  diffraction angles β
+    n_slits : int  illuminated slits (grooves), >= 1
+    slit_width_nm : float, optional  slit width a (default d/2)
+    """
+    beta = np.radians(require_finite("angle_deg", angle_deg, minimum=-90.0, maximum=90.0, unit="deg"))
+    wl = _wavelength(wavelength_nm)
+    d = groove_spacing_nm(lines_per_mm)
+    if not isinstance(n_slits, (int, np.integer)) or n_slits < 1:
+        raise InputError(f"n_slits must be a whole number >= 1; got {n_slits!r}.")
+    a = d / 2 if slit_width_nm is None else require_finite("slit_width_nm", slit_width_nm, minimum=0.0,
+                                                            min_inclusive=False, unit="nm")
+    if np.any(a > d):
+        raise InputError(f"The slit width ({float(a):g} nm) cannot exceed the period ({float(d):g} nm).")
+    u = np.sin(np.radians(_incidence(incidence_deg))) + np.sin(beta)
+    phase = np.pi * d * u / wl
+    env = np.sinc(a * u / wl) ** 2                                     # numpy sinc(x) = sin(πx)/(πx)
+    num = np.sin(n_slits * phase)
+    den = np.sin(phase)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(np.abs(den) > 1e-12, num / den, n_slits * np.cos(n_slits * phase) / np.cos(phase))
+    return env * ratio ** 2
+
+
+def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_cycle=0.5, blaze_angle_deg=None):
+    """Relative efficiency of an order in the scalar approximation (0..1).
+
+    ``"lamellar"``: rectangular grooves of open fraction f, sinc²(m·f) (amplitude grating).
+    ``"blazed"``: sawtooth facets at θ_B, sinc²(m − λ_B/λ) with λ_B = 2d sin θ_B the first-order
+    Littrow blaze wavelength (Loewen & Popov, ch. 4). Scalar theory holds for d ≫ λ; near and
+    below d ≈ λ it is only indicative.
+    """
+    m = _order(order)
+    wl = _wavelength(wavelength_nm)
+    if kind == "lamellar":
+        f = float(require_finite("duty_cycle", duty_cycle, minimum=0.0, maximum=1.0, min_inclusive=False))
+        return np.sinc(m * f) ** 2 * np.ones_like(wl)
+    if kind == "blazed":
+        if blaze_angle_deg is None:
+            raise InputError("A blazed groove needs blaze_angle_deg.")
+        lb = 2 * groove_spacing_nm(lines_per_mm) * np.sin(np.radians(
+            float(require_finite("blaze_angle_deg", blaze_angle_deg, minimum=0.0, maximum=89.0, unit="deg"))))
+        return np.sinc(m - lb / wl) ** 2
+    raise InputError(f"kind must be 'lamellar' or 'blazed'; got {kind!r}.")
+
+
+# ---------------------------------------------------------------------- colour
+def _band(band, name="band_nm"):
+    b = _wavelength(band, name).ravel()
+    if b.size != 2 or not b[0] < b[1]:
+        raise InputError(f"{name} is (short end, long end) in nm with short < long; got {band!r}.")
+    return float(b[0]), float(b[1])
+
+
+def grating_spectrum(view_deg, lines_per_mm, incidence_deg=0.0, *, kind="lamellar", duty_cycle=0.5,
+                     blaze_angle_deg=None, wavelength_nm=None):
+    """Relative spectral power reaching an eye at β = ``view_deg``, summed over all nonzero orders.
+
+    For each order m the grating sends λ_m = d(sin α + sin β)/m toward the eye; a small fixed pupil
+    collects the band dλ = d cos β/|m| dβ, so each order contributes efficiency × d cos β/|m| at λ_m
+    (Palmer & Loewen, eq. 2-13 inverted). The result is a spectrum sampled on ``wavelength_nm``
+    (default 380-780 nm at 1 nm) with each order's line spread over the nearest samples (linear
+    weights), in units of "one nm of the lamp per degree of view".
+
+    Returns
+    -------
+    (wavelength_nm, power, orders) : arrays (W,), (..., W) for view angles (...,), and a list of
+    (order, λ_m) pairs per view angle for the first view angle.
+    """
+    wl = np.arange(COLOUR_BAND_NM[0], COLOUR_BAND_NM[1] + 0.5, 1.0) if wavelength_nm is None else _wavelength(
+        wavelength_nm).ravel()
+    view = np.atleast_1d(require_finite("view_deg", view_deg, minimum=-90.0, maximum=90.0, unit="deg"))
+    d = float(groove_spacing_nm(lines_per_mm))
+    sa = float(np.sin(np.radians(_incidence(incidence_deg))))
+    u = sa + np.sin(np.radians(view))                                   # (V,)
+    cosb = np.cos(np.radians(view))
+    power = np.zeros(view.shape + wl.shape)
+    m_max = int(np.ceil(2 * d / wl[0])) + 1
+    first = []
+    for m in [k for k in range(-m_max, m_max + 1) if k != 0]:
+        lam = d * u / m                                                 # (V,)
+        inside = (lam >= wl[0]) & (lam <= wl[-1])
+        if not inside.any():
+            continue
+        eff = groove_efficiency(np.where(inside, lam, wl[0]), lines_per_mm, m, kind, duty_cycle, blaze_angle_deg)
+        weight = np.where(inside, eff * d * np.abs(cosb) / abs(m), 0.0)
+        pos = np.interp(lam, wl, np.arange(wl.size))
+        i0 = np.clip(np.floor(pos).astype(int), 0, wl.size - 1)
+        i1 = np.minimum(i0 + 1, wl.size - 1)
+        frac = pos - i0
+        step = np.gradient(wl)[i0]
+        flat_v = np.arange(view.size)
+        np.add.at(power.reshape(-1, wl.size), (flat_v, i0.ravel()), (weight * (1 - frac) / step).ravel())
+        np.add.at(power.reshape(-1, wl.size), (flat_v, i1.ravel()), (weight * frac / step).ravel())
+        if inside.ravel()[0]:
+            first.append((m, float(lam.ravel()[0])))
+    return wl, power, first
+
+
+def grating_color(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", observer="2", *, kind="lamellar",
+                  duty_cycle=0.5, blaze_angle_deg=None, brightness=None):
+    """Display sRGB of the light a grating sends to an eye at ``view_deg`` under white light.
+
+    ``brightness``: the XYZ scale (Y of display white); default: the largest Y over the view angles
+    given, so the brightest direction shows as white (the eye adapts).
+
+    Returns
+    -------
+    dict with ``rgb`` (..., 3), ``xyz`` (..., 3), ``lab`` (..., 3), ``out_of_gamut`` (...), ``orders``
+    (the (m, λ) reaching the first view angle) and ``scale``.
+    """
+    wl, power, first = grating_spectrum(view_deg, lines_per_mm, incidence_deg, kind=kind, duty_cycle=duty_cycle,
+                                        blaze_angle_deg=blaze_angle_deg)
+    xyz = spectrum_to_xyz(power, wl, illuminant, observer)
+    ymax = float(xyz[..., 1].max()) if brightness is None else float(brightness)
+    scale = 1.0 / ymax if ymax > 0 else 1.0
+    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
+    return {"rgb": rgb, "xyz": xyz, "lab": lab, "out_of_gamut": oog, "orders": first, "scale": scale}
+
+
+def grating_color_map(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", observer="2", **kw):
+    """Colours over (groove density, view angle): rgb (n_density, n_view, 3), brightest = white."""
+    dens = np.atleast_1d(_density(lines_per_mm)).ravel()
+    xyz = np.stack([grating_color(view_deg, g, incidence_deg, illuminant, observer, brightness=1.0, **kw)["xyz"]
+                    for g in dens])
+    ymax = float(xyz[..., 1].max())
+    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, 1.0 / ymax if ymax > 0 else 1.0)
+    return {"rgb": rgb, "lab": lab, "out_of_gamut": oog, "lines_per_mm": dens,
+            "view_deg": np.atleast_1d(view_deg).astype(float)}
+
+
+# ---------------------------------------------------------------------- spectrometer planning
+@dataclass(frozen=True)
+class SpectrometerDesign:
+    """One grating and order that fit the band on the detector without order overlap."""
+
+    lines_per_mm: float
+    order: int
+    incidence_deg: float
+    beta_range_deg: tuple
+    spread_mm: float
+    fill_fraction: float
+    nm_per_pixel: float
+    resolution_nm: float
+    free_spectral_range_nm: float
+    note: str
+
+
+def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_um, *, deviation_deg=30.0,
+                      densities=(150, 300, 600, 900, 1200, 1800, 2400, 3600), orders=(1, 2, 3),
+                      min_fill=0.3) -> list[SpectrometerDesign]:
+    """Propose groove densities and orders that fit a band on a detector without order overlap.
+
+    Geometry: a fixed angle ``deviation_deg`` between incident and diffracted beams at the band
+    centre (a common compact mount), the grating rotated so the centre wavelength hits the detector
+    centre; the spread on the detector is f·(β(long) − β(short)) (flat detector, small angles);
+    resolution is :data:`PIXELS_PER_RESOLUTION_ELEMENT` pixels of the reciprocal linear dispersion.
+
+    Returns
+    -------
+    list of SpectrometerDesign, best resolution first; designs that overflow the detector, overlap
+    orders, or fill less than ``min_fill`` of it are left out.
+    """
+    lo, hi = _band(band_nm)
+    f = float(require_finite("focal_length_mm", focal_length_mm, minimum=0.0, min_inclusive=False, unit="mm"))
+    L = float(require_finite("detector_length_mm", detector_length_mm, minimum=0.0, min_inclusive=False, unit="mm"))
+    p = float(require_finite("pixel_pitch_um", pixel_pitch_um, minimum=0.0, min_inclusive=False, unit="µm")) / 1000
+    dv = float(require_finite("deviation_deg", deviation_deg, minimum=0.0, maximum=120.0, unit="deg"))
+    centre = 0.5 * (lo + hi)
+    out = []
+    for g in densities:
+        d = 1e6 / g
+        for m in orders:
+            if hi > lo * (m + 1) / m:
+                continue                                                # wider than one free spectral range
+            # grating rotation θ with α = θ + D/2, β = θ − D/2: m λc = 2 d sin θ cos(D/2)
+            s = m * centre / (2 * d * np.cos(np.radians(dv) / 2))
+            if abs(s) >= 1:
+                continue
+            theta = np.degrees(np.arcsin(s))
+            alpha = theta + dv / 2
+            if abs(alpha) >= 89:
+                continue
+            b = [diffraction_angle_deg(w, g, m, alpha) for w in (lo, hi)]
+            if any(np.isnan(b)):
+                continue
+            spread = f * np.radians(abs(b[1] - b[0]))
+            if spread > L or spread < min_fill * L:
+                continue
+            rld = reciprocal_linear_dispersion_nm_per_mm(centre, g, f, m, alpha)
+            nm_px = rld * p
+            out.append(SpectrometerDesign(float(g), int(m), float(alpha), (float(b[0]), float(b[1])), float(spread),
+                                          float(spread / L), float(nm_px), float(nm_px * PIXELS_PER_RESOLUTION_ELEMENT),
+                                          float(lo / m),
+                                          f"{g:g} lines/mm, order {m}: {lo:g}-{hi:g} nm spans {spread:.1f} of "
+                                          f"{L:g} mm; {nm_px:.3f} nm/pixel"))
+    out.sort(key=lambda x: x.resolution_nm)
+    return out
