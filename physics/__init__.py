@@ -8,6 +8,7 @@ from .materials import (Material, ConstantMaterial, CauchyMaterial, SellmeierMat
                         TabulatedMaterial, DatabaseMaterial, material, list_materials,
                         search_materials, curated_materials, database_version)
 from .stack import Layer, Stack, sweep
+from . import grating
 from .inverse import thickness_candidates, thickness_map, parse_color, Candidate, Candidates, ThicknessMap
 from .color import (spectrum_to_xyz, xyz_to_lab, xyz_to_srgb, delta_e_2000, srgb_out_of_gamut,
                     spectra_to_srgb, illuminant_white_xyz, srgb_to_hex, lab_to_xyz, srgb_to_xyz)
@@ -17,7 +18,7 @@ __all__ = [
     "Material", "ConstantMaterial", "CauchyMaterial", "SellmeierMaterial", "TabulatedMaterial",
     "DatabaseMaterial", "material", "list_materials", "search_materials", "curated_materials",
     "database_version",
-    "Layer", "Stack", "sweep",
+    "Layer", "Stack", "sweep", "grating",
     "thickness_candidates", "thickness_map", "parse_color", "Candidate", "Candidates", "ThicknessMap",
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "delta_e_2000", "srgb_out_of_gamut",
     "spectra_to_srgb", "illuminant_white_xyz", "srgb_to_hex", "lab_to_xyz", "srgb_to_xyz",

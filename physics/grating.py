@@ -423,35 +423,58 @@ def grating_spectrum(view_deg, lines_per_mm, incidence_deg=0.0, *, kind="lamella
 
 
 def grating_color(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", observer="2", *, kind="lamellar",
-                  duty_cycle=0.5, blaze_angle_deg=None, brightness=None):
+                  duty_cycle=0.5, blaze_angle_deg=None, normalize="per_direction"):
     """Display sRGB of the light a grating sends to an eye at ``view_deg`` under white light.
 
-    ``brightness``: the XYZ scale (Y of display white); default: the largest Y over the view angles
-    given, so the brightest direction shows as white (the eye adapts).
+    Parameters
+    ----------
+    normalize : {"per_direction", "common"} or float
+        "per_direction" (default): each direction is shown at full display brightness (its largest
+        linear sRGB channel = 1), so the hue of every direction is visible; "common": one scale for
+        all directions given, the brightest shown as white (relative brightness kept); a number:
+        that Y is display white.
 
     Returns
     -------
-    dict with ``rgb`` (..., 3), ``xyz`` (..., 3), ``lab`` (..., 3), ``out_of_gamut`` (...), ``orders``
-    (the (m, λ) reaching the first view angle) and ``scale``.
+    dict with ``rgb`` (..., 3), ``xyz`` (..., 3, unscaled), ``lab`` (..., 3), ``out_of_gamut`` (...),
+    ``orders`` (the (m, λ) pairs reaching the first view angle), ``dark`` (...) True where no
+    visible light arrives, and ``scale`` (... or scalar).
     """
     wl, power, first = grating_spectrum(view_deg, lines_per_mm, incidence_deg, kind=kind, duty_cycle=duty_cycle,
                                         blaze_angle_deg=blaze_angle_deg)
     xyz = spectrum_to_xyz(power, wl, illuminant, observer)
-    ymax = float(xyz[..., 1].max()) if brightness is None else float(brightness)
-    scale = 1.0 / ymax if ymax > 0 else 1.0
-    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
-    return {"rgb": rgb, "xyz": xyz, "lab": lab, "out_of_gamut": oog, "orders": first, "scale": scale}
+    scale = _scale(xyz, normalize, illuminant, observer)
+    rgb, lab, oog = scaled_colors(xyz * np.asarray(scale)[..., None] if np.ndim(scale) else xyz * scale,
+                                  illuminant, observer, 1.0)
+    return {"rgb": rgb, "xyz": xyz, "lab": lab, "out_of_gamut": oog, "orders": first,
+            "dark": xyz[..., 1] <= 0, "scale": scale}
 
 
-def grating_color_map(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", observer="2", **kw):
-    """Colours over (groove density, view angle): rgb (n_density, n_view, 3), brightest = white."""
+def _scale(xyz, normalize, illuminant, observer):
+    from .color import _linear_srgb
+
+    if normalize == "per_direction":
+        peak = np.max(_linear_srgb(xyz, illuminant, observer), axis=-1)
+        return np.where(peak > 0, 1.0 / np.where(peak > 0, peak, 1.0), 0.0)
+    if normalize == "common":
+        ymax = float(xyz[..., 1].max()) if xyz.size else 0.0
+        return 1.0 / ymax if ymax > 0 else 1.0
+    y = float(require_finite("normalize", normalize, minimum=0.0, min_inclusive=False))
+    return 1.0 / y
+
+
+def grating_color_map(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", observer="2",
+                      normalize="per_direction", **kw):
+    """Colours over (groove density, view angle): ``rgb`` (n_density, n_view, 3) and the axes."""
     dens = np.atleast_1d(_density(lines_per_mm)).ravel()
-    xyz = np.stack([grating_color(view_deg, g, incidence_deg, illuminant, observer, brightness=1.0, **kw)["xyz"]
+    view = np.atleast_1d(np.asarray(view_deg, dtype=float)).ravel()
+    xyz = np.stack([grating_color(view, g, incidence_deg, illuminant, observer, normalize=1.0, **kw)["xyz"]
                     for g in dens])
-    ymax = float(xyz[..., 1].max())
-    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, 1.0 / ymax if ymax > 0 else 1.0)
-    return {"rgb": rgb, "lab": lab, "out_of_gamut": oog, "lines_per_mm": dens,
-            "view_deg": np.atleast_1d(view_deg).astype(float)}
+    scale = _scale(xyz, normalize, illuminant, observer)
+    rgb, lab, oog = scaled_colors(xyz * np.asarray(scale)[..., None] if np.ndim(scale) else xyz * scale,
+                                  illuminant, observer, 1.0)
+    return {"rgb": rgb, "lab": lab, "out_of_gamut": oog, "dark": xyz[..., 1] <= 0, "lines_per_mm": dens,
+            "view_deg": view}
 
 
 # ---------------------------------------------------------------------- spectrometer planning
