@@ -74,9 +74,13 @@ def _wavelength(wavelength_nm, name="wavelength_nm"):
 def _order(order, *, nonzero=False, what="this quantity"):
     o = np.asarray(order)
     if not np.issubdtype(o.dtype, np.integer):
-        if not np.all(np.isfinite(o.astype(float))) or np.any(np.asarray(o, dtype=float) % 1 != 0):
+        try:
+            f = o.astype(float)
+        except (TypeError, ValueError):
+            f = np.array(np.nan)
+        if not np.all(np.isfinite(f)) or np.any(f % 1 != 0):
             raise InputError(f"order must be a whole number (…, −2, −1, 0, 1, 2, …); got {order!r}.")
-        o = o.astype(int)
+        o = f.astype(int)
     if nonzero and np.any(o == 0):
         raise InputError(f"The zero order does not disperse; {what} needs order ≠ 0.")
     return o
@@ -291,6 +295,9 @@ def blaze_wavelength_nm(blaze_angle_deg, lines_per_mm, order=1):
     """Blaze wavelength in Littrow, λ_B = 2·d·sin θ_B / m (nm) (Palmer & Loewen, eq. 2-11)."""
     tb = require_finite("blaze_angle_deg", blaze_angle_deg, minimum=0.0, maximum=90.0, max_inclusive=False, unit="deg")
     m = _order(order, nonzero=True, what="a blaze wavelength")
+    if np.any(m < 0):
+        raise InputError("Facets at a blaze angle θ_B >= 0 blaze the positive orders; for a negative order "
+                         "mirror the geometry (use order |m| with the angles' signs flipped).")
     out = 2 * groove_spacing_nm(lines_per_mm) * np.sin(np.radians(tb)) / m
     return float(out) if np.ndim(out) == 0 else out
 
@@ -347,6 +354,13 @@ def n_slit_intensity(angle_deg, wavelength_nm, lines_per_mm, n_slits, slit_width
     return env * ratio ** 2
 
 
+def _sinc2(x):
+    """sinc²(x) with exact zeros at nonzero whole x (missing orders carry no light, not 1e-33)."""
+    x = np.asarray(x, dtype=float)
+    k = np.round(x)
+    return np.where((k != 0) & (np.abs(x - k) <= 1e-12 * np.maximum(1.0, np.abs(x))), 0.0, np.sinc(x) ** 2)
+
+
 def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_cycle=0.5, blaze_angle_deg=None):
     """Relative efficiency of an order in the scalar approximation (0..1).
 
@@ -357,15 +371,16 @@ def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_
     """
     m = _order(order)
     wl = _wavelength(wavelength_nm)
+    d = groove_spacing_nm(lines_per_mm)                                 # validates the groove density
     if kind == "lamellar":
         f = float(require_finite("duty_cycle", duty_cycle, minimum=0.0, maximum=1.0, min_inclusive=False))
-        return np.sinc(m * f) ** 2 * np.ones_like(wl)
+        return _sinc2(m * f) * np.ones_like(wl)
     if kind == "blazed":
         if blaze_angle_deg is None:
             raise InputError("A blazed groove needs blaze_angle_deg.")
-        lb = 2 * groove_spacing_nm(lines_per_mm) * np.sin(np.radians(
+        lb = 2 * d * np.sin(np.radians(
             float(require_finite("blaze_angle_deg", blaze_angle_deg, minimum=0.0, maximum=89.0, unit="deg"))))
-        return np.sinc(m - lb / wl) ** 2
+        return _sinc2(m - lb / wl)
     raise InputError(f"kind must be 'lamellar' or 'blazed'; got {kind!r}.")
 
 
@@ -514,12 +529,14 @@ def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_
     L = float(require_finite("detector_length_mm", detector_length_mm, minimum=0.0, min_inclusive=False, unit="mm"))
     p = float(require_finite("pixel_pitch_um", pixel_pitch_um, minimum=0.0, min_inclusive=False, unit="µm")) / 1000
     dv = float(require_finite("deviation_deg", deviation_deg, minimum=0.0, maximum=120.0, unit="deg"))
+    dens = [float(g) for g in np.atleast_1d(_density(densities)).ravel()]
+    ords = [int(m) for m in np.atleast_1d(_order(orders, nonzero=True, what="a spectrometer design")).ravel()]
     centre = 0.5 * (lo + hi)
     out = []
-    for g in densities:
+    for g in dens:
         d = 1e6 / g
-        for m in orders:
-            if hi > lo * (m + 1) / m:
+        for m in ords:
+            if hi > lo * (abs(m) + 1) / abs(m):
                 continue                                                # wider than one free spectral range
             # grating rotation θ with α = θ + D/2, β = θ − D/2: m λc = 2 d sin θ cos(D/2)
             s = m * centre / (2 * d * np.cos(np.radians(dv) / 2))
@@ -539,7 +556,7 @@ def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_
             nm_px = rld * p
             out.append(SpectrometerDesign(float(g), int(m), float(alpha), (float(b[0]), float(b[1])), float(spread),
                                           float(spread / L), float(nm_px), float(nm_px * PIXELS_PER_RESOLUTION_ELEMENT),
-                                          float(lo / m),
+                                          float(lo / abs(m)),
                                           f"{g:g} lines/mm, order {m}: {lo:g}-{hi:g} nm spans {spread:.1f} of "
                                           f"{L:g} mm; {nm_px:.3f} nm/pixel"))
     out.sort(key=lambda x: x.resolution_nm)
