@@ -9,6 +9,7 @@ from .materials import (Material, ConstantMaterial, CauchyMaterial, SellmeierMat
                         search_materials, curated_materials, database_version)
 from .stack import Layer, Stack, sweep
 from . import grating
+from .fit import fit_thickness, read_spectrum, FitResult, SpectrumData, optical_thickness_fft, reflectance_from_counts
 from .inverse import thickness_candidates, thickness_map, parse_color, Candidate, Candidates, ThicknessMap
 from .color import (spectrum_to_xyz, xyz_to_lab, xyz_to_srgb, delta_e_2000, srgb_out_of_gamut,
                     spectra_to_srgb, illuminant_white_xyz, srgb_to_hex, lab_to_xyz, srgb_to_xyz)
@@ -19,6 +20,7 @@ __all__ = [
     "DatabaseMaterial", "material", "list_materials", "search_materials", "curated_materials",
     "database_version",
     "Layer", "Stack", "sweep", "grating",
+    "fit_thickness", "read_spectrum", "FitResult", "SpectrumData", "optical_thickness_fft", "reflectance_from_counts",
     "thickness_candidates", "thickness_map", "parse_color", "Candidate", "Candidates", "ThicknessMap",
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "delta_e_2000", "srgb_out_of_gamut",
     "spectra_to_srgb", "illuminant_white_xyz", "srgb_to_hex", "lab_to_xyz", "srgb_to_xyz",

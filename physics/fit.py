@@ -1,0 +1,478 @@
+"""Thickness from a measured reflectance spectrum: import, a global fit that cannot miss the order,
+an honest uncertainty, and the competing minima shown.
+
+Method. Interference spectra have many local minima in thickness, one per fringe
+order. The fit first scans the unknown thickness window densely (at least
+:data:`SAMPLES_PER_FRINGE` samples per fringe at the shortest wavelength), solving the
+optional scale and offset in closed form at every sample, using the O(1)-per-point
+sweep of :mod:`physics.stack`; the best few local minima of the scan are then refined by
+bounded non-linear least squares (scipy ``least_squares``). The uncertainty is the
+square root of the diagonal of (JᵀJ)⁻¹·s², with J the Jacobian at the solution and
+s² = SSR/(n − p) the residual variance (the curvature scaled by the residual). A
+warning is raised when another minimum's rms lies within :data:`COMPETING_RMS_RATIO` of
+the best.
+
+The Fourier estimate: reflectance fringes are periodic in wavenumber 1/λ with period
+1/(2·n·d·cos θ) (fringes of equal inclination, Born & Wolf, Principles of Optics,
+sec. 7.5.1), so the strongest frequency of R(1/λ) estimates the optical thickness n·d.
+
+References
+----------
+M. Born and E. Wolf, Principles of Optics, 7th ed., sec. 7.5.1; W. H. Press et al.,
+Numerical Recipes, 3rd ed., sec. 15.5-15.6 (non-linear least squares, covariance from
+the curvature); P. Virtanen et al., SciPy 1.0, Nat. Methods 17, 261 (2020).
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.optimize import least_squares
+
+from .errors import InputError, WavelengthRangeError, require_finite
+from .stack import Layer, Stack, _check_layer_index, _Optics, sweep
+
+__all__ = ["fit_thickness", "FitResult", "read_spectrum", "SpectrumData", "reflectance_from_counts",
+           "optical_thickness_fft", "MIN_POINTS"]
+
+#: Fewest spectrum points accepted for a fit.
+MIN_POINTS = 10
+#: Scan samples per interference fringe at the shortest wavelength (a fringe then spans >= 8 samples).
+SAMPLES_PER_FRINGE = 10
+#: Largest scan, per unknown layer: a wider window than this resolves is refused.
+MAX_SCAN_POINTS = 4000
+#: Local minima of the scan refined by least squares.
+STARTS_REFINED = 5
+#: Another minimum whose rms is within this factor of the best is reported as competing.
+COMPETING_RMS_RATIO = 1.5
+#: Reflectance read as a fraction above this is refused (a percentage or counts, not a fraction).
+MAX_FRACTION = 1.2
+
+
+# ---------------------------------------------------------------------- import
+@dataclass(frozen=True)
+class SpectrumData:
+    """A spectrum read from a file.
+
+    Attributes
+    ----------
+    wavelength_nm, values : (n,) sorted by wavelength, duplicates averaged
+    wavelength_unit : "nm" or "um" as detected (or given)
+    value_unit : "fraction" or "percent" as detected (or given); ``reflectance`` applies it
+    dropped_rows : rows without two numbers or with NaN (header lines are not counted)
+    notes : list of sentences for the user
+    """
+
+    wavelength_nm: np.ndarray
+    values: np.ndarray
+    wavelength_unit: str
+    value_unit: str
+    dropped_rows: int
+    notes: list = field(default_factory=list)
+
+    @property
+    def reflectance(self) -> np.ndarray:
+        """Values as a fraction."""
+        return self.values / 100.0 if self.value_unit == "percent" else self.values
+
+
+_NUMBER = re.compile(r"^[-+]?(\d+([.,]\d*)?|[.,]\d+)([eE][-+]?\d+)?$")
+
+
+def _split(line: str):
+    line = line.strip()
+    if not line or line[0] in "#;%!/":
+        return None
+    if ";" in line or "\t" in line:
+        parts = re.split(r"[;\t]+", line)
+    elif line.count(",") >= 1 and " " not in line.strip() and line.count(",") >= 2 and "." not in line:
+        parts = line.split(",")
+    elif "," in line and "." in line:
+        parts = line.split(",")
+    elif "," in line and " " in line:
+        parts = re.split(r"\s+", line)
+    elif line.count(",") == 1 and "." not in line:
+        parts = line.split(",")                                         # "400,0.1" read as two columns
+    else:
+        parts = re.split(r"[\s,]+", line)
+    return [p.strip() for p in parts if p.strip()]
+
+
+def _num(text: str) -> float:
+    if not _NUMBER.match(text):
+        if text.lower() in ("nan", "-nan", "na", "n/a"):
+            return float("nan")
+        raise ValueError(text)
+    return float(text.replace(",", "."))
+
+
+def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: str | None = None,
+                  max_bytes: int = 20_000_000) -> SpectrumData:
+    """Read a spectrometer export: two numeric columns, wavelength and reflectance.
+
+    Header lines are skipped; columns may be separated by commas, semicolons, tabs or spaces;
+    decimals may be dots or commas (with ; or tab separators); wavelengths in nm or µm and values
+    as fractions or percent are detected (give ``wavelength_unit`` "nm"/"um" or ``value_unit``
+    "fraction"/"percent" to override); rows are sorted and repeated wavelengths averaged; rows
+    with NaN or a single number are dropped and counted.
+
+    Raises
+    ------
+    InputError
+        Not text, text in the number columns of the data block, fewer than :data:`MIN_POINTS` rows.
+    """
+    if isinstance(content, (bytes, bytearray)):
+        if len(content) > max_bytes:
+            raise InputError(f"The spectrum file is larger than {max_bytes / 1e6:g} MB; export just two columns.")
+        try:
+            text = bytes(content).decode("utf-8-sig")
+        except UnicodeDecodeError:
+            try:
+                text = bytes(content).decode("latin-1")
+            except UnicodeDecodeError:  # pragma: no cover - latin-1 decodes any byte
+                raise InputError("The spectrum file is not text.") from None
+        if "\x00" in text:
+            raise InputError("The spectrum file is not text (it contains binary data); export it as CSV or TXT.")
+    elif isinstance(content, str):
+        text = content
+    else:
+        raise InputError("A spectrum is the text of a CSV or TXT file.")
+    rows, dropped, started, bad_line = [], 0, False, None
+    for lineno, line in enumerate(text.splitlines(), 1):
+        parts = _split(line)
+        if parts is None:
+            continue
+        try:
+            nums = [_num(p) for p in parts[:2]]
+        except ValueError:
+            if started:
+                bad_line = bad_line or (lineno, line.strip()[:60])
+                dropped += 1
+            continue                                                    # a header line before the data
+        if len(nums) < 2:
+            if started:
+                dropped += 1
+            continue
+        started = True
+        if not all(np.isfinite(nums)):
+            dropped += 1
+            continue
+        rows.append(nums)
+    if bad_line and len(rows) < 2 * dropped:
+        raise InputError(f"Line {bad_line[0]} has text where numbers are expected ('{bad_line[1]}'); the data "
+                         "block must be two numeric columns: wavelength, reflectance.")
+    if len(rows) < MIN_POINTS:
+        raise InputError(f"The file has {len(rows)} usable rows of two numbers; a fit needs at least {MIN_POINTS}. "
+                         "Export wavelength and reflectance as two columns.")
+    arr = np.array(rows)
+    wl, val = arr[:, 0], arr[:, 1]
+    notes = []
+    if wavelength_unit is None:
+        wavelength_unit = "um" if np.nanmax(wl) < 50 else "nm"
+        notes.append(f"Wavelengths read as {'µm' if wavelength_unit == 'um' else 'nm'} "
+                     f"({wl.min():g}-{wl.max():g}); override if wrong.")
+    if wavelength_unit not in ("nm", "um"):
+        raise InputError(f"wavelength_unit is 'nm' or 'um'; got {wavelength_unit!r}.")
+    if wavelength_unit == "um":
+        wl = wl * 1000.0
+    if value_unit is None:
+        value_unit = "percent" if np.nanmax(val) > 1.5 else "fraction"
+        notes.append(f"Reflectance read as {'percent' if value_unit == 'percent' else 'a fraction'} "
+                     f"(largest value {val.max():g}); override if wrong.")
+    if value_unit not in ("fraction", "percent"):
+        raise InputError(f"value_unit is 'fraction' or 'percent'; got {value_unit!r}.")
+    if np.any(wl <= 0):
+        raise InputError("Some wavelengths are zero or negative; check the wavelength column.")
+    order = np.argsort(wl, kind="stable")
+    wl, val = wl[order], val[order]
+    uniq, inv, counts = np.unique(wl, return_inverse=True, return_counts=True)
+    if uniq.size < wl.size:
+        val = np.bincount(inv, weights=val) / counts
+        notes.append(f"{wl.size - uniq.size} repeated wavelength(s) averaged.")
+        wl = uniq
+    if dropped:
+        notes.append(f"{dropped} row(s) without two numbers were dropped.")
+    if wl.size < MIN_POINTS:
+        raise InputError(f"Only {wl.size} distinct wavelengths; a fit needs at least {MIN_POINTS}.")
+    return SpectrumData(wl, val, wavelength_unit, value_unit, dropped, notes)
+
+
+def reflectance_from_counts(sample, reference, dark=None, reference_reflectance=1.0) -> np.ndarray:
+    """Reflectance from raw counts: (S − D)/(Ref − D) × R_ref, on one wavelength grid.
+
+    ``reference_reflectance`` is a number or an array (e.g. bare silicon computed by
+    ``Stack([], substrate="Si").reflectance``).
+    """
+    S = require_finite("sample counts", sample)
+    Rf = require_finite("reference counts", reference)
+    D = np.zeros_like(S) if dark is None else require_finite("dark counts", dark)
+    if not (S.shape == Rf.shape == D.shape):
+        raise InputError(f"Sample, reference and dark spectra must share one wavelength grid "
+                         f"(got {S.shape}, {Rf.shape}, {D.shape}).")
+    den = Rf - D
+    if np.any(den <= 0):
+        raise InputError("The reference is not above the dark spectrum everywhere; re-measure the reference.")
+    return (S - D) / den * np.asarray(reference_reflectance, dtype=float)
+
+
+# ---------------------------------------------------------------------- Fourier estimate
+def optical_thickness_fft(wavelength_nm, reflectance, angle_deg=0.0, n_ambient=1.0, oversample=16):
+    """Optical thickness n·d·cos θ_layer (nm) from the fringe frequency of R against 1/λ.
+
+    R is resampled on a uniform wavenumber grid, detrended, windowed and Fourier transformed;
+    the strongest non-zero frequency f (cycles per nm⁻¹) gives 2·n·d·cos θ = f. Returns the
+    estimate of n·d·cos θ in nm (divide by the layer's n cos θ for d). Resolution: about
+    1/(2 Δ(1/λ)) over the band, so thin layers with less than ~one fringe are not resolved.
+    """
+    wl = require_finite("wavelength_nm", wavelength_nm, minimum=0.0, min_inclusive=False, unit="nm").ravel()
+    R = require_finite("reflectance", reflectance).ravel()
+    if wl.size != R.size or wl.size < MIN_POINTS:
+        raise InputError(f"Give at least {MIN_POINTS} matching wavelengths and reflectances.")
+    k = 1.0 / wl
+    order = np.argsort(k)
+    k, R = k[order], R[order]
+    n = int(oversample * wl.size)
+    ku = np.linspace(k[0], k[-1], wl.size)
+    Ru = np.interp(ku, k, R)
+    Ru = Ru - np.polyval(np.polyfit(ku, Ru, 2), ku)
+    Ru = Ru * np.hanning(Ru.size)
+    spec = np.abs(np.fft.rfft(Ru, n))
+    freq = np.fft.rfftfreq(n, d=ku[1] - ku[0])                          # cycles per (1/nm) = nm
+    i = int(np.argmax(spec[1:]) + 1)
+    if 0 < i < spec.size - 1:                                           # parabolic peak interpolation
+        y0, y1, y2 = np.log(spec[i - 1:i + 2] + 1e-300)
+        i = i + 0.5 * (y0 - y2) / (y0 - 2 * y1 + y2)
+    f = float(np.interp(i, np.arange(freq.size), freq))
+    return f / 2.0
+
+
+# ---------------------------------------------------------------------- fit
+@dataclass(frozen=True)
+class FitResult:
+    """Result of :func:`fit_thickness`.
+
+    Attributes
+    ----------
+    thickness_nm, uncertainty_nm : the unknown layer (1 σ from the curvature scaled by the residual)
+    second_thickness_nm, second_uncertainty_nm : the second unknown layer, or None
+    rms : root-mean-square residual of reflectance (fraction)
+    scale, offset : fitted (1 and 0 when not free)
+    wavelength_nm, measured, model, residual : (n,) the points used
+    scan_thickness_nm, scan_rms : the goodness-of-fit curve along the unknown thickness (for two
+        layers: along the first, minimised over the second)
+    minima : list of (thickness_nm, rms) of the refined local minima, best first
+    warning : a sentence when another minimum competes, else ""
+    n_points, n_parameters : int
+    """
+
+    thickness_nm: float
+    uncertainty_nm: float
+    rms: float
+    scale: float
+    offset: float
+    wavelength_nm: np.ndarray
+    measured: np.ndarray
+    model: np.ndarray
+    residual: np.ndarray
+    scan_thickness_nm: np.ndarray
+    scan_rms: np.ndarray
+    minima: list
+    warning: str
+    n_points: int
+    n_parameters: int
+    second_thickness_nm: float | None = None
+    second_uncertainty_nm: float | None = None
+
+
+def _prepare(wavelength_nm, reflectance, stack, wavelength_range_nm):
+    wl = require_finite("wavelength_nm", wavelength_nm, minimum=0.0, min_inclusive=False, unit="nm").ravel()
+    R = require_finite("reflectance", reflectance).ravel()
+    if wl.size != R.size:
+        raise InputError(f"wavelength_nm has {wl.size} values and reflectance {R.size}; they must match.")
+    if R.size and R.max() > MAX_FRACTION:
+        raise InputError(f"Reflectance reaches {R.max():g}, more than {MAX_FRACTION:g} as a fraction: the values "
+                         "look like percent or raw counts. Divide percent by 100, or convert counts with a reference.")
+    order = np.argsort(wl)
+    wl, R = wl[order], R[order]
+    if wavelength_range_nm is not None:
+        lo, hi = require_finite("wavelength_range_nm", wavelength_range_nm, minimum=0.0, unit="nm").ravel()[:2]
+        keep = (wl >= lo) & (wl <= hi)
+        wl, R = wl[keep], R[keep]
+    if wl.size < MIN_POINTS:
+        raise InputError(f"{wl.size} points in the range used; a fit needs at least {MIN_POINTS}.")
+    lo, hi = stack.wavelength_range_nm()
+    if wl[0] < lo * (1 - 1e-9) or wl[-1] > hi * (1 + 1e-9):
+        raise WavelengthRangeError(f"The spectrum spans {wl[0]:g}-{wl[-1]:g} nm but the stack's materials have data "
+                                   f"only from {lo:g} to {hi:g} nm; restrict the wavelength range to that band.")
+    return wl, R
+
+
+def _window(thickness_nm, name):
+    w = require_finite(name, thickness_nm, minimum=0.0, unit="nm").ravel()
+    if w.size != 2 or not w[0] < w[1]:
+        raise InputError(f"{name} is a window (lowest, highest) in nm with lowest < highest; got {thickness_nm!r}.")
+    return float(w[0]), float(w[1])
+
+
+def _scan_grid(stack, layer, window, wl, angle_deg, name):
+    """A thickness grid fine enough to sample every fringe of the shortest wavelength."""
+    opt = _Optics(stack, np.array([wl.min()]), np.array([float(angle_deg)]))
+    nkz = float(np.abs(opt.kz[layer + 1, 0, 0].real))
+    period = wl.min() / (2.0 * max(nkz, 1e-6))                         # thickness per fringe
+    n = int(np.ceil((window[1] - window[0]) / period * SAMPLES_PER_FRINGE)) + 1
+    if n > MAX_SCAN_POINTS:
+        raise InputError(f"The {name} {window[0]:g}-{window[1]:g} nm spans {n / SAMPLES_PER_FRINGE:.0f} fringes at "
+                         f"{wl.min():g} nm, more than the fit resolves ({MAX_SCAN_POINTS // SAMPLES_PER_FRINGE}); "
+                         "narrow the window or use longer wavelengths.")
+    return np.linspace(window[0], window[1], max(n, 21))
+
+
+def _linear_fit(model, R, scale, offset):
+    """Closed-form best scale s and offset o for s·model + o ≈ R along the last axis; returns (s, o, ssr)."""
+    if not scale and not offset:
+        return np.ones(model.shape[:-1]), np.zeros(model.shape[:-1]), np.sum((model - R) ** 2, axis=-1)
+    if scale and not offset:
+        s = np.sum(model * R, axis=-1) / np.maximum(np.sum(model * model, axis=-1), 1e-300)
+        return s, np.zeros_like(s), np.sum((s[..., None] * model - R) ** 2, axis=-1)
+    if offset and not scale:
+        o = np.mean(R - model, axis=-1)
+        return np.ones_like(o), o, np.sum((model + o[..., None] - R) ** 2, axis=-1)
+    n = model.shape[-1]
+    sx, sy = model.sum(-1), R.sum(-1)
+    sxx, sxy = (model * model).sum(-1), (model * R).sum(-1)
+    det = n * sxx - sx * sx
+    s = np.where(np.abs(det) > 1e-300, (n * sxy - sx * sy) / np.where(det == 0, 1, det), 1.0)
+    o = (sy - s * sx) / n
+    return s, o, np.sum((s[..., None] * model + o[..., None] - R) ** 2, axis=-1)
+
+
+def _local_minima(y):
+    left = np.r_[np.inf, y[:-1]]
+    right = np.r_[y[1:], np.inf]
+    idx = np.flatnonzero((y <= left) & (y <= right))
+    return idx[np.argsort(y[idx])]
+
+
+def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thickness_nm=(0, 3000),
+                  angle_deg: float = 0.0, *, second_layer: int | None = None, second_thickness_nm=(0, 3000),
+                  polarization: str = "unpolarized", free_scale: bool = False, free_offset: bool = False,
+                  wavelength_range_nm=None) -> FitResult:
+    """Fit the thickness of one (or two) layers of ``stack`` to a measured reflectance spectrum.
+
+    Parameters
+    ----------
+    wavelength_nm, reflectance : (n,) arrays; reflectance as a fraction (see :func:`read_spectrum`)
+    stack : Stack  the model; the unknown layers' thicknesses in it are ignored
+    layer : int  index of the unknown layer (0 = top)
+    thickness_nm : (lo, hi)  window searched for it, nm
+    angle_deg : float  angle of incidence, degrees
+    second_layer : int, optional  a second unknown layer, with its window ``second_thickness_nm``
+    polarization : {"s", "p", "unpolarized"}
+    free_scale, free_offset : fit R_measured ≈ scale·R_model + offset (an imperfect reference, stray light)
+    wavelength_range_nm : (lo, hi), optional  the part of the spectrum used
+
+    Returns
+    -------
+    FitResult
+    """
+    if not isinstance(stack, Stack):
+        raise InputError(f"fit_thickness needs a Stack; got {type(stack).__name__}.")
+    _check_layer_index(stack, layer)
+    angle = float(require_finite("angle_deg", angle_deg, minimum=0.0, maximum=89.9, unit="deg"))
+    wl, R = _prepare(wavelength_nm, reflectance, stack, wavelength_range_nm)
+    w1 = _window(thickness_nm, "thickness window")
+    two = second_layer is not None
+    if two:
+        _check_layer_index(stack, second_layer)
+        if second_layer == layer:
+            raise InputError("The second unknown layer must differ from the first.")
+        w2 = _window(second_thickness_nm, "second thickness window")
+    grid1 = _scan_grid(stack, layer, w1, wl, angle, "thickness window")
+    if not two:
+        model = sweep(stack, layer, grid1, [angle], wl, polarization)[:, 0, :]        # (T, W)
+        s, o, ssr = _linear_fit(model, R, free_scale, free_offset)
+        starts = [(grid1[i],) for i in _local_minima(ssr)[:STARTS_REFINED]]
+        scan_rms = np.sqrt(ssr / wl.size)
+    else:
+        grid2 = _scan_grid(stack, second_layer, w2, wl, angle, "second thickness window")
+        ssr2 = np.empty((grid1.size, grid2.size))
+        for j, t2 in enumerate(grid2):
+            st2 = stack.with_thickness(second_layer, t2)
+            model = sweep(st2, layer, grid1, [angle], wl, polarization)[:, 0, :]
+            ssr2[:, j] = _linear_fit(model, R, free_scale, free_offset)[2]
+        flat = ssr2.ravel()
+        # local minima of the 2-D surface: not above any of the 8 neighbours
+        pad = np.pad(ssr2, 1, constant_values=np.inf)
+        neigh = np.stack([pad[1 + di:1 + di + ssr2.shape[0], 1 + dj:1 + dj + ssr2.shape[1]]
+                          for di in (-1, 0, 1) for dj in (-1, 0, 1) if (di, dj) != (0, 0)])
+        is_min = np.all(ssr2 <= neigh, axis=0)
+        cand = np.flatnonzero(is_min.ravel())
+        cand = cand[np.argsort(flat[cand])][:STARTS_REFINED]
+        starts = [(grid1[c // grid2.size], grid2[c % grid2.size]) for c in cand]
+        scan_rms = np.sqrt(ssr2.min(axis=1) / wl.size)
+    n_lin = int(free_scale) + int(free_offset)
+
+    def unpack(p):
+        t1 = p[0]
+        t2 = p[1] if two else None
+        i = 2 if two else 1
+        sc = p[i] if free_scale else 1.0
+        of = p[i + int(free_scale)] if free_offset else 0.0
+        return t1, t2, sc, of
+
+    def model_at(p):
+        t1, t2, sc, of = unpack(p)
+        st = stack.with_thickness(layer, t1)
+        if two:
+            st = st.with_thickness(second_layer, t2)
+        return sc * st.reflectance(wl, angle, polarization) + of
+
+    lower = [w1[0]] + ([w2[0]] if two else []) + [-np.inf] * n_lin
+    upper = [w1[1]] + ([w2[1]] if two else []) + [np.inf] * n_lin
+    refined = []
+    for start in starts:
+        base = model_at(list(start) + [1.0] * int(free_scale) + [0.0] * int(free_offset))
+        model0 = base if not (free_scale or free_offset) else base
+        s0, o0, _ = _linear_fit(model0[None, :], R, free_scale, free_offset)
+        p0 = list(start) + ([float(s0[0])] if free_scale else []) + ([float(o0[0])] if free_offset else [])
+        p0 = [min(max(v, lo_), hi_) for v, lo_, hi_ in zip(p0, lower, upper)]
+        try:
+            sol = least_squares(lambda p: model_at(p) - R, p0, bounds=(lower, upper), x_scale="jac",
+                                method="trf", xtol=1e-10, ftol=1e-12, max_nfev=200)
+        except ValueError as exc:  # pragma: no cover - defensive: bounds and starts are checked above
+            raise InputError(f"The fit could not start: {exc}") from None
+        refined.append(sol)
+    refined.sort(key=lambda s: s.cost)
+    best = refined[0]
+    p = best.x
+    n, k = wl.size, p.size
+    resid = best.fun
+    ssr = float(np.sum(resid ** 2))
+    dof = max(n - k, 1)
+    J = best.jac
+    try:
+        cov = np.linalg.pinv(J.T @ J) * (ssr / dof)
+        sig = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    except np.linalg.LinAlgError:  # pragma: no cover
+        sig = np.full(k, np.nan)
+    t1, t2, sc, of = unpack(p)
+    rms = float(np.sqrt(ssr / n))
+    minima = []
+    for sol in refined:
+        x = sol.x
+        if all(abs(x[0] - m[0]) > max(1e-3, 3 * sig[0]) for m in minima):
+            minima.append((float(x[0]), float(np.sqrt(2 * sol.cost / n))))
+    warning = ""
+    rivals = [m for m in minima[1:] if m[1] <= COMPETING_RMS_RATIO * max(rms, 1e-12)]
+    if rivals:
+        warning = (f"Another minimum at {rivals[0][0]:.1f} nm fits almost as well (rms {rivals[0][1]:.2e} vs "
+                   f"{rms:.2e}): the order is not settled by this spectrum. Extend the wavelength range, add a "
+                   "second angle, or narrow the window with other knowledge.")
+    if t1 - w1[0] < sig[0] or w1[1] - t1 < sig[0]:
+        warning = (warning + " " if warning else "") + ("The fitted thickness is at the edge of its window; the "
+                                                         "true value may lie outside it. Widen the window.")
+    model = model_at(p)
+    return FitResult(float(t1), float(sig[0]), rms, float(sc), float(of), wl, R, model, R - model, grid1, scan_rms,
+                     minima, warning, n, k, float(t2) if two else None, float(sig[1]) if two else None)
