@@ -176,3 +176,18 @@ def test_photo_to_thickness_map_in_the_page(page, tmp_path):
     page.get_by_text("of the region matched").first.wait_for(timeout=60_000)
     page.get_by_text("uniformity (max − min)/(2 mean)").first.wait_for(timeout=10_000)
     assert page.console_errors == []
+
+
+def test_gratings_tab_answers_a_new_groove_density(page):
+    page.get_by_text("Gratings", exact=True).first.click()
+    page.get_by_text("833.3 nm").first.wait_for(timeout=30_000)        # groove spacing of the 1200 lines/mm preset
+    page.get_by_text("Never look at a laser or the sun").first.wait_for(timeout=10_000)
+    field = page.locator(".fg-grating-density input").first
+    field.fill("600")
+    field.press("Enter")
+    page.get_by_text("1666.7 nm").first.wait_for(timeout=30_000)
+    field.fill("abc")
+    field.press("Enter")
+    page.get_by_role("alert").filter(has_text="Groove density").first.wait_for(timeout=15_000)
+    assert page.get_by_text("1666.7 nm").first.is_visible()
+    assert page.console_errors == []

@@ -348,7 +348,7 @@ def test_angular_dispersion_matches_central_difference(wl, lpmm, m, alpha):
     s = _sin_beta(wl, lpmm, m, alpha)
     assume(abs(s) < 0.95)
     d = 1e6 / lpmm
-    h = 1e-5 * d / abs(m)                               # moves sin β by 1e-5
+    h = 1e-6 * d / abs(m)                               # moves sin β by 1e-6 (truncation ~1e-12)
     num = (G.diffraction_angle_deg(wl + h, lpmm, m, alpha) - G.diffraction_angle_deg(wl - h, lpmm, m, alpha)) / (2 * h)
     assert G.angular_dispersion_deg_per_nm(wl, lpmm, m, alpha) == pytest.approx(num, rel=1e-6)
 

@@ -636,12 +636,15 @@ class FilmExplorer:
         return io.BytesIO(png)
 
     # ------------------------------------------------------------------ layout
-    def panel(self, extra_tabs=()):
-        """The page: sidebar and, as tabs, the explorer's views and any ``extra_tabs`` (title, layout)."""
+    def panel(self, extra_tabs=(), without_stack=()):
+        """The page: sidebar and, as tabs, the explorer's views and any ``extra_tabs`` (title, layout).
+
+        Tabs named in ``without_stack`` do not use the stack: the stack sidebar is hidden there.
+        """
         s = self.state
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
         sidebar = pn.Column(
-            pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge · film explorer</h2>"),
+            pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge</h2>"),
             pn.Card(pn.pane.Markdown(CAUTIONS, styles={"font-size": "12px"}), title="Cautions", collapsed=True,
                     width=310, margin=(2, 5)),
             section("Stack"),
@@ -675,6 +678,8 @@ class FilmExplorer:
         )
         if extra_tabs:
             main = pn.Tabs(("Film explorer", main), *extra_tabs, sizing_mode="stretch_both", dynamic=False)
+            titles = ["Film explorer", *(t for t, _ in extra_tabs)]
+            main.param.watch(lambda e: setattr(sidebar, "visible", titles[e.new] not in without_stack), "active")
         return pn.Row(sidebar, main, sizing_mode="stretch_both", stylesheets=[CSS])
 
 

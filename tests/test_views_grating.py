@@ -1,0 +1,243 @@
+"""The grating section driven from its objects, without a browser: every number against a direct physics call."""
+
+import csv
+import io
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from physics import grating as gr
+from physics.gratingfile import list_grating_presets, load_grating_preset
+from views.grating import (FAN_RAYS, MAP_DENSITIES, VIEW_DEG, GratingSection, SOURCE_BAND_NM, compute_colour_map,
+                           line_colours)
+
+STEMS = [stem for stem, _ in list_grating_presets()]
+
+
+@pytest.fixture(scope="module")
+def disc():
+    return GratingSection("optical_disc_track")
+
+
+@pytest.fixture()
+def section():
+    return GratingSection()
+
+
+# ---------------------------------------------------------------------- presets and read-outs
+@pytest.mark.parametrize("stem", STEMS)
+def test_preset_readouts_equal_physics(stem):
+    g = GratingSection(stem)
+    gf = load_grating_preset(stem)
+    s, r = g.settings, g.readouts
+    assert (s.lines_per_mm, s.incidence_deg, s.band) == (gf.lines_per_mm, gf.incidence_deg, gf.band_nm)
+    lo, hi = gf.band_nm
+    c = 0.5 * (lo + hi)
+    g_, a, m = gf.lines_per_mm, gf.incidence_deg, 1
+    assert r["spacing_nm"] == pytest.approx(gr.groove_spacing_nm(g_))
+    np.testing.assert_equal(r["beta_lo_deg"], gr.diffraction_angle_deg(lo, g_, m, a))
+    np.testing.assert_equal(r["beta_hi_deg"], gr.diffraction_angle_deg(hi, g_, m, a))
+    assert r["angular_dispersion_deg_per_nm"] == gr.angular_dispersion_deg_per_nm(c, g_, m, a)
+    assert r["reciprocal_linear_dispersion_nm_per_mm"] == gr.reciprocal_linear_dispersion_nm_per_mm(
+        c, g_, gf.focal_length_mm, m, a)
+    assert r["resolving_power"] == gr.resolving_power(g_, gf.illuminated_width_mm, m)
+    assert r["resolvable_nm"] == gr.resolvable_difference_nm(c, g_, gf.illuminated_width_mm, m)
+    assert r["free_spectral_range_nm"] == gr.free_spectral_range_nm(lo, m)
+    np.testing.assert_equal(r["littrow_deg"], gr.littrow_angle_deg(c, g_, m))
+    if gf.groove == "blazed":
+        assert r["blaze_nm"] == gr.blaze_wavelength_nm(gf.blaze_angle_deg, g_, m)
+    for k, v in r["rayleigh_nm"].items():
+        assert v == gr.rayleigh_wavelength_nm(g_, k, a)
+    html = g.readout_html.object
+    assert f"{r['spacing_nm']:.1f} nm" in html and f"{r['resolving_power']:,.0f}" in html
+    assert "Invented scenario" in g.scenario.object
+
+
+def test_section_builds_with_no_argument_and_shows_the_caution(section):
+    assert section.settings.lines_per_mm == 1200
+    text = section.caution.object
+    assert "Never look at a laser or the sun along a diffracted order" in text
+    assert "laser-safety rules and local codes" in text and "approximate" in text
+    assert section.panel() is not None
+
+
+def test_overlap_table_and_filter_equal_physics(section):
+    s = section.settings
+    rows = gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, SOURCE_BAND_NM)
+    assert section.overlaps["rows"] == rows and rows
+    assert section.overlaps["filter"] == gr.order_sorting_filter_nm(s.band, s.order, SOURCE_BAND_NM)
+    for r in rows:
+        assert f"{r['lo_nm']:.0f}–{r['hi_nm']:.0f}" in section.overlap_html.object
+
+
+def test_plan_table_equals_physics(section):
+    s = section.settings
+    plan = gr.plan_spectrometer(s.band, s.focal_length_mm, s.detector_length_mm, s.pixel_pitch_um)
+    assert section.plan == plan and plan
+    assert "current density" in section.plan_html.object            # 1200 lines/mm is among the designs
+    for d in plan:
+        assert f"{d.nm_per_pixel:.3f}" in section.plan_html.object
+
+
+def test_new_density_changes_readouts_and_moves_the_map_marker(section):
+    job = section._map_job
+    section.density.input.value = "600"
+    assert section.settings.lines_per_mm == 600 and not section.density.message.visible
+    assert "1666.7 nm" in section.readout_html.object
+    assert section.map_density.location == 600
+    assert section._map_job == job                                    # the map does not depend on the density
+    section.incidence.input.value = "20"
+    assert section._map_job == job + 1 and section._map_shown_key == section.settings.map_key()
+
+
+# ---------------------------------------------------------------------- fan of orders
+@pytest.mark.parametrize("stem", STEMS)
+def test_fan_has_one_entry_per_propagating_order(stem):
+    g = GratingSection(stem)
+    s = g.settings
+    wl = np.linspace(*s.band, 201)
+    expected = sorted({m for w in wl for m in gr.propagating_orders(w, s.lines_per_mm, s.incidence_deg)})
+    assert g.fan_label_src.data["order"] == expected
+    orders = np.array([int(o) for o in g.ray_src.data["order"]])
+    for m in expected:
+        if m == 0:
+            continue
+        rays = orders == m
+        beta = gr.diffraction_angle_deg(np.linspace(*s.band, FAN_RAYS), s.lines_per_mm, m, s.incidence_deg)
+        assert rays.sum() == np.isfinite(beta).sum() > 0
+        np.testing.assert_allclose(np.asarray(g.ray_src.data["beta"])[rays], beta[np.isfinite(beta)])
+
+
+def test_fan_sides_follow_the_grating_kind(section):
+    y = np.asarray(section.ray_src.data["y1"])
+    assert (y > 0).all()                                               # reflection: back on the incident side
+    section.kind.value = "transmission"
+    y = np.asarray(section.ray_src.data["y1"])
+    assert (y < 0).all()                                               # transmission: through to the far side
+    assert section.zero_src.data["y1"][0] < 0
+
+
+def test_ray_colours_are_those_of_monochromatic_lines():
+    blue, green, red, uv = line_colours([450.0, 540.0, 650.0, 300.0])
+    rgb = lambda h: [int(h[i:i + 2], 16) for i in (1, 3, 5)]  # noqa: E731
+    assert np.argmax(rgb(blue)) == 2 and np.argmax(rgb(green)) == 1 and np.argmax(rgb(red)) == 0
+    assert uv == "#9e9e9e"
+
+
+# ---------------------------------------------------------------------- typed values
+@pytest.mark.parametrize("attr, text, words", [
+    ("density", "abc", "not a number"), ("density", "-5", "outside"), ("density", "0", "outside"),
+    ("incidence", "95", "outside"), ("order", "0", "zero order"), ("order", "1.5", "whole number"),
+    ("order", "abc", "not a number"), ("band_lo", "800", "band"), ("band_hi", "300", "band"),
+    ("duty", "1.5", "outside"), ("blaze", "-1", "outside"), ("focal", "0", "outside"),
+    ("pitch", "", "not a number"),
+])
+def test_bad_value_shows_message_beside_the_field_and_keeps_the_state(attr, text, words):
+    g = GratingSection("optical_disc_track")
+    before, generation = g.settings, g.generation
+    field = getattr(g, attr)
+    field.input.value = text
+    assert g.settings == before and g.generation == generation
+    assert field.message.visible and words in field.message.object.lower()
+    assert "role=\"alert\"" in field.message.object
+
+
+def test_good_value_after_a_bad_one_clears_the_message():
+    g = GratingSection()
+    g.order.input.value = "0"
+    assert g.order.message.visible and g.settings.order == 1
+    g.order.input.value = "2"
+    assert not g.order.message.visible and g.settings.order == 2
+    assert g.readouts["resolving_power"] == gr.resolving_power(1200, 10, 2)
+    g.order.input.value = "−1"                                          # a typographic minus is accepted
+    assert g.settings.order == -1
+
+
+def test_order_that_does_not_propagate_is_explained_not_refused():
+    g = GratingSection()
+    g.order.input.value = "5"
+    assert g.settings.order == 5 and not g.order.message.visible
+    assert "evanescent" in g.readout_html.object
+    assert "does not propagate" in g.overlap_html.object
+
+
+def test_preset_choice_resets_fields_and_messages(section):
+    section.density.input.value = "abc"
+    section.preset.value = "colour_check_600_transmission"
+    assert not section.density.message.visible and section.density.input.value == "600"
+    assert section.settings.kind == "transmission" and section.kind.value == "transmission"
+    assert section.duty.input.visible and not section.blaze.input.visible
+
+
+# ---------------------------------------------------------------------- line shape
+@pytest.mark.parametrize("n", [8, 40])
+def test_line_shape_has_n_minus_2_secondary_maxima_and_missing_orders(disc, n):
+    disc.n_slits.value = n
+    ls = disc.line_shape
+    s = disc.settings
+    c = s.centre_nm
+    np.testing.assert_allclose(ls["rel"], gr.n_slit_intensity(ls["beta"], c, s.lines_per_mm, n,
+                                                               slit_width_nm=s.duty_cycle * ls["spacing_nm"],
+                                                               incidence_deg=s.incidence_deg) / n ** 2)
+    b0, b1 = (gr.diffraction_angle_deg(c, s.lines_per_mm, m, s.incidence_deg) for m in (0, 1))
+    inside = (ls["beta"] > b0 + 0.2) & (ls["beta"] < b1 - 0.2)        # leave out the principal maxima
+    y = ls["rel"][inside]
+    peaks = np.sum((y[1:-1] > y[:-2]) & (y[1:-1] > y[2:]))
+    assert peaks == n - 2
+    missing = [o["order"] for o in ls["orders"] if o["missing"]]
+    assert missing and all(m % 2 == 0 for m in missing)              # duty cycle 0.5: even orders vanish
+    assert any("missing" in t for t in disc.missing_src.data["label"])
+
+
+def test_log_scale_plots_decibels(disc):
+    disc.scale.value = "log"
+    assert np.allclose(disc.shape_src.data["y"], disc.line_shape["db"], atol=1e-4)
+    assert disc.shape_fig.y_range.start < -20
+    disc.scale.value = "linear"
+    assert np.allclose(disc.shape_src.data["y"], disc.line_shape["rel"], atol=1e-6)
+
+
+# ---------------------------------------------------------------------- colours
+def test_strip_and_map_equal_physics(section):
+    s = section.settings
+    col = gr.grating_color(VIEW_DEG, s.lines_per_mm, s.incidence_deg, s.illuminant, normalize=s.brightness,
+                           **s.groove_kw())
+    np.testing.assert_array_equal(section.strip["rgb"], col["rgb"])
+    cm = gr.grating_color_map(VIEW_DEG, MAP_DENSITIES, s.incidence_deg, s.illuminant, normalize=s.brightness,
+                              **s.groove_kw())
+    np.testing.assert_array_equal(section.colour_map["rgb"], cm["rgb"])
+    assert section.map_src.data["image"][0].shape == (MAP_DENSITIES.size, VIEW_DEG.size)
+    section.brightness.value = "per_direction"
+    np.testing.assert_array_equal(section.colour_map["rgb"], compute_colour_map(section.settings)["rgb"])
+
+
+# ---------------------------------------------------------------------- downloads
+def test_csv_download_parses_with_units_in_the_header(section):
+    text = section._fan_csv().read()
+    rows = [r for r in csv.reader(io.StringIO(text)) if r and not r[0].startswith("#")]
+    head, body = rows[0], rows[1:]
+    assert head[:3] == ["order", "wavelength_nm", "beta_deg"]
+    assert "angular_dispersion_deg_per_nm" in head and "reciprocal_linear_dispersion_nm_per_mm" in head
+    s = section.settings
+    assert len(body) == len(section.fan["drawn"]) * FAN_RAYS
+    for r in body:
+        m, wl = int(r[0]), float(r[1])
+        beta = gr.diffraction_angle_deg(wl, s.lines_per_mm, m, s.incidence_deg)
+        if r[2]:
+            assert float(r[2]) == pytest.approx(beta, abs=1e-6) and r[3] == "propagating"
+        else:
+            assert np.isnan(beta) and r[3] == "evanescent"
+
+
+@pytest.mark.parametrize("which", ["_map_png", "_strip_png"])
+def test_png_downloads_open(section, which):
+    img = Image.open(getattr(section, which)())
+    assert img.format == "PNG" and img.size[0] >= 800
+
+
+def test_grooves_too_fine_for_the_band_leave_only_the_zero_order(section):
+    section.density.input.value = "10000"
+    assert section.fan_label_src.data["order"] == [0]
+    assert "Only the zero order propagates" in section.fan_caption.object
+    assert "evanescent" in section.readout_html.object

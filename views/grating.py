@@ -1,0 +1,1103 @@
+"""The grating section of the page: orders and angles, dispersion and resolution, line shape,
+colours seen at each viewing angle, and spectrometer planning.
+
+Every number shown comes from :mod:`physics.grating`; this module only chooses what to
+evaluate and draws it. Convention (shown on the page): m·λ = d·(sin α + sin β), angles from
+the grating normal, positive on the side of the incident beam. Typed values are checked
+against :data:`physics.gratingfile.LIMITS`; a rejected value shows its message beside the
+field and the section keeps its last good settings. Everything but the colour map is computed
+at once (a few milliseconds); the colour map, which depends only on the incidence, the
+grooves and the lamp (not on the groove density), runs in the shared thread pool when served.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import csv
+import functools
+import io
+import logging
+import time
+from dataclasses import dataclass, replace
+from datetime import date
+from functools import partial
+
+import numpy as np
+import panel as pn
+from bokeh.models import Arrow, ColumnDataSource, DataRange1d, HoverTool, Range1d, Span, VeeHead
+from bokeh.plotting import figure
+
+from physics import InputError
+from physics import grating as gr
+from physics.color import spectrum_to_xyz, srgb_to_hex, srgb_to_xyz, xyz_to_srgb
+from physics.gratingfile import LIMITS, GratingFile, list_grating_presets, load_grating_preset
+
+from . import render
+from .explorer import EXECUTOR, Field, _esc, _fmt, _label, _rgba
+from .inverse import _locked
+from .state import parse_number
+
+log = logging.getLogger("fringegauge")
+
+DEFAULT_PRESET = "compact_spectrometer_1200_blazed"
+CAUTION = ("**Caution.** Never look at a laser or the sun along a diffracted order; diffracted laser beams "
+           "remain hazardous. Follow your site's laser-safety rules and local codes. Grating colours shown "
+           "here are approximate (scalar groove efficiency, one lamp, display colours).")
+CONVENTION = ("m·λ = d·(sin α + sin β): α incidence, β diffraction, both from the grating normal and "
+              "positive on the side the light comes from; d = 1/(groove density). β = −α is the zero order.")
+#: Lamps offered for the grating colours.
+ILLUMINANT_CHOICES = ("D65", "D50", "A", "F2", "F11")
+#: Wavelengths the source is taken to emit when other orders are checked for overlap (nm): a
+#: broadband lamp seen by a silicon detector.
+SOURCE_BAND_NM = (200.0, 1100.0)
+#: Viewing angles of the colour strip and map (degrees).
+VIEW_DEG = np.linspace(-80.0, 80.0, 321)
+#: Groove densities of the colour map (lines/mm).
+MAP_DENSITIES = np.arange(100.0, 2400.1, 20.0)
+#: Rays drawn per order in the fan (evenly spaced wavelengths across the band).
+FAN_RAYS = 31
+#: Highest |order| drawn in the fan (coarse gratings send hundreds of orders).
+MAX_FAN_ORDER = 12
+#: Brightness of the grating colours: relative brightness kept (the brightest direction of the strip, or of
+#: the map, at full display brightness), or every direction at full brightness (hues of faint orders).
+BRIGHTNESS_CHOICES = {"relative brightness": "common", "each direction at full brightness": "per_direction"}
+#: The strip download shows the groove density ± this fraction, in this many rows.
+STRIP_PNG_SPAN = 0.05
+STRIP_PNG_ROWS = 21
+#: Grooves lit in the line-shape view (a small N makes the secondary maxima visible).
+N_CHOICES = (8, 40)
+#: Points along the line-shape curve (more, up to the second number, when many fringes are in view).
+LINE_SHAPE_POINTS = 3001
+LINE_SHAPE_MAX_POINTS = 20001
+#: Lowest level of the line shape on the logarithmic scale (dB).
+LOG_FLOOR_DB = -60.0
+#: Orders either side of the order of interest in the line-shape view.
+LINE_SHAPE_ORDERS = 3
+#: Grey for wavelengths outside 380-780 nm (no display colour).
+INVISIBLE = "#9e9e9e"
+#: Groove efficiency below this marks a missing order.
+MISSING_EFFICIENCY = 1e-9
+#: Orders whose wavelengths the strip's hover lists.
+HOVER_ORDERS = (-3, -2, -1, 1, 2, 3)
+#: Size of the fan diagram (px); its axes keep one unit per pixel both ways, so angles look true.
+FAN_WIDTH_PX = 420
+FAN_HEIGHT_PX = {"reflection": 300, "transmission": 430}
+
+
+# ---------------------------------------------------------------------- settings
+@dataclass(frozen=True)
+class GratingSettings:
+    """Everything the section shows depends on; only valid values are ever stored."""
+
+    name: str = ""
+    scenario: str = ""
+    lines_per_mm: float = 1200.0
+    kind: str = "reflection"
+    groove: str = "blazed"
+    blaze_angle_deg: float = 17.5
+    duty_cycle: float = 0.5
+    incidence_deg: float = 35.0
+    band_lo_nm: float = 400.0
+    band_hi_nm: float = 700.0
+    focal_length_mm: float = 75.0
+    illuminated_width_mm: float = 10.0
+    detector_length_mm: float = 28.7
+    pixel_pitch_um: float = 14.0
+    order: int = 1
+    illuminant: str = "D65"
+    brightness: str = "common"
+
+    @classmethod
+    def from_file(cls, gf: GratingFile, previous: "GratingSettings | None" = None) -> "GratingSettings":
+        """Settings of a grating file; order, lamp and an unused blaze angle carry over from ``previous``."""
+        prev = previous or cls()
+        return cls(name=gf.name, scenario=gf.scenario, lines_per_mm=gf.lines_per_mm, kind=gf.kind,
+                   groove=gf.groove,
+                   blaze_angle_deg=gf.blaze_angle_deg if gf.blaze_angle_deg is not None else prev.blaze_angle_deg,
+                   duty_cycle=gf.duty_cycle, incidence_deg=gf.incidence_deg, band_lo_nm=gf.band_nm[0],
+                   band_hi_nm=gf.band_nm[1], focal_length_mm=gf.focal_length_mm,
+                   illuminated_width_mm=gf.illuminated_width_mm, detector_length_mm=gf.detector_length_mm,
+                   pixel_pitch_um=gf.pixel_pitch_um, order=prev.order, illuminant=prev.illuminant,
+                   brightness=prev.brightness)
+
+    @property
+    def band(self) -> tuple[float, float]:
+        return (self.band_lo_nm, self.band_hi_nm)
+
+    @property
+    def centre_nm(self) -> float:
+        return 0.5 * (self.band_lo_nm + self.band_hi_nm)
+
+    @property
+    def blaze(self) -> float | None:
+        """The blaze angle when the grooves are blazed, else None."""
+        return self.blaze_angle_deg if self.groove == "blazed" else None
+
+    def groove_kw(self) -> dict:
+        """Groove arguments of the physics colour and efficiency functions."""
+        return dict(kind=self.groove, duty_cycle=self.duty_cycle, blaze_angle_deg=self.blaze)
+
+    def describe(self) -> str:
+        grooves = (f"blazed {self.blaze_angle_deg:g}°" if self.groove == "blazed"
+                   else f"lamellar, duty cycle {self.duty_cycle:g}")
+        return (f"{self.lines_per_mm:g} lines/mm {self.kind} grating ({grooves}), incidence α = "
+                f"{self.incidence_deg:g}°, band {self.band_lo_nm:g}–{self.band_hi_nm:g} nm")
+
+    def map_key(self) -> tuple:
+        """What the colour map depends on (the groove density only moves its marker)."""
+        return (self.incidence_deg, self.groove, self.duty_cycle if self.groove == "lamellar" else None,
+                self.blaze, self.illuminant, self.brightness)
+
+
+# ---------------------------------------------------------------------- computations (physics calls)
+@functools.lru_cache(maxsize=64)
+def _line_hex_cached(wavelengths: tuple) -> tuple:
+    grid = np.arange(360.0, 831.0, 1.0)
+    wl = np.asarray(wavelengths, dtype=float)
+    lines = np.clip(1.0 - np.abs(grid[None, :] - wl[:, None]), 0.0, None)     # 1 nm wide lines
+    xyz = spectrum_to_xyz(lines, grid, "D65")
+    primaries = srgb_to_xyz(np.eye(3), "D65")                                # XYZ of the sRGB primaries
+    linear = xyz @ np.linalg.inv(primaries)
+    peak = linear.max(axis=-1)
+    xyz = xyz / np.where(peak > 0, peak, 1.0)[:, None]                        # brightest channel = 1
+    rgb = xyz_to_srgb(xyz, "D65")
+    visible = (wl >= 380.0) & (wl <= 780.0)
+    return tuple(srgb_to_hex(c) if v else INVISIBLE for c, v in zip(rgb, visible))
+
+
+def line_colours(wavelength_nm) -> list[str]:
+    """Display colour ('#rrggbb') of a monochromatic line at each wavelength, at full brightness;
+    grey outside 380-780 nm."""
+    return list(_line_hex_cached(tuple(float(w) for w in np.atleast_1d(wavelength_nm))))
+
+
+def fan_orders(s: GratingSettings) -> list[int]:
+    """Orders (zero included) that propagate for at least part of the band.
+
+    The short end of the band has the most propagating orders, so its list covers the band.
+    """
+    return gr.propagating_orders(s.band_lo_nm, s.lines_per_mm, s.incidence_deg)
+
+
+def compute_fan(s: GratingSettings) -> dict:
+    """Rays of every propagating order across the band, and one summary row per order."""
+    lo, hi = s.band
+    wl = np.linspace(lo, hi, FAN_RAYS)
+    colours = line_colours(wl)
+    orders = fan_orders(s)
+    drawn = [m for m in orders if abs(m) <= MAX_FAN_ORDER]
+    rays = dict(order=[], wl=[], beta=[], color=[])
+    rows = []
+    for m in drawn:
+        if m == 0:
+            rows.append(dict(order=0, beta_lo=-s.incidence_deg, beta_hi=-s.incidence_deg, wl_lo=lo, wl_hi=hi))
+            continue
+        beta = np.atleast_1d(gr.diffraction_angle_deg(wl, s.lines_per_mm, m, s.incidence_deg))
+        ok = np.isfinite(beta)
+        reach = gr.order_band_nm(s.lines_per_mm, m, s.incidence_deg)
+        w_lo, w_hi = (max(lo, reach[0]), min(hi, reach[1])) if reach else (np.nan, np.nan)
+        b = np.atleast_1d(gr.diffraction_angle_deg(np.array([w_lo, w_hi]), s.lines_per_mm, m, s.incidence_deg))
+        rows.append(dict(order=m, beta_lo=float(b[0]), beta_hi=float(b[1]), wl_lo=w_lo, wl_hi=w_hi))
+        for w, bb, c in zip(wl[ok], beta[ok], np.asarray(colours)[ok]):
+            rays["order"].append(m)
+            rays["wl"].append(float(w))
+            rays["beta"].append(float(bb))
+            rays["color"].append(str(c))
+    return dict(orders=orders, drawn=drawn, rows=rows, rays=rays, wavelengths=wl)
+
+
+def compute_readouts(s: GratingSettings) -> dict:
+    """The read-outs for the order of interest at the band ends and centre."""
+    lo, hi = s.band
+    c = s.centre_nm
+    g, m, a = s.lines_per_mm, s.order, s.incidence_deg
+    out = dict(
+        spacing_nm=float(gr.groove_spacing_nm(g)),
+        beta_lo_deg=gr.diffraction_angle_deg(lo, g, m, a),
+        beta_hi_deg=gr.diffraction_angle_deg(hi, g, m, a),
+        beta_centre_deg=gr.diffraction_angle_deg(c, g, m, a),
+        status_lo=gr.order_status(lo, g, m, a),
+        status_hi=gr.order_status(hi, g, m, a),
+        status_centre=gr.order_status(c, g, m, a),
+        angular_dispersion_deg_per_nm=gr.angular_dispersion_deg_per_nm(c, g, m, a),
+        reciprocal_linear_dispersion_nm_per_mm=gr.reciprocal_linear_dispersion_nm_per_mm(
+            c, g, s.focal_length_mm, m, a),
+        resolving_power=gr.resolving_power(g, s.illuminated_width_mm, m),
+        grooves_lit=gr.resolving_power(g, s.illuminated_width_mm, 1),
+        resolvable_nm=gr.resolvable_difference_nm(c, g, s.illuminated_width_mm, m),
+        free_spectral_range_nm=gr.free_spectral_range_nm(lo, m),
+        littrow_deg=gr.littrow_angle_deg(c, g, m),
+        efficiency=float(np.asarray(gr.groove_efficiency(c, g, m, **s.groove_kw()))),
+        blaze_nm=None, blaze_at_deviation_nm=None, deviation_deg=None,
+        rayleigh_nm={},
+    )
+    if s.groove == "blazed":
+        out["blaze_nm"] = gr.blaze_wavelength_nm(s.blaze_angle_deg, g, m) if m > 0 else None
+        bc = out["beta_centre_deg"]
+        if s.kind == "reflection" and m > 0 and np.isfinite(bc):
+            out["deviation_deg"] = abs(a - bc)
+            out["blaze_at_deviation_nm"] = gr.blaze_wavelength_at_deviation_nm(s.blaze_angle_deg, g, m,
+                                                                               out["deviation_deg"])
+    for k in fan_orders(s):
+        if k != 0 and abs(k) <= MAX_FAN_ORDER:
+            out["rayleigh_nm"][k] = gr.rayleigh_wavelength_nm(g, k, a)
+    return out
+
+
+def compute_overlaps(s: GratingSettings) -> dict:
+    """Other orders on the band's angles and the order-sorting filter; ``error`` when the order
+    of interest does not propagate in the band."""
+    try:
+        rows = gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, SOURCE_BAND_NM)
+    except InputError as exc:
+        return dict(rows=[], filter=None, error=str(exc))
+    return dict(rows=rows, filter=gr.order_sorting_filter_nm(s.band, s.order, SOURCE_BAND_NM), error=None)
+
+
+def compute_line_shape(s: GratingSettings, n_slits: int) -> dict:
+    """N-slit intensity (relative to N², so a principal maximum of a full envelope is 1) around
+    the order of interest at the band centre, with the orders in view and their groove efficiency.
+
+    Lamellar grooves: slits as wide as the duty cycle times the period (missing orders where the
+    envelope is zero). Blazed grooves: the interference of N grooves alone (narrow slits) and,
+    per order, the scalar blaze efficiency.
+    """
+    c, g, a, m = s.centre_nm, s.lines_per_mm, s.incidence_deg, s.order
+    d = float(gr.groove_spacing_nm(g))
+    b_m = gr.diffraction_angle_deg(c, g, m, a)
+    around = np.isfinite(b_m)
+    if around:
+        ends = []
+        for k, edge in ((m - LINE_SHAPE_ORDERS, -1.0), (m + LINE_SHAPE_ORDERS, 1.0)):
+            b = gr.diffraction_angle_deg(c, g, k, a)
+            ends.append(np.sin(np.radians(b)) if np.isfinite(b) else edge)
+        s_lo, s_hi = ends
+    else:
+        s_lo, s_hi = -1.0, 1.0
+    fringes = n_slits * (s_hi - s_lo) * d / c                     # secondary maxima in view, about
+    points = int(np.clip(12 * fringes, LINE_SHAPE_POINTS, LINE_SHAPE_MAX_POINTS))
+    beta = np.degrees(np.arcsin(np.linspace(s_lo, s_hi, points)))
+    width = s.duty_cycle * d if s.groove == "lamellar" else d * 1e-6
+    rel = gr.n_slit_intensity(beta, c, g, int(n_slits), slit_width_nm=width, incidence_deg=a) / n_slits ** 2
+    orders = []
+    for k in range(m - LINE_SHAPE_ORDERS, m + LINE_SHAPE_ORDERS + 1):
+        bk = gr.diffraction_angle_deg(c, g, k, a)
+        if not np.isfinite(bk) or not beta[0] <= bk <= beta[-1]:
+            continue
+        eff = float(np.asarray(gr.groove_efficiency(c, g, k, **s.groove_kw())))
+        missing = s.groove == "lamellar" and k != 0 and eff < MISSING_EFFICIENCY
+        orders.append(dict(order=k, beta=float(bk), efficiency=eff, missing=missing))
+    return dict(beta=beta, rel=rel, db=10 * np.log10(np.maximum(rel, 10 ** (LOG_FLOOR_DB / 10))),
+                orders=orders, around=bool(around), slit_width_nm=width, spacing_nm=d, n=int(n_slits))
+
+
+def compute_strip(s: GratingSettings) -> dict:
+    """Colours seen along the viewing angles at the current groove density, and the wavelength each
+    low order sends to each angle (for the hover)."""
+    col = gr.grating_color(VIEW_DEG, s.lines_per_mm, s.incidence_deg, s.illuminant, normalize=s.brightness,
+                           **s.groove_kw())
+    wl = np.arange(380.0, 780.5, 1.0)
+    seen = {}
+    for k in HOVER_ORDERS:
+        beta = np.atleast_1d(gr.diffraction_angle_deg(wl, s.lines_per_mm, k, s.incidence_deg))
+        ok = np.isfinite(beta)
+        lam = np.full(VIEW_DEG.shape, np.nan)
+        if ok.sum() >= 2:
+            b, w = beta[ok], wl[ok]
+            order = np.argsort(b)                              # β rises with λ for k > 0, falls for k < 0
+            b, w = b[order], w[order]
+            inside = (VIEW_DEG >= b[0]) & (VIEW_DEG <= b[-1])
+            lam[inside] = np.interp(VIEW_DEG[inside], b, w)
+        seen[k] = lam
+    text = []
+    for i in range(VIEW_DEG.size):
+        parts = [f"{k:+d}: {seen[k][i]:.0f} nm" for k in HOVER_ORDERS if np.isfinite(seen[k][i])]
+        text.append(", ".join(parts) or "no visible light from orders ±1 to ±3")
+    return dict(rgb=col["rgb"], lab=col["lab"], dark=col["dark"], orders_text=text)
+
+
+def compute_colour_map(s: GratingSettings) -> dict:
+    """Colours over (groove density, viewing angle) for the current incidence, grooves and lamp."""
+    return gr.grating_color_map(VIEW_DEG, MAP_DENSITIES, s.incidence_deg, s.illuminant, normalize=s.brightness,
+                                **s.groove_kw())
+
+
+def compute_plan(s: GratingSettings) -> list:
+    return gr.plan_spectrometer(s.band, s.focal_length_mm, s.detector_length_mm, s.pixel_pitch_um)
+
+
+# ---------------------------------------------------------------------- text helpers
+def _deg(x, digits=2) -> str:
+    if x is None or not np.isfinite(x):
+        return "—"
+    x = float(x) if round(float(x), digits) != 0 else 0.0                  # no "-0.00°"
+    return f"{x:.{digits}f}°"
+
+
+def _order_text(m: int) -> str:
+    return f"{m:+d}" if m else "0"
+
+
+def _num(x, fmt="{:.4g}") -> str:
+    return fmt.format(x) if x is not None and np.isfinite(x) else "—"
+
+
+def _table(head, rows, css="") -> str:
+    th = "".join(f"<th style='text-align:left;padding:2px 8px 2px 0'>{h}</th>" for h in head)
+    body = "".join("<tr>" + "".join(f"<td style='padding:1px 8px 1px 0;white-space:nowrap'>{c}</td>" for c in r) + "</tr>"
+                   for r in rows)
+    return f"<table class='{css}' style='font-size:13px;border-collapse:collapse'><tr>{th}</tr>{body}</table>"
+
+
+def _markdown_bold(text: str) -> str:
+    """``**x**`` → ``<b>x</b>`` after escaping."""
+    parts = _esc(text).split("**")
+    return "".join(f"<b>{p}</b>" if i % 2 else p for i, p in enumerate(parts))
+
+
+def _footer() -> str:
+    return (f"fringegauge {date.today().isoformat()} · computed colours (scalar groove efficiency), approximate · "
+            "never look at a laser or the sun along a diffracted order")
+
+
+# ---------------------------------------------------------------------- the section
+class GratingSection:
+    """The "Gratings" tab for one session: build with no argument (the default preset) or a preset stem."""
+
+    def __init__(self, preset: str | None = None):
+        self._syncing = False
+        self._map_job = 0
+        self._map_shown_key = None
+        self._map_pending_key = None
+        self.colour_map = None
+        self.strip = None
+        self.fan = None
+        self.readouts = None
+        self.overlaps = None
+        self.line_shape = None
+        self.plan = None
+        self.generation = 0
+        self.timings_ms = {}
+        stem = preset or DEFAULT_PRESET
+        self.settings = GratingSettings.from_file(load_grating_preset(stem))
+        self._build_widgets(stem)
+        self._style_messages()
+        self._build_plots()
+        self._sync_fields()
+        self._wire()
+        self.refresh()
+
+    # ------------------------------------------------------------------ widgets
+    def _build_widgets(self, stem):
+        presets = list_grating_presets()
+        self.preset = pn.widgets.Select(label="Preset grating", options={name: st for st, name in presets},
+                                        value=stem, width=300, margin=(2, 5))
+        self.scenario = pn.pane.HTML("", width=300, margin=(0, 5), styles={"font-size": "12px", "color": "#555"})
+        self.density = Field("Groove density (lines/mm)", width=145, css="fg-grating-density")
+        self.order = Field("Order of interest m", width=145, css="fg-grating-order")
+        self.kind = pn.widgets.RadioButtonGroup(options={"reflection": "reflection", "transmission": "transmission"},
+                                                value="reflection", margin=(2, 5))
+        self.groove = pn.widgets.RadioButtonGroup(options={"lamellar (rectangular)": "lamellar",
+                                                           "blazed (sawtooth)": "blazed"},
+                                                  value="blazed", margin=(2, 5))
+        self.blaze = Field("Blaze angle (°)", width=145, css="fg-grating-blaze")
+        self.duty = Field("Duty cycle (0.01-0.99)", width=145, css="fg-grating-duty")
+        self.incidence = Field("Incidence α (°)", width=145, css="fg-grating-incidence")
+        self.illuminant = pn.widgets.Select(label="Lamp (colours)", options=list(ILLUMINANT_CHOICES), value="D65",
+                                            width=145, margin=(2, 5))
+        self.band_lo = Field("Band from (nm)", width=145, css="fg-grating-band-lo")
+        self.band_hi = Field("to (nm)", width=145, css="fg-grating-band-hi")
+        self.focal = Field("Focal length (mm)", width=145)
+        self.width = Field("Illuminated width (mm)", width=145)
+        self.det_len = Field("Detector length (mm)", width=145)
+        self.pitch = Field("Pixel pitch (µm)", width=145)
+        self.brightness = pn.widgets.RadioButtonGroup(options=BRIGHTNESS_CHOICES, value="common", margin=(2, 5))
+        self.n_slits = pn.widgets.RadioButtonGroup(options={f"N = {n}": n for n in N_CHOICES}, value=N_CHOICES[0],
+                                                   margin=(2, 5))
+        self.scale = pn.widgets.RadioButtonGroup(options={"linear": "linear", "log (dB)": "log"}, value="linear",
+                                                 margin=(2, 5))
+        self.dl_csv = pn.widgets.FileDownload(callback=self._fan_csv, filename="grating_orders.csv",
+                                              label="Orders and angles (.csv)", width=300, margin=(2, 5),
+                                              css_classes=["fg-grating-dl-csv"])
+        self.dl_map = pn.widgets.FileDownload(callback=self._map_png, filename="grating_colour_map.png",
+                                              label="Colour map (.png)", width=300, margin=(2, 5),
+                                              css_classes=["fg-grating-dl-map"])
+        self.dl_strip = pn.widgets.FileDownload(callback=self._strip_png, filename="grating_colour_strip.png",
+                                                label="Colour strip (.png)", width=300, margin=(2, 5),
+                                                css_classes=["fg-grating-dl-strip"])
+        self.caution = pn.pane.HTML(
+            f"<div role='note' style='background:#fff4d6;border:1px solid #e0b84a;border-radius:4px;padding:5px 8px;"
+            f"font-size:12px;color:#5c4300'>{_markdown_bold(CAUTION)}</div>",
+            margin=(5, 5), sizing_mode="stretch_width", css_classes=["fg-grating-caution"])
+        self.caution_end = pn.pane.HTML(f"<div style='font-size:11px;color:#555'>{_markdown_bold(CAUTION)}</div>",
+                                        margin=(8, 5), sizing_mode="stretch_width")
+        self.colour_caption = pn.pane.HTML(
+            "<div style='font-size:12px;color:#444'>White light from the lamp at α, summed over all nonzero "
+            "orders reaching each direction (black: no or too little visible light). "
+            "Relative brightness: the brightest direction of the strip (and of the map) is shown at full display "
+            "brightness; choose 'each direction at full brightness' to see the hue of faint orders. Dashed "
+            "vertical line: the zero order (β = −α, specular or straight through), left out of the colours. On the map the dashed horizontal line is the current groove density. Hover for the "
+            "wavelengths each order sends to an angle.</div>", margin=(0, 5), sizing_mode="stretch_width")
+        self.readout_html = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-grating-readouts"],
+                                         sizing_mode="stretch_width")
+        self.fan_caption = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"},
+                                        sizing_mode="stretch_width")
+        self.overlap_html = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-grating-overlaps"],
+                                         sizing_mode="stretch_width")
+        self.plan_html = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-grating-plan"], sizing_mode="stretch_width")
+        self.line_caption = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"},
+                                         sizing_mode="stretch_width")
+        self.map_status = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#555"})
+
+    def _style_messages(self):
+        for field in [f for f, *_ in self._fields()] + [self.order]:
+            field.message.styles = {"color": "#b00020", "font-size": "12px"}
+            field.message.width = 300
+
+    def _fields(self):
+        """(field, settings key, label for messages, lowest, highest, unit) of every numeric field."""
+        L = LIMITS
+        return [
+            (self.density, "lines_per_mm", "Groove density", *L["lines_per_mm"]),
+            (self.blaze, "blaze_angle_deg", "Blaze angle", *L["blaze_angle_deg"][:2], "°"),
+            (self.duty, "duty_cycle", "Duty cycle", *L["duty_cycle"]),
+            (self.incidence, "incidence_deg", "Incidence angle", *L["incidence_deg"][:2], "°"),
+            (self.band_lo, "band_lo_nm", "Band from", *L["band_nm"]),
+            (self.band_hi, "band_hi_nm", "Band to", *L["band_nm"]),
+            (self.focal, "focal_length_mm", "Focal length", *L["focal_length_mm"]),
+            (self.width, "illuminated_width_mm", "Illuminated width", *L["illuminated_width_mm"]),
+            (self.det_len, "detector_length_mm", "Detector length", *L["detector_length_mm"]),
+            (self.pitch, "pixel_pitch_um", "Pixel pitch", *L["pixel_pitch_um"]),
+        ]
+
+    def _build_plots(self):
+        # a. fan of orders
+        self.ray_src = ColumnDataSource(dict(x0=[], y0=[], x1=[], y1=[], color=[], order=[], wl=[], beta=[]))
+        self.fan_label_src = ColumnDataSource(dict(x=[], y=[], text=[], order=[], span=[]))
+        self.beam_src = ColumnDataSource(dict(x0=[], y0=[], x1=[], y1=[]))
+        self.note_src = ColumnDataSource(dict(x=[], y=[], text=[], align=[]))
+        self.zero_src = ColumnDataSource(dict(x0=[], y0=[], x1=[], y1=[], beta=[]))
+        self.scale_src = ColumnDataSource(dict(x=[], y=[], text=[]))
+        self.scale_line_src = ColumnDataSource(dict(x0=[], y0=[], x1=[], y1=[]))
+        self.body_src = ColumnDataSource(dict(left=[], right=[], top=[], bottom=[]))
+        f = figure(width=FAN_WIDTH_PX, height=FAN_HEIGHT_PX["reflection"], x_range=DataRange1d(range_padding=0.02),
+                   y_range=DataRange1d(range_padding=0.02), match_aspect=True, min_border=4,
+                   tools="pan,wheel_zoom,reset,save", toolbar_location="right", title="Orders and angles")
+        f.title.text_font_size = "12px"
+        f.axis.visible = False
+        f.grid.visible = False
+        f.quad(left="left", right="right", top="top", bottom="bottom", source=self.body_src, fill_color="#b9bcc2",
+               line_color="#555", hatch_pattern="/", hatch_color="#777", hatch_alpha=0.5)
+        f.segment(x0="x0", y0="y0", x1="x1", y1="y1", source=self.scale_line_src, line_color="#d5d5d5",
+                  line_width=1)
+        f.text(x="x", y="y", text="text", source=self.scale_src, text_font_size="10px", text_color="#888",
+               text_align="center", text_baseline="middle")
+        f.segment(x0="x0", y0="y0", x1="x1", y1="y1", source=self.zero_src, line_color="#333", line_width=2,
+                  line_dash="dashed")
+        rays = f.segment(x0="x0", y0="y0", x1="x1", y1="y1", source=self.ray_src, line_color="color", line_width=2.5,
+                         line_alpha=0.9)
+        ends = f.scatter(x="x1", y="y1", source=self.ray_src, color="color", size=5)
+        f.add_layout(Arrow(end=VeeHead(size=12, fill_color="#000"), source=self.beam_src, x_start="x0", y_start="y0",
+                           x_end="x1", y_end="y1", line_width=3, line_color="#000"))
+        f.text(x="x", y="y", text="text", source=self.fan_label_src, text_font_size="12px", text_font_style="bold",
+               text_align="center", text_baseline="middle", background_fill_color="white",
+               background_fill_alpha=0.8)
+        f.text(x="x", y="y", text="text", source=self.note_src, text_font_size="11px", text_color="#333",
+               text_align="align", text_baseline="middle")
+        f.add_tools(HoverTool(renderers=[rays, ends], tooltips=[("order", "@order"), ("λ", "@wl{0.0} nm"),
+                                                                ("β", "@beta{0.00}°")]))
+        self.fan_fig = f
+
+        # c. N-slit line shape
+        self.shape_src = ColumnDataSource(dict(beta=[], y=[]))
+        self.peak_src = ColumnDataSource(dict(beta=[], y=[], label=[], efficiency=[]))
+        self.missing_src = ColumnDataSource(dict(beta=[], y=[], label=[], align=[]))
+        self.eff_src = ColumnDataSource(dict(beta=[], y=[], order=[], efficiency=[]))
+        p = figure(height=260, sizing_mode="stretch_width", tools="xpan,xwheel_zoom,box_zoom,reset,save",
+                   x_axis_label="diffraction angle β (°)", y_axis_label="intensity / N²",
+                   title="N-slit line shape", y_range=Range1d(0, 1.12))
+        line = p.line("beta", "y", source=self.shape_src, line_width=1.4, color="#1b1b1b")
+        p.text(x="beta", y="y", text="label", source=self.peak_src, text_font_size="11px", text_align="center",
+               text_baseline="bottom", y_offset=-2, text_color="#1f4e8c")
+        p.scatter(x="beta", y="y", source=self.missing_src, marker="x", size=12, color="#b00020", line_width=2)
+        p.text(x="beta", y="y", text="label", source=self.missing_src, text_font_size="11px", text_align="align",
+               text_baseline="bottom", y_offset=-8, text_color="#b00020")
+        eff = p.scatter(x="beta", y="y", source=self.eff_src, marker="circle", size=9, color="#d97706")
+        self.shape_hover = HoverTool(renderers=[line], mode="vline", tooltips=[("β", "@beta{0.000}°"),
+                                                                               ("I/N²", "@y{0.0000}")])
+        p.add_tools(self.shape_hover)
+        p.add_tools(HoverTool(renderers=[eff], tooltips=[("order", "@order"), ("efficiency", "@efficiency{0.000}")]))
+        self.eff_renderer = eff
+        self.shape_fig = p
+
+        # d. colour strip and colour map
+        tools = "pan,wheel_zoom,reset,save"
+        self.strip_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], orders=[], x=[], y=[], dw=[], dh=[]))
+        st = figure(height=140, sizing_mode="stretch_width", tools="xpan,xwheel_zoom,reset,save",
+                    x_range=Range1d(VIEW_DEG[0], VIEW_DEG[-1]), y_range=Range1d(0, 1),
+                    x_axis_label="viewing angle β (° from the normal; + on the lamp's side)",
+                    title="Colour seen at each viewing angle (white light)")
+        simg = st.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.strip_src)
+        st.add_tools(HoverTool(renderers=[simg], tooltips=[("view", "$x{0.0}°"), ("orders reaching the eye", "@orders"),
+                                                           ("L*, a*, b*", "@L{0.0}, @a{0.0}, @b{0.0}")]))
+        st.yaxis.visible = False
+        st.ygrid.visible = False
+        self.strip_specular = Span(location=0, dimension="height", line_color="white", line_width=2, line_dash="dashed")
+        st.add_layout(self.strip_specular)
+        self.strip_fig = st
+
+        self.map_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], x=[], y=[], dw=[], dh=[]))
+        m = figure(height=330, sizing_mode="stretch_width", tools=tools,
+                   x_range=Range1d(VIEW_DEG[0], VIEW_DEG[-1]), y_range=Range1d(MAP_DENSITIES[0], MAP_DENSITIES[-1]),
+                   x_axis_label="viewing angle β (°)", y_axis_label="groove density (lines/mm)",
+                   title="Colour vs viewing angle and groove density")
+        mimg = m.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.map_src)
+        m.add_tools(HoverTool(renderers=[mimg], tooltips=[("view", "$x{0.0}°"), ("density", "$y{0} lines/mm"),
+                                                          ("L*, a*, b*", "@L{0.0}, @a{0.0}, @b{0.0}")]))
+        self.map_density = Span(location=0, dimension="width", line_color="white", line_width=2, line_dash="dashed")
+        self.map_specular = Span(location=0, dimension="height", line_color="white", line_width=1.5,
+                                 line_dash="dashed")
+        m.add_layout(self.map_density)
+        m.add_layout(self.map_specular)
+        self.map_fig = m
+
+    # ------------------------------------------------------------------ wiring
+    def _wire(self):
+        for field, key, name, lo, hi, unit in self._fields():
+            field.input.param.watch(partial(self._on_number, field, key, name, lo, hi, unit), "value")
+        self.order.input.param.watch(self._on_order, "value")
+        self.preset.param.watch(self._on_preset, "value")
+        self.kind.param.watch(partial(self._on_choice, "kind"), "value")
+        self.groove.param.watch(partial(self._on_choice, "groove"), "value")
+        self.illuminant.param.watch(partial(self._on_choice, "illuminant"), "value")
+        self.brightness.param.watch(partial(self._on_choice, "brightness"), "value")
+        self.n_slits.param.watch(lambda e: _locked(self._draw_line_shape), "value")
+        self.scale.param.watch(lambda e: _locked(self._draw_line_shape), "value")
+
+    def _sync_fields(self):
+        """Show the settings in the widgets (after a preset) without firing their handlers."""
+        s = self.settings
+        self._syncing = True
+        try:
+            for field, key, *_ in self._fields():
+                field.set_text(_fmt(getattr(s, key), 4))
+                field.show_error(None)
+            self.order.set_text(str(s.order))
+            self.order.show_error(None)
+            self.kind.value = s.kind
+            self.groove.value = s.groove
+            self.illuminant.value = s.illuminant
+            self.brightness.value = s.brightness
+            self._show_groove_fields()
+            sc = f" — {_esc(s.scenario)}" if s.scenario else ""
+            self.scenario.object = f"<i>{_esc(s.name)}</i>{sc}"
+        finally:
+            self._syncing = False
+
+    def _show_groove_fields(self):
+        blazed = self.settings.groove == "blazed"
+        self.blaze.input.visible = blazed
+        self.duty.input.visible = not blazed
+        if blazed:
+            self.duty.show_error(None)
+        else:
+            self.blaze.show_error(None)
+
+    # ------------------------------------------------------------------ input handlers
+    def _take(self, field, new: GratingSettings) -> bool:
+        """Take ``new`` settings if every view can be computed from them, and draw them; else say why
+        beside ``field`` and keep the previous settings."""
+        try:
+            results = self._compute(new)
+        except InputError as exc:
+            if field is not None:
+                field.show_error(_esc(str(exc)))
+            return False
+        if field is not None:
+            field.show_error(None)
+        self.settings = new
+        _locked(partial(self._apply, new, results))
+        return True
+
+    def _on_number(self, field, key, name, lo, hi, unit, event):
+        if self._syncing:
+            return
+        try:
+            value = parse_number(str(event.new).replace("−", "-"), name, lo, hi, unit)
+            new = replace(self.settings, **{key: value})
+            if key in ("band_lo_nm", "band_hi_nm") and not new.band_lo_nm < new.band_hi_nm:
+                raise InputError(f"{name}: the band runs from its short end to its long end; "
+                                 f"{new.band_lo_nm:g} nm is not below {new.band_hi_nm:g} nm.")
+        except InputError as exc:
+            field.show_error(_esc(str(exc)))
+            return
+        if key in ("band_lo_nm", "band_hi_nm"):
+            other = self.band_hi if key == "band_lo_nm" else self.band_lo
+            other.show_error(None)
+        self._take(field, new)
+
+    def _on_order(self, event):
+        if self._syncing:
+            return
+        field = self.order
+        try:
+            value = parse_number(str(event.new).replace("−", "-"), "Order", -100, 100)
+            if value != int(value):
+                raise InputError(f"Order: {event.new} is not a whole number; orders are …, −2, −1, 1, 2, ….")
+            if value == 0:
+                raise InputError("Order: the zero order does not disperse, so it has no dispersion, resolving "
+                                 "power or free spectral range; type a nonzero order such as 1 or −1.")
+        except InputError as exc:
+            field.show_error(_esc(str(exc)))
+            return
+        self._take(field, replace(self.settings, order=int(value)))
+
+    def _on_choice(self, key, event):
+        if self._syncing or event.new is None:
+            return
+        new = replace(self.settings, **{key: event.new})
+        if self._take(None, new) and key == "groove":
+            self._show_groove_fields()
+
+    def _on_preset(self, event):
+        if not event.new:
+            return
+        self.load_preset(event.new)
+
+    def load_preset(self, stem: str) -> None:
+        """Show one shipped grating preset (its order and lamp keep the current choice)."""
+        new = GratingSettings.from_file(load_grating_preset(stem), self.settings)
+        if self._take(None, new):
+            self._sync_fields()
+
+    # ------------------------------------------------------------------ computing and drawing
+    def refresh(self):
+        """Recompute and redraw every view of the current settings (the colour map starts in the
+        background if its inputs changed). Raises InputError if they cannot be computed."""
+        self._apply(self.settings, self._compute(self.settings))
+
+    @staticmethod
+    def _compute(s: GratingSettings) -> dict:
+        """Everything but the colour map and the line shape, from ``s`` (physics calls only)."""
+        t0 = time.perf_counter()
+        out = dict(fan=compute_fan(s), readouts=compute_readouts(s), overlaps=compute_overlaps(s),
+                   strip=compute_strip(s), plan=compute_plan(s))
+        out["ms"] = 1000 * (time.perf_counter() - t0)
+        return out
+
+    def _apply(self, s: GratingSettings, results: dict):
+        """Show computed results (changes Bokeh models: runs with the document lock when served)."""
+        t0 = time.perf_counter()
+        self.shown = s
+        self.fan, self.readouts, self.overlaps = results["fan"], results["readouts"], results["overlaps"]
+        self.strip, self.plan = results["strip"], results["plan"]
+        self._draw_fan()
+        self._draw_readouts()
+        self._draw_overlaps()
+        self._draw_line_shape()
+        self._draw_strip()
+        self._draw_plan()
+        self.map_density.location = s.lines_per_mm
+        self.map_specular.location = -s.incidence_deg
+        self.generation += 1
+        self.timings_ms["compute"] = results["ms"]
+        self.timings_ms["draw"] = 1000 * (time.perf_counter() - t0)
+        self._refresh_map(s)
+
+    def _draw_fan(self):
+        s, fan = self.shown, self.fan
+        a = np.radians(s.incidence_deg)
+        side = 1.0 if s.kind == "reflection" else -1.0            # orders above (reflection) or below the grating
+
+        def direction(beta_deg, length):
+            b = np.radians(np.asarray(beta_deg, dtype=float))
+            return -np.sin(b) * length, side * np.cos(b) * length
+
+        rays = fan["rays"]
+        lengths = np.array([_ray_length(m) for m in rays["order"]])
+        x1, y1 = direction(rays["beta"], lengths)
+        n = len(rays["order"])
+        self.ray_src.data = dict(x0=np.zeros(n), y0=np.zeros(n), x1=x1, y1=y1, color=rays["color"],
+                                 order=[_order_text(m) for m in rays["order"]], wl=rays["wl"], beta=rays["beta"])
+        labels = dict(x=[], y=[], text=[], order=[], span=[])
+        for row in fan["rows"]:
+            m = row["order"]
+            mid = 0.5 * (row["beta_lo"] + row["beta_hi"])
+            if not np.isfinite(mid):
+                continue
+            x, y = direction(mid, _ray_length(m) + 0.1)
+            labels["x"].append(float(x))
+            labels["y"].append(float(y))
+            labels["text"].append(_order_text(m) if m else "0")
+            labels["order"].append(m)
+            labels["span"].append(f"{row['beta_lo']:.1f}…{row['beta_hi']:.1f}°")
+        self.fan_label_src.data = labels
+        x0, y0 = direction(-s.incidence_deg, 1.25)
+        self.zero_src.data = dict(x0=[0.0], y0=[0.0], x1=[float(x0)], y1=[float(y0)], beta=[-s.incidence_deg])
+        bx, by = -1.6 * np.sin(a), 1.6 * np.cos(a)
+        self.beam_src.data = dict(x0=[bx], y0=[by], x1=[0.0], y1=[0.0])
+        left = bx <= 1e-9                                  # label on the side of the beam facing the normal
+        self.note_src.data = dict(x=[bx + (0.06 if left else -0.06)], y=[by - 0.04],
+                                  text=[f"incident, α = {s.incidence_deg:g}°"], align=["left" if left else "right"])
+        # angle scale on the diffraction side: ticks every 30°; ±90° lie along the grating; no label under
+        # the incident beam (reflection: the beam is drawn along β = +α)
+        ticks = np.arange(-60, 61, 30)
+        if s.kind == "reflection":
+            ticks = ticks[np.abs(ticks - s.incidence_deg) > 6]
+        tx, ty = direction(ticks, 1.4)
+        lx0, ly0 = direction(ticks, 0.0)
+        lx1, ly1 = direction(ticks, 1.32)
+        self.scale_src.data = dict(x=list(tx), y=list(ty), text=[f"{t:+d}°" if t else "0° (normal)" for t in ticks])
+        self.scale_line_src.data = dict(x0=list(lx0), y0=list(ly0), x1=list(lx1), y1=list(ly1))
+        if s.kind == "reflection":
+            self.body_src.data = dict(left=[-1.45], right=[1.45], top=[0.0], bottom=[-0.12])
+        else:
+            self.body_src.data = dict(left=[-1.45], right=[1.45], top=[0.03], bottom=[-0.03])
+        self.fan_fig.height = FAN_HEIGHT_PX[s.kind]
+        self.fan_fig.title.text = (f"{s.lines_per_mm:g} lines/mm {s.kind}, {s.band_lo_nm:g}–{s.band_hi_nm:g} nm, "
+                                   f"α = {s.incidence_deg:g}°")
+        # caption
+        drawn = fan["drawn"]
+        parts = []
+        for row in fan["rows"]:
+            m = row["order"]
+            if m == 0:
+                continue
+            w = f"{row['wl_lo']:.0f}–{row['wl_hi']:.0f} nm"
+            partial_note = "" if (abs(row["wl_lo"] - s.band_lo_nm) < 0.5 and abs(row["wl_hi"] - s.band_hi_nm) < 0.5) \
+                else f" (only {w})"
+            parts.append(f"{_order_text(m)}: {_deg(row['beta_lo'], 1)} … {_deg(row['beta_hi'], 1)}{partial_note}")
+        hidden = len(fan["orders"]) - len(drawn)
+        zero = "specular reflection" if s.kind == "reflection" else "undeviated, straight through"
+        if len(fan["orders"]) == 1:
+            self.fan_caption.object = (
+                f"<b>Only the zero order propagates</b> (β = {_deg(-s.incidence_deg, 1)}): the groove spacing "
+                f"{self.readouts['spacing_nm']:.0f} nm is too fine to diffract {s.band_lo_nm:g}–{s.band_hi_nm:g} nm "
+                "at this incidence. Black arrow: incident beam.")
+            return
+        self.fan_caption.object = (
+            f"<b>Propagating orders</b> {_order_text(min(fan['orders']))} … {_order_text(max(fan['orders']))}"
+            + (f" ({hidden} beyond ±{MAX_FAN_ORDER} not drawn)" if hidden else "") + ". "
+            + "; ".join(parts) + f". Order 0 at β = {_deg(-s.incidence_deg, 1)} ({zero}). "
+            "Black arrow: incident beam. Rays every "
+            f"{(s.band_hi_nm - s.band_lo_nm) / (FAN_RAYS - 1):.3g} nm in display colours (grey: UV or IR). "
+            "Other orders are evanescent.")
+
+    def _draw_readouts(self):
+        s, r = self.shown, self.readouts
+        m = s.order
+        c = s.centre_nm
+        mt = _order_text(m)
+
+        def angle(x):
+            return _deg(x) if np.isfinite(x) else "<span style='color:#b00020'>evanescent</span>"
+
+        rows = [
+            ("groove spacing d", f"{r['spacing_nm']:.1f} nm"),
+            (f"β at {s.band_lo_nm:g} nm", angle(r["beta_lo_deg"])),
+            (f"β at {s.band_hi_nm:g} nm", angle(r["beta_hi_deg"])),
+            (f"angular dispersion at {c:g} nm", f"{_num(r['angular_dispersion_deg_per_nm'], '{:.4f}')} °/nm"),
+            (f"reciprocal linear dispersion, f = {s.focal_length_mm:g} mm",
+             f"{_num(r['reciprocal_linear_dispersion_nm_per_mm'], '{:.3f}')} nm/mm"),
+            (f"resolving power |m|·N, N = {r['grooves_lit']:,.0f} grooves lit", f"{r['resolving_power']:,.0f}"),
+            (f"smallest resolvable Δλ at {c:g} nm", f"{r['resolvable_nm']:.4g} nm"),
+            (f"free spectral range λ/|m| from {s.band_lo_nm:g} nm",
+             f"{r['free_spectral_range_nm']:.4g} nm"),
+            (f"Littrow angle at {c:g} nm", _deg(r["littrow_deg"]) if np.isfinite(r["littrow_deg"])
+             else "none (|m|·λ > 2d)"),
+            (f"groove efficiency at {c:g} nm (scalar, relative)", f"{r['efficiency']:.3f}"),
+        ]
+        if s.groove == "blazed":
+            facet = "" if s.kind == "reflection" else " (as a reflecting facet)"
+            rows.append((f"blaze wavelength, Littrow{facet}",
+                         f"{r['blaze_nm']:.1f} nm" if r["blaze_nm"] is not None else "— (blazed for m > 0)"))
+            if r["blaze_at_deviation_nm"] is not None:
+                rows.append((f"blaze wavelength at this {r['deviation_deg']:.1f}° deviation",
+                             f"{r['blaze_at_deviation_nm']:.1f} nm"))
+        ray = "<br>".join(f"{_order_text(k)}: {v:.1f} nm" + (" <span style='color:#b00020'>in band</span>"
+                                                            if s.band_lo_nm <= v <= s.band_hi_nm else "")
+                          for k, v in sorted(r["rayleigh_nm"].items()))
+        rows.append(("Rayleigh anomalies (order goes grazing)", ray or "—"))
+        warn = ""
+        if not (np.isfinite(r["beta_lo_deg"]) and np.isfinite(r["beta_hi_deg"])):
+            bad = r["status_lo"] if not np.isfinite(r["beta_lo_deg"]) else r["status_hi"]
+            warn = f"<div style='color:#b00020;font-size:12px;margin:2px 0'>{_esc(bad[0].upper() + bad[1:])}.</div>"
+        body = "".join(f"<tr><td style='padding:1px 8px 1px 0;color:#444;vertical-align:top'>{k}</td>"
+                       f"<td style='white-space:nowrap;vertical-align:top'><b>{v}</b></td></tr>" for k, v in rows)
+        self.readout_html.object = (f"<div class='fg-readout-values' style='font-size:12px'><div style='font-size:13px;margin-bottom:2px'>"
+                                    f"<b>Read-outs for order {mt}</b> <span style='color:#666'>(β from the normal, + on the "
+                                    f"incident side)</span></div>{warn}"
+                                    f"<table style='font-size:12px;border-collapse:collapse'>{body}</table></div>")
+
+    def _draw_overlaps(self):
+        s, o = self.shown, self.overlaps
+        mt = _order_text(s.order)
+        src = f"source taken to emit {SOURCE_BAND_NM[0]:g}–{SOURCE_BAND_NM[1]:g} nm"
+        if o["error"]:
+            self.overlap_html.object = (f"<h4 style='margin:4px 0'>Order overlap (order {mt})</h4>"
+                                        f"<div style='color:#b00020;font-size:13px'>{_esc(o['error'])}</div>")
+            return
+        rows = [(_order_text(r["order"]), f"{r['lo_nm']:.0f}–{r['hi_nm']:.0f}",
+                 f"{r['at_band_nm'][0]:.0f}–{r['at_band_nm'][1]:.0f}") for r in o["rows"]]
+        table = (_table(["other order", "its wavelengths (nm)", f"land where order {mt} has (nm)"], rows)
+                 if rows else "<div style='font-size:13px'>No other order of the same sign lands on the band.</div>")
+        flt = o["filter"]
+        self.overlap_html.object = (
+            f"<h4 style='margin:4px 0'>Order overlap on the band in order {mt} ({src})</h4>{table}"
+            f"<div style='font-size:13px;margin-top:4px'><b>Order-sorting filter:</b> {_esc(flt['note'])}.</div>")
+
+    def _draw_line_shape(self):
+        s = self.shown
+        n = int(self.n_slits.value)
+        log_scale = self.scale.value == "log"
+        ls = self.line_shape = compute_line_shape(s, n)
+        self.shape_src.data = dict(beta=ls["beta"].astype(np.float32),
+                                   y=(ls["db"] if log_scale else ls["rel"]).astype(np.float32))
+        self.shape_hover.tooltips = [("β", "@beta{0.000}°"), ("I/N²", "@y{0.0} dB" if log_scale else "@y{0.0000}")]
+        top = 3.0 if log_scale else 1.12
+        bottom = LOG_FLOOR_DB if log_scale else 0.0
+        label_y = top - (6 if log_scale else 0.1)
+        peaks = [o for o in ls["orders"] if not o["missing"]]
+        missing = [o for o in ls["orders"] if o["missing"]]
+        self.peak_src.data = dict(beta=[o["beta"] for o in peaks], y=[label_y] * len(peaks),
+                                  label=[f"m = {_order_text(o['order'])}" for o in peaks],
+                                  efficiency=[o["efficiency"] for o in peaks])
+        self.missing_src.data = dict(beta=[o["beta"] for o in missing], y=[bottom + (3 if log_scale else 0.02)] * len(missing),
+                                     label=[f"m = {_order_text(o['order'])} missing" for o in missing],
+                                     align=[_align(o["beta"], ls["beta"]) for o in missing])
+        blazed = s.groove == "blazed"
+        eff = [o for o in ls["orders"] if blazed]
+        self.eff_src.data = dict(beta=[o["beta"] for o in eff],
+                                 y=[(10 * np.log10(max(o["efficiency"], 10 ** (LOG_FLOOR_DB / 10))) if log_scale
+                                     else o["efficiency"]) for o in eff],
+                                 order=[_order_text(o["order"]) for o in eff], efficiency=[o["efficiency"] for o in eff])
+        self.eff_renderer.visible = blazed
+        self.shape_fig.y_range.update(start=bottom, end=top)
+        self.shape_fig.yaxis.axis_label = "intensity / N² (dB)" if log_scale else "intensity / N²"
+        where = (f"around order {_order_text(s.order)}" if ls["around"]
+                 else f"over all angles (order {_order_text(s.order)} does not reach {s.centre_nm:g} nm)")
+        self.shape_fig.title.text = f"N-slit line shape at {s.centre_nm:g} nm {where}, N = {n} grooves lit"
+        grooves = (f"slits {ls['slit_width_nm']:.0f} nm wide (duty cycle {s.duty_cycle:g}) in a "
+                   f"{ls['spacing_nm']:.0f} nm period: orders where the single-slit envelope is zero are missing"
+                   if not blazed else
+                   "blazed grooves: the curve is the interference of N grooves alone; orange dots give each "
+                   "order's scalar blaze efficiency")
+        self.line_caption.object = (
+            f"N = {n} is a small number chosen for display (the grating lights {self.readouts['grooves_lit']:,.0f} "
+            f"grooves): principal maxima at the orders, N − 2 = {n - 2} weaker secondary maxima between neighbours; "
+            f"{grooves}.")
+
+    def _draw_strip(self):
+        s, st = self.shown, self.strip
+        dv = VIEW_DEG[1] - VIEW_DEG[0]
+        self.strip_src.data = dict(image=[_rgba(st["rgb"][None, :, :])], L=[st["lab"][None, :, 0]],
+                                   a=[st["lab"][None, :, 1]], b=[st["lab"][None, :, 2]],
+                                   orders=[np.array(st["orders_text"], dtype=object)[None, :]],
+                                   x=[VIEW_DEG[0] - dv / 2], y=[0], dw=[VIEW_DEG[-1] - VIEW_DEG[0] + dv], dh=[1])
+        self.strip_specular.location = -s.incidence_deg
+        self.strip_fig.title.text = (f"Colour seen at each viewing angle: {s.lines_per_mm:g} lines/mm, lamp "
+                                     f"{s.illuminant} at α = {s.incidence_deg:g}°")
+
+    def _draw_plan(self):
+        s, plan = self.shown, self.plan
+        head = ["lines/mm", "order", "incidence α (°)", "β range", "spread (mm)", "fill", "nm/pixel",
+                "resolution (nm)", "free spectral range (nm)"]
+        rows = []
+        for d in plan:
+            mark = " ◀ current density" if abs(d.lines_per_mm - s.lines_per_mm) < 1e-9 else ""
+            rows.append((f"<b>{d.lines_per_mm:g}</b>{mark}", f"{d.order:+d}", f"{d.incidence_deg:.1f}",
+                         f"{_deg(d.beta_range_deg[0], 1)} … {_deg(d.beta_range_deg[1], 1)}", f"{d.spread_mm:.1f}",
+                         f"{100 * d.fill_fraction:.0f}%", f"{d.nm_per_pixel:.3f}", f"{d.resolution_nm:.2f}",
+                         f"{d.free_spectral_range_nm:.0f}"))
+        what = (f"{s.band_lo_nm:g}–{s.band_hi_nm:g} nm on a {s.detector_length_mm:g} mm detector with "
+                f"{s.pixel_pitch_um:g} µm pixels, f = {s.focal_length_mm:g} mm")
+        body = _table(head, rows) if rows else (
+            "<div style='font-size:13px;color:#b00020'>No listed groove density (150–3600 lines/mm) in orders 1–3 "
+            "fits this band on this detector without overflowing it, filling less than 30 % of it or overlapping "
+            "orders; try another focal length, detector or band.</div>")
+        self.plan_html.object = (
+            f"<h4 style='margin:4px 0'>Spectrometer planning: {what}</h4>{body}"
+            "<div style='font-size:12px;color:#555;margin-top:3px'>Fixed 30° between incident and diffracted beams "
+            "at the band centre, flat detector; resolution = 3 pixels of the reciprocal linear dispersion; best "
+            "resolution first.</div>")
+
+    # ------------------------------------------------------------------ colour map (background)
+    def _refresh_map(self, s: GratingSettings, sync: bool = False):
+        key = s.map_key()
+        if key in (self._map_shown_key, self._map_pending_key):
+            return
+        self._map_job += 1
+        job = self._map_job
+        self._map_pending_key = key
+        doc = pn.state.curdoc
+        served = doc is not None and doc.session_context is not None
+        if sync or not served:
+            self._apply_map(job, key, s, _timed(compute_colour_map, s))
+            return
+        self.map_status.object = "computing the colour map…"
+
+        async def run():
+            try:
+                result = await asyncio.get_running_loop().run_in_executor(EXECUTOR, _timed, compute_colour_map, s)
+            except Exception as exc:  # never lose the session to one failed computation
+                log.exception("grating colour map failed")
+                result = exc
+            doc.add_next_tick_callback(partial(self._apply_map, job, key, s, result))
+        pn.state.execute(run)
+
+    def _apply_map(self, job, key, s, result):
+        if job != self._map_job:                       # superseded by a newer request
+            return
+        self._map_pending_key = None
+        if isinstance(result, Exception):
+            self.map_status.object = f"<span style='color:#b00020'>colour map failed: {_esc(str(result))}</span>"
+            return
+        cm, ms = result
+        self.timings_ms["colour_map"] = ms
+        self.colour_map, self._map_shown_key, self._map_settings = cm, key, s
+        dv = VIEW_DEG[1] - VIEW_DEG[0]
+        dg = MAP_DENSITIES[1] - MAP_DENSITIES[0]
+        self.map_src.data = dict(image=[_rgba(cm["rgb"])], L=[cm["lab"][..., 0]], a=[cm["lab"][..., 1]],
+                                 b=[cm["lab"][..., 2]], x=[VIEW_DEG[0] - dv / 2], y=[MAP_DENSITIES[0] - dg / 2],
+                                 dw=[VIEW_DEG[-1] - VIEW_DEG[0] + dv], dh=[MAP_DENSITIES[-1] - MAP_DENSITIES[0] + dg])
+        grooves = f"blazed {s.blaze_angle_deg:g}°" if s.groove == "blazed" else f"lamellar, duty {s.duty_cycle:g}"
+        self.map_fig.title.text = (f"Colour vs viewing angle and groove density: α = {s.incidence_deg:g}°, "
+                                   f"{grooves}, lamp {s.illuminant}")
+        self.map_status.object = ""
+
+    # ------------------------------------------------------------------ downloads
+    def _fan_csv(self):
+        s, r = self.shown, self.readouts
+        out = io.StringIO()
+        out.write("# fringegauge grating orders and angles (computed)\n"
+                  f"# date: {date.today().isoformat()}\n"
+                  f"# grating: {s.describe()}\n"
+                  f"# convention: {CONVENTION}\n"
+                  f"# focal_length_mm: {s.focal_length_mm:g}; illuminated_width_mm: {s.illuminated_width_mm:g}\n"
+                  f"# read-outs for order {s.order:+d} at band centre {s.centre_nm:g} nm: "
+                  f"groove_spacing_nm {r['spacing_nm']:.6g}; angular_dispersion_deg_per_nm "
+                  f"{r['angular_dispersion_deg_per_nm']:.6g}; reciprocal_linear_dispersion_nm_per_mm "
+                  f"{r['reciprocal_linear_dispersion_nm_per_mm']:.6g}; resolving_power {r['resolving_power']:.6g}; "
+                  f"resolvable_nm {r['resolvable_nm']:.6g}; free_spectral_range_nm {r['free_spectral_range_nm']:.6g}; "
+                  f"littrow_deg {r['littrow_deg']:.6g}\n")
+        w = csv.writer(out, lineterminator="\n")
+        w.writerow(["order", "wavelength_nm", "beta_deg", "status", "angular_dispersion_deg_per_nm",
+                    "reciprocal_linear_dispersion_nm_per_mm", "relative_efficiency"])
+        wl = self.fan["wavelengths"]
+        for m in self.fan["drawn"]:
+            beta = np.atleast_1d(gr.diffraction_angle_deg(wl, s.lines_per_mm, m, s.incidence_deg))
+            eff = np.broadcast_to(gr.groove_efficiency(wl, s.lines_per_mm, m, **s.groove_kw()), wl.shape)
+            if m:
+                disp = np.atleast_1d(gr.angular_dispersion_deg_per_nm(wl, s.lines_per_mm, m, s.incidence_deg))
+                rld = np.atleast_1d(gr.reciprocal_linear_dispersion_nm_per_mm(wl, s.lines_per_mm, s.focal_length_mm,
+                                                                             m, s.incidence_deg))
+            else:
+                disp = rld = np.full(wl.shape, np.nan)
+            for i, lam in enumerate(wl):
+                ok = np.isfinite(beta[i])
+                w.writerow([m, f"{lam:.6g}", f"{beta[i]:.6f}" if ok else "", "propagating" if ok else "evanescent",
+                            f"{disp[i]:.6g}" if np.isfinite(disp[i]) else "",
+                            f"{rld[i]:.6g}" if np.isfinite(rld[i]) else "", f"{eff[i]:.6g}"])
+        out.seek(0)
+        return out
+
+    def _current_map(self):
+        s = self.shown
+        if self.colour_map is None or self._map_shown_key != s.map_key():
+            return compute_colour_map(s)
+        return self.colour_map
+
+    def _map_png(self):
+        return self._colour_png(self._current_map()["rgb"], MAP_DENSITIES,
+                                "Grating colour vs viewing angle and groove density", "groove density (lines/mm)")
+
+    def _strip_png(self):
+        """The strip at the current density and at ±5 % around it (a truthful density axis; the middle
+        row is the strip on the page)."""
+        s = self.shown
+        dens = s.lines_per_mm * (1.0 + np.linspace(-STRIP_PNG_SPAN, STRIP_PNG_SPAN, STRIP_PNG_ROWS))
+        cm = gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness,
+                                  **s.groove_kw())
+        return self._colour_png(cm["rgb"], dens, f"Grating colour vs viewing angle near {s.lines_per_mm:g} "
+                                f"lines/mm (±{100 * STRIP_PNG_SPAN:g} %)", "lines/mm")
+
+    def _colour_png(self, rgb, densities, title, y_label):
+        s = self.shown
+        png = render.map_png(rgb, VIEW_DEG, densities, x_label="viewing angle β (°)", y_label=y_label, title=title,
+                             subtitle=(f"{s.kind}, {self._grooves_text()}, incidence α = {s.incidence_deg:g}°, lamp "
+                                       f"{s.illuminant}, CIE 2° observer; {self._brightness_text()}. Crosshair: "
+                                       f"{s.lines_per_mm:g} lines/mm and the zero order (β = −α)."),
+                             crosshair=(-s.incidence_deg, s.lines_per_mm), footer=_footer())
+        return io.BytesIO(png)
+
+    def _brightness_text(self):
+        return ("each direction at full brightness" if self.shown.brightness == "per_direction"
+                else "relative brightness (brightest direction = full display brightness)")
+
+    def _grooves_text(self):
+        s = self.shown
+        return f"blazed {s.blaze_angle_deg:g}°" if s.groove == "blazed" else f"lamellar grooves, duty {s.duty_cycle:g}"
+
+    # ------------------------------------------------------------------ layout
+    def panel(self):
+        head = lambda t: pn.pane.HTML(f"<h3 style='margin:8px 5px 0;font-size:15px'>{t}</h3>")  # noqa: E731
+        controls = pn.Column(
+            head("Grating"), self.preset, self.scenario,
+            _pair(self.density, self.order),
+            _label("Kind"), self.kind, _label("Grooves"), self.groove,
+            self.blaze.view(), self.duty.view(),
+            head("Light"),
+            _pair(self.incidence, self.illuminant),
+            _pair(self.band_lo, self.band_hi),
+            head("Spectrometer"),
+            _pair(self.focal, self.width),
+            _pair(self.det_len, self.pitch),
+            pn.pane.HTML(f"<div style='font-size:12px;color:#555'>{CONVENTION}</div>", width=300, margin=(6, 5)),
+            head("Downloads"), self.dl_csv, self.dl_map, self.dl_strip,
+            width=320, margin=(0, 5), scroll=True, sizing_mode="stretch_height",
+            styles={"background": "#f6f6f4", "border-right": "1px solid #ddd"})
+        views = pn.Column(
+            self.caution,
+            pn.Row(pn.pane.Bokeh(self.fan_fig), self.readout_html, sizing_mode="stretch_width", margin=0),
+            self.fan_caption,
+            self.overlap_html,
+            pn.layout.Divider(),
+            pn.Row(_label("Grooves lit (display)"), self.n_slits, _label("Scale"), self.scale, margin=0),
+            pn.pane.Bokeh(self.shape_fig, sizing_mode="stretch_width"),
+            self.line_caption,
+            pn.layout.Divider(),
+            pn.Row(_label("Colours"), self.brightness, margin=0),
+            pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
+            self.map_status,
+            pn.pane.Bokeh(self.map_fig, sizing_mode="stretch_width"),
+            self.colour_caption,
+            pn.layout.Divider(),
+            self.plan_html,
+            self.caution_end,
+            sizing_mode="stretch_both", scroll=True, margin=(0, 5))
+        return pn.Row(controls, views, sizing_mode="stretch_both", css_classes=["fg-gratings"])
+
+
+def _pair(left, right):
+    """Two fields (or a field and a widget) side by side, their messages below at full width."""
+    widget = lambda f: f.input if isinstance(f, Field) else f  # noqa: E731
+    msgs = [f.message for f in (left, right) if isinstance(f, Field)]
+    return pn.Column(pn.Row(widget(left), widget(right), margin=0), *msgs, margin=0)
+
+
+def _align(x: float, axis) -> str:
+    """Text alignment that keeps a label near either end of an axis inside the plot."""
+    lo, hi = float(axis[0]), float(axis[-1])
+    t = (x - lo) / (hi - lo) if hi > lo else 0.5
+    return "left" if t < 0.15 else ("right" if t > 0.85 else "center")
+
+
+def _ray_length(m: int) -> float:
+    """Drawn length of an order's rays: shorter for higher orders so overlapping orders stay apart."""
+    return max(0.55, 1.0 - 0.09 * (abs(m) - 1))
+
+
+def _timed(fn, *args):
+    t0 = time.perf_counter()
+    out = fn(*args)
+    return out, 1000 * (time.perf_counter() - t0)
