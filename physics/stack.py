@@ -379,8 +379,15 @@ def sweep(st: Stack, layer: int = 0, thickness_nm=None, angle_deg=0.0, wavelengt
     step = max(1, _SWEEP_CHUNK // max(1, A * W))
     uniform = d.size > 2 and np.allclose(np.diff(d), d[1] - d[0], rtol=_UNIFORM_RTOL, atol=0.0)
     x_step = np.exp(1j * k2 * (d[1] - d[0])) if uniform else None
+    fast = quantity == "reflectance" and st.substrate_thickness_mm is None
+    if fast:
+        for c in coeffs:
+            _expand_for_real_path(c)
     for start in range(0, d.size, step):
         x = _round_trip_phase(k2, d[start:start + step], x_step)   # e^{2iδ}, shared by s and p
+        if fast:
+            out[start:start + step] = _reflectance_real_path(x, coeffs, weight)
+            continue
         ax = np.abs(x) if want_T else None                  # |e^{iδ}|² = |e^{2iδ}|
         acc = None
         for c in coeffs:
@@ -407,6 +414,41 @@ def sweep(st: Stack, layer: int = 0, thickness_nm=None, angle_deg=0.0, wavelengt
             acc *= weight
         out[start:start + step] = acc
     return out
+
+
+def _expand_for_real_path(c):
+    """Real coefficients of |r_a + Q x|² and |1 − V x|² as polynomials in Re x, Im x and |x|²."""
+    ra, Q, V = c["ra"], c["Q"], c["V"]
+    P = np.conj(ra) * Q
+    c.update(A0=np.abs(ra) ** 2, A2=np.abs(Q) ** 2, Pr=2 * P.real, Pi=-2 * P.imag,
+             B2=np.abs(V) ** 2, Vr=-2 * V.real, Vi=2 * V.imag)
+
+
+def _reflectance_real_path(x, coeffs, weight):
+    """R = |r_a + Q x|² / |1 − V x|² summed over polarizations, in real arithmetic:
+    |r_a + Q x|² = |r_a|² + |Q|²|x|² + 2 Re(r_a* Q x) and |1 − V x|² = 1 + |V|²|x|² − 2 Re(V x)."""
+    xr = np.ascontiguousarray(x.real)
+    xi = np.ascontiguousarray(x.imag)
+    x2 = xr * xr
+    x2 += xi * xi
+    acc = None
+    for c in coeffs:
+        num = c["Pr"] * xr
+        num += c["Pi"] * xi
+        num += c["A0"]
+        num += c["A2"] * x2
+        den = c["Vr"] * xr
+        den += c["Vi"] * xi
+        den += 1.0
+        den += c["B2"] * x2
+        num /= den
+        if acc is None:
+            acc = num
+        else:
+            acc += num
+    if len(coeffs) > 1:
+        acc *= weight
+    return acc
 
 
 def _round_trip_phase(k2, d, x_step):
