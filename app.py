@@ -3,6 +3,7 @@
 import panel as pn
 
 from views.explorer import FilmExplorer
+from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness
 from views.urlstate import apply_query, state_to_query
@@ -26,7 +27,10 @@ def page():
         explorer.state.param.watch(write_address, list(explorer.state.param))
         pn.state.onload(write_address)
     inverse = ColourToThickness(explorer)
-    return explorer.panel(extra_tabs=[("Colour → thickness", inverse.panel()), ("Gratings", GratingSection().panel())],
+    fit = SpectrumFitSection(explorer)
+    return explorer.panel(extra_tabs=[("Colour → thickness", inverse.panel()),
+                                      ("Spectrum → thickness", fit.panel()),
+                                      ("Gratings", GratingSection().panel())],
                           without_stack={"Gratings"})
 
 

@@ -47,6 +47,16 @@ MAX_SCAN_POINTS = 4000
 STARTS_REFINED = 5
 #: Another minimum whose rms is within this factor of the best is reported as competing.
 COMPETING_RMS_RATIO = 1.5
+#: Least-squares stopping tolerances (relative): 1e-8 of a micrometre is far below any uncertainty.
+XTOL = 1e-8
+FTOL = 1e-8
+#: Model evaluations allowed to every start at first; a start not converged by then is finished only if
+#: its sum of squares is within FINISH_COST_RATIO of the best (4x the competing ratio squared).
+FIRST_NFEV = 20
+FINISH_COST_RATIO = 4 * COMPETING_RMS_RATIO ** 2
+#: Scan minima re-sampled finely before ranking, and fine samples across each (two scan steps).
+FINE_CANDIDATES = 60
+FINE_POINTS = 41
 #: Reflectance read as a fraction above this is refused (a percentage or counts, not a fraction).
 MAX_FRACTION = 1.2
 
@@ -192,6 +202,8 @@ def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: st
         val = np.bincount(inv, weights=val) / counts
         notes.append(f"{wl.size - uniq.size} repeated wavelength(s) averaged.")
         wl = uniq
+    if not (np.all(np.isfinite(wl)) and np.all(np.isfinite(val))):
+        raise InputError("Some values are too large to be a spectrum (they overflow); check the columns.")
     if dropped:
         notes.append(f"{dropped} row(s) without two numbers were dropped.")
     if wl.size < MIN_POINTS:
@@ -348,6 +360,30 @@ def _linear_fit(model, R, scale, offset):
     return s, o, np.sum((s[..., None] * model + o[..., None] - R) ** 2, axis=-1)
 
 
+def _refine(residual, p0, lower, upper, max_nfev):
+    try:
+        return least_squares(residual, p0, bounds=(lower, upper), x_scale="jac", method="trf",
+                             xtol=XTOL, ftol=FTOL, max_nfev=max_nfev)
+    except ValueError as exc:  # pragma: no cover - defensive: bounds and starts are checked above
+        raise InputError(f"The fit could not start: {exc}") from None
+
+
+def _ranked_starts(stack, layer, grid, ssr, window, angle, wl, R, polarization, free_scale, free_offset):
+    """Starts for the refinement: the scan's local minima, each re-sampled finely over the step on either
+    side and ranked by its best fine value (the coarse samples are ranked mostly by where the grid
+    happens to fall relative to each minimum)."""
+    idx = _local_minima(ssr)[:FINE_CANDIDATES]
+    step = grid[1] - grid[0]
+    fine = np.stack([np.linspace(max(grid[i] - step, window[0]), min(grid[i] + step, window[1]), FINE_POINTS)
+                     for i in idx])                                               # (C, F)
+    model = sweep(stack, layer, fine.ravel(), [angle], wl, polarization)[:, 0, :]
+    ssr_f = _linear_fit(model, R, free_scale, free_offset)[2].reshape(fine.shape)
+    j = np.argmin(ssr_f, axis=1)
+    best = ssr_f[np.arange(len(idx)), j]
+    order = np.argsort(best, kind="stable")[:STARTS_REFINED]
+    return [float(fine[k, j[k]]) for k in order]
+
+
 def _local_minima(y):
     left = np.r_[np.inf, y[:-1]]
     right = np.r_[y[1:], np.inf]
@@ -393,7 +429,8 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
     if not two:
         model = sweep(stack, layer, grid1, [angle], wl, polarization)[:, 0, :]        # (T, W)
         s, o, ssr = _linear_fit(model, R, free_scale, free_offset)
-        starts = [(grid1[i],) for i in _local_minima(ssr)[:STARTS_REFINED]]
+        starts = [(t,) for t in _ranked_starts(stack, layer, grid1, ssr, w1, angle, wl, R, polarization,
+                                               free_scale, free_offset)]
         scan_rms = np.sqrt(ssr / wl.size)
     else:
         grid2 = _scan_grid(stack, second_layer, w2, wl, angle, "second thickness window")
@@ -438,12 +475,11 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
         s0, o0, _ = _linear_fit(model0[None, :], R, free_scale, free_offset)
         p0 = list(start) + ([float(s0[0])] if free_scale else []) + ([float(o0[0])] if free_offset else [])
         p0 = [min(max(v, lo_), hi_) for v, lo_, hi_ in zip(p0, lower, upper)]
-        try:
-            sol = least_squares(lambda p: model_at(p) - R, p0, bounds=(lower, upper), x_scale="jac",
-                                method="trf", xtol=1e-10, ftol=1e-12, max_nfev=200)
-        except ValueError as exc:  # pragma: no cover - defensive: bounds and starts are checked above
-            raise InputError(f"The fit could not start: {exc}") from None
-        refined.append(sol)
+        refined.append(_refine(lambda p: model_at(p) - R, p0, lower, upper, FIRST_NFEV))
+    # Large-residual minima converge slowly and can never compete: finish only those that might.
+    best_cost = min(s.cost for s in refined)
+    refined = [_refine(lambda p: model_at(p) - R, s.x, lower, upper, 200)
+               if s.status == 0 and s.cost <= FINISH_COST_RATIO * best_cost else s for s in refined]
     refined.sort(key=lambda s: s.cost)
     best = refined[0]
     p = best.x

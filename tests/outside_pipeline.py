@@ -191,3 +191,46 @@ def wedge_photo(seed: int = 7, *, height: int = 300, wedge_px: int = 400, bare_p
     if noise_sigma:
         lin = lin + np.random.default_rng(seed).normal(0.0, noise_sigma, lin.shape)
     return encode_8bit(lin), truth, (0, 0, bare_px, height)
+
+
+@functools.lru_cache(maxsize=None)
+def _nk_on(shelf_book_page, wavelengths_nm: tuple) -> tuple:
+    """n + ik of a page at the given wavelengths (k = 0 where the page gives none)."""
+    m = _page(shelf_book_page)
+    out = []
+    for wl in wavelengths_nm:
+        n = float(m.get_refractive_index(float(wl)))
+        try:
+            k = float(m.get_extinction_coefficient(float(wl)))
+        except Exception:          # the page has no k (a transparent material): NoExtinctionCoefficient
+            k = 0.0
+        out.append(complex(n, k))
+    return tuple(out)
+
+
+def reflectance_on(wavelength_nm, layers: tuple, substrate=SI, ambient=AIR, angle_deg: float = 0.0,
+                   polarization: str = "unpolarized") -> np.ndarray:
+    """Reflectance at the given wavelengths (nm) of ``ambient / layers... / substrate``.
+
+    ``layers`` is a tuple of ``(page, thickness_nm)`` or ``(n_constant, thickness_nm)`` from the
+    ambient side down; ``substrate`` and ``ambient`` are pages or constant (complex) indices.
+    tmm (S. J. Byrnes) ``coh_tmm``, one call per wavelength and polarization; unpolarized is the
+    mean of s and p.
+    """
+    wls = tuple(float(w) for w in np.asarray(wavelength_nm, dtype=float).ravel())
+
+    def index(spec):
+        if isinstance(spec, tuple):
+            return _nk_on(spec, wls)
+        return (complex(spec),) * len(wls)
+
+    th0 = np.radians(float(angle_deg))
+    amb, sub = index(ambient), index(substrate)
+    films = [(index(p), float(d)) for p, d in layers]
+    d_list = [np.inf] + [d for _, d in films] + [np.inf]
+    pols = {"s": ("s",), "p": ("p",)}.get(polarization, ("s",) if angle_deg == 0 else ("s", "p"))
+    R = np.empty(len(wls))
+    for i, wl in enumerate(wls):
+        n_list = [amb[i].real] + [n[i] for n, _ in films] + [sub[i]]
+        R[i] = np.mean([tmm.coh_tmm(p, n_list, d_list, th0, wl)["R"] for p in pols])
+    return R

@@ -170,7 +170,7 @@ def test_photo_to_thickness_map_in_the_page(page, tmp_path):
     path = tmp_path / "wedge.png"
     Image.fromarray(img).save(path)
     page.get_by_text("Colour → thickness").click()
-    page.locator("input[type=file]").last.set_input_files(str(path))
+    page.locator(".fg-photo-drop input[type=file]").first.set_input_files(str(path))
     page.get_by_text("No calibration box").first.wait_for(timeout=30_000)
     page.get_by_text("Make thickness map").first.click()
     page.get_by_text("of the region matched").first.wait_for(timeout=60_000)
@@ -190,4 +190,22 @@ def test_gratings_tab_answers_a_new_groove_density(page):
     field.press("Enter")
     page.get_by_role("alert").filter(has_text="Groove density").first.wait_for(timeout=15_000)
     assert page.get_by_text("1666.7 nm").first.is_visible()
+    assert page.console_errors == []
+
+
+def test_spectrum_fit_in_the_page(page, tmp_path):
+    """An invented oxide monitor wafer measured with a fibre probe: semicolon CSV in percent."""
+    import numpy as np
+    from physics.stackfile import load_preset
+
+    st = load_preset("thermal_oxide_on_silicon").stack
+    wl = np.linspace(400, 1000, 121)
+    R = st.with_thickness(0, 640.0).reflectance(wl)
+    path = tmp_path / "probe.csv"
+    path.write_text("Wavelength (nm);Reflectance (%)\n" + "\n".join(f"{w:.1f};{100 * r:.4f}" for w, r in zip(wl, R)))
+    page.get_by_text("Spectrum → thickness").click()
+    page.locator(".fg-fit-sample-file input[type=file]").first.set_input_files(str(path))
+    page.get_by_text("Reflectance read as percent").first.wait_for(timeout=30_000)
+    page.locator(".fg-fit-run button").first.click()
+    page.get_by_text("d = 639.9").or_(page.get_by_text("d = 640.0")).first.wait_for(timeout=60_000)
     assert page.console_errors == []

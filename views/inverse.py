@@ -88,7 +88,8 @@ class ColourToThickness:
         self.dropper = pn.widgets.FileDropper(accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif",
                                                                   ".tiff", ".jpg", ".jpeg", ".png"],
                                               max_file_size="200MB", multiple=False, height=110,
-                                              sizing_mode="stretch_width", margin=(2, 5))
+                                              sizing_mode="stretch_width", margin=(2, 5),
+                                              css_classes=["fg-photo-drop"])
         self.photo_msg = Field("")
         self.mode = pn.widgets.RadioButtonGroup(options={"calibration box": "calib", "region of interest": "roi",
                                                          "pick a point": "pick"}, value="calib", margin=(2, 5))

@@ -1,0 +1,208 @@
+"""The spectrum → thickness section driven from its objects, without a browser.
+
+Spectra are made with physics itself for invented wafers (the fit is checked against outside
+spectra in tests/test_fit_outside.py); here the page's import, messages and downloads are checked.
+"""
+
+import csv
+import io
+import json
+
+import numpy as np
+import pytest
+
+from physics import Stack
+from views.explorer import FilmExplorer
+from views.fit import SpectrumFitSection
+
+WL = np.linspace(400.0, 1000.0, 250)
+
+
+@pytest.fixture()
+def section():
+    return SpectrumFitSection(FilmExplorer())            # thermal oxide on silicon, swept layer 0, 0°
+
+
+def _spectrum(section, thickness, sigma=0.003, seed=1):
+    R = section.ex.state.stack.with_thickness(0, thickness).reflectance(WL)
+    return R + np.random.default_rng(seed).normal(0.0, sigma, WL.size)
+
+
+def _csv(wl, values, header="Invented spectrometer export\nwavelength_nm,reflectance\n", fmt="{:.4f},{:.7f}"):
+    return (header + "\n".join(fmt.format(a, b) for a, b in zip(wl, values))).encode()
+
+
+def _fit(section, thickness=650.0, **kw):
+    assert section.load_file("sample", _csv(WL, _spectrum(section, thickness, **kw)), "wafer.csv")
+    assert section.run_fit(sync=True)
+    return section.result
+
+
+def test_uploaded_spectrum_is_fitted(section):
+    r = _fit(section, 650.0)
+    assert r is not None and abs(r.thickness_nm - 650.0) <= 3 * r.uncertainty_nm
+    assert "d = " in section.verdict.object and "(1σ)" in section.verdict.object
+    assert section.verdict.alert_type == "success"
+    assert "not certified metrology" in section.disclaimer.object
+    assert len(section.meas_src.data["wl"]) == 250 and len(section.model_src.data["R"]) == 250
+    assert len(section.scan_src.data["d"]) == r.scan_thickness_nm.size
+    assert section.minima_src.data["label"][0] == "best"
+    assert "Fourier estimate" in section.details.object
+    opt, d, _, _ = section.fourier_thickness()
+    assert d == pytest.approx(650.0, rel=0.1)
+    assert "Wavelengths read as nm" in section.notes.object
+    assert not section.dl_csv.disabled and not section.dl_json.disabled
+
+
+def test_percent_and_micrometres_detected_with_overrides(section):
+    R = _spectrum(section, 300.0)
+    data = _csv(WL / 1000, 100 * R, header="λ (µm); R (%)\n", fmt="{:.6f};{:.5f}")
+    assert section.load_file("sample", data, "um_percent.txt")
+    assert "µm" in section.notes.object and "percent" in section.notes.object
+    assert section.import_info["wavelength_unit"] == "um" and section.import_info["value_unit"] == "percent"
+    section.run_fit(sync=True)
+    assert abs(section.result.thickness_nm - 300.0) <= 3 * section.result.uncertainty_nm
+    previous = section.result
+    section.value_unit.value = "fraction"                  # a wrong override: values 10-50 read as fractions
+    section.run_fit(sync=True)
+    assert section.fit_msg.message.visible and "percent" in section.fit_msg.message.object
+    assert section.result is previous
+    section.value_unit.value = "auto"
+    section.wl_unit.value = "nm"                           # a wrong override: 0.4-1 nm
+    section.run_fit(sync=True)
+    assert section.wl_lo.message.visible and section.result is previous
+
+
+@pytest.mark.parametrize("bad,expect", [(b"", "usable rows"), (b"not a spectrum at all\n" * 3, "usable rows"),
+                                        (b"\x89PNG\r\n\x1a\n\x00\x00", "not text"),
+                                        (_csv(WL[:5], np.full(5, 0.3)), "at least 10"),
+                                        (b"wl,R\n" + b"\n".join(b"%d,%.2f" % (400 + i, 0.3) for i in range(12))
+                                         + b"\n" + b"\n".join(b"%d,bad" % (500 + i) for i in range(20)), "Line 14")],
+                         ids=["empty", "text", "binary", "five_rows", "text_column"])
+def test_bad_files_show_a_message_and_keep_the_previous_result(section, bad, expect):
+    r = _fit(section, 650.0)
+    spectrum = section.spectrum
+    assert not section.load_file("sample", bad, "bad.csv")
+    assert section.file_msg["sample"].message.visible and expect in section.file_msg["sample"].message.object
+    assert section.result is r and section.spectrum is spectrum
+    assert section.files["sample"][0] == "wafer.csv"
+    section.run_fit(sync=True)                             # the previous file is still the one fitted
+    assert section.result.thickness_nm == pytest.approx(r.thickness_nm)
+
+
+def test_bad_fields_show_messages_beside_them_and_keep_the_result(section):
+    r = _fit(section, 650.0)
+    section.win_hi.input.value = "lots"
+    assert not section.run_fit(sync=True)
+    assert section.win_hi.message.visible and section.result is r
+    section.win_hi.input.value = "100000"                  # too wide to resolve
+    section.run_fit(sync=True)
+    assert section.win_hi.message.visible and "narrow the window" in section.win_hi.message.object
+    assert section.result is r
+    section.win_hi.input.value = "3000"
+    section.wl_lo.input.value = "200"                      # a range holding none of the file's points
+    section.wl_hi.input.value = "210"
+    section.run_fit(sync=True)
+    assert section.fit_msg.message.visible and section.result is r
+    section.wl_lo.input.value = "500"
+    section.wl_hi.input.value = "800"
+    section.run_fit(sync=True)
+    assert section.result is not r and section.result.wavelength_nm.max() <= 800
+    assert not section.win_hi.message.visible and not section.fit_msg.message.visible
+
+
+def test_spectrum_beyond_the_materials_data_is_refused(section):
+    wl = np.linspace(200.0, 1000.0, 300)                   # the silicon page has data from 250 nm
+    assert section.load_file("sample", _csv(wl, np.full(wl.size, 0.3)), "uv.csv")
+    section.run_fit(sync=True)
+    assert section.wl_lo.message.visible and "250" in section.wl_lo.message.object
+    assert section.result is None
+
+
+def test_downloads_parse(section):
+    r = _fit(section, 1200.0)
+    text = section._curves_csv().getvalue()
+    assert "# units: wavelength in nm" in text
+    rows = [row for row in csv.reader(io.StringIO(text)) if row and not row[0].startswith("#")]
+    assert rows[0] == ["wavelength_nm", "measured_R_fraction", "model_R_fraction", "residual_fraction"]
+    data = np.array(rows[1:], dtype=float)
+    assert data.shape == (r.n_points, 4) and np.allclose(data[:, 1] - data[:, 2], data[:, 3], atol=1e-7)
+    scan = [row for row in csv.reader(section._scan_csv()) if row and not row[0].startswith("#")]
+    assert scan[0] == ["thickness_nm", "rms_fraction"] and len(scan) - 1 == r.scan_thickness_nm.size
+    summary = json.loads(section._summary_json().getvalue())
+    assert summary["result"]["thickness_nm"] == pytest.approx(r.thickness_nm)
+    assert summary["result"]["uncertainty_level"] == "1 sigma"
+    assert "not certified metrology" in summary["note"]
+    layers = summary["stack"]["layers"]
+    assert layers[0]["material"] == "SiO2" and layers[0]["unknown"] == "first" and layers[0]["thickness_nm"] is None
+    assert "Malitson" in layers[0]["source"] and "Green" in summary["stack"]["substrate"]["source"]
+    assert "Ciddor" in summary["stack"]["ambient"]["source"]
+    assert summary["inputs"]["import"]["sample_file"] == "wafer.csv"
+    assert summary["inputs"]["thickness_window_nm"] == [0.0, 3000.0]
+
+
+def test_reference_and_dark_counts(section):
+    """Invented raw counts: dark 800, a lamp rising with wavelength, a bare-silicon reference wafer."""
+    truth = 480.0
+    R = _spectrum(section, truth, sigma=0.0)
+    lamp = 20000.0 + 30.0 * (WL - 400.0)
+    dark = np.full(WL.size, 800.0)
+    r_si = Stack([], substrate="Si").reflectance(WL)
+    ref_counts = lamp * r_si + dark
+    sample_counts = lamp * R + dark + np.random.default_rng(4).normal(0, 30, WL.size)
+    assert section.load_file("sample", _csv(WL, sample_counts, fmt="{:.4f},{:.2f}"), "sample_counts.csv")
+    fine = np.linspace(390.0, 1010.0, 400)                 # the reference on another grid: interpolated
+    assert section.load_file("reference", _csv(fine, np.interp(fine, WL, ref_counts), fmt="{:.4f},{:.3f}"), "ref.csv")
+    assert section.load_file("dark", _csv(WL, dark, fmt="{:.4f},{:.1f}"), "dark.csv")
+    assert section.import_info["counts"] and "interpolated" in section.notes.object
+    assert "bare silicon" in section.notes.object
+    assert np.allclose(section.spectrum[1], R, atol=0.01)
+    section.run_fit(sync=True)
+    r = section.result
+    assert abs(r.thickness_nm - truth) <= 3 * r.uncertainty_nm
+    assert json.loads(section._summary_json().getvalue())["inputs"]["import"]["dark_file"] == "dark.csv"
+    # a number for the reference's reflectance: a reference mirror of 0.9 (invented)
+    section.ref_mode.value = "number"
+    section.ref_value.input.value = "0.9"
+    assert np.allclose(section.spectrum[1], 0.9 * R / r_si, atol=0.02)
+    section.ref_value.input.value = "2"
+    assert section.ref_value.message.visible
+    # a dark above the reference is refused beside the dark file, keeping the spectrum
+    section.ref_mode.value = "silicon"
+    spectrum = section.spectrum
+    assert not section.load_file("dark", _csv(WL, ref_counts + 10, fmt="{:.4f},{:.1f}"), "bright_dark.csv")
+    assert section.file_msg["dark"].message.visible and section.spectrum is spectrum
+    assert section.files["dark"][0] == "dark.csv"
+    # a reference that does not cover the sample
+    assert not section.load_file("reference", _csv(WL[:100], ref_counts[:100], fmt="{:.4f},{:.3f}"), "short.csv")
+    assert "covers" in section.file_msg["reference"].message.object
+    section._on_clear_ref()
+    assert not section.import_info["counts"]
+
+
+def test_second_unknown_layer_and_free_scale(section):
+    ex = section.ex
+    ex.state.load_preset("nitride_on_oxide_on_silicon")
+    ex._sync_widgets()
+    assert list(section.second.options.values()) == [-1, 1]
+    st = ex.state.stack
+    R = st.with_thickness(0, 220.0).with_thickness(1, 380.0).reflectance(WL)
+    R = 0.95 * R + 0.005 + np.random.default_rng(7).normal(0, 0.003, WL.size)
+    section.load_file("sample", _csv(WL, R), "two_layers.csv")
+    section.second.value = 1
+    section.win_hi.input.value = "1000"
+    section.free_scale.value = True
+    section.free_offset.value = True
+    section.run_fit(sync=True)
+    r = section.result
+    assert abs(r.thickness_nm - 220.0) <= 3 * r.uncertainty_nm
+    assert abs(r.second_thickness_nm - 380.0) <= 3 * r.second_uncertainty_nm
+    assert "d₂ = " in section.verdict.object and "scale" in section.verdict.object
+    summary = section.summary()
+    assert summary["stack"]["layers"][1]["unknown"] == "second" and summary["inputs"]["free_scale"]
+    ex.state.angle_deg = 10.0                              # the explorer changes: the result is marked stale
+    assert "changed" in section.status.object
+
+
+def test_panel_builds(section):
+    assert section.panel() is not None
