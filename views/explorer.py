@@ -580,7 +580,8 @@ class FilmExplorer:
             self.strip_src.data = dict(image=[_rgba(st.rgb[None, :, :])], L=[st.lab[None, :, 0]],
                                        a=[st.lab[None, :, 1]], b=[st.lab[None, :, 2]], x=[d[0] - dd / 2], y=[0],
                                        dw=[d[-1] - d[0] + dd], dh=[1])
-            self.order_src.data = dict(x=list(st.order_marks), label=[f"order {i + 2}" for i in range(len(st.order_marks))])
+            self.order_src.data = dict(x=[float(d[0])] + list(st.order_marks),
+                                       label=[f"order {i + 1}" for i in range(len(st.order_marks) + 1)])
             self.strip_fig.x_range.update(start=d[0], end=d[-1])
         if "point" in result:
             self._point = pt = result["point"]
@@ -629,7 +630,8 @@ class FilmExplorer:
     def _strip_png(self):
         s = self._snapshot()
         st = compute_strip(s, self._scale)
-        marks = [(float(x), f"order {i + 2}") for i, x in enumerate(st.order_marks)]
+        marks = [(float(st.thickness_nm[0]), "order 1")] + [(float(x), f"order {i + 2}")
+                                                             for i, x in enumerate(st.order_marks)]
         png = render.strip_png(st.rgb, st.thickness_nm, title=f"Reference colours: {_stack_text(s)}",
                                subtitle=f"layer {s.swept_layer} swept; viewing angle {s.angle_deg:g}°; " + _light_text(s),
                                order_marks=marks, footer=_footer())
