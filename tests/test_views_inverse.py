@@ -101,3 +101,36 @@ def test_rectangle_pick_uses_the_mean_in_linear_light(section):
     section.load_photo(data, "wedge.png")
     cands = section.pick_box((90, 10, 95, 50))
     assert cands is not None and abs(cands[0].thickness_nm - d[92]) < 15
+
+
+def test_server_limits_on_photos_and_heavy_jobs(section, monkeypatch):
+    """Named limits (views/limits.py): photo size, and heavy jobs running at once on the server."""
+    import threading
+    from views import limits as L
+
+    data, _ = _wedge_png()
+    monkeypatch.setenv("FRINGEGAUGE_MAX_PHOTO_MEGAPIXELS", "0.005")      # 5,000 pixels; the wedge has 9,600
+    assert not section.load_photo(data, "wedge.png")
+    assert "pixel" in section.photo_msg.message.object.lower() or "megapixel" in section.photo_msg.message.object.lower()
+    monkeypatch.delenv("FRINGEGAUGE_MAX_PHOTO_MEGAPIXELS")
+    assert section.load_photo(data, "wedge.png")
+    monkeypatch.setenv("FRINGEGAUGE_MAX_JOBS_SERVER", "1")
+    limits = L.Limits.from_env()
+    release = threading.Event()
+    entered = threading.Event()
+
+    def hold():
+        with L.heavy_job("test", 1, "other", limits):
+            entered.set()
+            release.wait(10)
+    t = threading.Thread(target=hold)
+    t.start()
+    entered.wait(10)
+    try:
+        section.start_map(sync=True)
+        assert section.map_msg.visible and "busy" in section.map_msg.object
+    finally:
+        release.set()
+        t.join()
+    section.start_map(sync=True)
+    assert section.result is not None

@@ -25,6 +25,7 @@ from bokeh.plotting import figure
 from physics import InputError, Stack, fit_thickness, optical_thickness_fft, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
 
+from .limits import heavy_job
 from .explorer import EXECUTOR, Field, _esc, _fmt, _label
 from .inverse import _locked
 from .state import THICKNESS_LIMITS_NM, parse_number
@@ -427,7 +428,8 @@ class SpectrumFitSection:
     @staticmethod
     def _work(args):
         try:
-            result = fit_thickness(**args)
+            with heavy_job("spectrum_fit", len(args["wavelength_nm"])):
+                result = fit_thickness(**args)
         except InputError as exc:
             return None, None, exc
         try:

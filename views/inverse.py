@@ -29,6 +29,7 @@ from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 
 from . import render
 from .explorer import EXECUTOR, Field, _esc, _fmt, _label, _rgba, _stack_text, _footer
+from .limits import Limits, heavy_job
 from .state import THICKNESS_LIMITS_NM, compute_strip
 
 #: Longest side of a photo as shown on the page (pixels); the map itself is computed at full size.
@@ -272,12 +273,14 @@ class ColourToThickness:
 
     def load_photo(self, data: bytes, name: str = "photo") -> bool:
         """Read an uploaded photo; on a bad file say why and keep the previous photo."""
-        if len(data) > MAX_UPLOAD_BYTES:
-            self.photo_msg.show_error(f"{name} is {len(data) / 2**20:.0f} MB; the limit is "
-                                      f"{MAX_UPLOAD_BYTES / 2**20:.0f} MB.")
+        limits = Limits.from_env()
+        max_bytes = min(MAX_UPLOAD_BYTES, int(limits.max_upload_mb * 2**20))
+        if len(data) > max_bytes:
+            self.photo_msg.show_error(f"{_esc(name)} is {len(data) / 2**20:.0f} MB; this server accepts up to "
+                                      f"{max_bytes / 2**20:.0f} MB.")
             return False
         try:
-            photo = load_image(data)
+            photo = load_image(data, max_pixels=int(limits.max_photo_megapixels * 1e6))
         except InputError as exc:
             self.photo_msg.show_error(f"{_esc(name)}: {_esc(str(exc))}")
             return False
@@ -415,9 +418,12 @@ class ColourToThickness:
             else:
                 show()
 
+        session = str(id(self.ex))
+
         def work():
             try:
-                return thickness_map(progress=report, **args), None
+                with heavy_job("photo_map", self.photo.width * self.photo.height, session):
+                    return thickness_map(progress=report, **args), None
             except InputError as exc:
                 return None, str(exc)
 

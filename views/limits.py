@@ -5,7 +5,9 @@ environment variables before Panel starts, so every session of the same process 
 the same values through :meth:`Limits.from_env`. Running ``panel serve app.py``
 directly gives the defaults below.
 
-Which code should consult each limit (the views do not read them yet):
+Which code should consult each limit. Enforced so far: ``max_photo_megapixels`` and
+``max_upload_mb`` for photos, and ``max_jobs_server`` for photo maps and spectrum fits
+(:func:`heavy_job`, which also logs one line per heavy job); the rest is still to do.
 
 ``max_grid_points`` (``FRINGEGAUGE_MAX_GRID_POINTS``)
     ``views.explorer`` (``refresh``/``_compute`` for the thickness x angle map and strip),
@@ -79,3 +81,53 @@ class Limits:
             except ValueError:
                 raise ValueError(f"{name}={raw!r} is not a valid {kind.__name__}") from None
         return cls(**values)
+
+
+# ---------------------------------------------------------------------- heavy jobs
+import contextlib  # noqa: E402
+import logging  # noqa: E402
+import threading  # noqa: E402
+import time  # noqa: E402
+
+_log = logging.getLogger("fringegauge")
+_slots_lock = threading.Lock()
+_slots: threading.BoundedSemaphore | None = None
+_slots_size = 0
+
+
+def _server_slots(limits: Limits) -> threading.BoundedSemaphore:
+    global _slots, _slots_size
+    with _slots_lock:
+        if _slots is None or _slots_size != limits.max_jobs_server:
+            _slots, _slots_size = threading.BoundedSemaphore(limits.max_jobs_server), limits.max_jobs_server
+        return _slots
+
+
+@contextlib.contextmanager
+def heavy_job(kind: str, size: int, session: str = "", limits: Limits | None = None):
+    """Run one heavy job (a photo map, a fit) within the server-wide limit, and log one JSON-ready line.
+
+    Raises ``physics.InputError`` at once, with a sentence for the user, when ``max_jobs_server``
+    jobs are already running (nothing is queued behind them). The log line carries the session,
+    kind, size, duration and outcome, never uploaded content.
+    """
+    from physics import InputError
+
+    limits = limits or Limits.from_env()
+    slots = _server_slots(limits)
+    if not slots.acquire(blocking=False):
+        _log.info("heavy job refused", extra={"session": session, "kind": kind, "size": int(size),
+                                               "outcome": "busy"})
+        raise InputError(f"The server is busy with {limits.max_jobs_server} other heavy computation(s); "
+                         "try again in a moment.")
+    t0 = time.perf_counter()
+    outcome = "ok"
+    try:
+        yield
+    except Exception as exc:
+        outcome = "error" if isinstance(exc, ValueError) else "failed"
+        raise
+    finally:
+        slots.release()
+        _log.info("heavy job", extra={"session": session, "kind": kind, "size": int(size),
+                                      "duration_s": round(time.perf_counter() - t0, 3), "outcome": outcome})
