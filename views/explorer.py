@@ -24,7 +24,7 @@ from bokeh.events import Tap
 from bokeh.plotting import figure
 
 from physics import InputError, search_materials, list_materials
-from physics.stackfile import list_presets, load_stack_file, dump_stack_file
+from physics.stackfile import list_presets, load_stack_file
 
 from . import render
 from .state import (ANGLE_MAX_DEG, MAX_LAYERS, THICKNESS_LIMITS_NM, ExplorerState, compute_map, compute_point,
@@ -598,7 +598,7 @@ class FilmExplorer:
 
     # ------------------------------------------------------------------ downloads
     def _stack_file_bytes(self):
-        return io.StringIO(dump_stack_file_from_state(self.state))
+        return io.StringIO(self.state.file_text())
 
     def _spectrum_csv(self):
         s = self._snapshot()
@@ -686,12 +686,6 @@ class FilmExplorer:
 
 
 # ---------------------------------------------------------------------- helpers
-
-def dump_stack_file_from_state(s: ExplorerState) -> str:
-    d = s.to_file_dict()
-    return dump_stack_file(s.stack, name=d.get("name", "untitled stack"), scenario=d.get("scenario", ""),
-                           swept_layer=s.swept_layer, view=d.get("view"))
-
 
 def _spectrum_range(s: ExplorerState):
     lo, hi = s.stack.wavelength_range_nm()

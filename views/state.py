@@ -7,6 +7,7 @@ The state holds only valid values; a rejected input leaves it as it was.
 
 from __future__ import annotations
 
+import functools
 import json
 from dataclasses import dataclass
 
@@ -17,7 +18,8 @@ from physics import InputError, Layer, Stack, material
 from physics.appearance import (ColorMap, color_map, colour_band_nm, cone_reflectance, interference_order,
                                 order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
 from physics.color import srgb_to_hex, user_spd_on_fine_grid
-from physics.stackfile import StackFile, load_preset, load_stack_file, stack_from_dict, stack_to_dict
+from physics.stackfile import (StackFile, dump_stack_file, load_preset, load_stack_file, stack_from_dict,
+                               stack_to_dict)
 
 #: Map grid: at least 400 thicknesses x 91 angles (colour over 81 wavelengths, 380-780 nm at 5 nm).
 MAP_THICKNESS_POINTS = 400
@@ -56,8 +58,8 @@ class ExplorerState(param.Parameterized):
 
     # ------------------------------------------------------------------ stack
     def stack_file(self) -> StackFile:
-        """The stack as parsed from ``stack_json`` (raises InputError if malformed)."""
-        return load_stack_file(self.stack_json)
+        """The stack as parsed from ``stack_json`` (raises InputError if malformed); parsed once per text."""
+        return _parsed_stack_file(self.stack_json)
 
     @property
     def stack(self) -> Stack:
@@ -128,14 +130,14 @@ class ExplorerState(param.Parameterized):
     def load_preset(self, stem: str) -> None:
         self.load(load_preset(stem), stem)
 
-    def to_file_dict(self) -> dict:
-        """The stack with its current thickness and view, as a stack file dictionary."""
+    def file_text(self) -> str:
+        """The stack with its current thickness and view, as the text of a stack file."""
         sf = self.stack_file()
-        return stack_to_dict(self.stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
-                             view={"angle_deg": self.angle_deg, "polarization": self.polarization,
-                                   "illuminant": self.illuminant if self.illuminant != "custom" else "D65",
-                                   "observer": self.observer, "na": self.na,
-                                   "thickness_max_nm": self.thickness_max_nm})
+        return dump_stack_file(self.stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
+                               view={"angle_deg": self.angle_deg, "polarization": self.polarization,
+                                     "illuminant": self.illuminant if self.illuminant != "custom" else "D65",
+                                     "observer": self.observer, "na": self.na,
+                                     "thickness_max_nm": self.thickness_max_nm})
 
     # ------------------------------------------------------------------ light
     def illuminant_spec(self):
@@ -173,6 +175,11 @@ class ExplorerState(param.Parameterized):
         """Everything the colour map depends on (the current thickness and angle do not)."""
         return (self.stack_json, self.swept_layer, self.thickness_max_nm, self.polarization, self.illuminant,
                 self.spd_json if self.illuminant == "custom" else "", self.observer, self.na, self.brightness)
+
+
+@functools.lru_cache(maxsize=64)
+def _parsed_stack_file(stack_json: str) -> StackFile:
+    return load_stack_file(stack_json)
 
 
 def _compact(d: dict) -> str:

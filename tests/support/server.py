@@ -37,25 +37,36 @@ def served_app(extra_args=()):
         cwd=ROOT, stdout=log, stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"})
     url = f"http://127.0.0.1:{port}/app"
     try:
-        deadline = time.time() + START_TIMEOUT_S
-        while True:
-            try:
-                urllib.request.urlopen(url, timeout=5).read(100)
-                break
-            except Exception:
-                if proc.poll() is not None or time.time() > deadline:
-                    raise RuntimeError("the app did not start:\n" + log_path.read_text())
-                time.sleep(0.3)
+        wait_until_up(proc, url, log_path, "the app")
         yield url, log_path
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        stop(proc)
         log.close()
         with contextlib.suppress(OSError):
             log_path.unlink()
+
+
+def wait_until_up(proc, url, log_path, what, timeout_s=START_TIMEOUT_S):
+    """Poll ``url`` until it answers; raise with the server's output if it dies or times out."""
+    deadline = time.time() + timeout_s
+    while True:
+        try:
+            urllib.request.urlopen(url, timeout=5).read(100)
+            return
+        except Exception:
+            if proc.poll() is not None or time.time() > deadline:
+                raise RuntimeError(f"{what} did not start:\n" + log_path.read_text())
+            time.sleep(0.2)
+
+
+def stop(proc):
+    """Terminate a server process, killing it if it does not stop within 10 s."""
+    proc.terminate()
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait()
 
 
 DEEP_TEXT_JS = """
