@@ -26,7 +26,6 @@ ROOT = Path(__file__).resolve().parent
 APP_PATH = ROOT / "app.py"
 COOKIE_SECRET_ENV = "FRINGEGAUGE_COOKIE_SECRET"
 LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
-THREADS_ENV = "FRINGEGAUGE_THREADS"
 #: Shortest cookie secret accepted (characters).
 MIN_COOKIE_SECRET_CHARS = 32
 #: How often Panel looks for sessions whose browser has gone (ms).
@@ -37,7 +36,7 @@ DEFAULT_WS_MESSAGE_BYTES = 20 * 1024 * 1024
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from views.limits import Limits  # noqa: E402
+from views.limits import THREADS_ENV, Limits  # noqa: E402  (THREADS_ENV sizes the interactive threads)
 
 log = logging.getLogger("fringegauge")
 
@@ -119,7 +118,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="host[:port] browsers use to reach the page (repeatable); default HOST:PORT, "
                         "plus localhost:PORT on loopback or this machine's names on 0.0.0.0")
     p.add_argument("--threads", type=_int_in(1, 64), default=2,
-                   help="worker threads shared by all sessions for heavy computations")
+                   help="worker threads shared by all pages for quick work (spectra, strips, film and grating maps); photo maps and fits get their own --max-jobs-server threads")
     p.add_argument("--library", type=Path, default=Path("lab-library"),
                    help="folder for the shared library (created if missing; relative to the current directory)")
     p.add_argument("--basic-auth", metavar="PASSWORD_FILE", type=Path,
@@ -132,15 +131,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--idle-timeout-s", type=_positive_float, default=900.0,
                    help="seconds after the browser goes away before a session and its memory are freed")
     p.add_argument("--max-grid-points", type=_int_in(1), default=d.max_grid_points,
-                   help="largest number of grid points one computation may evaluate")
+                   help="largest number of grid points (positions x wavelengths) one computation may evaluate; the film map is coarsened to fit, other computations are refused with a message")
     p.add_argument("--max-photo-megapixels", type=_positive_float, default=d.max_photo_megapixels,
                    help="largest photo (megapixels) accepted for colour → thickness")
     p.add_argument("--max-upload-mb", type=_positive_float, default=d.max_upload_mb,
                    help="largest uploaded file (MB)")
     p.add_argument("--max-jobs-per-session", type=_int_in(1), default=d.max_jobs_per_session,
-                   help="heavy jobs one browser session may have queued or running at once")
+                   help="heavy jobs (photo maps, spectrum fits) one browser page may run at once")
     p.add_argument("--max-jobs-server", type=_int_in(1), default=d.max_jobs_server,
-                   help="heavy jobs queued or running across all sessions before users are told the server is busy")
+                   help="heavy jobs running across all pages (and threads for them) before users are told the server is busy")
     p.add_argument("--log-level", default="INFO", choices=["DEBUG", "INFO", "WARNING", "ERROR"],
                    help="level of the JSON log lines written to stderr")
     return p
@@ -265,17 +264,6 @@ def health_handler(started: float):
 
 # ---------------------------------------------------------------------------- start
 
-def size_executor(threads: int) -> None:
-    """Give the shared pool of heavy-work threads *threads* workers, before any session starts."""
-    from concurrent.futures import ThreadPoolExecutor
-
-    import views.explorer as explorer
-    if explorer.EXECUTOR._max_workers != threads:
-        old = explorer.EXECUTOR
-        explorer.EXECUTOR = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="fringegauge")
-        old.shutdown(wait=False)
-
-
 def main(argv=None) -> int:
     settings = parse_settings(argv)
     configure_logging(getattr(logging, settings.log_level))
@@ -287,7 +275,6 @@ def main(argv=None) -> int:
     import panel as pn
     from tornado.ioloop import IOLoop
 
-    size_executor(settings.threads)
     cookie_secret = settings.cookie_secret
     if settings.basic_auth and not cookie_secret:
         cookie_secret = secrets.token_urlsafe(32)

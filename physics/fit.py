@@ -394,7 +394,7 @@ def _local_minima(y):
 def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thickness_nm=(0, 3000),
                   angle_deg: float = 0.0, *, second_layer: int | None = None, second_thickness_nm=(0, 3000),
                   polarization: str = "unpolarized", free_scale: bool = False, free_offset: bool = False,
-                  wavelength_range_nm=None) -> FitResult:
+                  wavelength_range_nm=None, max_grid_points: int | None = None) -> FitResult:
     """Fit the thickness of one (or two) layers of ``stack`` to a measured reflectance spectrum.
 
     Parameters
@@ -408,6 +408,8 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
     polarization : {"s", "p", "unpolarized"}
     free_scale, free_offset : fit R_measured ≈ scale·R_model + offset (an imperfect reference, stray light)
     wavelength_range_nm : (lo, hi), optional  the part of the spectrum used
+    max_grid_points : int, optional  refuse (InputError) a scan whose model array, scan thicknesses x
+        wavelengths, would hold more points than this (a server's memory guard)
 
     Returns
     -------
@@ -426,6 +428,10 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
             raise InputError("The second unknown layer must differ from the first.")
         w2 = _window(second_thickness_nm, "second thickness window")
     grid1 = _scan_grid(stack, layer, w1, wl, angle, "thickness window")
+    if max_grid_points is not None and grid1.size * wl.size > max_grid_points:
+        raise InputError(f"The fit's scan needs {grid1.size:,} thicknesses x {wl.size:,} wavelengths = "
+                         f"{grid1.size * wl.size:,} grid points; this server allows {int(max_grid_points):,}. "
+                         "Narrow the thickness window or the wavelength range used.")
     if not two:
         model = sweep(stack, layer, grid1, [angle], wl, polarization)[:, 0, :]        # (T, W)
         s, o, ssr = _linear_fit(model, R, free_scale, free_offset)

@@ -49,6 +49,8 @@ MAX_INCIDENCE_DEG = 90.0
 _GRAZING_TOL = 1e-12
 #: Wavelength band summed for a grating's colour (CIE tables are significant here).
 COLOUR_BAND_NM = (380.0, 780.0)
+#: Wavelengths at which a grating colour is evaluated (1 nm steps across COLOUR_BAND_NM).
+COLOUR_BAND_SAMPLES = int(COLOUR_BAND_NM[1] - COLOUR_BAND_NM[0]) + 1
 #: Pixels per resolution element assumed when a spectrometer's resolution is quoted (Nyquist-type
 #: sampling of the slit image, common practice).
 PIXELS_PER_RESOLUTION_ELEMENT = 3.0

@@ -69,7 +69,7 @@ def test_help_lists_every_option(tmp_path):
     for option in OPTIONS:
         assert option in result.stdout, option
     assert "0.0.0.0 to serve the lab network" in result.stdout
-    assert "5006" in result.stdout and "900" in result.stdout and "5000000" in result.stdout
+    assert "5006" in result.stdout and "900" in result.stdout and "20000000" in result.stdout
     assert not (tmp_path / "lab-library").exists()
 
 

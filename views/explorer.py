@@ -13,7 +13,6 @@ import io
 import json
 import logging
 import threading
-from concurrent.futures import ThreadPoolExecutor
 from datetime import date
 from functools import partial
 
@@ -24,11 +23,13 @@ from bokeh.events import Tap
 from bokeh.plotting import figure
 
 from physics import InputError, search_materials, list_materials
-from physics.stackfile import list_presets, load_stack_file
+from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
-from .state import (ANGLE_MAX_DEG, MAX_LAYERS, THICKNESS_LIMITS_NM, ExplorerState, compute_map, compute_point,
-                    compute_strip, default_state, parse_material, parse_number, parse_spd_csv)
+from .limits import Limits, interactive_executor, logged_job, post_to_page, session_key, upload_refusal
+from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
+                    ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
+                    parse_number, parse_spd_csv, MAX_SPD_BYTES)
 
 log = logging.getLogger("fringegauge")
 
@@ -36,8 +37,6 @@ log = logging.getLogger("fringegauge")
 SLIDER_DIGITS = 6
 #: Wavelength step of the plotted spectrum (nm); the CSV download uses 1 nm.
 SPECTRUM_STEP_NM = 2.0
-#: Threads shared by all sessions for heavy work (2-core machines: two workers).
-EXECUTOR = ThreadPoolExecutor(max_workers=2, thread_name_prefix="fringegauge")
 
 CAUTIONS = (
     "**Cautions.** Computed colours are estimates, not certified metrology: confirm thickness "
@@ -331,6 +330,9 @@ class FilmExplorer:
             return
 
         def load():
+            refusal = upload_refusal(self.file_in.filename or "The stack file", len(event.new), MAX_STACK_FILE_BYTES)
+            if refusal:
+                raise InputError(refusal)
             sf = load_stack_file(event.new)
             self.state.load(sf, self.file_in.filename or sf.name)
         if self._guard(self.file_msg, load):
@@ -463,7 +465,13 @@ class FilmExplorer:
     def _on_spd(self, event):
         if not event.new:
             return
-        self._guard(self.spd_msg, lambda: self.state.set_spd(*parse_spd_csv(event.new)))
+
+        def load():
+            refusal = upload_refusal(self.spd_in.filename or "The lamp spectrum file", len(event.new), MAX_SPD_BYTES)
+            if refusal:
+                raise InputError(refusal)
+            self.state.set_spd(*parse_spd_csv(event.new))
+        self._guard(self.spd_msg, load)
 
     def _on_map_tap(self, event):
         if event.x is None or event.y is None:
@@ -512,16 +520,18 @@ class FilmExplorer:
     async def _worker(self):
         loop = asyncio.get_running_loop()
         doc = pn.state.curdoc
+        session = session_key(self)
         try:
             while True:
                 with self._lock:
                     todo, self._dirty = self._dirty, set()
-                    if not todo:
+                    if not todo or doc.session_context is None:     # done, or the page has gone
                         self._running = False
-                        break
+                        return
                 snap = self._snapshot()
-                result = await loop.run_in_executor(EXECUTOR, self._compute, snap, todo, self._scale)
-                doc.add_next_tick_callback(partial(self._apply, result))
+                result = await loop.run_in_executor(interactive_executor(), self._compute, snap, todo, self._scale,
+                                                    session)
+                post_to_page(doc, partial(self._apply, result))
         except Exception:  # never lose the session to one failed computation
             log.exception("film explorer computation failed")
             with self._lock:
@@ -531,11 +541,12 @@ class FilmExplorer:
         return ExplorerState(**{k: v for k, v in self.state.param.values().items() if k != "name"})
 
     @staticmethod
-    def _compute(s: ExplorerState, kinds, scale):
+    def _compute(s: ExplorerState, kinds, scale, session: str = ""):
         out = {"kinds": kinds, "state": s, "error": None}
         try:
             if "map" in kinds:
-                out["map"] = compute_map(s)
+                with logged_job("colour_map", MAP_THICKNESS_POINTS * MAP_ANGLE_POINTS, session):
+                    out["map"] = compute_map(s, Limits.from_env().max_grid_points)
                 scale = out["map"].scale
             out["scale"] = scale
             if "strip" in kinds:

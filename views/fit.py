@@ -13,6 +13,7 @@ from __future__ import annotations
 import asyncio
 import io
 import json
+import logging
 import math
 from datetime import date
 from functools import partial
@@ -25,10 +26,12 @@ from bokeh.plotting import figure
 from physics import InputError, Stack, fit_thickness, optical_thickness_fft, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
 
-from .limits import heavy_job
-from .explorer import EXECUTOR, Field, _esc, _fmt, _label
+from .limits import Limits, heavy_executor, heavy_job, post_to_page, session_key, upload_refusal
+from .explorer import Field, _esc, _fmt, _label
 from .inverse import _locked
 from .state import THICKNESS_LIMITS_NM, parse_number
+
+log = logging.getLogger("fringegauge")
 
 #: Largest spectrum file accepted through the page (bytes).
 MAX_UPLOAD_BYTES = 20_000_000
@@ -210,9 +213,9 @@ class SpectrumFitSection:
         if role not in FILE_ROLES:
             raise ValueError(role)
         name = name or f"{role}.csv"
-        if len(data) > MAX_UPLOAD_BYTES:
-            self.file_msg[role].show_error(f"{_esc(name)} is {len(data) / 1e6:.0f} MB; the limit is "
-                                           f"{MAX_UPLOAD_BYTES / 1e6:.0f} MB. Export just two columns.")
+        refusal = upload_refusal(name, len(data), MAX_UPLOAD_BYTES, "Export just two columns.")
+        if refusal:
+            self.file_msg[role].show_error(_esc(refusal))
             return False
         previous = self.files.get(role)
         self.files[role] = (name, bytes(data))
@@ -414,22 +417,34 @@ class SpectrumFitSection:
         doc = pn.state.curdoc
         served = doc is not None and doc.session_context is not None
         if sync or not served:
-            self._finish(job, args, info, *self._work(args))
+            try:
+                with heavy_job("spectrum_fit", len(args["wavelength_nm"]), session_key(self.ex)):
+                    out = self._work(args)
+            except InputError as exc:
+                out = None, None, exc
+            self._finish(job, args, info, *out)
             return True
         self.status.object = "fitting…"
         self.fit_button.disabled = True
+        session = session_key(self.ex)
 
         async def run():
-            out = await asyncio.get_running_loop().run_in_executor(EXECUTOR, self._work, args)
-            doc.add_next_tick_callback(partial(self._finish, job, args, info, *out))
+            try:
+                with heavy_job("spectrum_fit", len(args["wavelength_nm"]), session):
+                    out = await asyncio.get_running_loop().run_in_executor(heavy_executor(), self._work, args)
+            except InputError as exc:
+                out = None, None, exc
+            except Exception:  # never lose the session to one failed computation
+                log.exception("spectrum fit failed")
+                out = None, None, InputError("The fit failed unexpectedly; the server log has the details.")
+            post_to_page(doc, partial(self._finish, job, args, info, *out))
         pn.state.execute(run)
         return True
 
     @staticmethod
     def _work(args):
         try:
-            with heavy_job("spectrum_fit", len(args["wavelength_nm"])):
-                result = fit_thickness(**args)
+            result = fit_thickness(**args, max_grid_points=Limits.from_env().max_grid_points)
         except InputError as exc:
             return None, None, exc
         try:

@@ -33,8 +33,9 @@ from physics.color import spectrum_to_xyz, srgb_to_hex, srgb_to_xyz, xyz_to_srgb
 from physics.gratingfile import LIMITS, GratingFile, list_grating_presets, load_grating_preset
 
 from . import render
-from .explorer import EXECUTOR, Field, _esc, _fmt, _label, _rgba
+from .explorer import Field, _esc, _fmt, _label, _rgba
 from .inverse import _locked
+from .limits import check_grid_points, interactive_executor, post_to_page
 from .state import parse_number
 
 log = logging.getLogger("fringegauge")
@@ -318,6 +319,7 @@ def compute_strip(s: GratingSettings) -> dict:
 
 def compute_colour_map(s: GratingSettings) -> dict:
     """Colours over (groove density, viewing angle) for the current incidence, grooves and lamp."""
+    check_grid_points("grating colour map", VIEW_DEG.size * MAP_DENSITIES.size * gr.COLOUR_BAND_SAMPLES)
     return gr.grating_color_map(VIEW_DEG, MAP_DENSITIES, s.incidence_deg, s.illuminant, normalize=s.brightness,
                                 **s.groove_kw())
 
@@ -932,17 +934,24 @@ class GratingSection:
         doc = pn.state.curdoc
         served = doc is not None and doc.session_context is not None
         if sync or not served:
-            self._apply_map(job, key, s, _timed(compute_colour_map, s))
+            try:
+                result = _timed(compute_colour_map, s)
+            except InputError as exc:                  # over the server's grid limit
+                result = exc
+            self._apply_map(job, key, s, result)
             return
         self.map_status.object = "computing the colour map…"
 
         async def run():
             try:
-                result = await asyncio.get_running_loop().run_in_executor(EXECUTOR, _timed, compute_colour_map, s)
+                result = await asyncio.get_running_loop().run_in_executor(interactive_executor(), _timed,
+                                                                          compute_colour_map, s)
+            except InputError as exc:                  # over the server's grid limit
+                result = exc
             except Exception as exc:  # never lose the session to one failed computation
                 log.exception("grating colour map failed")
                 result = exc
-            doc.add_next_tick_callback(partial(self._apply_map, job, key, s, result))
+            post_to_page(doc, partial(self._apply_map, job, key, s, result))
         pn.state.execute(run)
 
     def _apply_map(self, job, key, s, result):

@@ -12,6 +12,7 @@ import asyncio
 import csv
 import io
 import json
+import logging
 from datetime import date
 from functools import partial
 
@@ -28,9 +29,12 @@ from physics.imageio import box_mean_linear, load_image
 from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 
 from . import render
-from .explorer import EXECUTOR, Field, _esc, _fmt, _label, _rgba, _stack_text, _footer
-from .limits import Limits, heavy_job
+from .explorer import Field, _esc, _fmt, _label, _rgba, _stack_text, _footer
+from .limits import (JobCancelled, Limits, heavy_executor, heavy_job, post_to_page,
+                     session_key, upload_refusal)
 from .state import THICKNESS_LIMITS_NM, compute_strip
+
+log = logging.getLogger("fringegauge")
 
 #: Longest side of a photo as shown on the page (pixels); the map itself is computed at full size.
 DISPLAY_MAX_SIDE = 900
@@ -88,7 +92,7 @@ class ColourToThickness:
         # photo
         self.dropper = pn.widgets.FileDropper(accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif",
                                                                   ".tiff", ".jpg", ".jpeg", ".png"],
-                                              max_file_size="200MB", multiple=False, height=110,
+                                              max_file_size=f"{_dropper_mb()}MB", multiple=False, height=110,
                                               sizing_mode="stretch_width", margin=(2, 5),
                                               css_classes=["fg-photo-drop"])
         self.photo_msg = Field("")
@@ -274,10 +278,9 @@ class ColourToThickness:
     def load_photo(self, data: bytes, name: str = "photo") -> bool:
         """Read an uploaded photo; on a bad file say why and keep the previous photo."""
         limits = Limits.from_env()
-        max_bytes = min(MAX_UPLOAD_BYTES, int(limits.max_upload_mb * 2**20))
-        if len(data) > max_bytes:
-            self.photo_msg.show_error(f"{_esc(name)} is {len(data) / 2**20:.0f} MB; this server accepts up to "
-                                      f"{max_bytes / 2**20:.0f} MB.")
+        refusal = upload_refusal(name, len(data), MAX_UPLOAD_BYTES, limits=limits)
+        if refusal:
+            self.photo_msg.show_error(_esc(refusal))
             return False
         try:
             photo = load_image(data, max_pixels=int(limits.max_photo_megapixels * 1e6))
@@ -409,31 +412,45 @@ class ColourToThickness:
         served = doc is not None and doc.session_context is not None
 
         def report(fraction, text):
+            if job != self._job or (served and doc.session_context is None):
+                raise JobCancelled()                  # superseded, or the page has gone: stop early
             def show():
                 if job == self._job:
                     self.progress.value = int(100 * fraction)
                     self.progress_text.object = text
             if served:
-                doc.add_next_tick_callback(show)
+                post_to_page(doc, show)
             else:
                 show()
 
-        session = str(id(self.ex))
-
         def work():
             try:
-                with heavy_job("photo_map", self.photo.width * self.photo.height, session):
-                    return thickness_map(progress=report, **args), None
+                return thickness_map(progress=report, **args), None
             except InputError as exc:
                 return None, str(exc)
 
+        size = self.photo.width * self.photo.height
+        session = session_key(self.ex)
         if sync or not served:
-            self._finish_map(job, s, *work())
+            try:
+                with heavy_job("photo_map", size, session):
+                    self._finish_map(job, s, *work())
+            except InputError as exc:
+                self._finish_map(job, s, None, str(exc))
             return
 
         async def run():
-            result = await asyncio.get_running_loop().run_in_executor(EXECUTOR, work)
-            doc.add_next_tick_callback(partial(self._finish_map, job, s, *result))
+            try:
+                with heavy_job("photo_map", size, session):
+                    result = await asyncio.get_running_loop().run_in_executor(heavy_executor(), work)
+            except InputError as exc:
+                result = None, str(exc)
+            except JobCancelled:
+                return
+            except Exception:  # never lose the session to one failed computation
+                log.exception("photo thickness map failed")
+                result = None, "The thickness map failed unexpectedly; the server log has the details."
+            post_to_page(doc, partial(self._finish_map, job, s, *result))
         pn.state.execute(run)
 
     def _finish_map(self, job, s, result, error):
@@ -536,6 +553,11 @@ class ColourToThickness:
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
+
+
+def _dropper_mb() -> int:
+    """The photo drop zone's own size check (MB), so an over-large photo is stopped in the browser."""
+    return max(1, int(min(MAX_UPLOAD_BYTES, Limits.from_env().max_upload_mb * 2**20) // 2**20))
 
 
 def _locked(fn):

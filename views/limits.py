@@ -5,9 +5,7 @@ environment variables before Panel starts, so every session of the same process 
 the same values through :meth:`Limits.from_env`. Running ``panel serve app.py``
 directly gives the defaults below.
 
-Which code should consult each limit. Enforced so far: ``max_photo_megapixels`` and
-``max_upload_mb`` for photos, and ``max_jobs_server`` for photo maps and spectrum fits
-(:func:`heavy_job`, which also logs one line per heavy job); the rest is still to do.
+Where each limit is enforced:
 
 ``max_grid_points`` (``FRINGEGAUGE_MAX_GRID_POINTS``)
     ``views.explorer`` (``refresh``/``_compute`` for the thickness x angle map and strip),
@@ -42,7 +40,8 @@ ENV_PREFIX = "FRINGEGAUGE_"
 class Limits:
     """Safe defaults for one lab server (2 cores, a few simultaneous users)."""
 
-    max_grid_points: int = 5_000_000
+    #: positions x wavelengths of one computation: the film map is 2.95 M, the grating map 14.9 M
+    max_grid_points: int = 20_000_000
     max_photo_megapixels: float = 50.0
     max_upload_mb: float = 200.0
     max_jobs_per_session: int = 1
@@ -88,46 +87,161 @@ import contextlib  # noqa: E402
 import logging  # noqa: E402
 import threading  # noqa: E402
 import time  # noqa: E402
+from concurrent.futures import ThreadPoolExecutor  # noqa: E402
 
 _log = logging.getLogger("fringegauge")
-_slots_lock = threading.Lock()
-_slots: threading.BoundedSemaphore | None = None
-_slots_size = 0
+#: Set by ``serve.py --threads``: worker threads for the interactive work of every session.
+THREADS_ENV = ENV_PREFIX + "THREADS"
+DEFAULT_THREADS = 2
+_guard = threading.Lock()
+_server_running: list = []                  # kinds of the heavy jobs running now, server-wide
+_session_running: dict = {}                 # session key -> kinds running for that page
+_pools: dict = {}
 
 
-def _server_slots(limits: Limits) -> threading.BoundedSemaphore:
-    global _slots, _slots_size
-    with _slots_lock:
-        if _slots is None or _slots_size != limits.max_jobs_server:
-            _slots, _slots_size = threading.BoundedSemaphore(limits.max_jobs_server), limits.max_jobs_server
-        return _slots
+def _pool(name: str, workers: int) -> ThreadPoolExecutor:
+    with _guard:
+        pool = _pools.get(name)
+        if pool is None or pool._max_workers != workers:
+            if pool is not None:
+                pool.shutdown(wait=False)
+            pool = _pools[name] = ThreadPoolExecutor(max_workers=workers, thread_name_prefix=f"fringegauge-{name}")
+        return pool
+
+
+def interactive_executor() -> ThreadPoolExecutor:
+    """Threads for the quick, per-input work of every session (spectra, strips, colour maps, searches).
+
+    Separate from :func:`heavy_executor`, so a photo map or a fit never queues in front of anybody's slider.
+    Sized by ``FRINGEGAUGE_THREADS`` (``serve.py --threads``), default 2.
+    """
+    raw = os.environ.get(THREADS_ENV, "").strip()
+    try:
+        workers = max(1, int(raw)) if raw else DEFAULT_THREADS
+    except ValueError:
+        workers = DEFAULT_THREADS
+    return _pool("interactive", workers)
+
+
+def heavy_executor(limits: Limits | None = None) -> ThreadPoolExecutor:
+    """Threads for heavy jobs (photo maps, fits): exactly ``max_jobs_server`` of them."""
+    limits = limits or Limits.from_env()
+    return _pool("heavy", limits.max_jobs_server)
+
+
+def session_key(fallback: object = None) -> str:
+    """A short key for the current page session (its Bokeh session id), or ``id(fallback)`` outside a server."""
+    try:
+        import panel as pn
+        ctx = pn.state.curdoc.session_context if pn.state.curdoc is not None else None
+        if ctx is not None:
+            return str(ctx.id)
+    except Exception:  # pragma: no cover - no Panel state at all
+        pass
+    return f"local-{id(fallback):x}"
+
+
+def running_jobs() -> dict:
+    """What is running now: ``{"server": [...kinds], "sessions": {key: [...kinds]}}`` (for /health and tests)."""
+    with _guard:
+        return {"server": list(_server_running), "sessions": {k: list(v) for k, v in _session_running.items()}}
 
 
 @contextlib.contextmanager
 def heavy_job(kind: str, size: int, session: str = "", limits: Limits | None = None):
-    """Run one heavy job (a photo map, a fit) within the server-wide limit, and log one JSON-ready line.
+    """Hold one of the heavy-job places (per page and per server) for a photo map or a fit, and log it.
 
-    Raises ``physics.InputError`` at once, with a sentence for the user, when ``max_jobs_server``
-    jobs are already running (nothing is queued behind them). The log line carries the session,
+    Enter it on the event loop *before* handing the work to :func:`heavy_executor` and leave it when
+    the work is done, so nothing queues: a request over a limit is refused at once with a sentence for
+    the user (``physics.InputError``). ``max_jobs_per_session`` counts jobs of one page (``session``);
+    ``max_jobs_server`` counts jobs of all pages. One JSON-ready log line per job carries the session,
     kind, size, duration and outcome, never uploaded content.
     """
     from physics import InputError
 
     limits = limits or Limits.from_env()
-    slots = _server_slots(limits)
-    if not slots.acquire(blocking=False):
-        _log.info("heavy job refused", extra={"session": session, "kind": kind, "size": int(size),
-                                               "outcome": "busy"})
-        raise InputError(f"The server is busy with {limits.max_jobs_server} other heavy computation(s); "
-                         "try again in a moment.")
+    info = {"session": session, "kind": kind, "size": int(size)}
+    with _guard:
+        mine = _session_running.setdefault(session, [])
+        if len(mine) >= limits.max_jobs_per_session:
+            busy = ", ".join(k.replace("_", " ") for k in mine)
+            refusal = (f"This page is still running a {busy}; this server runs at most "
+                       f"{limits.max_jobs_per_session} heavy computation(s) per page at once. "
+                       "Wait for it to finish, then try again.")
+        elif len(_server_running) >= limits.max_jobs_server:
+            refusal = (f"The server is busy with {limits.max_jobs_server} other heavy computation(s); "
+                       "try again in a moment.")
+        else:
+            refusal = None
+            mine.append(kind)
+            _server_running.append(kind)
+        if refusal and not mine:
+            del _session_running[session]
+    if refusal:
+        _log.info("heavy job refused", extra={**info, "outcome": "busy"})
+        raise InputError(refusal)
+    try:
+        with logged_job(kind, size, session):
+            yield
+    finally:
+        with _guard:
+            _server_running.remove(kind)
+            mine.remove(kind)
+            if not mine:
+                _session_running.pop(session, None)
+
+
+@contextlib.contextmanager
+def logged_job(kind: str, size: int, session: str = ""):
+    """Log one JSON-ready line for a job (session, kind, size, duration, outcome) when it ends.
+
+    Used alone for the page's quick maps, which no limit holds back, and inside :func:`heavy_job`.
+    """
+    info = {"session": session, "kind": kind, "size": int(size)}
     t0 = time.perf_counter()
     outcome = "ok"
     try:
         yield
-    except Exception as exc:
-        outcome = "error" if isinstance(exc, ValueError) else "failed"
+    except BaseException as exc:
+        outcome = ("error" if isinstance(exc, ValueError) else
+                   "cancelled" if isinstance(exc, JobCancelled) else "failed")
         raise
     finally:
-        slots.release()
-        _log.info("heavy job", extra={"session": session, "kind": kind, "size": int(size),
-                                      "duration_s": round(time.perf_counter() - t0, 3), "outcome": outcome})
+        _log.info("heavy job", extra={**info, "duration_s": round(time.perf_counter() - t0, 3), "outcome": outcome})
+
+
+class JobCancelled(Exception):
+    """Raised inside a heavy job whose page has gone or whose request was superseded."""
+
+
+def check_grid_points(what: str, points: int, limits: Limits | None = None) -> None:
+    """Refuse a computation of more than ``max_grid_points`` grid points with a sentence saying what to change."""
+    from physics import InputError
+
+    limits = limits or Limits.from_env()
+    if points > limits.max_grid_points:
+        raise InputError(f"The {what} needs {points:,} grid points; this server allows "
+                         f"{limits.max_grid_points:,} per computation. Narrow the range or use fewer points, "
+                         "or ask whoever runs the server to raise --max-grid-points.")
+
+
+def upload_refusal(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "",
+                   limits: Limits | None = None) -> str | None:
+    """A sentence refusing an upload larger than this kind's cap or the server's ``max_upload_mb``, else None."""
+    limits = limits or Limits.from_env()
+    cap = min(int(kind_cap_bytes), int(limits.max_upload_mb * 2**20))
+    if n_bytes <= cap:
+        return None
+    return (f"{name} is {n_bytes / 2**20:.1f} MB; this server accepts up to {cap / 2**20:.1f} MB for it."
+            + (f" {advice}" if advice else ""))
+
+
+def post_to_page(doc, callback) -> bool:
+    """Schedule ``callback`` on the page's next tick; False (and nothing done) if the page has gone."""
+    if doc is None or doc.session_context is None:
+        return False
+    try:
+        doc.add_next_tick_callback(callback)
+        return True
+    except Exception:                            # the session was destroyed meanwhile
+        return False

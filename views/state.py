@@ -205,14 +205,41 @@ class PointResult:
     opd_waves: float
 
 
-def compute_map(s: ExplorerState) -> ColorMap:
-    """The colour map over (thickness, angle) for the swept layer."""
+def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMap:
+    """The colour map over (thickness, angle) for the swept layer.
+
+    With ``max_grid_points`` (a server's limit on thickness x angle x wavelength points), a grid
+    that would exceed it is made coarser on both axes by one factor (at least 16 points each);
+    the returned map's ``thickness_nm`` and ``angle_deg`` say what was computed.
+    """
     stack = s.stack
     if not stack.layers:
         raise InputError("Add a layer to see how its colour changes with thickness.")
-    return color_map(stack, s.swept_layer, s.thickness_grid(), s.angle_grid(),
+    d, a = s.thickness_grid(), s.angle_grid()
+    if max_grid_points is not None:
+        wl = colour_band_nm(stack)
+        nd, na = map_grid_counts(d.size, a.size, wl.size, max_grid_points)
+        if nd * na * wl.size > max_grid_points:
+            raise InputError(f"Even a {nd} x {na} colour map needs {nd * na * wl.size:,} grid points; this "
+                             f"server allows {int(max_grid_points):,}. Ask whoever runs it to raise --max-grid-points.")
+        d = np.linspace(0.0, s.thickness_max_nm, nd)
+        a = np.linspace(0.0, ANGLE_MAX_DEG, na)
+    return color_map(stack, s.swept_layer, d, a,
                      illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.polarization,
                      na=s.na, brightness=s.brightness)
+
+
+#: Fewest thickness or angle samples a coarsened colour map keeps.
+MIN_MAP_POINTS = 16
+
+
+def map_grid_counts(n_thickness: int, n_angle: int, n_wavelength: int, max_grid_points: int) -> tuple:
+    """(thickness, angle) counts, shrunk by one common factor so the map fits ``max_grid_points``."""
+    total = n_thickness * n_angle * n_wavelength
+    if total <= max_grid_points:
+        return n_thickness, n_angle
+    f = (max_grid_points / total) ** 0.5
+    return max(MIN_MAP_POINTS, int(n_thickness * f)), max(MIN_MAP_POINTS, int(n_angle * f))
 
 
 def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=None) -> PointResult:
@@ -282,9 +309,13 @@ def parse_material(text: str):
     return spec if isinstance(spec, (dict, str)) else text
 
 
+#: Largest lamp spectrum file accepted (bytes): a 1 nm table with comments is a few kB.
+MAX_SPD_BYTES = 2_000_000
+
+
 def parse_spd_csv(content: bytes) -> tuple[np.ndarray, np.ndarray]:
     """A lamp spectrum file: two numeric columns, wavelength (nm) and relative power."""
-    if len(content) > 2_000_000:
+    if len(content) > MAX_SPD_BYTES:
         raise InputError("The lamp spectrum file is larger than 2 MB; give a CSV of two columns, nm and power.")
     try:
         text = content.decode("utf-8-sig")

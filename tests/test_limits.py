@@ -1,0 +1,150 @@
+"""The server's named limits (views/limits.py) as the page meets them, without a browser."""
+
+import json
+import logging
+import threading
+
+import numpy as np
+import pytest
+
+from physics import InputError
+from views import limits as L
+from views.explorer import FilmExplorer
+from views.fit import SpectrumFitSection
+from views.grating import GratingSection
+from views.state import MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, compute_map, map_grid_counts
+
+WL = np.linspace(400.0, 1000.0, 250)
+
+
+def _hold(kind, session, limits):
+    """Run a heavy job in another thread until released; returns (release event, thread)."""
+    release, entered = threading.Event(), threading.Event()
+
+    def hold():
+        with L.heavy_job(kind, 1, session, limits):
+            entered.set()
+            release.wait(10)
+    t = threading.Thread(target=hold)
+    t.start()
+    assert entered.wait(10)
+    return release, t
+
+
+def test_one_heavy_job_per_page_by_default_and_others_still_run():
+    limits = L.Limits(max_jobs_per_session=1, max_jobs_server=3)
+    release, t = _hold("photo_map", "page-a", limits)
+    try:
+        with pytest.raises(InputError, match="still running a photo map"):
+            with L.heavy_job("spectrum_fit", 1, "page-a", limits):
+                pass
+        with L.heavy_job("spectrum_fit", 1, "page-b", limits):        # another page is not held back
+            assert sorted(L.running_jobs()["server"]) == ["photo_map", "spectrum_fit"]
+    finally:
+        release.set()
+        t.join()
+    assert L.running_jobs() == {"server": [], "sessions": {}}
+
+
+def test_server_limit_refuses_at_once_and_frees_its_place_after_errors():
+    limits = L.Limits(max_jobs_per_session=2, max_jobs_server=1)
+    release, t = _hold("photo_map", "page-a", limits)
+    try:
+        with pytest.raises(InputError, match="server is busy"):
+            with L.heavy_job("spectrum_fit", 1, "page-b", limits):
+                pass
+    finally:
+        release.set()
+        t.join()
+    with pytest.raises(ValueError):
+        with L.heavy_job("spectrum_fit", 1, "page-b", limits):
+            raise ValueError("bad input inside the job")
+    assert L.running_jobs() == {"server": [], "sessions": {}}
+
+
+def test_each_heavy_job_logs_one_line_without_content(caplog):
+    with caplog.at_level(logging.INFO, logger="fringegauge"):
+        with L.heavy_job("spectrum_fit", 250, "page-a", L.Limits()):
+            pass
+    rec = [r for r in caplog.records if r.getMessage() == "heavy job"]
+    assert len(rec) == 1
+    r = rec[0]
+    assert (r.session, r.kind, r.size, r.outcome) == ("page-a", "spectrum_fit", 250, "ok")
+    assert r.duration_s >= 0
+    json.dumps({k: getattr(r, k) for k in ("session", "kind", "size", "duration_s", "outcome")})
+
+
+def test_fit_refused_by_its_own_page_while_a_photo_map_runs():
+    section = SpectrumFitSection(FilmExplorer())
+    R = section.ex.state.stack.with_thickness(0, 650.0).reflectance(WL)
+    text = ("wavelength_nm,reflectance\n" + "\n".join(f"{a:.3f},{b:.6f}" for a, b in zip(WL, R))).encode()
+    assert section.load_file("sample", text, "wafer.csv")
+    release, t = _hold("photo_map", L.session_key(section.ex), L.Limits.from_env())
+    try:
+        section.run_fit(sync=True)
+        assert section.result is None
+        assert "still running a photo map" in section.fit_msg.message.object
+    finally:
+        release.set()
+        t.join()
+    section.run_fit(sync=True)
+    assert section.result is not None and abs(section.result.thickness_nm - 650) < 1
+
+
+def test_fit_over_the_grid_limit_is_refused_with_what_to_change(monkeypatch):
+    section = SpectrumFitSection(FilmExplorer())
+    R = section.ex.state.stack.with_thickness(0, 650.0).reflectance(WL)
+    text = ("wavelength_nm,reflectance\n" + "\n".join(f"{a:.3f},{b:.6f}" for a, b in zip(WL, R))).encode()
+    assert section.load_file("sample", text, "wafer.csv")
+    monkeypatch.setenv("FRINGEGAUGE_MAX_GRID_POINTS", "10000")
+    section.run_fit(sync=True)
+    assert section.result is None
+    shown = section.win_hi.message.object + section.fit_msg.message.object
+    assert "grid points" in shown and "10,000" in shown and "Narrow" in shown
+
+
+def test_film_map_is_coarsened_to_fit_the_grid_limit():
+    s = FilmExplorer().state
+    full = compute_map(s, L.Limits().max_grid_points)
+    assert (full.thickness_nm.size, full.angle_deg.size) == (MAP_THICKNESS_POINTS, MAP_ANGLE_POINTS)
+    n_wl = full.wavelength_nm.size
+    limit = MAP_THICKNESS_POINTS * MAP_ANGLE_POINTS * n_wl // 4
+    small = compute_map(s, limit)
+    assert small.thickness_nm.size * small.angle_deg.size * n_wl <= limit
+    assert small.thickness_nm.size == 200 and small.angle_deg.size == 45
+    assert small.thickness_nm[-1] == full.thickness_nm[-1] and small.angle_deg[-1] == full.angle_deg[-1]
+    with pytest.raises(InputError, match="grid points"):
+        compute_map(s, 1000)
+    assert map_grid_counts(400, 91, 81, 10**9) == (400, 91)
+
+
+def test_film_map_limit_in_the_page_keeps_the_spectrum_working(monkeypatch):
+    ex = FilmExplorer()
+    monkeypatch.setenv("FRINGEGAUGE_MAX_GRID_POINTS", "1000")
+    ex.state.thickness_max_nm = 900.0
+    ex.refresh({"map", "point"}, sync=True)
+    assert ex.error.visible and "grid points" in ex.error.object
+
+
+def test_grating_map_over_the_grid_limit_says_so(monkeypatch):
+    monkeypatch.setenv("FRINGEGAUGE_MAX_GRID_POINTS", "1000")
+    g = GratingSection()
+    assert "grid points" in g.map_status.object
+
+
+def test_executors_are_separate_and_sized_from_settings(monkeypatch):
+    monkeypatch.setenv(L.THREADS_ENV, "3")
+    monkeypatch.setenv("FRINGEGAUGE_MAX_JOBS_SERVER", "1")
+    assert L.interactive_executor()._max_workers == 3
+    assert L.heavy_executor()._max_workers == 1
+    assert L.interactive_executor() is not L.heavy_executor()
+    monkeypatch.delenv(L.THREADS_ENV)
+    monkeypatch.delenv("FRINGEGAUGE_MAX_JOBS_SERVER")
+    assert L.interactive_executor()._max_workers == L.DEFAULT_THREADS
+
+
+def test_post_to_page_after_the_page_has_gone():
+    class Gone:
+        session_context = None
+    assert not L.post_to_page(Gone(), lambda: None)
+    assert not L.post_to_page(None, lambda: None)
