@@ -6,6 +6,7 @@ from views.explorer import FilmExplorer
 from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness
+from views.library import LibrarySection
 from views.urlstate import apply_query, state_to_query
 
 pn.extension("filedropper", design="native", notifications=False)
@@ -28,10 +29,13 @@ def page():
         pn.state.onload(write_address)
     inverse = ColourToThickness(explorer)
     fit = SpectrumFitSection(explorer)
+    gratings = GratingSection()
+    library = LibrarySection(explorer, inverse, gratings)
     return explorer.panel(extra_tabs=[("Colour → thickness", inverse.panel()),
                                       ("Spectrum → thickness", fit.panel()),
-                                      ("Gratings", GratingSection().panel())],
-                          without_stack={"Gratings"})
+                                      ("Gratings", gratings.panel()),
+                                      ("Lab library", library.panel())],
+                          without_stack={"Gratings", "Lab library"}, on_show={"Lab library": library.refresh})
 
 
 page().servable(title="fringegauge")

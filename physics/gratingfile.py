@@ -32,6 +32,7 @@ field (e.g. ``band_nm[1]``) and says what is allowed.
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -39,7 +40,7 @@ from .errors import InputError
 from .stackfile import (_check_fields, _describe, _fail, _got, _number, _string, load_shipped,
                         read_json_document)
 
-__all__ = ["GratingFile", "grating_from_dict", "load_grating_file", "load_grating_preset",
+__all__ = ["GratingFile", "grating_from_dict", "load_grating_file", "load_grating_preset", "dump_grating_file",
            "list_grating_presets", "FORMAT", "VERSION", "LIMITS", "KINDS", "GROOVES",
            "MAX_FILE_BYTES", "GRATING_PRESET_DIR"]
 
@@ -167,6 +168,25 @@ def load_grating_file(content: bytes | str) -> GratingFile:
     """
     data = read_json_document(content, "grating file", MAX_FILE_BYTES)
     return grating_from_dict(data)
+
+
+def dump_grating_file(gf: GratingFile) -> str:
+    """The text of a grating file for ``gf`` (2-space JSON, final newline); it reads back equal.
+
+    Raises
+    ------
+    InputError
+        A field out of range (checked by reading the text back, so nothing invalid is written).
+    """
+    data = {"format": FORMAT, "version": VERSION, "name": gf.name, "scenario": gf.scenario,
+            "lines_per_mm": gf.lines_per_mm, "kind": gf.kind, "groove": gf.groove,
+            "blaze_angle_deg": gf.blaze_angle_deg, "duty_cycle": gf.duty_cycle,
+            "incidence_deg": gf.incidence_deg, "band_nm": list(gf.band_nm),
+            "focal_length_mm": gf.focal_length_mm, "illuminated_width_mm": gf.illuminated_width_mm,
+            "detector_length_mm": gf.detector_length_mm, "pixel_pitch_um": gf.pixel_pitch_um}
+    text = json.dumps(data, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    load_grating_file(text)
+    return text
 
 
 def list_grating_presets() -> list[tuple[str, str]]:

@@ -649,10 +649,11 @@ class FilmExplorer:
         return io.BytesIO(png)
 
     # ------------------------------------------------------------------ layout
-    def panel(self, extra_tabs=(), without_stack=()):
+    def panel(self, extra_tabs=(), without_stack=(), on_show=None):
         """The page: sidebar and, as tabs, the explorer's views and any ``extra_tabs`` (title, layout).
 
         Tabs named in ``without_stack`` do not use the stack: the stack sidebar is hidden there.
+        ``on_show`` maps a tab title to a function called each time that tab is opened.
         """
         s = self.state
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
@@ -692,7 +693,13 @@ class FilmExplorer:
         if extra_tabs:
             main = pn.Tabs(("Film explorer", main), *extra_tabs, sizing_mode="stretch_both", dynamic=False)
             titles = ["Film explorer", *(t for t, _ in extra_tabs)]
-            main.param.watch(lambda e: setattr(sidebar, "visible", titles[e.new] not in without_stack), "active")
+            on_show = on_show or {}
+
+            def opened(event):
+                sidebar.visible = titles[event.new] not in without_stack
+                if titles[event.new] in on_show:
+                    on_show[titles[event.new]]()
+            main.param.watch(opened, "active")
         return pn.Row(sidebar, main, sizing_mode="stretch_both", stylesheets=[CSS])
 
 

@@ -30,7 +30,8 @@ from bokeh.plotting import figure
 from physics import InputError
 from physics import grating as gr
 from physics.color import spectrum_to_xyz, srgb_to_hex, srgb_to_xyz, xyz_to_srgb
-from physics.gratingfile import LIMITS, GratingFile, list_grating_presets, load_grating_preset
+from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_grating_presets, load_grating_file,
+                                load_grating_preset)
 
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba
@@ -120,6 +121,15 @@ class GratingSettings:
                    illuminated_width_mm=gf.illuminated_width_mm, detector_length_mm=gf.detector_length_mm,
                    pixel_pitch_um=gf.pixel_pitch_um, order=prev.order, illuminant=prev.illuminant,
                    brightness=prev.brightness)
+
+    def to_file(self) -> GratingFile:
+        """The grating file of these settings (order, lamp and brightness are view choices, not stored)."""
+        return GratingFile(name=self.name or "untitled grating", scenario=self.scenario,
+                           lines_per_mm=self.lines_per_mm, kind=self.kind, groove=self.groove,
+                           blaze_angle_deg=self.blaze_angle_deg, duty_cycle=self.duty_cycle,
+                           incidence_deg=self.incidence_deg, band_nm=self.band, focal_length_mm=self.focal_length_mm,
+                           illuminated_width_mm=self.illuminated_width_mm, detector_length_mm=self.detector_length_mm,
+                           pixel_pitch_um=self.pixel_pitch_um)
 
     @property
     def band(self) -> tuple[float, float]:
@@ -665,6 +675,22 @@ class GratingSection:
         if not event.new:
             return
         self.load_preset(event.new)
+
+    def file_text(self, name: str | None = None) -> str:
+        """The current grating as the text of a grating file (``name`` replaces its name)."""
+        gf = self.settings.to_file()
+        if name:
+            gf = replace(gf, name=name)
+        return dump_grating_file(gf)
+
+    def load_file_text(self, text) -> str:
+        """Show the grating of a grating file's text; returns its name. Raises InputError (settings kept)."""
+        gf = load_grating_file(text)
+        new = GratingSettings.from_file(gf, self.settings)
+        self._compute(new)                              # raises InputError before anything changes
+        self._take(None, new)
+        self._sync_fields()
+        return gf.name
 
     def load_preset(self, stem: str) -> None:
         """Show one shipped grating preset (its order and lamp keep the current choice)."""

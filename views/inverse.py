@@ -328,6 +328,43 @@ class ColourToThickness:
         self.photo_msg.show_error(None)
         self._draw_boxes()
 
+    def calibration_text(self, name: str, note: str = "") -> str:
+        """The current calibration box and reference as the text of a library calibration.
+
+        Raises InputError when there is no photo or no box, or the grey card value is not valid.
+        """
+        if self.photo is None or self.calib_box is None:
+            raise InputError("There is no calibration box to save: open a photo on the Colour → thickness tab "
+                             "and drag a box over bare substrate or a grey card.")
+        ref = "substrate"
+        if self.reference.value == "grey":
+            try:
+                ref = _grey_value(self.grey)
+            except _Stop as exc:
+                raise InputError(str(exc)) from None
+        return json.dumps({"name": name, "box": [int(v) for v in self.calib_box], "reference": ref,
+                           "note": note or f"box in pixels of {self.photo_name} "
+                                           f"({self.photo.width} x {self.photo.height} px)"}, indent=2) + "\n"
+
+    def apply_calibration(self, data: dict) -> None:
+        """Use a validated library calibration (``library.store.validate_calibration``) on the open photo.
+
+        Raises InputError when no photo is open or the box lies outside it.
+        """
+        if self.photo is None:
+            raise InputError("Open the photo on the Colour → thickness tab first: a calibration box is in that "
+                             "photo's pixels.")
+        x0, y0, x1, y1 = data["box"]
+        if x1 > self.photo.width or y1 > self.photo.height:
+            raise InputError(f"The calibration box [{x0:g}, {y0:g}, {x1:g}, {y1:g}] reaches beyond this photo "
+                             f"({self.photo.width} x {self.photo.height} px); it was made on another photo size.")
+        if data["reference"] == "substrate":
+            self.reference.value = "substrate"
+        else:
+            self.reference.value = "grey"
+            self.grey.set_text(_fmt(float(data["reference"]), 4))
+        self.set_box("calib", (x0, y0, x1, y1))
+
     def _draw_boxes(self):
         data = dict(x=[], y=[], w=[], h=[], color=[], name=[])
         for box, color, name in ((self.calib_box, "#ff00ff", "calibration"), (self.roi, "#00e0ff", "region")):

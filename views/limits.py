@@ -7,23 +7,22 @@ directly gives the defaults below.
 
 Where each limit is enforced:
 
-``max_grid_points`` (``FRINGEGAUGE_MAX_GRID_POINTS``)
-    ``views.explorer`` (``refresh``/``_compute`` for the thickness x angle map and strip),
-    ``views.grating`` (the colour map) and ``views.inverse`` (the colour → thickness
-    search): refuse or coarsen a request whose grid exceeds it, before it is queued.
+``max_grid_points`` (``FRINGEGAUGE_MAX_GRID_POINTS``): positions x wavelengths of one computation.
+    The film map (``views.state.compute_map``) is coarsened on both axes to fit, down to 16 x 16;
+    the grating colour map (``views.grating.compute_colour_map``) and a spectrum fit's scan
+    (``physics.fit.fit_thickness(max_grid_points=...)``) are refused with a message.
 ``max_photo_megapixels`` (``FRINGEGAUGE_MAX_PHOTO_MEGAPIXELS``)
-    ``views.inverse`` when a photo is dropped: check the decoded width x height
-    (ideally from the header, before decoding pixels) and refuse larger images.
+    ``views.inverse`` passes it to ``physics.imageio.load_image``, which checks the header's size
+    before decoding pixels.
 ``max_upload_mb`` (``FRINGEGAUGE_MAX_UPLOAD_MB``)
-    Every file drop/upload handler (``views.explorer`` stack/SPD files, ``views.fit``
-    spectra, ``views.grating`` files, ``views.inverse`` photos): refuse larger payloads
-    with a message. ``serve.py`` also raises the websocket message size to fit it.
-``max_jobs_per_session`` (``FRINGEGAUGE_MAX_JOBS_PER_SESSION``)
-    The ``_worker`` loops that submit to ``views.explorer.EXECUTOR`` (explorer, fit,
-    grating, inverse): at most this many jobs of one session queued or running at once.
-``max_jobs_server`` (``FRINGEGAUGE_MAX_JOBS_SERVER``)
-    The same submit points, shared across sessions: beyond this many jobs queued or
-    running, tell the user the server is busy instead of queueing more.
+    Every upload handler calls :func:`upload_refusal` with its own cap (stack file 1 MB, lamp
+    spectrum 2 MB, measured spectrum 20 MB, photo 200 MB), so the smaller of the two applies; the
+    photo drop zone also checks in the browser. ``serve.py`` sizes the websocket message limit to it.
+``max_jobs_per_session`` / ``max_jobs_server``
+    :func:`heavy_job` around photo maps and spectrum fits: refused at once, with a sentence, when the
+    page or the server already runs that many; they run on :func:`heavy_executor`, which has exactly
+    ``max_jobs_server`` threads, while sliders, spectra and the quick maps use
+    :func:`interactive_executor`, so heavy work never queues in front of them.
 """
 
 from __future__ import annotations
