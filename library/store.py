@@ -76,7 +76,8 @@ _META_SUFFIX = ".meta.json"
 _ARCHIVE = ".archive"
 _LOCK = ".lock"
 _TMP_PREFIX = ".tmp-"
-_ALLOWED_PUNCT = " -_."
+#: Safe in file names on every common file system and in shells when quoted.
+_ALLOWED_PUNCT = " -_.()+,"
 _WINDOWS_RESERVED = {"CON", "PRN", "AUX", "NUL", "CONIN$", "CONOUT$",
                      *(f"COM{i}" for i in range(10)), *(f"LPT{i}" for i in range(10))}
 _VERSION_RE = re.compile(r"^(?P<name>.+)\.v(?P<version>[0-9]+)$")
@@ -141,7 +142,7 @@ def sanitize_name(text) -> str:
     """Check a library name and return it in its stored form.
 
     Surrounding spaces and one trailing ``.json`` are dropped and the text is
-    NFC-normalised. Allowed: letters, digits, space, ``-``, ``_`` and ``.``;
+    NFC-normalised. Allowed: letters, digits, space and ``- _ . ( ) + ,``;
     at most 80 characters.
 
     Raises
@@ -152,7 +153,7 @@ def sanitize_name(text) -> str:
         an ending reserved for the library's own files (``.v2``, ``.json``,
         ``.meta``); a Windows reserved device name (CON, NUL, COM1, ...).
     """
-    allowed = "Library names may use letters, digits, spaces, - _ and ."
+    allowed = "Library names may use letters, digits, spaces and - _ . ( ) + ,"
     if not isinstance(text, str):
         raise InputError(f"{allowed}; got {type(text).__name__} instead of text.")
     original = text

@@ -370,6 +370,7 @@ def test_bad_names(bad, words):
     ("Oxide wafer 7", "Oxide wafer 7"), (" padded ", "padded"), ("run_3-b.final", "run_3-b.final"),
     ("Öl auf Wasser", "Öl auf Wasser"), ("thing.json", "thing"), ("x" * 80, "x" * 80),
     ("e\u0301", "\u00e9"), ("console", "console"),
+    ("Gate oxide (line 3), 100+5 nm", "Gate oxide (line 3), 100+5 nm"),
 ])
 def test_good_names(good, stored):
     assert sanitize_name(good) == stored

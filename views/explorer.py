@@ -54,7 +54,7 @@ CSS = """
 
 
 def _label(text: str) -> pn.pane.HTML:
-    return pn.pane.HTML(f'<div class="fg-label">{text}</div>', margin=(4, 5, 0, 5))
+    return pn.pane.HTML(f'<div class="fg-label">{text}</div>', margin=(4, 5, 0, 5), stylesheets=[CSS])
 
 
 class Field:
@@ -63,7 +63,7 @@ class Field:
     def __init__(self, label: str, width: int = 120, placeholder: str = "", css: str = ""):
         self.input = pn.widgets.TextInput(label=label, width=width, placeholder=placeholder, margin=(2, 5),
                                           css_classes=[css] if css else [])
-        self.message = pn.pane.HTML("", css_classes=["fg-error"], margin=(0, 5), visible=False)
+        self.message = pn.pane.HTML("", css_classes=["fg-error"], margin=(0, 5), visible=False, stylesheets=[CSS])
 
     def show_error(self, text: str | None) -> None:
         self.message.object = f'<div class="fg-error" role="alert">{text}</div>' if text else ""

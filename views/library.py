@@ -95,7 +95,10 @@ class LibrarySection:
             self._say(f"The library folder cannot be read: {_esc(str(exc))}", "danger")
             return
         entries = sorted(entries, key=lambda e: (e.saved_at, e.name, e.version), reverse=True)[:MAX_LISTED]
+        chosen = self.selected()
         self._set_listing(entries)
+        if chosen is not None:
+            self._select(chosen.name, chosen.version)               # keep the user's choice
         if problems:
             items = "".join(f"<li>{_esc(str(p))}</li>" for p in problems[:50])
             more = f"<li>… and {len(problems) - 50} more</li>" if len(problems) > 50 else ""
