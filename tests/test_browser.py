@@ -23,8 +23,9 @@ ERROR_TYPES = {"error"}
 
 
 @pytest.fixture(scope="module")
-def server():
-    with served_app() as (url, log_path):
+def server(tmp_path_factory):
+    library = tmp_path_factory.mktemp("lab-library")
+    with served_app(env={"FRINGEGAUGE_LIBRARY": str(library)}) as (url, log_path):
         yield url, log_path
 
 
@@ -209,3 +210,28 @@ def test_spectrum_fit_in_the_page(page, tmp_path):
     page.locator(".fg-fit-run button").first.click()
     page.get_by_text("d = 639.9").or_(page.get_by_text("d = 640.0")).first.wait_for(timeout=60_000)
     assert page.console_errors == []
+
+
+def _save_to_library(pg, name, user):
+    pg.get_by_text("Lab library", exact=True).first.click()
+    pg.get_by_label("Name to save under").fill(name)
+    pg.get_by_label("Name to save under").press("Enter")
+    pg.get_by_label("Your name or initials (saved with the item)").fill(user)
+    pg.get_by_label("Your name or initials (saved with the item)").press("Enter")
+    pg.get_by_text("Save to the lab library", exact=True).click()
+
+
+def test_two_users_save_one_name_and_the_second_is_told(page, browser, server):
+    name = "Gate oxide (line 3) invented"
+    _save_to_library(page, name, "ak")
+    page.wait_for_function(f"() => (({DEEP_TEXT_JS})('.fg-lib-text') || '').includes('Saved the stack')")
+    other = browser.new_context(viewport={"width": 1366, "height": 768}).new_page()
+    other.goto(server[0])
+    _wait_swatch(other)
+    _save_to_library(other, name, "bz")
+    other.wait_for_function(f"() => (({DEEP_TEXT_JS})('.fg-lib-text') || '').includes('version 2')")
+    assert "saved by ak" in other.evaluate(DEEP_TEXT_JS, ".fg-lib-text")
+    other.context.close()
+    page.get_by_text("Refresh list", exact=True).click()
+    page.wait_for_function(f"() => (({DEEP_TEXT_JS})('.fg-lib-entry') || '').includes('version 2')")
+    assert not page.console_errors

@@ -126,9 +126,9 @@ class LibrarySection:
             noun = _NOUN[self.kind.value]
             self.detail.object = f"No {noun} saved yet." if self.lib is not None else ""
             return
-        self.detail.object = (f"<b>{_esc(e.name)}</b>, version {e.version}: saved by {_esc(e.user)} on "
-                              f"{_esc(_when(e.saved_at))} (UTC), {e.size:,} bytes, file "
-                              f"<code>{_esc(e.file_name)}</code>")
+        self.detail.object = (f"<div class='fg-lib-entry'><b>{_esc(e.name)}</b>, version {e.version}: saved by "
+                              f"{_esc(e.user)} on {_esc(_when(e.saved_at))} (UTC), {e.size:,} bytes, file "
+                              f"<code>{_esc(e.file_name)}</code></div>")
 
     # ------------------------------------------------------------------ actions
     def load_selected(self) -> bool:
@@ -233,7 +233,8 @@ class LibrarySection:
                 return
 
     def _say(self, html: str, kind: str) -> None:
-        self.message.object, self.message.alert_type, self.message.visible = html, kind, True
+        self.message.object = f'<div class="fg-lib-text">{html}</div>'        # the class lets tests find it
+        self.message.alert_type, self.message.visible = kind, True
 
     # ------------------------------------------------------------------ layout
     def panel(self):

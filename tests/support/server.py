@@ -26,15 +26,15 @@ def free_port() -> int:
 
 
 @contextlib.contextmanager
-def served_app(extra_args=()):
-    """Yield (url, log_path) of a running app; stop it afterwards."""
+def served_app(extra_args=(), env=None):
+    """Yield (url, log_path) of a running app (``env``: extra environment variables); stop it afterwards."""
     port = free_port()
     log_path = ROOT / f".server-{port}.log"
     log = open(log_path, "w")
     proc = subprocess.Popen(
         [sys.executable, "-m", "panel", "serve", "app.py", "--port", str(port), "--address", "127.0.0.1",
          "--allow-websocket-origin", f"127.0.0.1:{port}", *extra_args],
-        cwd=ROOT, stdout=log, stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+        cwd=ROOT, stdout=log, stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
     url = f"http://127.0.0.1:{port}/app"
     try:
         wait_until_up(proc, url, log_path, "the app")
