@@ -148,3 +148,28 @@ def test_post_to_page_after_the_page_has_gone():
         session_context = None
     assert not L.post_to_page(Gone(), lambda: None)
     assert not L.post_to_page(None, lambda: None)
+
+
+def test_cancelled_photo_map_stops_at_its_next_stage_and_frees_its_place(monkeypatch, caplog):
+    import views.inverse as inv
+    from tests.test_views_inverse import _wedge_png
+
+    section = inv.ColourToThickness(FilmExplorer())
+    data, _ = _wedge_png()
+    assert section.load_photo(data, "wedge.png")
+    real = inv.thickness_map
+
+    def cancelled_midway(progress=None, **kw):
+        progress(0.1, "starting")
+        section.cancel()                           # the user presses "Cancel the map"
+        progress(0.5, "matching")                  # the next stage notices
+        return real(progress=progress, **kw)
+    monkeypatch.setattr(inv, "thickness_map", cancelled_midway)
+    with caplog.at_level(logging.INFO, logger="fringegauge"):
+        section.start_map(sync=True)
+    assert section.result is None and not section.cancel_map.visible and not section.run_map.disabled
+    assert L.running_jobs() == {"server": [], "sessions": {}}
+    assert [r.outcome for r in caplog.records if r.getMessage() == "heavy job"] == ["cancelled"]
+    monkeypatch.setattr(inv, "thickness_map", real)
+    section.start_map(sync=True)
+    assert section.result is not None

@@ -106,6 +106,8 @@ class ColourToThickness:
         self.run_map = pn.widgets.Button(label="Make thickness map", color="primary", width=200, margin=(6, 5),
                                          disabled=True)
         self.progress = pn.indicators.Progress(value=0, max=100, width=300, visible=False, margin=(6, 5))
+        self.cancel_map = pn.widgets.Button(label="Cancel the map", color="light", width=140, margin=(2, 5),
+                                            visible=False)
         self.progress_text = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"})
         self.map_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(5, 5))
         self.photo_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
@@ -162,6 +164,7 @@ class ColourToThickness:
         self.colour.input.param.watch(lambda e: _locked(self._on_find), "enter_pressed")
         self.dropper.param.watch(self._on_upload, "value")
         self.run_map.on_click(self._on_run_map)
+        self.cancel_map.on_click(lambda e: self.cancel())
         self.ex.state.param.watch(self._on_state, ["stack_json", "swept_layer", "angle_deg", "illuminant",
                                                     "observer", "polarization", "na", "thickness_max_nm"])
 
@@ -422,6 +425,13 @@ class ColourToThickness:
     def _on_run_map(self, *_):
         self.start_map()
 
+    def cancel(self) -> None:
+        """Drop the running photo map: it stops at its next stage and its result is never shown."""
+        self._job += 1
+        self.progress.visible = self.cancel_map.visible = False
+        self.run_map.disabled = self.photo is None
+        self.progress_text.object = "Cancelled; the server stops the map at its next stage."
+
     def start_map(self, sync=False):
         """Compute the thickness map of the photo (off the event loop when served)."""
         if self.photo is None:
@@ -442,7 +452,7 @@ class ColourToThickness:
                     reference_box=self.calib_box, illuminant=s.illuminant_spec(), angle_deg=s.angle_deg,
                     observer=s.observer, polarization=s.polarization, na=s.na, reference=ref, roi=self.roi,
                     nominal_nm=nominal)
-        self.progress.visible = True
+        self.progress.visible = self.cancel_map.visible = True
         self.progress.value = 0
         self.run_map.disabled = True
         doc = pn.state.curdoc
@@ -474,6 +484,8 @@ class ColourToThickness:
                     self._finish_map(job, s, *work())
             except InputError as exc:
                 self._finish_map(job, s, None, str(exc))
+            except JobCancelled:
+                pass
             return
 
         async def run():
@@ -493,7 +505,7 @@ class ColourToThickness:
     def _finish_map(self, job, s, result, error):
         if job != self._job:                      # superseded by a newer request
             return
-        self.progress.visible = False
+        self.progress.visible = self.cancel_map.visible = False
         self.run_map.disabled = False
         if error:
             self.map_msg.object, self.map_msg.alert_type, self.map_msg.visible = error, "danger", True
@@ -579,7 +591,7 @@ class ColourToThickness:
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A photo to a thickness map</h3>"),
             _label("Photo (JPEG, PNG or TIFF, 8 or 16 bit)"), self.dropper, self.photo_msg.message,
             _label("Dragging on the photo sets"), self.mode, _label("The calibration box shows"), self.reference,
-            self.grey.view(), self.box_info, self.run_map, self.progress, self.progress_text,
+            self.grey.view(), self.box_info, self.run_map, self.progress, self.cancel_map, self.progress_text,
             self.dl_npy, self.dl_png, self.dl_csv, width=340)
         return pn.Column(
             pn.Row(typed, results, sizing_mode="stretch_width"),
