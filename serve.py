@@ -246,7 +246,8 @@ def health_handler(started: float):
     import tornado.web
 
     class HealthHandler(tornado.web.RequestHandler):
-        """GET /health → {"status": "ok", "sessions": N, "uptime_s": s}; no login needed, no page state."""
+        """GET /health → {"status", "sessions", "heavy_jobs", "max_jobs_server", "uptime_s"}; no login needed,
+        no page state. ``heavy_jobs`` is the number of photo maps and fits running now."""
 
         def get(self):
             app = self.application  # the BokehTornado application serving the page
@@ -256,7 +257,10 @@ def health_handler(started: float):
                 sessions = None
             self.set_header("Content-Type", "application/json")
             self.set_header("Cache-Control", "no-store")
+            from views.limits import running_jobs
             self.write(json.dumps({"status": "ok", "sessions": sessions,
+                                   "heavy_jobs": len(running_jobs()["server"]),
+                                   "max_jobs_server": Limits.from_env().max_jobs_server,
                                    "uptime_s": round(time.monotonic() - started, 1)}))
 
     return HealthHandler

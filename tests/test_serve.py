@@ -120,6 +120,7 @@ def test_serves_health_and_the_page_from_any_directory(tmp_path):
         assert status == 200 and headers["Content-Type"].startswith("application/json")
         health = json.loads(body)
         assert health["status"] == "ok" and health["sessions"] >= 0 and health["uptime_s"] >= 0
+        assert health["heavy_jobs"] == 0 and health["max_jobs_server"] == 2
         status, _, body = get(base + "/app")
         assert status == 200 and "fringegauge" in body
         assert json.loads(get(base + "/health")[2])["sessions"] >= 1
