@@ -26,6 +26,8 @@ ROOT = Path(__file__).resolve().parent
 APP_PATH = ROOT / "app.py"
 COOKIE_SECRET_ENV = "FRINGEGAUGE_COOKIE_SECRET"
 LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
+#: Identity providers Panel's OAuth support knows by name.
+OAUTH_PROVIDERS = ("azure", "bitbucket", "github", "gitlab", "google", "okta", "generic", "password", "auth_code")
 #: Shortest cookie secret accepted (characters).
 MIN_COOKIE_SECRET_CHARS = 32
 #: How often Panel looks for sessions whose browser has gone (ms).
@@ -124,6 +126,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--basic-auth", metavar="PASSWORD_FILE", type=Path,
                    help="turn on a login page; the file holds one shared password, or a JSON object "
                         "{\"user\": \"password\", ...}. Off by default. The password is never printed or logged")
+    p.add_argument("--oauth-provider", choices=OAUTH_PROVIDERS,
+                   help="log in through the lab's identity provider with Panel's OAuth support instead of "
+                        "--basic-auth; the client id and secret come from the environment variables "
+                        "PANEL_OAUTH_KEY and PANEL_OAUTH_SECRET (never the command line), provider options from "
+                        "PANEL_OAUTH_EXTRA_PARAMS; needs a cookie secret")
+    p.add_argument("--oauth-redirect-uri", metavar="URL",
+                   help="the address the identity provider sends users back to, e.g. https://HOST:PORT/app")
     p.add_argument("--cookie-secret-file", metavar="FILE", type=Path,
                    help=f"file holding the secret that signs login cookies (at least {MIN_COOKIE_SECRET_CHARS} "
                         f"characters); or set {COOKIE_SECRET_ENV}. Without it a random one is made at each start, "
@@ -206,6 +215,8 @@ class Settings:
     library: Path
     basic_auth: object
     cookie_secret: str | None
+    oauth_provider: str | None
+    oauth_redirect_uri: str | None
     idle_timeout_s: float
     limits: Limits
     log_level: str
@@ -213,7 +224,8 @@ class Settings:
     def describe(self) -> dict:
         """What is safe to log: no password, no secret."""
         return {"host": self.host, "port": self.port, "allow_origin": self.origins, "threads": self.threads,
-                "library": str(self.library), "auth": "basic" if self.basic_auth else "off",
+                "library": str(self.library), "auth": ("basic" if self.basic_auth else f"oauth:{self.oauth_provider}" if self.oauth_provider
+                                                                  else "off"),
                 "cookie_secret": "given" if self.cookie_secret else ("random per start" if self.basic_auth else "unused"),
                 "idle_timeout_s": self.idle_timeout_s, **dataclasses.asdict(self.limits)}
 
@@ -224,6 +236,15 @@ def parse_settings(argv=None) -> Settings:
     try:
         basic_auth = read_basic_auth(args.basic_auth) if args.basic_auth else None
         cookie_secret = read_cookie_secret(args.cookie_secret_file)
+        if args.oauth_provider:
+            if basic_auth:
+                raise ValueError("choose either --basic-auth or --oauth-provider, not both")
+            missing = [v for v in ("PANEL_OAUTH_KEY", "PANEL_OAUTH_SECRET") if not os.environ.get(v)]
+            if missing:
+                raise ValueError(f"--oauth-provider needs the environment variable(s) {', '.join(missing)} "
+                                 "(the client id and secret registered with the identity provider)")
+            if not cookie_secret:
+                raise ValueError(f"--oauth-provider needs a cookie secret: --cookie-secret-file or {COOKIE_SECRET_ENV}")
         limits = Limits(max_grid_points=args.max_grid_points, max_photo_megapixels=args.max_photo_megapixels,
                         max_upload_mb=args.max_upload_mb, max_jobs_per_session=args.max_jobs_per_session,
                         max_jobs_server=args.max_jobs_server)
@@ -236,7 +257,8 @@ def parse_settings(argv=None) -> Settings:
         parser.error(str(exc))
     origins = args.allow_origin or default_origins(args.host, args.port)
     return Settings(host=args.host, port=args.port, origins=origins, threads=args.threads, library=library,
-                    basic_auth=basic_auth, cookie_secret=cookie_secret, idle_timeout_s=args.idle_timeout_s,
+                    basic_auth=basic_auth, cookie_secret=cookie_secret, oauth_provider=args.oauth_provider,
+                    oauth_redirect_uri=args.oauth_redirect_uri, idle_timeout_s=args.idle_timeout_s,
                     limits=limits, log_level=args.log_level)
 
 
@@ -294,6 +316,10 @@ def main(argv=None) -> int:
     )
     if settings.basic_auth:
         options["basic_auth"] = settings.basic_auth
+    if settings.oauth_provider:            # key and secret: Panel reads PANEL_OAUTH_KEY / PANEL_OAUTH_SECRET
+        options["oauth_provider"] = settings.oauth_provider
+        if settings.oauth_redirect_uri:
+            options["oauth_redirect_uri"] = settings.oauth_redirect_uri
     if cookie_secret:
         options["cookie_secret"] = cookie_secret
 

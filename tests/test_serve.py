@@ -21,7 +21,7 @@ SERVE = ROOT / "serve.py"
 START_TIMEOUT_S = 30
 OPTIONS = ["--host", "--port", "--allow-origin", "--threads", "--library", "--basic-auth", "--cookie-secret-file",
            "--idle-timeout-s", "--max-grid-points", "--max-photo-megapixels", "--max-upload-mb",
-           "--max-jobs-per-session", "--max-jobs-server"]
+           "--max-jobs-per-session", "--max-jobs-server", "--oauth-provider", "--oauth-redirect-uri"]
 
 
 def run_serve(*args, cwd, env=None, timeout=30):
@@ -85,12 +85,21 @@ def test_help_lists_every_option(tmp_path):
     (["--max-jobs-server", "-2"], "--max-jobs-server"),
     (["--idle-timeout-s", "-1"], "--idle-timeout-s"),
     (["--basic-auth", "no-such-file"], "password file"),
+    (["--oauth-provider", "myspace"], "--oauth-provider"),
+    (["--oauth-provider", "github"], "PANEL_OAUTH_KEY"),
 ])
 def test_bad_arguments_exit_2_with_a_message(tmp_path, args, message):
     result = run_serve(*args, cwd=tmp_path)
     assert result.returncode == 2
     assert message in result.stderr
     assert "Traceback" not in result.stderr
+
+
+def test_oauth_needs_a_cookie_secret_and_keeps_its_client_secret_quiet(tmp_path):
+    env = {"PANEL_OAUTH_KEY": "lab-client-id", "PANEL_OAUTH_SECRET": "zq-client-secret-93"}
+    result = run_serve("--oauth-provider", "generic", cwd=tmp_path, env=env)
+    assert result.returncode == 2 and "cookie secret" in result.stderr
+    assert "zq-client-secret-93" not in result.stderr + result.stdout
 
 
 def test_short_cookie_secret_is_refused_without_echoing_it(tmp_path):
