@@ -7,6 +7,7 @@ import json
 import os
 import subprocess
 import sys
+import time
 import urllib.error
 import urllib.request
 from pathlib import Path
@@ -157,3 +158,15 @@ def test_basic_auth_guards_the_page_and_keeps_the_password_quiet(tmp_path):
         assert '"auth": "basic"' in log
     log = output()
     assert password not in log and secret not in log
+
+
+def test_sessions_whose_browser_went_away_are_freed_after_the_idle_timeout(tmp_path):
+    with served(tmp_path, "--idle-timeout-s", "1.5") as (base, output):
+        assert get(base + "/app")[0] == 200              # a page load makes a session no browser keeps
+        assert json.loads(get(base + "/health")[2])["sessions"] >= 1
+        deadline = time.time() + 20
+        while json.loads(get(base + "/health")[2])["sessions"] and time.time() < deadline:
+            time.sleep(0.5)
+        assert json.loads(get(base + "/health")[2])["sessions"] == 0
+        assert get(base + "/app")[0] == 200              # and it keeps serving
+        assert "Traceback" not in output()
