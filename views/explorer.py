@@ -18,6 +18,7 @@ from functools import partial
 
 import numpy as np
 import panel as pn
+from panel.io import hold
 from bokeh.models import ColumnDataSource, HoverTool, Label, Range1d, Span, TapTool
 from bokeh.events import Tap
 from bokeh.plotting import figure
@@ -514,7 +515,8 @@ class FilmExplorer:
             finally:
                 self._running = False
             return
-        self.status.object = "computing…"
+        if set(kinds) - {"point"}:                 # a spectrum alone takes a few ms: no status flicker
+            self.status.object = "computing…"
         pn.state.execute(self._worker)
 
     async def _worker(self):
@@ -558,9 +560,19 @@ class FilmExplorer:
         return out
 
     def _apply(self, result):
-        """Push computed results into the plots (runs with the document lock when served)."""
+        """Push computed results into the plots (runs with the document lock when served).
+
+        All the changes go to the browser as one message (``hold``): a slider move changes about
+        ten model properties, and each message costs the server a walk over the whole page.
+        """
+        with hold():
+            self._apply_held(result)
+
+    def _apply_held(self, result):
         self.generation += 1
-        self.status.object = "" if not self._dirty else "computing…"
+        busy = "computing…" if self._dirty else ""
+        if self.status.object != busy:
+            self.status.object = busy
         if result["error"]:
             self.error.object = result["error"]
             self.error.visible = True
