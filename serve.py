@@ -32,13 +32,11 @@ OAUTH_PROVIDERS = ("azure", "bitbucket", "github", "gitlab", "google", "okta", "
 MIN_COOKIE_SECRET_CHARS = 32
 #: How often Panel looks for sessions whose browser has gone (ms).
 CHECK_UNUSED_MS = 17_000
-#: Bokeh's default websocket message limit; raised, never lowered, to fit --max-upload-mb.
-DEFAULT_WS_MESSAGE_BYTES = 20 * 1024 * 1024
 
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from views.limits import THREADS_ENV, Limits  # noqa: E402  (THREADS_ENV sizes the interactive threads)
+from views.limits import THREADS_ENV, Limits, websocket_message_cap_bytes  # noqa: E402
 
 log = logging.getLogger("fringegauge")
 
@@ -305,14 +303,13 @@ def main(argv=None) -> int:
     if settings.basic_auth and not cookie_secret:
         cookie_secret = secrets.token_urlsafe(32)
         log.warning("no cookie secret given: using a random one, so logins end when the server restarts")
-    upload_bytes = int(settings.limits.max_upload_mb * 1024 * 1024) + 1024 * 1024
     options = dict(
         port=settings.port, address=settings.host, websocket_origin=settings.origins,
         show=False, start=False, verbose=False, threaded=False,
         extra_patterns=[(r"/health", health_handler(started))],
         unused_session_lifetime_milliseconds=int(settings.idle_timeout_s * 1000),
         check_unused_sessions_milliseconds=min(CHECK_UNUSED_MS, int(settings.idle_timeout_s * 1000)),
-        websocket_max_message_size=max(DEFAULT_WS_MESSAGE_BYTES, upload_bytes),
+        websocket_max_message_size=websocket_message_cap_bytes(settings.limits),
     )
     if settings.basic_auth:
         options["basic_auth"] = settings.basic_auth

@@ -44,6 +44,9 @@ DEFAULT_BAND_NM = (380.0, 780.0)
 ORDER_WAVELENGTH_NM = 550.0
 #: Largest numerical aperture accepted (dry objectives stop near 0.95).
 MAX_NA = 0.95
+#: Below this NA the cone is one ray: its solid-angle weights would underflow, and the colour
+#: differs from a single ray by far less than any display can show.
+MIN_NA = 1e-6
 #: Largest incidence angle kept on a cone's grid (90° is grazing and never seen).
 _GRAZING_DEG = 89.9
 #: Gauss-Legendre points across the cone radius and around half its rim.
@@ -90,7 +93,7 @@ def cone_rays(view_deg, na: float, ambient_n: float = 1.0):
     view = np.atleast_1d(require_finite("angle_deg", view_deg, minimum=0.0, maximum=MAX_ANGLE_DEG,
                                         max_inclusive=False, unit="deg")).ravel()
     na = float(require_finite("na", na, minimum=0.0, maximum=MAX_NA))
-    if na == 0.0:
+    if na < MIN_NA:                     # narrower than any real aperture: one ray (and no weight underflow)
         return view[:, None].copy(), np.ones((view.size, 1))
     if na >= ambient_n:
         raise InputError(f"NA = {na:g} is not possible in an ambient of index {ambient_n:g}; NA < n₀.")

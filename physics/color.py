@@ -54,6 +54,8 @@ OBSERVERS.update({v: v for v in list(OBSERVERS.values())})
 #: Linear-RGB slack before a colour counts as outside the sRGB gamut: the
 #: published 4-digit sRGB matrix maps the D65 white to 1 within 2e-4.
 GAMUT_TOLERANCE = 1e-3
+#: Longest wavelength a user's lamp spectrum may list, nm.
+MAX_SPD_WAVELENGTH_NM = 100_000.0
 #: The 1 nm grid of the CIE tables used for every integration.
 _FINE = colour.SpectralShape(360, 830, 1)
 
@@ -115,10 +117,17 @@ def user_spd_on_fine_grid(wavelength_nm, values) -> np.ndarray:
     if wl[0] > 400 or wl[-1] < 700:
         raise WavelengthRangeError(f"The lamp spectrum covers {wl[0]:g}-{wl[-1]:g} nm; it must cover at least "
                                    "400-700 nm. Measure or extend it over the visible.")
+    if wl[-1] > MAX_SPD_WAVELENGTH_NM:
+        raise InputError(f"The lamp spectrum reaches {wl[-1]:g} nm; give wavelengths in nm up to "
+                         f"{MAX_SPD_WAVELENGTH_NM:g} (a value in Å or pm, or a typing error?).")
     if not np.any(v > 0):
         raise InputError("The lamp spectrum is zero everywhere; give a spectrum with some power.")
     fine = np.arange(360, 831, dtype=float)
-    return np.interp(fine, wl, v, left=0.0, right=0.0)
+    out = np.interp(fine, wl, v, left=0.0, right=0.0)
+    if not np.any(out[(fine >= 400) & (fine <= 700)] > 0):
+        raise InputError("The lamp spectrum has no power from 400 to 700 nm, where the eye sees; "
+                         "give a lamp that emits visible light.")
+    return out
 
 
 def _hat_matrix(wavelength_nm: np.ndarray) -> np.ndarray:

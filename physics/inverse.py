@@ -75,7 +75,11 @@ MIN_BOX_LINEAR = 0.003
 
 # ---------------------------------------------------------------------- colours
 _HEX = re.compile(r"^#?([0-9a-fA-F]{6}|[0-9a-fA-F]{3})$")
-_NUM = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
+# One way only to read each number (no nested optional digit runs), so a long string of digits
+# cannot make the match backtrack for minutes.
+_NUM = r"[-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
+#: Longest typed colour read, characters.
+MAX_COLOUR_CHARS = 200
 _LAB = re.compile(rf"^\s*(?:lab|l\*?a\*?b\*?)\s*[:(]?\s*({_NUM})[\s,;]+({_NUM})[\s,;]+({_NUM})\s*\)?\s*$", re.I)
 _TRIPLE = re.compile(rf"^\s*(?:rgb)?\s*\(?\s*({_NUM})[\s,;]+({_NUM})[\s,;]+({_NUM})\s*\)?\s*$", re.I)
 
@@ -101,6 +105,9 @@ def parse_color(value):
     if not isinstance(value, str):
         raise InputError(f"{value!r} is not a colour. {how}")
     text = value.strip()
+    if len(text) > MAX_COLOUR_CHARS:
+        raise InputError(f"The colour is {len(text):,} characters long; a colour is at most "
+                         f"{MAX_COLOUR_CHARS} characters. {how}")
     m = _HEX.match(text)
     if m:
         h = m.group(1)

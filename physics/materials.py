@@ -47,6 +47,10 @@ _DATA = Path(__file__).with_name("data")
 #: Relative slack on a range end, so that a grid computed as lo + i*step
 #: that lands a few ulp outside the data range is still accepted.
 _RANGE_RTOL = 1e-9
+#: Range of n and largest k a material may give (common practice: real optical media lie far
+#: inside; beyond it the stack algebra loses all precision and returns NaN).
+N_LIMITS = (1e-3, 100.0)
+K_MAX = 1e3
 
 
 class Material(ABC):
@@ -101,6 +105,12 @@ class Material(ABC):
         if np.any(out.imag < 0):
             raise InputError(f"{self.name}: k < 0 in its data; fringegauge needs k >= 0 "
                              "(absorbing media). Use another page or a corrected table.")
+        lo, hi = N_LIMITS
+        if np.any(out.real < lo) or np.any(out.real > hi) or np.any(out.imag > K_MAX):
+            bad = out.ravel()[np.argmax((out.real < lo) | (out.real > hi) | (out.imag > K_MAX))]
+            raise InputError(f"{self.name}: n = {bad.real:.3g}, k = {bad.imag:.3g} is not an optical index "
+                             f"fringegauge can compute with; n must lie from {lo:g} to {hi:g} and k be at most "
+                             f"{K_MAX:g}. Check the number, coefficients or data.")
         return out
 
     @abstractmethod
@@ -128,6 +138,7 @@ class ConstantMaterial(Material):
         self.name = name or (f"n={n:g}" if k == 0 else f"n={n:g}, k={k:g}")
         self.source = "constant given by the user"
         self.range_nm = None
+        self.nk(np.array([550.0]))                   # refuse an index outside N_LIMITS / K_MAX now
 
     def _nk(self, wl):
         return np.full(wl.shape, complex(self.n, self.k))

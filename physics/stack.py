@@ -279,9 +279,15 @@ class _Optics:
     def power_factor(self, into, outof, pol):
         """T = |t|² × this factor, for a wave from medium ``outof`` into medium ``into`` (Byrnes eqs. 21-22)."""
         if pol == "s":
-            return self.kz[into].real / self.kz[outof].real
-        return ((self.N[into][None, :] * np.conj(self.cos[into])).real
-                / (self.N[outof][None, :] * np.conj(self.cos[outof])).real)
+            num, den = self.kz[into].real, self.kz[outof].real
+        else:
+            num = (self.N[into][None, :] * np.conj(self.cos[into])).real
+            den = (self.N[outof][None, :] * np.conj(self.cos[outof])).real
+        with np.errstate(divide="ignore", invalid="ignore"):
+            factor = num / den
+        # A wave that carries no power (evanescent in a transparent medium, past total internal
+        # reflection) transmits none: 0, not 0/0.
+        return np.where(den != 0, factor, 0.0)
 
     def single_pass(self):
         """Intensity transmitted on one pass through the thick substrate, exp(−4π Im(kz) d/λ)."""

@@ -14,12 +14,11 @@ from pathlib import Path
 
 import pytest
 
-from tests.support.server import free_port, stop, wait_until_up
+from tests.support.server import served_lab
 from views.limits import Limits
 
 ROOT = Path(__file__).resolve().parents[1]
 SERVE = ROOT / "serve.py"
-START_TIMEOUT_S = 30
 OPTIONS = ["--host", "--port", "--allow-origin", "--threads", "--library", "--basic-auth", "--cookie-secret-file",
            "--idle-timeout-s", "--max-grid-points", "--max-photo-megapixels", "--max-upload-mb",
            "--max-jobs-per-session", "--max-jobs-server", "--oauth-provider", "--oauth-redirect-uri"]
@@ -48,20 +47,8 @@ def get(url, follow=True):
 @contextlib.contextmanager
 def served(tmp_path, *args, env=None):
     """Run serve.py from an unrelated directory on a free loopback port; yield (base_url, read_output)."""
-    port = free_port()
-    out_path = tmp_path / "server.out"
-    with open(out_path, "w") as out:
-        proc = subprocess.Popen(
-            [sys.executable, str(SERVE), "--host", "127.0.0.1", "--port", str(port),
-             "--library", str(tmp_path / "library"), *args],
-            cwd=tmp_path, stdout=out, stderr=subprocess.STDOUT,
-            env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
-        base = f"http://127.0.0.1:{port}"
-        try:
-            wait_until_up(proc, base + "/health", out_path, "serve.py", START_TIMEOUT_S)
-            yield base, out_path.read_text
-        finally:
-            stop(proc)
+    with served_lab(tmp_path, *args, env=env) as (base, _proc, log_path):
+        yield base, log_path.read_text
 
 
 def test_help_lists_every_option(tmp_path):

@@ -67,7 +67,8 @@ class Field:
         self.message = pn.pane.HTML("", css_classes=["fg-error"], margin=(0, 5), visible=False, stylesheets=[CSS])
 
     def show_error(self, text: str | None) -> None:
-        self.message.object = f'<div class="fg-error" role="alert">{text}</div>' if text else ""
+        """Show ``text`` (plain text: it is escaped, so a message quoting user input cannot add markup)."""
+        self.message.object = f'<div class="fg-error" role="alert">{_esc(str(text))}</div>' if text else ""
         self.message.visible = bool(text)
 
     def set_text(self, text: str) -> None:
@@ -306,6 +307,11 @@ class FilmExplorer:
             fn()
         except InputError as exc:
             field.show_error(str(exc))
+            return False
+        except Exception:                    # a bug, not bad input: keep the page and the previous state
+            log.exception("unexpected error handling an input")
+            field.show_error("That input could not be used because of an unexpected error (logged on the "
+                             "server); the previous value is kept.")
             return False
         field.show_error(None)
         return True

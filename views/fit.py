@@ -28,7 +28,7 @@ from physics.errors import WavelengthRangeError
 
 from .limits import Limits, heavy_executor, heavy_job, post_to_page, session_key, upload_refusal
 from .explorer import Field, _esc, _fmt, _label
-from .inverse import _locked
+from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 
 log = logging.getLogger("fringegauge")
@@ -156,14 +156,15 @@ class SpectrumFitSection:
                                                label="Summary (.json)", width=300, disabled=True, margin=(2, 5))
 
         for role in FILE_ROLES:
-            self.file_in[role].param.watch(partial(self._on_file, role), "value")
-        self.clear_ref.on_click(self._on_clear_ref)
-        self.ref_mode.param.watch(lambda e: self._reimport(), "value")
-        self.ref_value.input.param.watch(lambda e: self._reimport(), "value")
-        self.wl_unit.param.watch(lambda e: self._reimport(), "value")
-        self.value_unit.param.watch(lambda e: self._reimport(), "value")
-        self.fit_button.on_click(lambda *_: self.run_fit())
-        self.ex.state.param.watch(self._on_state, ["stack_json", "swept_layer", "angle_deg", "polarization"])
+            self.file_in[role].param.watch(locked(partial(self._on_file, role)), "value")
+        # Handlers that change Bokeh models run under the document lock (see views.inverse.locked).
+        self.clear_ref.on_click(locked(self._on_clear_ref))
+        self.ref_mode.param.watch(locked(lambda e: self._reimport()), "value")
+        self.ref_value.input.param.watch(locked(lambda e: self._reimport()), "value")
+        self.wl_unit.param.watch(locked(lambda e: self._reimport()), "value")
+        self.value_unit.param.watch(locked(lambda e: self._reimport()), "value")
+        self.fit_button.on_click(locked(lambda *_: self.run_fit()))
+        self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "polarization"])
         self._sync_layers()
 
     # ------------------------------------------------------------------ explorer state
@@ -215,7 +216,7 @@ class SpectrumFitSection:
         name = name or f"{role}.csv"
         refusal = upload_refusal(name, len(data), MAX_UPLOAD_BYTES, "Export just two columns.")
         if refusal:
-            self.file_msg[role].show_error(_esc(refusal))
+            self.file_msg[role].show_error(refusal)
             return False
         previous = self.files.get(role)
         self.files[role] = (name, bytes(data))
@@ -224,7 +225,7 @@ class SpectrumFitSection:
                 read_spectrum(data, **self._units())
             except InputError as exc:
                 self._restore(role, previous)
-                self.file_msg[role].show_error(f"{_esc(name)}: {_esc(str(exc))}")
+                self.file_msg[role].show_error(f"{name}: {str(exc)}")
                 return False
             self.file_msg[role].show_error(None)
             return True
@@ -269,7 +270,7 @@ class SpectrumFitSection:
             try:
                 data[role] = read_spectrum(content, **units)
             except InputError as exc:
-                self.file_msg[role].show_error(f"{_esc(name)}: {_esc(str(exc))}")
+                self.file_msg[role].show_error(f"{name}: {str(exc)}")
                 raise _Stop from None
         sample = data["sample"]
         wl = sample.wavelength_nm
@@ -305,7 +306,7 @@ class SpectrumFitSection:
                 ambient = s.stack.ambient
                 r_ref = Stack([], substrate="Si", ambient=ambient).reflectance(wl, s.angle_deg, s.polarization)
             except InputError as exc:
-                self.file_msg["reference"].show_error(f"Bare silicon reference: {_esc(str(exc))}")
+                self.file_msg["reference"].show_error(f"Bare silicon reference: {str(exc)}")
                 raise _Stop from None
             ref_text = f"bare silicon (computed, in {ambient.name}, {s.angle_deg:g}°, {s.polarization})"
         else:
@@ -319,7 +320,7 @@ class SpectrumFitSection:
         try:
             R = reflectance_from_counts(sample.values, grids["reference"], grids.get("dark"), r_ref)
         except InputError as exc:
-            self.file_msg[blame if blame in ("reference", "dark") else "reference"].show_error(_esc(str(exc)))
+            self.file_msg[blame if blame in ("reference", "dark") else "reference"].show_error(str(exc))
             raise _Stop from None
         notes.append(f"Reflectance = (sample − dark)/(reference − dark) × reference reflectance ({ref_text}).")
         info.update(counts=True, reference_file=self.files["reference"][0],

@@ -623,7 +623,7 @@ class GratingSection:
             results = self._compute(new)
         except InputError as exc:
             if field is not None:
-                field.show_error(_esc(str(exc)))
+                field.show_error(str(exc))
             return False
         if field is not None:
             field.show_error(None)
@@ -641,7 +641,7 @@ class GratingSection:
                 raise InputError(f"{name}: the band runs from its short end to its long end; "
                                  f"{new.band_lo_nm:g} nm is not below {new.band_hi_nm:g} nm.")
         except InputError as exc:
-            field.show_error(_esc(str(exc)))
+            field.show_error(str(exc))
             return
         if key in ("band_lo_nm", "band_hi_nm"):
             other = self.band_hi if key == "band_lo_nm" else self.band_lo
@@ -660,7 +660,7 @@ class GratingSection:
                 raise InputError("Order: the zero order does not disperse, so it has no dispersion, resolving "
                                  "power or free spectral range; type a nonzero order such as 1 or −1.")
         except InputError as exc:
-            field.show_error(_esc(str(exc)))
+            field.show_error(str(exc))
             return
         self._take(field, replace(self.settings, order=int(value)))
 

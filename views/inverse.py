@@ -31,7 +31,7 @@ from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _stack_text, _footer
 from .limits import (JobCancelled, Limits, heavy_executor, heavy_job, post_to_page,
-                     session_key, upload_refusal)
+                     session_key, upload_refusal, UPLOAD_CHUNK_BYTES)
 from .state import THICKNESS_LIMITS_NM, compute_strip
 
 log = logging.getLogger("fringegauge")
@@ -92,7 +92,7 @@ class ColourToThickness:
         # photo
         self.dropper = pn.widgets.FileDropper(accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif",
                                                                   ".tiff", ".jpg", ".jpeg", ".png"],
-                                              max_file_size=f"{_dropper_mb()}MB", multiple=False, height=110,
+                                              max_file_size=f"{_dropper_mb()}MB", chunk_size=UPLOAD_CHUNK_BYTES, multiple=False, height=110,
                                               sizing_mode="stretch_width", margin=(2, 5),
                                               css_classes=["fg-photo-drop"])
         self.photo_msg = Field("")
@@ -160,12 +160,13 @@ class ColourToThickness:
         self.dl_csv = pn.widgets.FileDownload(callback=self._stats_csv, filename="thickness_statistics.csv",
                                               label="Statistics (.csv)", width=300, disabled=True)
 
-        self.find.on_click(self._on_find)
-        self.colour.input.param.watch(lambda e: _locked(self._on_find), "enter_pressed")
-        self.dropper.param.watch(self._on_upload, "value")
-        self.run_map.on_click(self._on_run_map)
-        self.cancel_map.on_click(lambda e: self.cancel())
-        self.ex.state.param.watch(self._on_state, ["stack_json", "swept_layer", "angle_deg", "illuminant",
+        # Handlers that change Bokeh models run under the document lock (see _locked).
+        self.find.on_click(locked(self._on_find))
+        self.colour.input.param.watch(locked(self._on_find), "enter_pressed")
+        self.dropper.param.watch(locked(self._on_upload), "value")
+        self.run_map.on_click(locked(self._on_run_map))
+        self.cancel_map.on_click(locked(lambda e: self.cancel()))
+        self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "illuminant",
                                                     "observer", "polarization", "na", "thickness_max_nm"])
 
     # ------------------------------------------------------------------ typed colour
@@ -283,12 +284,12 @@ class ColourToThickness:
         limits = Limits.from_env()
         refusal = upload_refusal(name, len(data), MAX_UPLOAD_BYTES, limits=limits)
         if refusal:
-            self.photo_msg.show_error(_esc(refusal))
+            self.photo_msg.show_error(refusal)
             return False
         try:
             photo = load_image(data, max_pixels=int(limits.max_photo_megapixels * 1e6))
         except InputError as exc:
-            self.photo_msg.show_error(f"{_esc(name)}: {_esc(str(exc))}")
+            self.photo_msg.show_error(f"{name}: {str(exc)}")
             return False
         self.photo_msg.show_error(None)
         self.photo, self.photo_name = photo, name
@@ -607,6 +608,18 @@ class ColourToThickness:
 def _dropper_mb() -> int:
     """The photo drop zone's own size check (MB), so an over-large photo is stopped in the browser."""
     return max(1, int(min(MAX_UPLOAD_BYTES, Limits.from_env().max_upload_mb * 2**20) // 2**20))
+
+
+def locked(handler):
+    """``handler`` wrapped to run through :func:`_locked`: for watchers and clicks that change Bokeh models.
+
+    Panel may call a handler outside the document lock (a click or upload that arrives just after
+    another change of the same page); changing a Bokeh model there fails, so the call is moved to
+    the next tick, where the lock is held. Outside a server it runs at once.
+    """
+    def run(*args, **kwargs):
+        _locked(partial(handler, *args, **kwargs))
+    return run
 
 
 def _locked(fn):

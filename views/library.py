@@ -19,6 +19,7 @@ from physics import InputError
 from physics.stackfile import load_stack_file
 
 from .explorer import Field, _esc, _label
+from .inverse import locked
 
 #: Environment variable naming the library folder (set by serve.py).
 LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
@@ -70,7 +71,8 @@ class LibrarySection:
         self.kind.param.watch(lambda e: self.refresh(), "value")
         self.listing.param.watch(lambda e: self._show_detail(), "value")
         self.refresh_button.on_click(lambda e: self.refresh())
-        self.load_button.on_click(lambda e: self.load_selected())
+        # loading reaches other tabs' Bokeh models: under the document lock (see views.inverse.locked)
+        self.load_button.on_click(locked(lambda e: self.load_selected()))
         self.archive_button.on_click(lambda e: self.archive_selected())
         self.save_button.on_click(lambda e: self.save_current())
         self.refresh()
@@ -192,7 +194,7 @@ class LibrarySection:
             self._say(f"Not saved: {_esc(str(exc))}", "danger")
             return False
         except InputError as exc:
-            self.name.show_error(_esc(str(exc)))
+            self.name.show_error(str(exc))
             return False
         self.refresh()
         self._select(name, result.version)

@@ -235,6 +235,26 @@ def upload_refusal(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "
             + (f" {advice}" if advice else ""))
 
 
+#: Largest file sent in one websocket message (the file inputs: a measured spectrum, 20 MB, is the
+#: largest); photos go through the drop zone in chunks of UPLOAD_CHUNK_BYTES.
+SINGLE_MESSAGE_UPLOAD_BYTES = 20_000_000
+UPLOAD_CHUNK_BYTES = 2 * 2**20
+#: Room in a message for what is not file content, and the smallest cap the page works with.
+_MESSAGE_OVERHEAD_BYTES = 2**20
+_MIN_MESSAGE_BYTES = 4 * 2**20
+
+
+def websocket_message_cap_bytes(limits: Limits | None = None) -> int:
+    """Largest websocket message the server reads: the largest upload sent in one message, as base64.
+
+    Anything larger is refused by the server before it is read (the connection is closed), so a
+    lower ``max_upload_mb`` also lowers what the socket accepts.
+    """
+    limits = limits or Limits.from_env()
+    largest = min(SINGLE_MESSAGE_UPLOAD_BYTES, int(limits.max_upload_mb * 2**20))
+    return max(_MIN_MESSAGE_BYTES, -(-largest * 4 // 3) + _MESSAGE_OVERHEAD_BYTES)
+
+
 def post_to_page(doc, callback) -> bool:
     """Schedule ``callback`` on the page's next tick; False (and nothing done) if the page has gone."""
     if doc is None or doc.session_context is None:

@@ -10,11 +10,14 @@ from __future__ import annotations
 
 import base64
 import json
+import math
 import zlib
 from urllib.parse import parse_qsl, urlencode
 
+import param
+
 from physics import InputError
-from physics.stackfile import load_stack_file
+from physics.stackfile import load_stack_file, read_json_document
 
 from .state import ExplorerState
 
@@ -40,14 +43,14 @@ def decode_stack(text: str) -> str:
         d = zlib.decompressobj()
         data = d.decompress(raw, MAX_STACK_BYTES)
         if d.unconsumed_tail:
-            raise InputError("the stack in the link is too large")
+            raise InputError("The stack in the link is too large; save it as a stack file and share the file.")
         stack_json = data.decode("utf-8")
         load_stack_file(stack_json)                          # the same checks as an uploaded file
         return stack_json
     except InputError:
         raise
     except Exception:
-        raise InputError("the stack in the link is damaged (it was cut or edited); ask for the link again") from None
+        raise InputError("The stack in the link is damaged (it was cut or edited); ask for the link again.") from None
 
 
 def state_to_query(state: ExplorerState) -> str:
@@ -66,42 +69,79 @@ def state_to_query(state: ExplorerState) -> str:
 
 
 def apply_query(state: ExplorerState, query) -> list[str]:
-    """Apply a '?…' string (or a {key: value} mapping) to ``state``; returns messages for skipped fields."""
+    """Apply a '?…' string (or a {key: value} mapping) to ``state``; returns messages for skipped fields.
+
+    Never raises for a bad link: each bad field is skipped with a plain-text sentence that does
+    not repeat the value itself (a link is text from anyone).
+    """
     if isinstance(query, str):
         items = dict(parse_qsl(query.lstrip("?"), keep_blank_values=True))
     else:
-        items = {k: (v[0] if isinstance(v, (list, tuple)) else v) for k, v in query.items()}
+        items = {k: (v[0] if v else "") if isinstance(v, (list, tuple)) else v for k, v in query.items()}
         items = {k: (v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)) for k, v in items.items()}
     errors, update = [], {}
     for name, key in URL_KEYS.items():
         if key not in items:
             continue
-        text = items[key]
         try:
-            if len(text) > MAX_VALUE_CHARS:
-                raise InputError("the value is too long")
-            p = state.param[name]
-            if name == "stack_json":
-                value = decode_stack(text)
-            elif name == "spd_json":
-                wl, v = json.loads(text)
-                state.set_spd(wl, v)
+            value = _field_value(state, name, items[key])
+            if name == "spd_json":
+                state.set_spd(*value)
                 continue
-            elif isinstance(p, __import__("param").Integer):
-                value = int(text)
-            elif isinstance(p, __import__("param").Number):
-                value = float(text)
-            else:
-                value = text
-            p._validate(value)
             update[name] = value
-        except (InputError, ValueError, TypeError) as exc:
+        except InputError as exc:
             errors.append(f"Link field '{key}' was not applied: {exc}".rstrip(".") + ".")
-    if "stack_json" in update:
-        n = len(json.loads(update["stack_json"])["layers"])
+    if update.get("illuminant") == "custom" and not state.spd_json:
+        update.pop("illuminant")
+        errors.append("Link field 'lamp' was not applied: 'custom' needs the lamp spectrum (field 'spd'), "
+                      "which the link does not carry.")
+    if "stack_json" in update or "swept_layer" in update:
+        n = len(json.loads(update.get("stack_json", state.stack_json) or '{"layers": []}')["layers"])
         if update.get("swept_layer", state.swept_layer) > max(n - 1, 0):
+            if "swept_layer" in update:
+                errors.append(f"Link field 'layer' was not applied: the stack has {n} layer(s); "
+                              f"layer {update['swept_layer']} does not exist.")
             update["swept_layer"] = 0
     if "thickness_nm" in update and "thickness_max_nm" not in update:
         update["thickness_max_nm"] = max(state.thickness_max_nm, update["thickness_nm"])
     state.param.update(**update)
     return errors
+
+
+def _field_value(state: ExplorerState, name: str, text: str):
+    """The checked value of one link field; InputError with a sentence (without the value) if bad."""
+    if len(text) > MAX_VALUE_CHARS:
+        raise InputError(f"the value is longer than {MAX_VALUE_CHARS:,} characters")
+    p = state.param[name]
+    if name == "stack_json":
+        return decode_stack(text)
+    if name == "spd_json":
+        return _decode_spd(text)
+    try:
+        if isinstance(p, param.Integer):
+            value = int(text.strip()) if text.strip().isascii() else None
+        elif isinstance(p, param.Number):
+            value = float(text.strip()) if text.strip().isascii() else None
+        else:
+            value = text
+    except ValueError:
+        value = None
+    if isinstance(p, param.Selector):
+        if value not in p.objects:
+            raise InputError(f"give one of {', '.join(map(str, p.objects))}")
+        return value
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        raise InputError("it is not a " + ("whole number" if isinstance(p, param.Integer) else "finite number"))
+    lo, hi = p.bounds
+    if value < lo or value > hi:
+        raise InputError(f"it must lie from {lo:g} to {hi:g}")
+    return value
+
+
+def _decode_spd(text: str):
+    """(wavelengths, values) of a lamp spectrum written as [[nm, ...], [value, ...]]."""
+    data = read_json_document(text, "lamp spectrum", 4 * MAX_VALUE_CHARS)
+    if (not isinstance(data, list) or len(data) != 2 or not all(isinstance(c, list) for c in data)
+            or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for c in data for x in c)):
+        raise InputError("the lamp spectrum must be [[wavelengths in nm], [values]]")
+    return data

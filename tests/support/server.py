@@ -46,6 +46,27 @@ def served_app(extra_args=(), env=None):
             log_path.unlink()
 
 
+@contextlib.contextmanager
+def served_lab(workdir, *args, env=None):
+    """Run ``serve.py`` (the lab command) from ``workdir`` on a free loopback port, with its library in
+    ``workdir/library``; yield (base_url, process, log_path); stop it afterwards."""
+    workdir = Path(workdir)
+    port = free_port()
+    log_path = workdir / "server.log"
+    with open(log_path, "w") as out:
+        proc = subprocess.Popen(
+            [sys.executable, str(ROOT / "serve.py"), "--host", "127.0.0.1", "--port", str(port),
+             "--library", str(workdir / "library"), *args],
+            cwd=workdir, stdout=out, stderr=subprocess.STDOUT,
+            env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
+        base = f"http://127.0.0.1:{port}"
+        try:
+            wait_until_up(proc, base + "/health", log_path, "serve.py")
+            yield base, proc, log_path
+        finally:
+            stop(proc)
+
+
 def wait_until_up(proc, url, log_path, what, timeout_s=START_TIMEOUT_S):
     """Poll ``url`` until it answers; raise with the server's output if it dies or times out."""
     deadline = time.time() + timeout_s

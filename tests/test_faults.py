@@ -1,0 +1,270 @@
+"""Faults against a real server and a real library: garbage on the websocket, an oversized message,
+and a saving process killed at random moments.
+
+The server is serve.py on a free loopback port; websockets are opened the way the page's script does
+(the session token from GET /app as the second subprotocol after "bokeh").
+"""
+
+from __future__ import annotations
+
+import asyncio
+import hashlib
+import json
+import os
+import random
+import re
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+from tornado.httpclient import HTTPRequest
+from tornado.websocket import websocket_connect
+
+from library.store import Library
+from physics.stackfile import load_stack_file
+from tests.support.server import served_lab
+from views.limits import Limits, websocket_message_cap_bytes
+
+ROOT = Path(__file__).resolve().parents[1]
+#: The websocket message cap serve.py sets for --max-upload-mb 1 (4 MiB: the page's smallest).
+WS_CAP_BYTES = websocket_message_cap_bytes(Limits(max_upload_mb=1))
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    with served_lab(tmp_path_factory.mktemp("faults"), "--max-upload-mb", "1") as (base, proc, log_path):
+        yield {"port": int(base.rsplit(":", 1)[1]), "log": log_path, "proc": proc}
+
+
+def _get(port, path, timeout=30):
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}{path}", timeout=timeout) as resp:
+        return resp.status, resp.read().decode("utf-8", "replace")
+
+
+def _token(port) -> str:
+    status, html = _get(port, "/app")
+    assert status == 200
+    return re.search(r'"token":"([^"]+)"', html).group(1)
+
+
+async def _connect(port, token=None):
+    req = HTTPRequest(f"ws://127.0.0.1:{port}/app/ws", headers={"Origin": f"http://127.0.0.1:{port}"},
+                      request_timeout=30)
+    return await websocket_connect(req, subprotocols=["bokeh", token or _token(port)], max_message_size=64 * 2**20)
+
+
+async def _read_message(ws, timeout=30):
+    """One Bokeh protocol message (header, metadata, content, buffers) as (header dict, content str), or None
+    when the server closed the connection."""
+    header = await asyncio.wait_for(ws.read_message(), timeout)
+    if header is None:
+        return None
+    header = json.loads(header)
+    await asyncio.wait_for(ws.read_message(), timeout)                     # metadata
+    content = await asyncio.wait_for(ws.read_message(), timeout)
+    for _ in range(header.get("num_buffers", 0)):
+        await asyncio.wait_for(ws.read_message(), timeout)
+    return header, content
+
+
+async def _send(ws, msgtype, content="{}", msgid="t1"):
+    for part in (json.dumps({"msgid": msgid, "msgtype": msgtype}), "{}", content):
+        await ws.write_message(part)
+
+
+async def _fresh_session_works(port, token=None):
+    """A new websocket gets its ACK and answers a document request with the page's document."""
+    ws = await _connect(port, token)
+    try:
+        ack = await _read_message(ws)
+        assert ack is not None and ack[0]["msgtype"] == "ACK"
+        await _send(ws, "PULL-DOC-REQ", msgid="pull-1")
+        while True:
+            msg = await _read_message(ws, timeout=60)
+            assert msg is not None, "the server closed a fresh, well-behaved connection"
+            if msg[0]["msgtype"] == "PULL-DOC-REPLY":
+                assert msg[0]["reqid"] == "pull-1" and "fringegauge" in msg[1]
+                return
+    finally:
+        ws.close()
+
+
+def _assert_serving(port):
+    status, body = _get(port, "/health")
+    assert status == 200 and json.loads(body)["status"] == "ok"
+    status, html = _get(port, "/app")
+    assert status == 200 and "render_items" in html
+    asyncio.run(_fresh_session_works(port, re.search(r'"token":"([^"]+)"', html).group(1)))
+
+
+async def _closed_or_ignored(ws, wait_s=5.0):
+    """'closed' when the server closes the connection within wait_s, 'ignored' when nothing comes back."""
+    deadline = time.monotonic() + wait_s
+    while time.monotonic() < deadline:
+        try:
+            frame = await asyncio.wait_for(ws.read_message(), deadline - time.monotonic())
+        except asyncio.TimeoutError:
+            return "ignored"
+        if frame is None:
+            return "closed"
+        assert "PULL-DOC-REPLY" not in str(frame)[:200], "garbage was answered like a request"
+    return "ignored"
+
+
+GARBAGE = {
+    "not-json": ["hello, server"],
+    "json-but-not-a-header": [json.dumps({"x": 1}), "{}", "{}"],
+    "header-list": ["[1, 2, 3]", "{}", "{}"],
+    "unknown-msgtype": [json.dumps({"msgid": "g1", "msgtype": "NO-SUCH-TYPE"}), "{}", "{}"],
+    "bad-content": [json.dumps({"msgid": "g2", "msgtype": "PATCH-DOC"}), "{}", "{not json"],
+    "patch-of-nothing": [json.dumps({"msgid": "g3", "msgtype": "PATCH-DOC"}), "{}",
+                         json.dumps({"events": [{"kind": "ModelChanged", "model": {"id": "nope"}, "attr": "value",
+                                                 "new": "__import__('os')"}]})],
+    "huge-num-buffers": [json.dumps({"msgid": "g4", "msgtype": "PATCH-DOC", "num_buffers": 10**12}), "{}", "{}"],
+    "negative-num-buffers": [json.dumps({"msgid": "g5", "msgtype": "PATCH-DOC", "num_buffers": -5}), "{}", "{}"],
+    "binary-junk": [bytes(range(256)) * 8],
+    "binary-after-header": [json.dumps({"msgid": "g6", "msgtype": "PULL-DOC-REQ"}), b"\x00\xff" * 64, "{}"],
+    "deep-json": ["[" * 100_000 + "]" * 100_000],
+    "invalid-utf8-text": [b"\xff\xfe\xfd"],
+}
+
+
+def test_garbage_on_the_websocket_drops_that_connection_only(server):
+    """Each kind of garbage on its own connection (all at once, one session's token): each connection is
+    closed or its garbage ignored; then the server still serves a fresh page and a fresh session."""
+    port = server["port"]
+    token = _token(port)
+
+    async def one(frames):
+        ws = await _connect(port, token)
+        try:
+            ack = await _read_message(ws)
+            assert ack[0]["msgtype"] == "ACK"
+            for frame in frames:
+                if ws.protocol is None:
+                    break
+                await ws.write_message(frame, binary=isinstance(frame, bytes))
+            return await _closed_or_ignored(ws, wait_s=2.0)
+        finally:
+            ws.close()
+
+    async def run():
+        return await asyncio.gather(*(one(frames) for frames in GARBAGE.values()))
+    outcomes = dict(zip(GARBAGE, asyncio.run(run())))
+    assert set(outcomes.values()) <= {"closed", "ignored"}, outcomes
+    # Bokeh closes on a protocol error; a lone frame waits for the rest of its message (ignored)
+    assert outcomes["binary-junk"] == outcomes["unknown-msgtype"] == "closed", outcomes
+    _assert_serving(port)
+
+
+def test_oversized_messages_and_the_server_goes_on(server):
+    """serve.py sets the websocket cap from --max-upload-mb (4 MiB for 1 MB): a 3 MB message is read (and
+    here, an empty patch, ignored or closed); one over the cap closes the connection unread. Either way
+    the server goes on."""
+    port = server["port"]
+    token = _token(port)
+
+    async def send(size_bytes, wait_s):
+        ws = await _connect(port, token)
+        try:
+            await _read_message(ws)
+            header = json.dumps({"msgid": "big", "msgtype": "PATCH-DOC"})
+            content = json.dumps({"events": [], "pad": "x" * size_bytes})
+            for part in (header, "{}", content):
+                try:
+                    await ws.write_message(part)
+                except Exception:             # the server may close while the frame is still going out
+                    break
+            return await _closed_or_ignored(ws, wait_s=wait_s)
+        finally:
+            ws.close()
+
+    async def run():
+        return await asyncio.gather(send(3 * 2**20, 6), send(WS_CAP_BYTES + 2**20, 20))
+    three_mb, over_cap = asyncio.run(run())
+    assert three_mb in ("closed", "ignored")
+    assert over_cap == "closed"
+    _assert_serving(port)
+
+
+def test_server_log_has_no_traceback_from_our_code(server):
+    """Run after the garbage tests: Bokeh logs its own protocol errors; no frame of ours may appear."""
+    status, body = _get(server["port"], "/health")
+    assert status == 200 and json.loads(body)["status"] == "ok"
+    log = server["log"].read_text(errors="replace")
+    ours = [line for line in log.splitlines()
+            if line.strip().startswith("File ") and str(ROOT) in line and "site-packages" not in line]
+    assert ours == [], "a traceback passed through our code:\n" + "\n".join(ours)
+    bokeh = sorted({re.sub(r"\d+", "N", line)[:160] for line in log.splitlines() if line.startswith(("ERROR:", "WARNING:"))})
+    print("\n".join(["Bokeh's own log lines for the garbage above:", *bokeh]))
+    assert server["proc"].poll() is None
+
+
+# ---------------------------------------------------------------------- killed while saving
+SAVER = textwrap.dedent("""
+    import sys
+    from library.store import Library
+    from physics.stackfile import load_stack_file
+    root, text = sys.argv[1], open(sys.argv[2], encoding="utf-8").read()
+    load_stack_file(text)                      # load the materials before the first save is timed
+    lib = Library(root)
+    print("ready", flush=True)
+    while True:
+        lib.save("stacks", "Same name", text, user="killed-saver")
+""")
+
+
+def _valid_stack_text() -> str:
+    text = (ROOT / "presets" / "thermal_oxide_on_silicon.json").read_text(encoding="utf-8")
+    load_stack_file(text)
+    return text
+
+
+def test_saver_killed_at_random_moments_leaves_no_half_written_entry(tmp_path):
+    root, text = tmp_path / "library", _valid_stack_text()
+    text_path = tmp_path / "stack.json"
+    text_path.write_text(text, encoding="utf-8")
+    rng = random.Random(20_261_202)
+    env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    for _ in range(5):
+        proc = subprocess.Popen([sys.executable, "-c", SAVER, str(root), str(text_path)], cwd=tmp_path, env=env,
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        try:
+            assert proc.stdout.readline().strip() == "ready", proc.stderr.read()
+            time.sleep(rng.uniform(0.02, 0.5))
+        finally:
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(timeout=30)
+            proc.stdout.close()
+            proc.stderr.close()
+
+    lib = Library(root)
+    folder = root / "stacks"
+    entries, problems = lib.list("stacks"), lib.list_problems("stacks")
+    assert entries, "no save completed in any round"
+    listed = {e.file_name for e in entries}
+    reported = {p.file_name for p in problems}
+    for e in entries:
+        assert not e.file_name.startswith(".") and ".tmp-" not in e.file_name
+        raw = (folder / e.file_name).read_bytes()
+        meta = json.loads((folder / (e.file_name + ".meta.json")).read_text(encoding="utf-8"))
+        assert hashlib.sha256(raw).hexdigest() == meta["sha256"] == e.sha256 and len(raw) == meta["size"]
+        assert raw.decode("utf-8") == text
+        load_stack_file(raw)
+        assert lib.load("stacks", "Same name", e.version) == text
+    for path in folder.iterdir():
+        name = path.name
+        if name.startswith(".") or name.endswith(".meta.json"):
+            continue
+        assert name in listed or name in reported, f"{name} is neither listed nor reported"
+    versions = sorted(e.version for e in entries)
+    assert len(set(versions)) == len(versions)
+    res = lib.save("stacks", "Same name", text, user="after")
+    assert res.version > max(versions)
+    assert lib.load("stacks", "Same name") == text
+    assert lib.list("stacks")[0].user == "after"
