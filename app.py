@@ -1,15 +1,24 @@
 """fringegauge browser page. Serve with `panel serve app.py` (http://localhost:5006/app)."""
 
+from functools import partial
+
 import panel as pn
 
 from views.explorer import FilmExplorer
 from views.fit import SpectrumFitSection
 from views.grating import GratingSection
-from views.inverse import ColourToThickness
+from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
 from views.urlstate import apply_query, state_to_query
 
 pn.extension("filedropper", design="native", notifications=False)
+
+
+def tab_opened(inverse, library, title):
+    """Sections that draw only while their tab is open, or re-read the library when it is opened."""
+    inverse.set_shown(title == "Colour → thickness")
+    if title == "Lab library":
+        library.refresh()
 
 
 def page():
@@ -28,6 +37,7 @@ def page():
         explorer.state.param.watch(write_address, list(explorer.state.param))
         pn.state.onload(write_address)
     inverse = ColourToThickness(explorer)
+    inverse.set_shown(False)                       # the page opens on the film explorer
     fit = SpectrumFitSection(explorer)
     gratings = GratingSection()
     library = LibrarySection(explorer, inverse, gratings)
@@ -35,7 +45,7 @@ def page():
                                       ("Spectrum → thickness", fit.panel()),
                                       ("Gratings", gratings.panel()),
                                       ("Lab library", library.panel())],
-                          without_stack={"Gratings", "Lab library"}, on_show={"Lab library": library.refresh})
+                          without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, inverse, library)))
 
 
 page().servable(title="fringegauge")

@@ -212,6 +212,21 @@ def test_spectrum_fit_in_the_page(page, tmp_path):
     assert page.console_errors == []
 
 
+#: The texts of the lab library's list: every <option> under the list widget, through shadow roots.
+LIBRARY_OPTIONS_JS = """() => {
+  const out = [];
+  const walk = (root, inside) => {
+    for (const el of root.querySelectorAll('*')) {
+      const here = inside || (el.classList && el.classList.contains('fg-lib-list'));
+      if (here && el.tagName === 'OPTION') out.push(el.textContent);
+      if (el.shadowRoot) walk(el.shadowRoot, here);
+    }
+  };
+  walk(document, false);
+  return out;
+}"""
+
+
 def _save_to_library(pg, name, user):
     pg.get_by_text("Lab library", exact=True).first.click()
     pg.get_by_label("Name to save under").fill(name)
@@ -233,5 +248,6 @@ def test_two_users_save_one_name_and_the_second_is_told(page, browser, server):
     assert "saved by ak" in other.evaluate(DEEP_TEXT_JS, ".fg-lib-text")
     other.context.close()
     page.get_by_text("Refresh list", exact=True).click()
-    page.wait_for_function(f"() => (({DEEP_TEXT_JS})('.fg-lib-entry') || '').includes('version 2')")
+    page.wait_for_function("() => (" + LIBRARY_OPTIONS_JS + ")().some(t => t.includes('v2') && t.includes('bz'))")
+    assert "version 1" in page.evaluate(DEEP_TEXT_JS, ".fg-lib-entry")       # the user's choice is kept
     assert not page.console_errors

@@ -54,6 +54,12 @@ CSS = """
 """
 
 
+def _rule() -> pn.pane.HTML:
+    """A horizontal rule between page sections (plain HTML: a tab built on opening fetches no stylesheet)."""
+    return pn.pane.HTML("<hr style='border:0;border-top:1px solid #ddd;margin:6px 0'>", sizing_mode="stretch_width",
+                        margin=(4, 5))
+
+
 def _label(text: str) -> pn.pane.HTML:
     return pn.pane.HTML(f'<div class="fg-label">{text}</div>', margin=(4, 5, 0, 5), stylesheets=[CSS])
 
@@ -667,11 +673,12 @@ class FilmExplorer:
         return io.BytesIO(png)
 
     # ------------------------------------------------------------------ layout
-    def panel(self, extra_tabs=(), without_stack=(), on_show=None):
+    def panel(self, extra_tabs=(), without_stack=(), on_tab=None):
         """The page: sidebar and, as tabs, the explorer's views and any ``extra_tabs`` (title, layout).
 
         Tabs named in ``without_stack`` do not use the stack: the stack sidebar is hidden there.
-        ``on_show`` maps a tab title to a function called each time that tab is opened.
+        ``on_tab(title)`` is called each time a tab is opened. Tabs are built in the browser when
+        first opened (``dynamic``), which keeps every message of a slider move small.
         """
         s = self.state
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
@@ -709,14 +716,13 @@ class FilmExplorer:
             sizing_mode="stretch_both", scroll=True, margin=(0, 10),
         )
         if extra_tabs:
-            main = pn.Tabs(("Film explorer", main), *extra_tabs, sizing_mode="stretch_both", dynamic=False)
+            main = pn.Tabs(("Film explorer", main), *extra_tabs, sizing_mode="stretch_both", dynamic=True)
             titles = ["Film explorer", *(t for t, _ in extra_tabs)]
-            on_show = on_show or {}
 
             def opened(event):
                 sidebar.visible = titles[event.new] not in without_stack
-                if titles[event.new] in on_show:
-                    on_show[titles[event.new]]()
+                if on_tab is not None:
+                    on_tab(titles[event.new])
             main.param.watch(opened, "active")
         return pn.Row(sidebar, main, sizing_mode="stretch_both", stylesheets=[CSS])
 

@@ -34,7 +34,7 @@ from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_gr
                                 load_grating_preset)
 
 from . import render
-from .explorer import Field, _esc, _fmt, _label, _rgba
+from .explorer import Field, _esc, _fmt, _label, _rgba, _rule
 from .inverse import _locked
 from .limits import check_grid_points, interactive_executor, post_to_page
 from .state import parse_number
@@ -1096,17 +1096,17 @@ class GratingSection:
             pn.Row(pn.pane.Bokeh(self.fan_fig), self.readout_html, sizing_mode="stretch_width", margin=0),
             self.fan_caption,
             self.overlap_html,
-            pn.layout.Divider(),
+            _rule(),
             pn.Row(_label("Grooves lit (display)"), self.n_slits, _label("Scale"), self.scale, margin=0),
             pn.pane.Bokeh(self.shape_fig, sizing_mode="stretch_width"),
             self.line_caption,
-            pn.layout.Divider(),
+            _rule(),
             pn.Row(_label("Colours"), self.brightness, margin=0),
             pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
             self.map_status,
             pn.pane.Bokeh(self.map_fig, sizing_mode="stretch_width"),
             self.colour_caption,
-            pn.layout.Divider(),
+            _rule(),
             self.plan_html,
             self.caution_end,
             sizing_mode="stretch_both", scroll=True, margin=(0, 5))

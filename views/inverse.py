@@ -29,7 +29,7 @@ from physics.imageio import box_mean_linear, load_image
 from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 
 from . import render
-from .explorer import Field, _esc, _fmt, _label, _rgba, _stack_text, _footer
+from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer
 from .limits import (JobCancelled, Limits, heavy_executor, heavy_job, post_to_page,
                      session_key, upload_refusal, UPLOAD_CHUNK_BYTES)
 from .state import THICKNESS_LIMITS_NM, compute_strip
@@ -51,6 +51,8 @@ class ColourToThickness:
         self.ex = explorer
         self.photo = None
         self.calib_box = None
+        self.shown = True                       # the page sets False while another tab is open
+        self._strip_stale = False
         self.roi = None
         self.result = None
         self._job = 0
@@ -269,7 +271,17 @@ class ColourToThickness:
     def _on_state(self, *events):
         if any(e.name == "thickness_max_nm" for e in events):
             self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
-        self._refresh_strip()
+        if self.shown:
+            self._refresh_strip()
+        else:                                   # drawn when the tab is opened, not on every slider move
+            self._strip_stale = True
+
+    def set_shown(self, shown: bool) -> None:
+        """Tell the section whether its tab is open (the page calls this on every tab change)."""
+        self.shown = bool(shown)
+        if self.shown and self._strip_stale:
+            self._strip_stale = False
+            self._refresh_strip()
 
     # ------------------------------------------------------------------ photo
     def _on_upload(self, event):
@@ -596,7 +608,7 @@ class ColourToThickness:
             self.dl_npy, self.dl_png, self.dl_csv, width=340)
         return pn.Column(
             pn.Row(typed, results, sizing_mode="stretch_width"),
-            pn.layout.Divider(),
+            _rule(),
             pn.Row(photo_controls, pn.Column(self.map_msg, pn.pane.Bokeh(self.photo_fig, sizing_mode="stretch_width"),
                                              sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.tmap_fig, sizing_mode="stretch_width"),

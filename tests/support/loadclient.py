@@ -536,13 +536,19 @@ class PhotoMapUser:
         try:
             self.session = s = await PageSession(self.base_url).open()
             self.tabs = s.find("Tabs")
-            self.drop = s.find("FileDropper", "fg-photo-drop")
-            self.button = s.find("Button", label="Make thickness map")
         except Exception as exc:  # noqa: BLE001
             self.open_error = f"open: {type(exc).__name__}: {exc}"
             return False
         self.open_s = time.perf_counter() - t0
-        s.watched.add(self.button)
+        return True
+
+    def _photo_controls_arrived(self) -> bool:
+        """The page builds a tab when it is first opened: look for its drop zone and button."""
+        try:
+            self.drop = self.session.find("FileDropper", "fg-photo-drop")
+            self.button = self.session.find("Button", label="Make thickness map")
+        except PageError:
+            return False
         return True
 
     def _texts(self):
@@ -553,9 +559,9 @@ class PhotoMapUser:
     async def upload(self, r: HeavyResult):
         s = self.session
         await s.set_value(self.tabs, "active", 1)                           # "Colour → thickness"
-        # a person takes a while to pick the file; an upload inside the tab change's debounce
-        # window is handled by the page outside the document lock (see the report)
-        await asyncio.sleep(TAB_TO_UPLOAD_S)
+        await s.wait_until(self._photo_controls_arrived, UPDATE_TIMEOUT_S)
+        s.watched.add(self.button)
+        await asyncio.sleep(TAB_TO_UPLOAD_S)                               # a person picks the file
         t0 = time.perf_counter()
         await s.upload(self.drop, self.name, self.png, "image/png")
         await s.wait_until(lambda: s.attr(self.button, "disabled") is False, UPDATE_TIMEOUT_S * 2)
