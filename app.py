@@ -13,6 +13,9 @@ from views.urlstate import apply_query, state_to_query
 
 pn.extension("filedropper", design="native", notifications=False)
 
+#: The page address follows the state this long after the last change (ms).
+ADDRESS_DELAY_MS = 400
+
 
 def tab_opened(inverse, library, title):
     """Sections that draw only while their tab is open, or re-read the library when it is opened."""
@@ -32,9 +35,20 @@ def page():
     if pn.state.location is not None:
         location = pn.state.location
 
+        pending = []
+
         def write_address(*_):
+            pending.clear()
             location.search = state_to_query(explorer.state)
-        explorer.state.param.watch(write_address, list(explorer.state.param))
+
+        def address_soon(*_):
+            """Write the address once a drag pauses, not on every slider step (each write is a message)."""
+            doc = pn.state.curdoc
+            if doc is None or doc.session_context is None:
+                write_address()
+            elif not pending:
+                pending.append(doc.add_timeout_callback(write_address, ADDRESS_DELAY_MS))
+        explorer.state.param.watch(address_soon, list(explorer.state.param))
         pn.state.onload(write_address)
     inverse = ColourToThickness(explorer)
     inverse.set_shown(False)                       # the page opens on the film explorer

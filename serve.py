@@ -329,12 +329,15 @@ def main(argv=None) -> int:
 
     for sig in (signal.SIGINT, signal.SIGTERM):
         signal.signal(sig, stop)
+    from views import workers
     server.start()
+    workers.warm(settings.limits.max_jobs_server)        # the first photo map should not wait for imports
     log.info("serving", extra={"url": f"http://{settings.host}:{server.port}/app", **settings.describe()})
     try:
         loop.start()
     finally:
         server.stop()
+        workers.shutdown()
         log.info("stopped")
     return 0
 

@@ -260,6 +260,16 @@ class DatabaseMaterial(Material):
     def spec(self):
         return self.page if self.name == self.page else self.name
 
+    def __getstate__(self):
+        """Pickled without the database's loaded page (it holds closures): reloaded from ``page``."""
+        state = dict(self.__dict__)
+        del state["_m"]
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self._m = _load_page(*_split_page(self.page))
+
 
 def _check_range(range_nm):
     r = require_finite("range_nm", range_nm, minimum=0.0, min_inclusive=False, unit="nm").ravel()

@@ -94,6 +94,28 @@ def test_thickness_slider_moves_the_swatch_to_the_physics_value(page):
     hex_now = _swatch_text(page)
     assert hex_now != before
     assert hex_now == _physics_hex(_swatch_thickness(page))
+    # the typed field follows the slider once it comes to rest (not at every step, to spare the server)
+    field = page.locator(".fg-thickness-field input").first
+    page.wait_for_function("(el) => el.value === '130'", arg=field.element_handle(), timeout=10_000)
+    assert page.console_errors == []
+
+
+def test_dragging_the_slider_with_the_mouse_updates_swatch_and_field(page):
+    handle = page.locator(".fg-thickness-slider .noUi-handle").first
+    box = handle.bounding_box()
+    page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+    page.mouse.down()
+    for dx in range(10, 160, 10):                 # a drag in steps, as a hand makes it
+        page.mouse.move(box["x"] + box["width"] / 2 + dx, box["y"] + box["height"] / 2)
+        page.wait_for_timeout(30)
+    page.mouse.up()
+    field = page.locator(".fg-thickness-field input").first
+    page.wait_for_function(f"""(el) => {{
+        const t = ({DEEP_TEXT_JS})('.fg-swatch-values') || '';
+        const m = t.match(/([\d.]+) nm at/);
+        return m && Math.abs(parseFloat(m[1]) - parseFloat(el.value)) < 1e-6 && parseFloat(el.value) > 100;
+    }}""", arg=field.element_handle(), timeout=15_000)
+    assert _swatch_text(page) == _physics_hex(_swatch_thickness(page))
     assert page.console_errors == []
 
 

@@ -132,14 +132,10 @@ def test_grating_map_over_the_grid_limit_says_so(monkeypatch):
     assert "grid points" in g.map_status.object
 
 
-def test_executors_are_separate_and_sized_from_settings(monkeypatch):
+def test_interactive_threads_are_sized_from_settings(monkeypatch):
     monkeypatch.setenv(L.THREADS_ENV, "3")
-    monkeypatch.setenv("FRINGEGAUGE_MAX_JOBS_SERVER", "1")
     assert L.interactive_executor()._max_workers == 3
-    assert L.heavy_executor()._max_workers == 1
-    assert L.interactive_executor() is not L.heavy_executor()
     monkeypatch.delenv(L.THREADS_ENV)
-    monkeypatch.delenv("FRINGEGAUGE_MAX_JOBS_SERVER")
     assert L.interactive_executor()._max_workers == L.DEFAULT_THREADS
 
 

@@ -103,6 +103,7 @@ class FilmExplorer:
         self._scale = 1.0
         self.generation = 0          # results applied so far (tests and benchmarks watch it)
         self._syncing = False
+        self._dragging = False
         self._build_widgets()
         self._build_plots()
         self._wire()
@@ -244,6 +245,8 @@ class FilmExplorer:
         self.db_search.param.watch(self._on_db_search, "value_input")
         self.swept.param.watch(self._on_swept, "value")
         self.thickness_slider.param.watch(self._on_thickness_slider, "value")
+        self.thickness_slider.param.watch(partial(self._echo_slider, "thickness"), "value_throttled")
+        self.angle_slider.param.watch(partial(self._echo_slider, "angle"), "value_throttled")
         self.thickness.input.param.watch(self._on_thickness_text, "value")
         self.tmax.input.param.watch(self._on_tmax, "value")
         self.angle_slider.param.watch(self._on_angle_slider, "value")
@@ -436,8 +439,30 @@ class FilmExplorer:
     def _on_thickness_slider(self, event):
         if self._syncing:
             return
-        self.state.thickness_nm = round(float(event.new), SLIDER_DIGITS)
-        self._show_text(self.thickness, _fmt(event.new, 2))
+        self._dragging = _served()                # while served, the typed fields follow at release
+        try:
+            self.state.thickness_nm = round(float(event.new), SLIDER_DIGITS)
+        finally:
+            self._dragging = False
+        if not _served():
+            self._echo_slider("thickness")
+
+    def _echo_slider(self, which: str, *_):
+        """Mirror a slider into its typed field (and the swept layer's row). While served this runs when
+        a drag ends, not at every step: each echo is work for the server's one event loop."""
+        if which == "thickness":
+            self._show_text(self.thickness, _fmt(self.state.thickness_nm, 2))
+            self._show_row_thickness()
+        else:
+            self._show_text(self.angle, _fmt(self.state.angle_deg, 2))
+
+    def _show_row_thickness(self):
+        if self.state.swept_layer < len(getattr(self, "_row_thickness", [])):
+            self._syncing, was = True, self._syncing
+            try:
+                self._row_thickness[self.state.swept_layer].value = _fmt(self.state.thickness_nm, 2)
+            finally:
+                self._syncing = was
 
     def _on_thickness_text(self, event):
         if self._syncing:
@@ -464,7 +489,8 @@ class FilmExplorer:
         if self._syncing:
             return
         self.state.angle_deg = round(float(event.new), SLIDER_DIGITS)
-        self._show_text(self.angle, _fmt(event.new, 2))
+        if not _served():
+            self._echo_slider("angle")
 
     def _on_angle_text(self, event):
         if self._syncing:
@@ -496,12 +522,8 @@ class FilmExplorer:
 
     def _on_state(self, *events):
         names = {e.name for e in events}
-        if "thickness_nm" in names and self.state.swept_layer < len(getattr(self, "_row_thickness", [])):
-            self._syncing, was = True, self._syncing
-            try:
-                self._row_thickness[self.state.swept_layer].value = _fmt(self.state.thickness_nm, 2)
-            finally:
-                self._syncing = was
+        if "thickness_nm" in names and not self._dragging:
+            self._show_row_thickness()
         kinds = {"point"}
         if names & {"stack_json", "swept_layer", "thickness_max_nm", "polarization", "illuminant", "spd_json",
                     "observer", "na", "brightness"}:
@@ -728,6 +750,12 @@ class FilmExplorer:
 
 
 # ---------------------------------------------------------------------- helpers
+
+def _served() -> bool:
+    """True when running for a browser session (not in a plain script or test)."""
+    doc = pn.state.curdoc
+    return doc is not None and doc.session_context is not None
+
 
 def _spectrum_range(s: ExplorerState):
     lo, hi = s.stack.wavelength_range_nm()

@@ -23,10 +23,11 @@ import panel as pn
 from bokeh.models import ColumnDataSource, HoverTool, Span
 from bokeh.plotting import figure
 
-from physics import InputError, Stack, fit_thickness, optical_thickness_fft, read_spectrum, reflectance_from_counts
+from physics import InputError, Stack, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
 
-from .limits import Limits, heavy_executor, heavy_job, post_to_page, session_key, upload_refusal
+from . import workers
+from .limits import Limits, heavy_job, post_to_page, session_key, upload_refusal
 from .explorer import Field, _esc, _fmt, _label
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
@@ -417,42 +418,37 @@ class SpectrumFitSection:
         info = dict(self.import_info)
         doc = pn.state.curdoc
         served = doc is not None and doc.session_context is not None
+        size = len(args["wavelength_nm"])
+        session = session_key(self.ex)
         if sync or not served:
+            limits = Limits.from_env()
             try:
-                with heavy_job("spectrum_fit", len(args["wavelength_nm"]), session_key(self.ex)):
-                    out = self._work(args)
+                with heavy_job("spectrum_fit", size, session, limits):
+                    out = workers.spectrum_fit(args, limits.max_grid_points)
             except InputError as exc:
                 out = None, None, exc
             self._finish(job, args, info, *out)
             return True
         self.status.object = "fitting…"
         self.fit_button.disabled = True
-        session = session_key(self.ex)
 
         async def run():
+            limits = Limits.from_env()
             try:
-                with heavy_job("spectrum_fit", len(args["wavelength_nm"]), session):
-                    out = await asyncio.get_running_loop().run_in_executor(heavy_executor(), self._work, args)
+                with heavy_job("spectrum_fit", size, session, limits):
+                    out = await workers.run_in_worker(limits.max_jobs_server, workers.spectrum_fit, args,
+                                                      limits.max_grid_points)
             except InputError as exc:
                 out = None, None, exc
+            except workers.WorkerLost as exc:
+                log.error("spectrum fit: worker process lost", extra={"session": session, "size": size})
+                out = None, None, InputError(str(exc))
             except Exception:  # never lose the session to one failed computation
                 log.exception("spectrum fit failed")
                 out = None, None, InputError("The fit failed unexpectedly; the server log has the details.")
             post_to_page(doc, partial(self._finish, job, args, info, *out))
         pn.state.execute(run)
         return True
-
-    @staticmethod
-    def _work(args):
-        try:
-            result = fit_thickness(**args, max_grid_points=Limits.from_env().max_grid_points)
-        except InputError as exc:
-            return None, None, exc
-        try:
-            fourier = optical_thickness_fft(result.wavelength_nm, result.measured, args["angle_deg"])
-        except InputError:
-            fourier = None
-        return result, fourier, None
 
     def _finish(self, job, args, info, result, fourier, error):
         if job != self._job:                     # superseded by a newer request

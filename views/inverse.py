@@ -30,7 +30,8 @@ from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer
-from .limits import (JobCancelled, Limits, heavy_executor, heavy_job, post_to_page,
+from . import workers
+from .limits import (JobCancelled, Limits, heavy_job, post_to_page,
                      session_key, upload_refusal, UPLOAD_CHUNK_BYTES)
 from .state import THICKNESS_LIMITS_NM, compute_strip
 
@@ -471,30 +472,25 @@ class ColourToThickness:
         doc = pn.state.curdoc
         served = doc is not None and doc.session_context is not None
 
-        def report(fraction, text):
-            if job != self._job or (served and doc.session_context is None):
-                raise JobCancelled()                  # superseded, or the page has gone: stop early
-            def show():
-                if job == self._job:
-                    self.progress.value = int(100 * fraction)
-                    self.progress_text.object = text
-            if served:
-                post_to_page(doc, show)
-            else:
-                show()
+        def gone():
+            return job != self._job or (served and doc.session_context is None)
 
-        def work():
-            try:
-                return thickness_map(progress=report, **args), None
-            except InputError as exc:
-                return None, str(exc)
+        def show(fraction, text):
+            if job == self._job:
+                self.progress.value = int(100 * fraction)
+                self.progress_text.object = text
 
         size = self.photo.width * self.photo.height
         session = session_key(self.ex)
         if sync or not served:
+            channel = workers.LocalChannel(show, gone)
             try:
                 with heavy_job("photo_map", size, session):
-                    self._finish_map(job, s, *work())
+                    try:
+                        result = thickness_map(progress=channel.report, **args), None
+                    except InputError as exc:
+                        result = None, str(exc)
+                    self._finish_map(job, s, *result)
             except InputError as exc:
                 self._finish_map(job, s, None, str(exc))
             except JobCancelled:
@@ -502,13 +498,19 @@ class ColourToThickness:
             return
 
         async def run():
+            limits = Limits.from_env()
             try:
-                with heavy_job("photo_map", size, session):
-                    result = await asyncio.get_running_loop().run_in_executor(heavy_executor(), work)
+                with heavy_job("photo_map", size, session, limits):
+                    result = await workers.run_in_worker(
+                        limits.max_jobs_server, workers.photo_map, args, channel=workers.Channel.make(),
+                        on_progress=lambda f, text: post_to_page(doc, partial(show, f, text)), cancelled=gone)
             except InputError as exc:
                 result = None, str(exc)
             except JobCancelled:
                 return
+            except workers.WorkerLost as exc:
+                log.error("photo thickness map: worker process lost", extra={"session": session, "size": size})
+                result = None, str(exc)
             except Exception:  # never lose the session to one failed computation
                 log.exception("photo thickness map failed")
                 result = None, "The thickness map failed unexpectedly; the server log has the details."

@@ -20,9 +20,9 @@ Where each limit is enforced:
     photo drop zone also checks in the browser. ``serve.py`` sizes the websocket message limit to it.
 ``max_jobs_per_session`` / ``max_jobs_server``
     :func:`heavy_job` around photo maps and spectrum fits: refused at once, with a sentence, when the
-    page or the server already runs that many; they run on :func:`heavy_executor`, which has exactly
-    ``max_jobs_server`` threads, while sliders, spectra and the quick maps use
-    :func:`interactive_executor`, so heavy work never queues in front of them.
+    page or the server already runs that many; they run in :mod:`views.workers`' pool of exactly
+    ``max_jobs_server`` worker processes, while sliders, spectra and the quick maps use
+    :func:`interactive_executor` threads, so heavy work never queues in front of them.
 """
 
 from __future__ import annotations
@@ -111,7 +111,8 @@ def _pool(name: str, workers: int) -> ThreadPoolExecutor:
 def interactive_executor() -> ThreadPoolExecutor:
     """Threads for the quick, per-input work of every session (spectra, strips, colour maps, searches).
 
-    Separate from :func:`heavy_executor`, so a photo map or a fit never queues in front of anybody's slider.
+    Photo maps and fits run in worker processes instead (:mod:`views.workers`), so they never queue in
+    front of anybody's slider nor hold the interpreter lock it needs.
     Sized by ``FRINGEGAUGE_THREADS`` (``serve.py --threads``), default 2.
     """
     raw = os.environ.get(THREADS_ENV, "").strip()
@@ -120,12 +121,6 @@ def interactive_executor() -> ThreadPoolExecutor:
     except ValueError:
         workers = DEFAULT_THREADS
     return _pool("interactive", workers)
-
-
-def heavy_executor(limits: Limits | None = None) -> ThreadPoolExecutor:
-    """Threads for heavy jobs (photo maps, fits): exactly ``max_jobs_server`` of them."""
-    limits = limits or Limits.from_env()
-    return _pool("heavy", limits.max_jobs_server)
 
 
 def session_key(fallback: object = None) -> str:
@@ -150,7 +145,7 @@ def running_jobs() -> dict:
 def heavy_job(kind: str, size: int, session: str = "", limits: Limits | None = None):
     """Hold one of the heavy-job places (per page and per server) for a photo map or a fit, and log it.
 
-    Enter it on the event loop *before* handing the work to :func:`heavy_executor` and leave it when
+    Enter it on the event loop *before* handing the work to :mod:`views.workers` and leave it when
     the work is done, so nothing queues: a request over a limit is refused at once with a sentence for
     the user (``physics.InputError``). ``max_jobs_per_session`` counts jobs of one page (``session``);
     ``max_jobs_server`` counts jobs of all pages. One JSON-ready log line per job carries the session,
