@@ -64,8 +64,7 @@ _ids = itertools.count(1)
 
 # ---------------------------------------------------------------------------- server process
 
-def rss_kb(pid: int) -> int | None:
-    """Resident set size of process *pid* in kB (``VmRSS`` of /proc/<pid>/status), None if gone."""
+def _own_rss_kb(pid: int) -> int | None:
     try:
         with open(f"/proc/{pid}/status") as f:
             for line in f:
@@ -74,6 +73,35 @@ def rss_kb(pid: int) -> int | None:
     except OSError:
         return None
     return None
+
+
+def _descendants(pid: int) -> list[int]:
+    """Every process below *pid* (the server's worker processes, their manager and starter)."""
+    children: dict[int, list[int]] = {}
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            with open(f"/proc/{entry}/stat") as f:
+                ppid = int(f.read().rsplit(")", 1)[1].split()[1])
+        except (OSError, IndexError, ValueError):
+            continue
+        children.setdefault(ppid, []).append(int(entry))
+    out, todo = [], [pid]
+    while todo:
+        for child in children.get(todo.pop(), []):
+            out.append(child)
+            todo.append(child)
+    return out
+
+
+def rss_kb(pid: int) -> int | None:
+    """Resident set size in kB of process *pid* and every process below it (``VmRSS`` of
+    /proc/<pid>/status, summed: the server with its worker processes); None if *pid* is gone."""
+    own = _own_rss_kb(pid)
+    if own is None:
+        return None
+    return own + sum(_own_rss_kb(c) or 0 for c in _descendants(pid))
 
 
 def thread_cpu_s(pid: int) -> tuple[float, float]:
