@@ -41,7 +41,8 @@ class Limits:
 
     #: positions x wavelengths of one computation: the film map is 2.95 M, the grating map 14.9 M
     max_grid_points: int = 20_000_000
-    max_photo_megapixels: float = 50.0
+    #: a photo map holds about 154 bytes per pixel while it runs (measured on a 4 MP map): 3.7 GB at 24 MP
+    max_photo_megapixels: float = 24.0
     max_upload_mb: float = 200.0
     max_jobs_per_session: int = 1
     max_jobs_server: int = 2
