@@ -501,8 +501,9 @@ class ColourToThickness:
             limits = Limits.from_env()
             try:
                 with heavy_job("photo_map", size, session, limits):
+                    channel = await asyncio.get_running_loop().run_in_executor(None, workers.Channel.make)
                     result = await workers.run_in_worker(
-                        limits.max_jobs_server, workers.photo_map, args, channel=workers.Channel.make(),
+                        limits.max_jobs_server, workers.photo_map, args, channel=channel,
                         on_progress=lambda f, text: post_to_page(doc, partial(show, f, text)), cancelled=gone)
             except InputError as exc:
                 result = None, str(exc)

@@ -69,6 +69,7 @@ def warm(workers: int) -> None:
     pool = process_pool(workers)
     for _ in range(workers):
         pool.submit(os.getpid)
+    Channel.make()                               # and the manager process that carries progress
 
 
 def shutdown() -> None:
@@ -91,6 +92,7 @@ class Channel:
 
     @classmethod
     def make(cls) -> Channel:
+        """A new channel (two round trips to the manager process: call it off the event loop)."""
         global _manager
         with _guard:
             if _manager is None:
