@@ -57,6 +57,9 @@ MATCH_DE_MAX = 6.0
 AMBIGUOUS_DE = 1.0
 #: Thickness step of the colour path (nm): fine enough that the path's ΔE00 steps stay well below 1.
 LUT_STEP_NM = 0.5
+#: Distinct photo colours matched per chunk: progress is reported (and a cancel noticed) between
+#: chunks, and the working arrays stay a few tens of MB.
+MATCH_CHUNK_COLOURS = 50_000
 #: Most points on a colour path (a wide window gets a coarser step).
 LUT_MAX_POINTS = 20_001
 #: Nearest path points (by CIELAB distance) examined per order before ranking by ΔE00.
@@ -510,8 +513,12 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     say(0.2, "reading colours")
     codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth)
     lab = _lab_from_linear(lin * gains, illuminant, observer)
-    say(0.35, f"matching {len(codes):,} distinct colours")
-    t1, de1, o1, t2, de2, o2 = _match(lab, path)
+    n = len(codes)
+    parts = []
+    for start in range(0, max(n, 1), MATCH_CHUNK_COLOURS):           # in chunks: progress, and less memory
+        say(0.35 + 0.4 * start / max(n, 1), f"matching {n:,} distinct colours")
+        parts.append(_match(lab[start:start + MATCH_CHUNK_COLOURS], path))
+    t1, de1, o1, t2, de2, o2 = (np.concatenate(a) for a in zip(*parts))
     say(0.75, "resolving orders by continuity")
     shape = (y1 - y0, x1 - x0)
     T, D, O, M = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm)

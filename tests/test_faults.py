@@ -268,3 +268,48 @@ def test_saver_killed_at_random_moments_leaves_no_half_written_entry(tmp_path):
     assert res.version > max(versions)
     assert lib.load("stacks", "Same name") == text
     assert lib.list("stacks")[0].user == "after"
+
+
+def test_pages_closed_mid_computation_stop_their_work_and_the_server_goes_on(tmp_path):
+    """A photo map whose page is closed while it runs frees its place (it stops at its next stage once the
+    server drops the page, which tests/test_limits.py checks with a real worker); a page closed right
+    after a slider move drops its result. Nothing reaches the log as an error; the server goes on."""
+    from tests.support.loadclient import ExplorerUser, HeavyResult, PhotoMapUser, log_problems, synthetic_wedge_png
+
+    png = synthetic_wedge_png(3000, 2000)                    # 6 MP: a map takes seconds
+    with served_lab(tmp_path, "--idle-timeout-s", "0.5") as (base, proc, log_path):
+        async def scenario():
+            mapper = PhotoMapUser(base, png)
+            assert await mapper.open(), mapper.open_error
+            await mapper.upload(HeavyResult())
+            await mapper.session.send_event("button_click", mapper.button)
+            await _wait_for_log(log_path, '"kind": "photo_map"', present=False, wait_s=1.0)
+            await mapper.close()                          # the person closes the tab mid-map
+            mover = ExplorerUser(base, "leaver", seed=5)
+            assert await mover.open(), mover.open_error
+            await mover.session.set_value(mover.thick, "value", 321.5)
+            await mover.close()                           # and another closes right after a move
+        asyncio.run(scenario())
+        deadline = time.time() + 60
+        while time.time() < deadline:
+            if '"kind": "photo_map"' in log_path.read_text() and \
+                    json.loads(urllib.request.urlopen(base + "/health", timeout=10).read())["heavy_jobs"] == 0:
+                break
+            time.sleep(0.5)
+        log = log_path.read_text()
+        line = next(json.loads(x) for x in log.splitlines() if '"kind": "photo_map"' in x and '"heavy job"' in x)
+        # stopped at its next stage once the server dropped the page, or finished first: never an error
+        assert line["outcome"] in ("cancelled", "ok"), line
+        assert json.loads(urllib.request.urlopen(base + "/health", timeout=10).read())["heavy_jobs"] == 0
+        assert log_problems(log) == []
+        assert urllib.request.urlopen(base + "/app", timeout=30).status == 200
+        assert proc.poll() is None
+
+
+async def _wait_for_log(path, text, present=True, wait_s=1.0):
+    """Give the server *wait_s* for *text* to appear in its log (or, with present=False, just wait)."""
+    deadline = time.time() + wait_s
+    while time.time() < deadline:
+        if present and text in path.read_text():
+            return
+        await asyncio.sleep(0.1)

@@ -182,3 +182,27 @@ def test_websocket_cap_follows_the_upload_limit_and_fits_every_single_message_up
     assert default < 40 * 2**20                                            # photos come in chunks, not whole
     small = L.websocket_message_cap_bytes(L.Limits(max_upload_mb=1))
     assert small == 4 * 2**20 and L.UPLOAD_CHUNK_BYTES * 4 // 3 < small   # a photo chunk still fits
+
+
+def test_a_cancelled_job_stops_in_its_worker_process():
+    import asyncio
+    from tests.test_views_inverse import _wedge_png
+    from physics.imageio import load_image
+    from views import workers
+
+    ex = FilmExplorer()
+    data, _ = _wedge_png()
+    args = dict(image=load_image(data), stack=ex.state.stack, layer=0, thickness_nm=(0.0, 1000.0))
+    seen = []
+
+    async def run(cancel):
+        channel = await asyncio.get_running_loop().run_in_executor(None, workers.Channel.make)
+        return await workers.run_in_worker(1, workers.photo_map, args, channel=channel,
+                                           on_progress=lambda f, t: seen.append(f), cancelled=lambda: cancel)
+    try:
+        result, error = asyncio.run(run(False))             # runs to the end in a worker process
+        assert error is None and result.stats["pixels"] > 0
+        with pytest.raises(L.JobCancelled):
+            asyncio.run(run(True))                          # told at once: stops at its first stage
+    finally:
+        workers.shutdown()

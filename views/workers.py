@@ -170,8 +170,10 @@ async def run_in_worker(workers: int, fn, *args, channel: Channel | None = None,
     """
     pool = process_pool(workers)
     call_args = (*args, channel) if channel is not None else args
+    told = channel is not None and cancelled is not None and cancelled()
+    if told:
+        channel.cancel()                          # superseded already: the worker stops at its first stage
     future = asyncio.wrap_future(pool.submit(fn, *call_args))
-    told = False
     while not future.done():
         await asyncio.wait([future], timeout=POLL_S)
         if channel is not None:
