@@ -545,7 +545,7 @@ class FilmExplorer:
                 while self._dirty:
                     with self._lock:
                         todo, self._dirty = self._dirty, set()
-                    self._apply(self._compute(self._snapshot(), todo, self._scale))
+                    self._apply(self._compute(self._snapshot(), todo, self._scale, session_key(self)))
             finally:
                 self._running = False
             return
