@@ -136,12 +136,23 @@ class LocalChannel:
 
 # ---------------------------------------------------------------------- the jobs (run in a worker)
 def photo_map(args: dict, channel) -> tuple:
-    """``physics.thickness_map(**args)`` → (result, None) or (None, message)."""
+    """``physics.thickness_map(**args)`` → (result, None) or (None, message).
+
+    The maps come back as float32 (orders as int16): half the bytes through the pipe, and what the
+    page shows and saves (its .npy download is float32) loses nothing that matters (0.1 pm at 1 µm).
+    """
+    import dataclasses
+
+    import numpy as np
+
     from physics import InputError, thickness_map
     try:
-        return thickness_map(progress=channel.report, **args), None
+        r = thickness_map(progress=channel.report, **args)
     except InputError as exc:
         return None, str(exc)
+    return dataclasses.replace(r, thickness_nm=r.thickness_nm.astype(np.float32),
+                               delta_e=r.delta_e.astype(np.float32), margin=r.margin.astype(np.float32),
+                               order=r.order.astype(np.int16)), None
 
 
 def spectrum_fit(args: dict, max_grid_points: int) -> tuple:
