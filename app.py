@@ -9,6 +9,7 @@ from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
+from views.limits import served
 from views.urlstate import apply_query, state_to_query
 
 pn.extension("filedropper", design="native", notifications=False)
@@ -44,7 +45,7 @@ def page():
         def address_soon(*_):
             """Write the address once a drag pauses, not on every slider step (each write is a message)."""
             doc = pn.state.curdoc
-            if doc is None or doc.session_context is None:
+            if not served(doc):
                 write_address()
             elif not pending:
                 pending.append(doc.add_timeout_callback(write_address, ADDRESS_DELAY_MS))

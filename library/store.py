@@ -54,13 +54,14 @@ except ImportError:                     # pragma: no cover - Windows
 
 __all__ = [
     "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "sanitize_name",
-    "validate_calibration", "KINDS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS",
+    "validate_calibration", "KINDS", "NOUNS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS",
 ]
 
 #: The kinds of item the library holds (one folder each).
 KINDS = ("stacks", "gratings", "calibrations")
 #: Singular words used in messages.
-_NOUN = {"stacks": "stack", "gratings": "grating", "calibrations": "calibration"}
+#: The singular noun of each kind, for messages.
+NOUNS = {"stacks": "stack", "gratings": "grating", "calibrations": "calibration"}
 #: Largest content accepted, bytes of UTF-8.
 MAX_CONTENT_BYTES = 1_000_000
 #: Longest library name, characters.
@@ -297,7 +298,7 @@ def _validate(kind: str, content: str) -> None:
     except InputError:
         raise
     except (ValueError, TypeError, ArithmeticError, LookupError, RecursionError) as exc:
-        raise InputError(f"This is not a usable {_NOUN[kind]} file ({type(exc).__name__}); "
+        raise InputError(f"This is not a usable {NOUNS[kind]} file ({type(exc).__name__}); "
                          "check its fields and numbers.") from None
 
 
@@ -441,15 +442,15 @@ class Library:
         if not isinstance(content, str):
             raise InputError(f"Library content is text; got {type(content).__name__}.")
         if len(content) > MAX_CONTENT_BYTES:
-            raise InputError(f"The {_NOUN[kind]} is {len(content):,} characters; the library takes at most "
+            raise InputError(f"The {NOUNS[kind]} is {len(content):,} characters; the library takes at most "
                              f"{MAX_CONTENT_BYTES:,} bytes (1 MB).")
         try:
             data = content.encode("utf-8")
         except UnicodeEncodeError:
-            raise InputError(f"The {_NOUN[kind]} holds characters that cannot be stored as UTF-8 text "
+            raise InputError(f"The {NOUNS[kind]} holds characters that cannot be stored as UTF-8 text "
                              "(unpaired surrogates); remove them.") from None
         if len(data) > MAX_CONTENT_BYTES:
-            raise InputError(f"The {_NOUN[kind]} is {len(data):,} bytes; the library takes at most "
+            raise InputError(f"The {NOUNS[kind]} is {len(data):,} bytes; the library takes at most "
                              f"{MAX_CONTENT_BYTES:,} bytes (1 MB).")
         _validate(kind, content)
         try:
@@ -487,7 +488,7 @@ class Library:
                     os.unlink(target)        # our own file of this save: roll it back
                 raise
             _fsync_folder(folder)
-        noun = _NOUN[kind]
+        noun = NOUNS[kind]
         if version == 1:
             message = f"Saved the {noun} '{name}' to the lab library."
         else:
@@ -554,7 +555,7 @@ class Library:
     def _check_file(self, kind: str, folder: Path, fn: str, parsed) -> Entry:
         """Check one data file and its sidecar; return its Entry or raise InputError."""
         name, version = parsed
-        noun = _NOUN[kind]
+        noun = NOUNS[kind]
         path = folder / fn
         try:
             self._inside(path)
@@ -617,7 +618,7 @@ class Library:
         """
         folder = self._kind_dir(kind)
         name = sanitize_name(name)
-        noun = _NOUN[kind]
+        noun = NOUNS[kind]
         if version is None:
             versions = [e.version for e in self.list(kind) if e.name == name]
             if not versions:        # only damaged versions: name the newest in the error
@@ -671,7 +672,7 @@ class Library:
         fn = _file_name(name, version)
         source = self._inside(folder / fn)
         if not source.exists():
-            raise InputError(f"There is no version {version} of the {_NOUN[kind]} '{name}' to archive.")
+            raise InputError(f"There is no version {version} of the {NOUNS[kind]} '{name}' to archive.")
         try:
             archive_dir = folder / _ARCHIVE
             archive_dir.mkdir(exist_ok=True)

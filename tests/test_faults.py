@@ -283,7 +283,7 @@ def test_pages_closed_mid_computation_stop_their_work_and_the_server_goes_on(tmp
             assert await mapper.open(), mapper.open_error
             await mapper.upload(HeavyResult())
             await mapper.session.send_event("button_click", mapper.button)
-            await _wait_for_log(log_path, '"kind": "photo_map"', present=False, wait_s=1.0)
+            await asyncio.sleep(1.0)                     # the map is under way
             await mapper.close()                          # the person closes the tab mid-map
             mover = ExplorerUser(base, "leaver", seed=5)
             assert await mover.open(), mover.open_error
@@ -305,11 +305,3 @@ def test_pages_closed_mid_computation_stop_their_work_and_the_server_goes_on(tmp
         assert urllib.request.urlopen(base + "/app", timeout=30).status == 200
         assert proc.poll() is None
 
-
-async def _wait_for_log(path, text, present=True, wait_s=1.0):
-    """Give the server *wait_s* for *text* to appear in its log (or, with present=False, just wait)."""
-    deadline = time.time() + wait_s
-    while time.time() < deadline:
-        if present and text in path.read_text():
-            return
-        await asyncio.sleep(0.1)

@@ -1,5 +1,6 @@
 """The server's named limits (views/limits.py) as the page meets them, without a browser."""
 
+import contextlib
 import json
 import logging
 import threading
@@ -17,8 +18,9 @@ from views.state import MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, compute_map, map
 WL = np.linspace(400.0, 1000.0, 250)
 
 
-def _hold(kind, session, limits):
-    """Run a heavy job in another thread until released; returns (release event, thread)."""
+@contextlib.contextmanager
+def _held(kind, session, limits):
+    """A heavy job running in another thread for the duration of the block."""
     release, entered = threading.Event(), threading.Event()
 
     def hold():
@@ -27,35 +29,40 @@ def _hold(kind, session, limits):
             release.wait(10)
     t = threading.Thread(target=hold)
     t.start()
-    assert entered.wait(10)
-    return release, t
+    try:
+        assert entered.wait(10)
+        yield
+    finally:
+        release.set()
+        t.join()
+
+
+def _fit_section_with_spectrum(thickness_nm=650.0):
+    """A spectrum → thickness section holding an invented noiseless spectrum of the default oxide."""
+    section = SpectrumFitSection(FilmExplorer())
+    R = section.ex.state.stack.with_thickness(0, thickness_nm).reflectance(WL)
+    text = ("wavelength_nm,reflectance\n" + "\n".join(f"{a:.3f},{b:.6f}" for a, b in zip(WL, R))).encode()
+    assert section.load_file("sample", text, "wafer.csv")
+    return section
 
 
 def test_one_heavy_job_per_page_by_default_and_others_still_run():
     limits = L.Limits(max_jobs_per_session=1, max_jobs_server=3)
-    release, t = _hold("photo_map", "page-a", limits)
-    try:
+    with _held("photo_map", "page-a", limits):
         with pytest.raises(InputError, match="still running a photo map"):
             with L.heavy_job("spectrum_fit", 1, "page-a", limits):
                 pass
         with L.heavy_job("spectrum_fit", 1, "page-b", limits):        # another page is not held back
             assert sorted(L.running_jobs()["server"]) == ["photo_map", "spectrum_fit"]
-    finally:
-        release.set()
-        t.join()
     assert L.running_jobs() == {"server": [], "sessions": {}}
 
 
 def test_server_limit_refuses_at_once_and_frees_its_place_after_errors():
     limits = L.Limits(max_jobs_per_session=2, max_jobs_server=1)
-    release, t = _hold("photo_map", "page-a", limits)
-    try:
+    with _held("photo_map", "page-a", limits):
         with pytest.raises(InputError, match="server is busy"):
             with L.heavy_job("spectrum_fit", 1, "page-b", limits):
                 pass
-    finally:
-        release.set()
-        t.join()
     with pytest.raises(ValueError):
         with L.heavy_job("spectrum_fit", 1, "page-b", limits):
             raise ValueError("bad input inside the job")
@@ -75,27 +82,17 @@ def test_each_heavy_job_logs_one_line_without_content(caplog):
 
 
 def test_fit_refused_by_its_own_page_while_a_photo_map_runs():
-    section = SpectrumFitSection(FilmExplorer())
-    R = section.ex.state.stack.with_thickness(0, 650.0).reflectance(WL)
-    text = ("wavelength_nm,reflectance\n" + "\n".join(f"{a:.3f},{b:.6f}" for a, b in zip(WL, R))).encode()
-    assert section.load_file("sample", text, "wafer.csv")
-    release, t = _hold("photo_map", L.session_key(section.ex), L.Limits.from_env())
-    try:
+    section = _fit_section_with_spectrum(650.0)
+    with _held("photo_map", L.session_key(section.ex), L.Limits.from_env()):
         section.run_fit(sync=True)
         assert section.result is None
         assert "still running a photo map" in section.fit_msg.message.object
-    finally:
-        release.set()
-        t.join()
     section.run_fit(sync=True)
     assert section.result is not None and abs(section.result.thickness_nm - 650) < 1
 
 
 def test_fit_over_the_grid_limit_is_refused_with_what_to_change(monkeypatch):
-    section = SpectrumFitSection(FilmExplorer())
-    R = section.ex.state.stack.with_thickness(0, 650.0).reflectance(WL)
-    text = ("wavelength_nm,reflectance\n" + "\n".join(f"{a:.3f},{b:.6f}" for a, b in zip(WL, R))).encode()
-    assert section.load_file("sample", text, "wafer.csv")
+    section = _fit_section_with_spectrum(650.0)
     monkeypatch.setenv("FRINGEGAUGE_MAX_GRID_POINTS", "10000")
     section.run_fit(sync=True)
     assert section.result is None

@@ -27,7 +27,7 @@ from physics import InputError, search_materials, list_materials
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
-from .limits import Limits, interactive_executor, logged_job, post_to_page, session_key, upload_refusal
+from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key, upload_refusal
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
                     parse_number, parse_spd_csv, MAX_SPD_BYTES)
@@ -439,12 +439,12 @@ class FilmExplorer:
     def _on_thickness_slider(self, event):
         if self._syncing:
             return
-        self._dragging = _served()                # while served, the typed fields follow at release
+        self._dragging = served()                # while served, the typed fields follow at release
         try:
             self.state.thickness_nm = round(float(event.new), SLIDER_DIGITS)
         finally:
             self._dragging = False
-        if not _served():
+        if not served():
             self._echo_slider("thickness")
 
     def _echo_slider(self, which: str, *_):
@@ -489,7 +489,7 @@ class FilmExplorer:
         if self._syncing:
             return
         self.state.angle_deg = round(float(event.new), SLIDER_DIGITS)
-        if not _served():
+        if not served():
             self._echo_slider("angle")
 
     def _on_angle_text(self, event):
@@ -540,7 +540,7 @@ class FilmExplorer:
             if self._running and not sync:
                 return
             self._running = True
-        if sync or pn.state.curdoc is None or pn.state.curdoc.session_context is None:
+        if sync or not served():
             try:
                 while self._dirty:
                     with self._lock:
@@ -561,7 +561,7 @@ class FilmExplorer:
             while True:
                 with self._lock:
                     todo, self._dirty = self._dirty, set()
-                    if not todo or doc.session_context is None:     # done, or the page has gone
+                    if not todo or not served(doc):                   # done, or the page has gone
                         self._running = False
                         return
                 snap = self._snapshot()
@@ -750,12 +750,6 @@ class FilmExplorer:
 
 
 # ---------------------------------------------------------------------- helpers
-
-def _served() -> bool:
-    """True when running for a browser session (not in a plain script or test)."""
-    doc = pn.state.curdoc
-    return doc is not None and doc.session_context is not None
-
 
 def _spectrum_range(s: ExplorerState):
     lo, hi = s.stack.wavelength_range_nm()

@@ -3,7 +3,7 @@
 Shares the explorer's state: the model is the explorer's stack, the unknown layer is its swept
 layer, and the angle and polarization are the explorer's. An optional second unknown layer is
 chosen here. Every number comes from :mod:`physics.fit` (import, counts → reflectance, the fit,
-the Fourier estimate); fits run in the shared thread pool when served, and a new request
+the Fourier estimate); fits run in a worker process when served (:mod:`views.workers`), and a new request
 supersedes an unfinished one. A rejected input shows its message beside its field and the
 previous spectrum and result stay on screen.
 """
@@ -27,7 +27,7 @@ from physics import InputError, Stack, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
 
 from . import workers
-from .limits import Limits, heavy_job, post_to_page, session_key, upload_refusal
+from .limits import Limits, heavy_job, post_to_page, served, session_key, upload_refusal
 from .explorer import Field, _esc, _fmt, _label
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
@@ -417,10 +417,9 @@ class SpectrumFitSection:
         job = self._job
         info = dict(self.import_info)
         doc = pn.state.curdoc
-        served = doc is not None and doc.session_context is not None
         size = len(args["wavelength_nm"])
         session = session_key(self.ex)
-        if sync or not served:
+        if sync or not served(doc):
             limits = Limits.from_env()
             try:
                 with heavy_job("spectrum_fit", size, session, limits):

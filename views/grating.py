@@ -36,7 +36,7 @@ from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_gr
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule
 from .inverse import _locked
-from .limits import check_grid_points, interactive_executor, post_to_page
+from .limits import check_grid_points, interactive_executor, post_to_page, served
 from .state import parse_number
 
 log = logging.getLogger("fringegauge")
@@ -958,8 +958,7 @@ class GratingSection:
         job = self._map_job
         self._map_pending_key = key
         doc = pn.state.curdoc
-        served = doc is not None and doc.session_context is not None
-        if sync or not served:
+        if sync or not served(doc):
             try:
                 result = _timed(compute_colour_map, s)
             except InputError as exc:                  # over the server's grid limit

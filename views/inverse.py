@@ -31,8 +31,8 @@ from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer
 from . import workers
-from .limits import (JobCancelled, Limits, heavy_job, post_to_page,
-                     session_key, upload_refusal, UPLOAD_CHUNK_BYTES)
+from .limits import (JobCancelled, Limits, heavy_job, post_to_page, served,
+                     session_key, upload_cap_bytes, upload_refusal, UPLOAD_CHUNK_BYTES)
 from .state import THICKNESS_LIMITS_NM, compute_strip
 
 log = logging.getLogger("fringegauge")
@@ -470,10 +470,10 @@ class ColourToThickness:
         self.progress.value = 0
         self.run_map.disabled = True
         doc = pn.state.curdoc
-        served = doc is not None and doc.session_context is not None
+        live = served(doc)
 
         def gone():
-            return job != self._job or (served and doc.session_context is None)
+            return job != self._job or (live and not served(doc))
 
         def show(fraction, text):
             if job == self._job:
@@ -482,7 +482,7 @@ class ColourToThickness:
 
         size = self.photo.width * self.photo.height
         session = session_key(self.ex)
-        if sync or not served:
+        if sync or not live:
             channel = workers.LocalChannel(show, gone)
             try:
                 with heavy_job("photo_map", size, session):
@@ -622,7 +622,7 @@ class ColourToThickness:
 
 def _dropper_mb() -> int:
     """The photo drop zone's own size check (MB), so an over-large photo is stopped in the browser."""
-    return max(1, int(min(MAX_UPLOAD_BYTES, Limits.from_env().max_upload_mb * 2**20) // 2**20))
+    return max(1, upload_cap_bytes(MAX_UPLOAD_BYTES) // 2**20)
 
 
 def locked(handler):
@@ -641,7 +641,7 @@ def _locked(fn):
     """Run ``fn`` where Bokeh models may be changed: on the next tick (document lock held) when served,
     at once otherwise. Some Panel events arrive in coroutines that do not hold the lock."""
     doc = pn.state.curdoc
-    if doc is not None and doc.session_context is not None:
+    if served(doc):
         doc.add_next_tick_callback(fn)
     else:
         fn()

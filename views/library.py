@@ -14,7 +14,7 @@ import os
 
 import panel as pn
 
-from library.store import Library, LibraryWriteError, validate_calibration
+from library.store import NOUNS, Library, LibraryWriteError, validate_calibration
 from physics import InputError
 from physics.stackfile import load_stack_file
 
@@ -26,7 +26,6 @@ LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
 #: Most entries listed per kind (newest first); older ones stay in the folder.
 MAX_LISTED = 500
 
-_NOUN = {"stacks": "stack", "gratings": "grating", "calibrations": "calibration"}
 _SOURCE = {"stacks": "the Film explorer's stack (with its thickness and view)",
            "gratings": "the Gratings tab's grating and spectrometer",
            "calibrations": "the calibration box and reference on the Colour → thickness tab"}
@@ -125,7 +124,7 @@ class LibrarySection:
     def _show_detail(self) -> None:
         e = self.selected()
         if e is None:
-            noun = _NOUN[self.kind.value]
+            noun = NOUNS[self.kind.value]
             self.detail.object = f"No {noun} saved yet." if self.lib is not None else ""
             return
         self.detail.object = (f"<div class='fg-lib-entry'><b>{_esc(e.name)}</b>, version {e.version}: saved by "

@@ -96,17 +96,7 @@ DEFAULT_THREADS = 2
 _guard = threading.Lock()
 _server_running: list = []                  # kinds of the heavy jobs running now, server-wide
 _session_running: dict = {}                 # session key -> kinds running for that page
-_pools: dict = {}
-
-
-def _pool(name: str, workers: int) -> ThreadPoolExecutor:
-    with _guard:
-        pool = _pools.get(name)
-        if pool is None or pool._max_workers != workers:
-            if pool is not None:
-                pool.shutdown(wait=False)
-            pool = _pools[name] = ThreadPoolExecutor(max_workers=workers, thread_name_prefix=f"fringegauge-{name}")
-        return pool
+_interactive: ThreadPoolExecutor | None = None
 
 
 def interactive_executor() -> ThreadPoolExecutor:
@@ -116,12 +106,18 @@ def interactive_executor() -> ThreadPoolExecutor:
     front of anybody's slider nor hold the interpreter lock it needs.
     Sized by ``FRINGEGAUGE_THREADS`` (``serve.py --threads``), default 2.
     """
+    global _interactive
     raw = os.environ.get(THREADS_ENV, "").strip()
     try:
         workers = max(1, int(raw)) if raw else DEFAULT_THREADS
     except ValueError:
         workers = DEFAULT_THREADS
-    return _pool("interactive", workers)
+    with _guard:
+        if _interactive is None or _interactive._max_workers != workers:
+            if _interactive is not None:
+                _interactive.shutdown(wait=False)
+            _interactive = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="fringegauge")
+        return _interactive
 
 
 def session_key(fallback: object = None) -> str:
@@ -220,11 +216,16 @@ def check_grid_points(what: str, points: int, limits: Limits | None = None) -> N
                          "or ask whoever runs the server to raise --max-grid-points.")
 
 
+def upload_cap_bytes(kind_cap_bytes: int, limits: Limits | None = None) -> int:
+    """The largest upload of one kind this server takes: the smaller of the kind's own cap and ``max_upload_mb``."""
+    limits = limits or Limits.from_env()
+    return min(int(kind_cap_bytes), int(limits.max_upload_mb * 2**20))
+
+
 def upload_refusal(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "",
                    limits: Limits | None = None) -> str | None:
-    """A sentence refusing an upload larger than this kind's cap or the server's ``max_upload_mb``, else None."""
-    limits = limits or Limits.from_env()
-    cap = min(int(kind_cap_bytes), int(limits.max_upload_mb * 2**20))
+    """A sentence refusing an upload larger than :func:`upload_cap_bytes`, else None."""
+    cap = upload_cap_bytes(kind_cap_bytes, limits)
     if n_bytes <= cap:
         return None
     return (f"{name} is {n_bytes / 2**20:.1f} MB; this server accepts up to {cap / 2**20:.1f} MB for it."
@@ -246,14 +247,22 @@ def websocket_message_cap_bytes(limits: Limits | None = None) -> int:
     Anything larger is refused by the server before it is read (the connection is closed), so a
     lower ``max_upload_mb`` also lowers what the socket accepts.
     """
-    limits = limits or Limits.from_env()
-    largest = min(SINGLE_MESSAGE_UPLOAD_BYTES, int(limits.max_upload_mb * 2**20))
+    largest = upload_cap_bytes(SINGLE_MESSAGE_UPLOAD_BYTES, limits)
     return max(_MIN_MESSAGE_BYTES, -(-largest * 4 // 3) + _MESSAGE_OVERHEAD_BYTES)
+
+
+def served(doc=None) -> bool:
+    """True when ``doc`` (default: the current document) belongs to a live browser session, False in a
+    plain script or test, or once the server has dropped the page (Bokeh clears its session context)."""
+    if doc is None:
+        import panel as pn
+        doc = pn.state.curdoc
+    return doc is not None and doc.session_context is not None
 
 
 def post_to_page(doc, callback) -> bool:
     """Schedule ``callback`` on the page's next tick; False (and nothing done) if the page has gone."""
-    if doc is None or doc.session_context is None:
+    if not served(doc):
         return False
     try:
         doc.add_next_tick_callback(callback)

@@ -69,7 +69,7 @@ def warm(workers: int) -> None:
     pool = process_pool(workers)
     for _ in range(workers):
         pool.submit(os.getpid)
-    Channel.make()                               # and the manager process that carries progress
+    _the_manager()                               # and the manager process that carries progress
 
 
 def shutdown() -> None:
@@ -84,6 +84,15 @@ def shutdown() -> None:
             _manager = None
 
 
+def _the_manager():
+    """The manager process holding every job's progress queue and cancel flag, started on first use."""
+    global _manager
+    with _guard:
+        if _manager is None:
+            _manager = _context().Manager()
+        return _manager
+
+
 class Channel:
     """Progress from a worker to the page, and a cancel flag from the page to the worker."""
 
@@ -93,11 +102,8 @@ class Channel:
     @classmethod
     def make(cls) -> Channel:
         """A new channel (two round trips to the manager process: call it off the event loop)."""
-        global _manager
-        with _guard:
-            if _manager is None:
-                _manager = _context().Manager()
-            return cls(_manager.Queue(), _manager.Event())
+        manager = _the_manager()
+        return cls(manager.Queue(), manager.Event())
 
     # worker side
     def report(self, fraction: float, text: str) -> None:

@@ -26,22 +26,31 @@ def free_port() -> int:
 
 
 @contextlib.contextmanager
+def _running(cmd, cwd, log_path, ready_url, what, env=None):
+    """Start ``cmd`` with its output in ``log_path``, wait until ``ready_url`` answers, yield the process;
+    stop it afterwards."""
+    with open(log_path, "w") as out:
+        proc = subprocess.Popen(cmd, cwd=cwd, stdout=out, stderr=subprocess.STDOUT,
+                                env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
+        try:
+            wait_until_up(proc, ready_url, log_path, what)
+            yield proc
+        finally:
+            stop(proc)
+
+
+@contextlib.contextmanager
 def served_app(extra_args=(), env=None):
     """Yield (url, log_path) of a running app (``env``: extra environment variables); stop it afterwards."""
     port = free_port()
     log_path = ROOT / f".server-{port}.log"
-    log = open(log_path, "w")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "panel", "serve", "app.py", "--port", str(port), "--address", "127.0.0.1",
-         "--allow-websocket-origin", f"127.0.0.1:{port}", *extra_args],
-        cwd=ROOT, stdout=log, stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
     url = f"http://127.0.0.1:{port}/app"
+    cmd = [sys.executable, "-m", "panel", "serve", "app.py", "--port", str(port), "--address", "127.0.0.1",
+           "--allow-websocket-origin", f"127.0.0.1:{port}", *extra_args]
     try:
-        wait_until_up(proc, url, log_path, "the app")
-        yield url, log_path
+        with _running(cmd, ROOT, log_path, url, "the app", env):
+            yield url, log_path
     finally:
-        stop(proc)
-        log.close()
         with contextlib.suppress(OSError):
             log_path.unlink()
 
@@ -53,18 +62,11 @@ def served_lab(workdir, *args, env=None):
     workdir = Path(workdir)
     port = free_port()
     log_path = workdir / "server.log"
-    with open(log_path, "w") as out:
-        proc = subprocess.Popen(
-            [sys.executable, str(ROOT / "serve.py"), "--host", "127.0.0.1", "--port", str(port),
-             "--library", str(workdir / "library"), *args],
-            cwd=workdir, stdout=out, stderr=subprocess.STDOUT,
-            env={**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})})
-        base = f"http://127.0.0.1:{port}"
-        try:
-            wait_until_up(proc, base + "/health", log_path, "serve.py")
-            yield base, proc, log_path
-        finally:
-            stop(proc)
+    base = f"http://127.0.0.1:{port}"
+    cmd = [sys.executable, str(ROOT / "serve.py"), "--host", "127.0.0.1", "--port", str(port),
+           "--library", str(workdir / "library"), *args]
+    with _running(cmd, workdir, log_path, base + "/health", "serve.py", env) as proc:
+        yield base, proc, log_path
 
 
 def wait_until_up(proc, url, log_path, what, timeout_s=START_TIMEOUT_S):
