@@ -9,7 +9,7 @@ from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
-from views.limits import served
+from views.limits import quiet_closed_connections, served
 from views.urlstate import apply_query, state_to_query
 
 pn.extension("filedropper", design="native", notifications=False)
@@ -26,6 +26,7 @@ def tab_opened(inverse, library, title):
 
 
 def page():
+    quiet_closed_connections()                     # a tab closed mid-write is normal, not a traceback
     explorer = FilmExplorer()
     args = pn.state.session_args or {}
     if args:

@@ -203,3 +203,25 @@ def test_a_cancelled_job_stops_in_its_worker_process():
             asyncio.run(run(True))                          # told at once: stops at its first stage
     finally:
         workers.shutdown()
+
+
+def test_a_page_closed_mid_write_is_one_info_line_and_other_errors_still_reach_the_handler(caplog):
+    import asyncio
+    from tornado.iostream import StreamClosedError
+    from tornado.websocket import WebSocketClosedError
+
+    loop = asyncio.new_event_loop()
+    seen = []
+    loop.set_exception_handler(lambda lp, ctx: seen.append(ctx["exception"]))
+    try:
+        L.quiet_closed_connections(loop)
+        L.quiet_closed_connections(loop)                     # twice: still one handler
+        with caplog.at_level(logging.INFO, logger="fringegauge"):
+            for exc in (WebSocketClosedError(), StreamClosedError()):
+                loop.call_exception_handler({"message": "Task exception was never retrieved", "exception": exc})
+        other = RuntimeError("a real problem")
+        loop.call_exception_handler({"message": "boom", "exception": other})
+    finally:
+        loop.close()
+    assert seen == [other]
+    assert [r.getMessage() for r in caplog.records].count("a page closed while the server was writing to it") == 2

@@ -269,3 +269,32 @@ def post_to_page(doc, callback) -> bool:
         return True
     except Exception:                            # the session was destroyed meanwhile
         return False
+
+
+def quiet_closed_connections(loop=None) -> None:
+    """Log a page closed while the server was writing to it as one INFO line, not an asyncio traceback.
+
+    People close tabs at any moment; a result written to the socket in that instant fails with
+    Tornado's ``WebSocketClosedError``/``StreamClosedError``, which Panel's direct writes can leave
+    unretrieved for asyncio to report as "Task exception was never retrieved". Every other error
+    still goes to the loop's own handler. Installing it twice on one loop does nothing.
+    """
+    import asyncio
+
+    from tornado.iostream import StreamClosedError
+    from tornado.websocket import WebSocketClosedError
+
+    loop = loop or asyncio.get_event_loop()
+    previous = loop.get_exception_handler()
+    if getattr(previous, "quiet_closed_connections", False):
+        return
+
+    def handler(loop, context):
+        if isinstance(context.get("exception"), (WebSocketClosedError, StreamClosedError)):
+            _log.info("a page closed while the server was writing to it")
+        elif previous is not None:
+            previous(loop, context)
+        else:
+            loop.default_exception_handler(context)
+    handler.quiet_closed_connections = True
+    loop.set_exception_handler(handler)
