@@ -5,6 +5,7 @@ import io
 import json
 
 import numpy as np
+import param
 import pytest
 from PIL import Image
 
@@ -42,6 +43,20 @@ def test_thickness_slider_changes_swatch(explorer):
     assert explorer.state.thickness_nm == 250.0
     assert explorer._point.hex == _physics_hex(explorer.state.stack)
     assert explorer.vspan.location == 250.0
+
+
+@pytest.mark.parametrize("which", ["thickness", "angle"])
+def test_resting_value_handled_before_the_running_value_still_lands_in_the_field(which):
+    # the browser sends a slider's resting value beside its running value; they may be handled either way round
+    ex = FilmExplorer()
+    slider, field = (ex.thickness_slider, ex.thickness) if which == "thickness" else (ex.angle_slider, ex.angle)
+    target = 130.0 if which == "thickness" else 30.0
+    with param.edit_constant(slider):
+        slider.value_throttled = target
+    assert (ex.state.thickness_nm if which == "thickness" else ex.state.angle_deg) == target
+    assert float(field.input.value) == target
+    slider.value = target                           # the running value arriving afterwards changes nothing
+    assert float(field.input.value) == target
 
 
 @pytest.mark.parametrize("text", ["abc", "-5", "1e9", "nan", ""])

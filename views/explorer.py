@@ -15,6 +15,7 @@ import logging
 import threading
 from datetime import date
 from functools import partial
+from types import SimpleNamespace
 
 import numpy as np
 import panel as pn
@@ -245,8 +246,8 @@ class FilmExplorer:
         self.db_search.param.watch(self._on_db_search, "value_input")
         self.swept.param.watch(self._on_swept, "value")
         self.thickness_slider.param.watch(self._on_thickness_slider, "value")
-        self.thickness_slider.param.watch(partial(self._echo_slider, "thickness"), "value_throttled")
-        self.angle_slider.param.watch(partial(self._echo_slider, "angle"), "value_throttled")
+        self.thickness_slider.param.watch(partial(self._on_slider_rest, "thickness"), "value_throttled")
+        self.angle_slider.param.watch(partial(self._on_slider_rest, "angle"), "value_throttled")
         self.thickness.input.param.watch(self._on_thickness_text, "value")
         self.tmax.input.param.watch(self._on_tmax, "value")
         self.angle_slider.param.watch(self._on_angle_slider, "value")
@@ -446,6 +447,19 @@ class FilmExplorer:
             self._dragging = False
         if not served():
             self._echo_slider("thickness")
+
+    def _on_slider_rest(self, which: str, event):
+        """A slider came to rest. The browser sends its resting value beside the running one, and the
+        two may be handled in either order: apply the resting value first (a no-op when the running
+        value already did) so the echo never shows the step before last."""
+        if self._syncing or event.new is None:
+            return
+        value = round(float(event.new), SLIDER_DIGITS)
+        if which == "thickness" and value != self.state.thickness_nm:
+            self._on_thickness_slider(SimpleNamespace(new=value))
+        elif which == "angle" and value != self.state.angle_deg:
+            self._on_angle_slider(SimpleNamespace(new=value))
+        self._echo_slider(which)
 
     def _echo_slider(self, which: str, *_):
         """Mirror a slider into its typed field (and the swept layer's row). While served this runs when
