@@ -36,7 +36,7 @@ CHECK_UNUSED_MS = 17_000
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from views.limits import THREADS_ENV, Limits, websocket_message_cap_bytes  # noqa: E402
+from views.limits import THREADS_ENV, WEBSOCKET_MESSAGE_CAP_BYTES, Limits  # noqa: E402
 
 log = logging.getLogger("fringegauge")
 
@@ -309,7 +309,7 @@ def main(argv=None) -> int:
         extra_patterns=[(r"/health", health_handler(started))],
         unused_session_lifetime_milliseconds=int(settings.idle_timeout_s * 1000),
         check_unused_sessions_milliseconds=min(CHECK_UNUSED_MS, int(settings.idle_timeout_s * 1000)),
-        websocket_max_message_size=websocket_message_cap_bytes(settings.limits),
+        websocket_max_message_size=WEBSOCKET_MESSAGE_CAP_BYTES,
     )
     if settings.basic_auth:
         options["basic_auth"] = settings.basic_auth

@@ -102,6 +102,7 @@ def test_thickness_slider_moves_the_swatch_to_the_physics_value(page):
 
 def test_dragging_the_slider_with_the_mouse_updates_swatch_and_field(page):
     handle = page.locator(".fg-thickness-slider .noUi-handle").first
+    handle.scroll_into_view_if_needed()                # the sidebar scrolls; a mouse only reaches what is shown
     box = handle.bounding_box()
     page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
     page.mouse.down()
@@ -213,6 +214,23 @@ def test_gratings_tab_answers_a_new_groove_density(page):
     field.press("Enter")
     page.get_by_role("alert").filter(has_text="Groove density").first.wait_for(timeout=15_000)
     assert page.get_by_text("1666.7 nm").first.is_visible()
+    assert page.console_errors == []
+
+
+def test_stack_files_through_the_drop_zone_and_an_oversized_one_stopped_in_the_browser(page, tmp_path):
+    """A 2 MB file is stopped by the drop zone before any of it is sent (the stack file cap is 1 MB);
+    the page keeps working and then opens a real stack file."""
+    before = _swatch_text(page)
+    big = tmp_path / "huge_stack.json"
+    big.write_bytes(b" " * 2_000_000)
+    zone = page.locator(".fg-stack-file input[type=file]").first
+    zone.set_input_files(str(big))
+    page.wait_for_function(f"() => (({DEEP_TEXT_JS})('.filepond--file-status-main') || '').includes('too large')",
+                           timeout=15_000)
+    assert _swatch_text(page) == before
+    zone.set_input_files(str(Path(__file__).resolve().parents[1] / "presets" / "broadband_ar_on_bk7.json"))
+    _wait_swatch(page, not_text=before)
+    page.wait_for_function(f"() => (({DEEP_TEXT_JS})('.fg-swatch-values') || '').includes('nm at')", timeout=15_000)
     assert page.console_errors == []
 
 

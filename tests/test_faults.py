@@ -28,11 +28,11 @@ from tornado.websocket import websocket_connect
 from library.store import Library
 from physics.stackfile import load_stack_file
 from tests.support.server import served_lab
-from views.limits import Limits, websocket_message_cap_bytes
+from views.limits import WEBSOCKET_MESSAGE_CAP_BYTES
 
 ROOT = Path(__file__).resolve().parents[1]
-#: The websocket message cap serve.py sets for --max-upload-mb 1 (4 MiB: the page's smallest).
-WS_CAP_BYTES = websocket_message_cap_bytes(Limits(max_upload_mb=1))
+#: The websocket message cap serve.py sets (4 MiB: one upload chunk with room around it).
+WS_CAP_BYTES = WEBSOCKET_MESSAGE_CAP_BYTES
 
 
 @pytest.fixture(scope="module")
@@ -163,7 +163,7 @@ def test_garbage_on_the_websocket_drops_that_connection_only(server):
 
 
 def test_oversized_messages_and_the_server_goes_on(server):
-    """serve.py sets the websocket cap from --max-upload-mb (4 MiB for 1 MB): a 3 MB message is read (and
+    """serve.py caps websocket messages at 4 MiB (uploads come in chunks): a 3 MB message is read (and
     here, an empty patch, ignored or closed); one over the cap closes the connection unread. Either way
     the server goes on."""
     port = server["port"]
@@ -189,6 +189,49 @@ def test_oversized_messages_and_the_server_goes_on(server):
     three_mb, over_cap = asyncio.run(run())
     assert three_mb in ("closed", "ignored")
     assert over_cap == "closed"
+    _assert_serving(port)
+
+
+def test_hostile_uploads_are_dropped_at_the_cap_as_they_arrive(server):
+    """A client that skips the browser's size check and streams 160 MiB of chunks at the photo drop zone
+    (cap 1 MB here) is stopped at the cap: the server never holds the file, the page says why, a chunk
+    out of order is refused the same way, and a proper photo is still taken afterwards."""
+    from tests.support.loadclient import PhotoMapUser, rss_kb, synthetic_wedge_png
+
+    port = server["port"]
+    pid = server["proc"].pid
+    chunk = bytes(2 * 2**20)
+
+    async def scenario():
+        user = PhotoMapUser(f"http://127.0.0.1:{port}", synthetic_wedge_png(300, 200))
+        assert await user.open(), user.open_error
+        s = user.session
+        try:
+            await s.set_value(user.tabs, "active", 1)
+            await s.wait_until(user._photo_controls_arrived)
+            said = lambda words: any(words in t for t in user._texts())  # noqa: E731
+            rss_before = rss_kb(pid)
+            for i in range(80):
+                payload = {"type": "map", "entries": [
+                    ["chunk", i + 1], ["data", {"type": "bytes", "data": {"id": f"h{i}"}}], ["name", "huge.png"],
+                    ["total_chunks", 10**6], ["type", "image/png"]]}
+                await s.send_event("upload_event", user.drop, payload, buffers=[(f"h{i}", chunk)])
+            await s.wait_until(lambda: said("larger than this server accepts"))
+            grown_mb = (rss_kb(pid) - rss_before) / 1024
+            payload = {"type": "map", "entries": [
+                ["chunk", 5], ["data", {"type": "bytes", "data": {"id": "o1"}}], ["name", "late.png"],
+                ["total_chunks", 9], ["type", "image/png"]]}
+            await s.send_event("upload_event", user.drop, payload, buffers=[("o1", b"x" * 100)])
+            await s.wait_until(lambda: said("arrived out of order"))
+            await s.upload(user.drop, user.name, user.png, "image/png")
+            await s.wait_until(lambda: s.attr(user.button, "disabled") is False)
+            return grown_mb
+        finally:
+            await user.close()
+
+    grown_mb = asyncio.run(scenario())
+    print(f"server RSS grew {grown_mb:.1f} MB while 160 MiB of chunks arrived")
+    assert grown_mb < 60, f"the server held on to a refused upload: RSS +{grown_mb:.0f} MB"
     _assert_serving(port)
 
 

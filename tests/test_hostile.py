@@ -602,11 +602,10 @@ def test_explorer_typed_fields(explorer, which, text, plate):
 def test_explorer_stack_upload(explorer, content):
     ex = explorer
     ex.state.load_preset("soap_film_in_air")
-    ex.file_in.value = None
     before = _values(ex.state)
     data = content if isinstance(content, bytes) else content.encode("utf-8", "surrogatepass")
     with sealed():
-        ex.file_in.value = data
+        ex.file_in.receive("upload.json", data, "application/json")
     if ex.file_msg.message.visible:
         assert _values(ex.state) == before
     pt = call(compute_point, ex.state)
@@ -619,10 +618,10 @@ def test_explorer_stack_upload(explorer, content):
 def test_explorer_lamp_upload(explorer, content):
     ex = explorer
     ex.state.illuminant = "D65"
-    ex.spd_in.value = None
     before = _values(ex.state)
     with sealed():
-        ex.spd_in.value = content
+        ex.spd_in.receive("lamp.csv", content if isinstance(content, bytes) else content.encode("utf-8", "surrogatepass"),
+                          "text/csv")
     if ex.spd_msg.message.visible:
         assert _values(ex.state) == before
     pt = call(compute_point, ex.state)
@@ -665,12 +664,12 @@ def test_colour_section_photo_upload(colour_section, content):
     assert sec.load_photo(VALID_IMAGES[0], "good.png")
     before = sec.photo
     with sealed():
-        sec.dropper.value = {"upload.png": content}
+        sec.dropper.receive("upload.png", content, "image/png")
     if sec.photo is before:
         assert sec.photo_msg.message.visible
     else:
         assert not sec.photo_msg.message.visible and sec.photo.width >= 2
-    sec.dropper.value = {}
+    assert sec.dropper.value == {}                                   # the upload's bytes are not kept
 
 
 @pytest.fixture(scope="module")

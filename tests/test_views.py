@@ -112,7 +112,7 @@ def test_malformed_stack_file_changes_nothing():
     for content in (b"{not json", b'{"format": "fringegauge-stack", "version": 1, "layers": [], "bogus": 1}',
                     b'{"format": "fringegauge-stack", "version": 1, "layers": [{"material": "unobtainium", '
                     b'"thickness_nm": 5}], "substrate": "Si"}', b"\xff\xfe\x00"):
-        ex.file_in.value = content
+        ex.file_in.receive("bad.json", content, "application/json")
         assert ex.file_msg.message.visible
         assert ex.state.param.values() == before
 
@@ -123,8 +123,9 @@ def test_save_and_load_round_trip():
     ex.state.angle_deg = 12.0
     saved = ex._stack_file_bytes().getvalue()
     other = FilmExplorer()
-    other.file_in.value = saved.encode()
+    other.file_in.receive("saved.json", saved.encode(), "application/json")
     assert not other.file_msg.message.visible
+    assert other.preset.value == ""                 # the preset list no longer names the stack shown
     assert other._point.hex == ex._point.hex
     assert json.loads(other.state.stack_json)["layers"] == json.loads(ex.state.stack_json)["layers"]
 
@@ -167,9 +168,9 @@ def test_custom_lamp_spectrum():
     ex = FilmExplorer()
     wl = np.arange(380, 781, 5)
     content = "wavelength,power\n" + "\n".join(f"{w},{1.0 + 0.001 * w}" for w in wl)
-    ex.spd_in.value = content.encode()
+    ex.spd_in.receive("lamp.csv", content.encode(), "text/csv")
     assert ex.state.illuminant == "custom" and not ex.spd_msg.message.visible
-    ex.spd_in.value = b"one,two\nthree,four"
+    ex.spd_in.receive("lamp.csv", b"one,two\nthree,four", "text/csv")
     assert ex.spd_msg.message.visible and ex.state.illuminant == "custom"
 
 

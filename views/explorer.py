@@ -28,6 +28,7 @@ from physics import InputError, search_materials, list_materials
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
+from .uploads import COMPACT, CappedDropper
 from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key, upload_refusal
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
@@ -117,8 +118,11 @@ class FilmExplorer:
         self.preset = pn.widgets.Select(label="Preset stack", options={"(choose a preset)": ""} | {n: stem for stem, n in presets},
                                         value=s.preset_name if s.preset_name in dict(presets) else "",
                                         width=300, margin=(2, 5))
-        self.file_in = pn.widgets.FileInput(accept=".json", multiple=False, width=300, margin=(2, 5))
         self.file_msg = Field("")
+        self.file_in = CappedDropper(MAX_STACK_FILE_BYTES, self.load_stack_upload, self.file_msg.show_error,
+                                     what="The stack file", accepted_filetypes=[".json", "application/json"],
+                                     **COMPACT,
+                                     css_classes=["fg-stack-file"])
         self.file_out = pn.widgets.FileDownload(callback=self._stack_file_bytes, filename="stack.json",
                                                 label="Save stack file (.json)", color="default",
                                                 width=300, margin=(2, 5))
@@ -153,8 +157,12 @@ class FilmExplorer:
                                                                    color="default", margin=(2, 5))
         self.illuminant = pn.widgets.Select.from_param(s.param.illuminant, label="Illuminant (lamp)", width=140,
                                                        margin=(2, 5))
-        self.spd_in = pn.widgets.FileInput(accept=".csv,.txt", width=300, margin=(2, 5))
         self.spd_msg = Field("")
+        self.spd_in = CappedDropper(MAX_SPD_BYTES, self.load_lamp_upload, self.spd_msg.show_error,
+                                    what="The lamp spectrum file",
+                                    accepted_filetypes=[".csv", ".txt", "text/csv", "text/plain"],
+                                    **COMPACT,
+                                    css_classes=["fg-lamp-file"])
         self.observer = pn.widgets.RadioButtonGroup(label="Observer", options={"2° (CIE 1931)": "2", "10° (CIE 1964)": "10"},
                                                     value=s.observer, margin=(2, 5))
         self.na_slider = pn.widgets.FloatSlider(label="Viewing cone NA (0 = eye at a distance)", start=0.0, end=0.95,
@@ -237,7 +245,6 @@ class FilmExplorer:
     def _wire(self):
         s = self.state
         self.preset.param.watch(self._on_preset, "value")
-        self.file_in.param.watch(self._on_file, "value")
         self.ambient.param.watch(partial(self._on_medium, "ambient"), "value")
         self.substrate.param.watch(partial(self._on_medium, "substrate"), "value")
         self.plate.param.watch(self._on_plate, "value")
@@ -252,7 +259,6 @@ class FilmExplorer:
         self.tmax.input.param.watch(self._on_tmax, "value")
         self.angle_slider.param.watch(self._on_angle_slider, "value")
         self.angle.input.param.watch(self._on_angle_text, "value")
-        self.spd_in.param.watch(self._on_spd, "value")
         self.observer.param.watch(lambda e: setattr(s, "observer", e.new), "value")
         self.na_slider.param.watch(lambda e: setattr(s, "na", round(float(e.new), 3)), "value")
         self.brightness.param.watch(lambda e: setattr(s, "brightness", e.new), "value")
@@ -265,6 +271,8 @@ class FilmExplorer:
         self._syncing = True
         try:
             d = json.loads(s.stack_json)
+            # the preset list names the preset only while it is what is loaded (not a file or a library entry)
+            self.preset.value = s.preset_name if s.preset_name in self.preset.options.values() else ""
             self.ambient.value = _spec_text(d["ambient"])
             self.substrate.value = _spec_text(d["substrate"])
             self.plate.value = d.get("substrate_thickness_mm") is not None
@@ -336,24 +344,24 @@ class FilmExplorer:
             self._syncing = False
 
     def _on_preset(self, event):
-        if not event.new:
+        if self._syncing or not event.new:
             return
         self.file_msg.show_error(None)
         self.state.load_preset(event.new)
         self._sync_widgets()
 
-    def _on_file(self, event):
-        if not event.new:
-            return
-
+    def load_stack_upload(self, name: str, data: bytes) -> bool:
+        """Open an uploaded stack file; on a bad file say why and keep the current stack."""
         def load():
-            refusal = upload_refusal(self.file_in.filename or "The stack file", len(event.new), MAX_STACK_FILE_BYTES)
+            refusal = upload_refusal(name or "The stack file", len(data), MAX_STACK_FILE_BYTES)
             if refusal:
                 raise InputError(refusal)
-            sf = load_stack_file(event.new)
-            self.state.load(sf, self.file_in.filename or sf.name)
+            sf = load_stack_file(data)
+            self.state.load(sf, name or sf.name)
         if self._guard(self.file_msg, load):
             self._sync_widgets()
+            return True
+        return False
 
     def _on_medium(self, which, event):
         if self._syncing:
@@ -515,16 +523,14 @@ class FilmExplorer:
         if self._guard(self.angle, apply):
             self._sync_widgets()
 
-    def _on_spd(self, event):
-        if not event.new:
-            return
-
+    def load_lamp_upload(self, name: str, data: bytes) -> bool:
+        """Take an uploaded lamp spectrum as the 'custom' illuminant; on a bad file say why and keep the lamp."""
         def load():
-            refusal = upload_refusal(self.spd_in.filename or "The lamp spectrum file", len(event.new), MAX_SPD_BYTES)
+            refusal = upload_refusal(name or "The lamp spectrum file", len(data), MAX_SPD_BYTES)
             if refusal:
                 raise InputError(refusal)
-            self.state.set_spd(*parse_spd_csv(event.new))
-        self._guard(self.spd_msg, load)
+            self.state.set_spd(*parse_spd_csv(data))
+        return self._guard(self.spd_msg, load)
 
     def _on_map_tap(self, event):
         if event.x is None or event.y is None:

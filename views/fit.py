@@ -28,6 +28,7 @@ from physics.errors import WavelengthRangeError
 
 from . import workers
 from .limits import Limits, heavy_job, post_to_page, served, session_key, upload_refusal
+from .uploads import COMPACT, CappedDropper
 from .explorer import Field, _esc, _fmt, _label
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
@@ -66,11 +67,15 @@ class SpectrumFitSection:
 
     # ------------------------------------------------------------------ widgets
     def _build(self):
-        self.file_in = {
-            role: pn.widgets.FileInput(accept=".csv,.txt,.tsv,.dat", multiple=False, width=300, margin=(2, 5),
-                                       css_classes=[f"fg-fit-{role}-file"])
-            for role in FILE_ROLES}
         self.file_msg = {role: Field("") for role in FILE_ROLES}
+        self.file_in = {
+            role: CappedDropper(MAX_UPLOAD_BYTES, locked(lambda name, data, role=role: self.load_file(role, data, name)),
+                                locked(self.file_msg[role].show_error), what=f"The {role} spectrum file",
+                                accepted_filetypes=[".csv", ".txt", ".tsv", ".dat", "text/csv", "text/plain",
+                                                    "text/tab-separated-values"],
+                                **COMPACT,
+                                css_classes=[f"fg-fit-{role}-file"])
+            for role in FILE_ROLES}
         self.clear_ref = pn.widgets.Button(label="Remove reference and dark", color="light", width=200,
                                            margin=(2, 5))
         self.ref_mode = pn.widgets.RadioButtonGroup(options={"bare silicon (computed)": "silicon",
@@ -156,8 +161,6 @@ class SpectrumFitSection:
         self.dl_json = pn.widgets.FileDownload(callback=self._summary_json, filename="fit_summary.json",
                                                label="Summary (.json)", width=300, disabled=True, margin=(2, 5))
 
-        for role in FILE_ROLES:
-            self.file_in[role].param.watch(locked(partial(self._on_file, role)), "value")
         # Handlers that change Bokeh models run under the document lock (see views.inverse.locked).
         self.clear_ref.on_click(locked(self._on_clear_ref))
         self.ref_mode.param.watch(locked(lambda e: self._reimport()), "value")
@@ -196,12 +199,6 @@ class SpectrumFitSection:
             self.status.object = "The stack, unknown layer or angle changed since this fit: press “Fit thickness”."
 
     # ------------------------------------------------------------------ import
-    def _on_file(self, role, event):
-        if not event.new:
-            return
-        name = self.file_in[role].filename or f"{role}.csv"
-        self.load_file(role, event.new if isinstance(event.new, bytes) else bytes(event.new), name)
-
     def _on_clear_ref(self, *_):
         self.files.pop("reference", None)
         self.files.pop("dark", None)

@@ -31,8 +31,8 @@ from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer
 from . import workers
-from .limits import (JobCancelled, Limits, heavy_job, post_to_page, served,
-                     session_key, upload_cap_bytes, upload_refusal, UPLOAD_CHUNK_BYTES)
+from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
+from .uploads import CappedDropper
 from .state import THICKNESS_LIMITS_NM, compute_strip
 
 log = logging.getLogger("fringegauge")
@@ -93,12 +93,13 @@ class ColourToThickness:
         self.strip_fig = st
 
         # photo
-        self.dropper = pn.widgets.FileDropper(accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif",
-                                                                  ".tiff", ".jpg", ".jpeg", ".png"],
-                                              max_file_size=f"{_dropper_mb()}MB", chunk_size=UPLOAD_CHUNK_BYTES, multiple=False, height=110,
-                                              sizing_mode="stretch_width", margin=(2, 5),
-                                              css_classes=["fg-photo-drop"])
         self.photo_msg = Field("")
+        self.dropper = CappedDropper(MAX_UPLOAD_BYTES, locked(lambda name, data: self.load_photo(data, name)),
+                                     locked(self.photo_msg.show_error), what="The photo",
+                                     accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif", ".tiff",
+                                                         ".jpg", ".jpeg", ".png"],
+                                     height=110, sizing_mode="stretch_width", margin=(2, 5),
+                                     css_classes=["fg-photo-drop"])
         self.mode = pn.widgets.RadioButtonGroup(options={"calibration box": "calib", "region of interest": "roi",
                                                          "pick a point": "pick"}, value="calib", margin=(2, 5))
         self.reference = pn.widgets.RadioButtonGroup(options={"bare substrate": "substrate", "grey card": "grey"},
@@ -166,7 +167,6 @@ class ColourToThickness:
         # Handlers that change Bokeh models run under the document lock (see _locked).
         self.find.on_click(locked(self._on_find))
         self.colour.input.param.watch(locked(self._on_find), "enter_pressed")
-        self.dropper.param.watch(locked(self._on_upload), "value")
         self.run_map.on_click(locked(self._on_run_map))
         self.cancel_map.on_click(locked(lambda e: self.cancel()))
         self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "illuminant",
@@ -285,13 +285,6 @@ class ColourToThickness:
             self._refresh_strip()
 
     # ------------------------------------------------------------------ photo
-    def _on_upload(self, event):
-        files = event.new or {}
-        if not files:
-            return
-        name, data = next(iter(files.items()))
-        self.load_photo(data if isinstance(data, bytes) else bytes(data), name)
-
     def load_photo(self, data: bytes, name: str = "photo") -> bool:
         """Read an uploaded photo; on a bad file say why and keep the previous photo."""
         limits = Limits.from_env()
@@ -618,11 +611,6 @@ class ColourToThickness:
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
-
-
-def _dropper_mb() -> int:
-    """The photo drop zone's own size check (MB), so an over-large photo is stopped in the browser."""
-    return max(1, upload_cap_bytes(MAX_UPLOAD_BYTES) // 2**20)
 
 
 def locked(handler):

@@ -232,23 +232,12 @@ def upload_refusal(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "
             + (f" {advice}" if advice else ""))
 
 
-#: Largest file sent in one websocket message (the file inputs: a measured spectrum, 20 MB, is the
-#: largest); photos go through the drop zone in chunks of UPLOAD_CHUNK_BYTES.
-SINGLE_MESSAGE_UPLOAD_BYTES = 20_000_000
+#: Every upload reaches the server in chunks of this size (see views/uploads.py), so no message is large.
 UPLOAD_CHUNK_BYTES = 2 * 2**20
-#: Room in a message for what is not file content, and the smallest cap the page works with.
-_MESSAGE_OVERHEAD_BYTES = 2**20
-_MIN_MESSAGE_BYTES = 4 * 2**20
-
-
-def websocket_message_cap_bytes(limits: Limits | None = None) -> int:
-    """Largest websocket message the server reads: the largest upload sent in one message, as base64.
-
-    Anything larger is refused by the server before it is read (the connection is closed), so a
-    lower ``max_upload_mb`` also lowers what the socket accepts.
-    """
-    largest = upload_cap_bytes(SINGLE_MESSAGE_UPLOAD_BYTES, limits)
-    return max(_MIN_MESSAGE_BYTES, -(-largest * 4 // 3) + _MESSAGE_OVERHEAD_BYTES)
+#: Largest websocket message the server reads: one upload chunk with room around it. A larger message
+#: is refused before it is read (the connection is closed). Uploads come in chunks whatever
+#: ``max_upload_mb`` is, so this does not grow with it.
+WEBSOCKET_MESSAGE_CAP_BYTES = 4 * 2**20
 
 
 def served(doc=None) -> bool:

@@ -41,6 +41,7 @@ from tornado.httpclient import AsyncHTTPClient, HTTPRequest
 from tornado.websocket import websocket_connect
 
 from tests.support.server import served_lab
+from views.limits import UPLOAD_CHUNK_BYTES
 
 #: Seconds to wait for one update (a swatch after a move, the page after an upload) before it counts as lost.
 UPDATE_TIMEOUT_S = 15.0
@@ -56,8 +57,6 @@ ANGLE_EVERY = 4
 MAP_THINK_S = 2.0
 #: Pause between opening the colour → thickness tab and dropping the photo (s).
 TAB_TO_UPLOAD_S = 1.0
-#: Chunk size of a file upload (bytes), the file dropper's own default.
-UPLOAD_CHUNK_BYTES = 10_000_000
 
 _ids = itertools.count(1)
 
