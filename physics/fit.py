@@ -32,7 +32,7 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from .errors import InputError, WavelengthRangeError, require_finite
-from .stack import Layer, Stack, _check_layer_index, _Optics, sweep
+from .stack import Stack, _check_layer_index, _Optics, sweep
 
 __all__ = ["fit_thickness", "FitResult", "read_spectrum", "SpectrumData", "reflectance_from_counts",
            "optical_thickness_fft", "MIN_POINTS"]

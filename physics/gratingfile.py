@@ -37,7 +37,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import InputError
-from .stackfile import (_check_fields, _describe, _fail, _got, _number, _string, load_shipped,
+from .stackfile import (_check_fields, _fail, _got, _number, _string, load_shipped,
                         read_json_document)
 
 __all__ = ["GratingFile", "grating_from_dict", "load_grating_file", "load_grating_preset", "dump_grating_file",

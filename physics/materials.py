@@ -30,7 +30,6 @@ import json
 from abc import ABC, abstractmethod
 import re
 import warnings
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np

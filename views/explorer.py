@@ -20,7 +20,7 @@ from types import SimpleNamespace
 import numpy as np
 import panel as pn
 from panel.io import hold
-from bokeh.models import ColumnDataSource, HoverTool, Label, Range1d, Span, TapTool
+from bokeh.models import ColumnDataSource, HoverTool, Range1d, Span, TapTool
 from bokeh.events import Tap
 from bokeh.plotting import figure
 
@@ -722,7 +722,6 @@ class FilmExplorer:
         ``on_tab(title)`` is called each time a tab is opened. Tabs are built in the browser when
         first opened (``dynamic``), which keeps every message of a slider move small.
         """
-        s = self.state
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
         sidebar = pn.Column(
             pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge</h2>"),

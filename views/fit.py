@@ -10,7 +10,6 @@ previous spectrum and result stay on screen.
 
 from __future__ import annotations
 
-import asyncio
 import io
 import json
 import logging

@@ -19,12 +19,11 @@ from functools import partial
 import numpy as np
 import panel as pn
 from bokeh.events import SelectionGeometry, Tap
-from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, HoverTool, LinearColorMapper, Range1d, Span)
+from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, HoverTool, LinearColorMapper, Range1d)
 from bokeh.palettes import Viridis256, Magma256
 from bokeh.plotting import figure
 
 from physics import InputError, thickness_candidates, thickness_map
-from physics.appearance import colour_band_nm
 from physics.imageio import box_mean_linear, load_image
 from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
 
