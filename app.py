@@ -9,7 +9,7 @@ from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
-from views.limits import quiet_closed_connections, served
+from views.limits import page_closed, quiet_closed_connections, served
 from views.urlstate import apply_query, state_to_query
 
 pn.extension("filedropper", design="native", notifications=False)
@@ -27,6 +27,8 @@ def tab_opened(inverse, library, title):
 
 def page():
     quiet_closed_connections()                     # a tab closed mid-write is normal, not a traceback
+    if served():
+        pn.state.on_session_destroyed(page_closed)          # defined outside: this module is gone by then
     explorer = FilmExplorer()
     args = pn.state.session_args or {}
     if args:

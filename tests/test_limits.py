@@ -216,3 +216,18 @@ def test_a_page_closed_mid_write_is_one_info_line_and_other_errors_still_reach_t
         loop.close()
     assert seen == [other]
     assert [r.getMessage() for r in caplog.records].count("a page closed while the server was writing to it") == 2
+
+
+def test_pages_closing_in_a_burst_hand_memory_back_once(monkeypatch, caplog):
+    import platform
+    import time as _time
+
+    if platform.libc_ver()[0] != "glibc":
+        pytest.skip("malloc_trim is glibc's")
+    monkeypatch.setattr(L, "GIVE_BACK_DELAY_S", 0.2)
+    with caplog.at_level("INFO", logger="fringegauge"):
+        for _ in range(5):                                  # five pages destroyed in one sweep
+            L.page_closed(session_context=None)
+        _time.sleep(1.0)
+    lines = [r for r in caplog.records if r.getMessage() == "memory handed back"]
+    assert len(lines) == 1 and lines[0].gc_s >= 0 and lines[0].trim_s >= 0

@@ -84,6 +84,7 @@ class Limits:
 
 # ---------------------------------------------------------------------- heavy jobs
 import contextlib  # noqa: E402
+import functools  # noqa: E402
 import logging  # noqa: E402
 import threading  # noqa: E402
 import time  # noqa: E402
@@ -287,3 +288,66 @@ def quiet_closed_connections(loop=None) -> None:
             loop.default_exception_handler(context)
     handler.quiet_closed_connections = True
     loop.set_exception_handler(handler)
+
+
+#: Seconds after the last page closed before freed memory is handed back to the system (pages often
+#: close in a burst at a shift change; one hand-back covers them all).
+GIVE_BACK_DELAY_S = 5.0
+_give_back = {"timer": None}
+_give_back_lock = threading.Lock()
+
+
+def page_closed(session_context) -> None:
+    """Bokeh destroyed a page's session (its tab closed a while ago): let its memory go back.
+
+    Registered with ``pn.state.on_session_destroyed``; it lives here, not in app.py, because Bokeh
+    has discarded the page's own module by the time it calls this.
+    """
+    give_back_memory_soon()
+
+
+def give_back_memory_soon() -> bool:
+    """After a page's session is destroyed: return the C heap's free pages to the system shortly after.
+
+    Python frees a closed page's objects at once, but glibc's allocator keeps the freed pages mapped
+    for reuse, so the server's resident memory stays at its busiest level. ``malloc_trim(0)`` hands
+    them back (in a background thread, once per burst of closes). Does nothing, and returns False,
+    where the C library is not glibc.
+    """
+    trim = _malloc_trim()
+    if trim is None:
+        return False
+    with _give_back_lock:
+        if _give_back["timer"] is not None:
+            _give_back["timer"].cancel()
+        timer = threading.Timer(GIVE_BACK_DELAY_S, _collect_and_trim, args=(trim,))
+        timer.daemon = True
+        timer.name = "fringegauge-give-back-memory"
+        _give_back["timer"] = timer
+        timer.start()
+    return True
+
+
+def _collect_and_trim(trim) -> None:
+    import gc
+
+    t0 = time.perf_counter()
+    collected = gc.collect()             # a closed page's objects in reference cycles, so their pages free up
+    t1 = time.perf_counter()
+    trim(0)
+    _log.info("memory handed back", extra={"objects_collected": collected, "gc_s": round(t1 - t0, 3),
+                                          "trim_s": round(time.perf_counter() - t1, 3)})
+
+
+@functools.lru_cache(maxsize=1)
+def _malloc_trim():
+    """glibc's ``malloc_trim`` (looked up once: ``platform.libc_ver`` reads the interpreter's binary)."""
+    import ctypes
+    import platform
+
+    if platform.libc_ver()[0] != "glibc":
+        return None
+    try:
+        return ctypes.CDLL("libc.so.6").malloc_trim
+    except (OSError, AttributeError):
+        return None
