@@ -9,9 +9,11 @@ from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
+from views.offline import serve_everything_locally
 from views.limits import page_closed, quiet_closed_connections, served
 from views.urlstate import apply_query, state_to_query
 
+serve_everything_locally()                        # a lab intranet often has no way out
 pn.extension("filedropper", design="native", notifications=False)
 
 #: The page address follows the state this long after the last change (ms).

@@ -45,10 +45,14 @@ def page(browser, server):
     pg.console_errors = []
     pg.on("console", lambda m: pg.console_errors.append(m.text) if m.type in ERROR_TYPES else None)
     pg.on("pageerror", lambda e: pg.console_errors.append(str(e)))
+    outside = []                                  # a lab intranet may have no way out: nothing may be fetched
+    pg.on("request", lambda r: outside.append(r.url) if not r.url.startswith((url.rsplit("/", 1)[0], "data:",
+                                                                              "blob:")) else None)
     pg.goto(url)
     _wait_swatch(pg)
     yield pg
     ctx.close()
+    assert outside == [], f"the page fetched from outside its server: {sorted(set(outside))[:5]}"
     assert "Traceback" not in log_path.read_text(), log_path.read_text()
 
 
@@ -231,6 +235,25 @@ def test_stack_files_through_the_drop_zone_and_an_oversized_one_stopped_in_the_b
     zone.set_input_files(str(Path(__file__).resolve().parents[1] / "presets" / "broadband_ar_on_bk7.json"))
     _wait_swatch(page, not_text=before)
     page.wait_for_function(f"() => (({DEEP_TEXT_JS})('.fg-swatch-values') || '').includes('nm at')", timeout=15_000)
+    assert page.console_errors == []
+
+
+def test_every_tab_and_a_preset_change_fetch_nothing_from_outside(page):
+    """A hidden tab's parts are updated while another is shown; their stylesheets must still come
+    from this server (the page fixture fails on any request elsewhere)."""
+    tabs = page.locator(".bk-tab")
+    for i in range(1, tabs.count()):
+        tabs.nth(i).click()
+        page.wait_for_timeout(800)
+    tabs.nth(0).click()
+    before = _swatch_text(page)
+    page.locator("select").first.select_option(index=2)
+    _wait_swatch(page, not_text=before)
+    page.locator("select").first.select_option(index=3)
+    page.wait_for_timeout(1000)
+    for i in range(1, tabs.count()):
+        tabs.nth(i).click()
+        page.wait_for_timeout(800)
     assert page.console_errors == []
 
 
