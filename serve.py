@@ -64,13 +64,30 @@ class JsonFormatter(logging.Formatter):
         return json.dumps(out, default=str)
 
 
+#: Loggers of the libraries the server runs on, which bring their own plain-text handlers.
+LIBRARY_LOGGERS = ("bokeh", "panel", "tornado")
+
+
 def configure_logging(level: int = logging.INFO) -> None:
-    """Send the ``fringegauge`` logger to stderr as JSON lines (messages only, no request bodies)."""
+    """Send every log line to stderr as JSON: the ``fringegauge`` logger at ``level``, the libraries'
+    loggers and Python warnings at WARNING and above (messages only, no request bodies)."""
+    import bokeh  # noqa: F401  (both add their own handlers when imported: replace them after)
+    import panel  # noqa: F401
+
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonFormatter())
     log.handlers[:] = [handler]
     log.setLevel(level)
     log.propagate = False
+    root = logging.getLogger()
+    root.handlers[:] = [handler]
+    root.setLevel(logging.WARNING)
+    for name in LIBRARY_LOGGERS:
+        lib = logging.getLogger(name)
+        lib.handlers[:] = []
+        lib.setLevel(logging.NOTSET)
+        lib.propagate = True
+    logging.captureWarnings(True)
 
 
 # ---------------------------------------------------------------------------- options

@@ -235,15 +235,25 @@ def test_hostile_uploads_are_dropped_at_the_cap_as_they_arrive(server):
     _assert_serving(port)
 
 
-def test_server_log_has_no_traceback_from_our_code(server):
-    """Run after the garbage tests: Bokeh logs its own protocol errors; no frame of ours may appear."""
+def test_server_log_is_json_and_has_no_traceback_from_our_code(server):
+    """Run after the garbage tests: Bokeh logs its own protocol errors, as JSON lines like everything the
+    server logs; no frame of ours may appear in any traceback."""
     status, body = _get(server["port"], "/health")
     assert status == 200 and json.loads(body)["status"] == "ok"
     log = server["log"].read_text(errors="replace")
-    ours = [line for line in log.splitlines()
-            if line.strip().startswith("File ") and str(ROOT) in line and "site-packages" not in line]
+    records, not_json = [], []
+    for line in filter(str.strip, log.splitlines()):
+        try:
+            records.append(json.loads(line))
+        except ValueError:
+            not_json.append(line)
+    assert not_json == [], "log lines that are not JSON:\n" + "\n".join(not_json[:10])
+    frames = [frame for r in records for frame in str(r.get("exception", "")).splitlines()
+              if frame.strip().startswith("File ")]
+    ours = [f for f in frames if str(ROOT) in f and "site-packages" not in f]
     assert ours == [], "a traceback passed through our code:\n" + "\n".join(ours)
-    bokeh = sorted({re.sub(r"\d+", "N", line)[:160] for line in log.splitlines() if line.startswith(("ERROR:", "WARNING:"))})
+    bokeh = sorted({f"{r['level']} {r['logger']}: {re.sub(r'[0-9]+', 'N', r['message'])[:120]}"
+                    for r in records if r["level"] in ("ERROR", "WARNING")})
     print("\n".join(["Bokeh's own log lines for the garbage above:", *bokeh]))
     assert server["proc"].poll() is None
 
