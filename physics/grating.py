@@ -28,11 +28,16 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import warnings
+
 import numpy as np
 
-from .appearance import scaled_colors
-from .color import spectrum_to_xyz
+from .color import _linear_srgb, spectrum_to_xyz, xyz_to_lab
 from .errors import InputError, require_finite
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore")
+    import colour
 
 __all__ = [
     "groove_spacing_nm", "diffraction_angle_deg", "order_status", "propagating_orders", "order_band_nm",
@@ -41,6 +46,7 @@ __all__ = [
     "order_overlaps", "order_sorting_filter_nm", "littrow_angle_deg", "blaze_wavelength_nm",
     "blaze_wavelength_at_deviation_nm", "rayleigh_wavelength_nm", "n_slit_intensity", "groove_efficiency",
     "grating_spectrum", "grating_color", "grating_color_map", "plan_spectrometer", "SpectrometerDesign",
+    "display_srgb", "spectral_line_srgb",
 ]
 
 #: Largest |incidence| accepted: 90° is grazing and illuminates nothing.
@@ -54,6 +60,12 @@ COLOUR_BAND_SAMPLES = int(COLOUR_BAND_NM[1] - COLOUR_BAND_NM[0]) + 1
 #: Pixels per resolution element assumed when a spectrometer's resolution is quoted (Nyquist-type
 #: sampling of the slit image, common practice).
 PIXELS_PER_RESOLUTION_ELEMENT = 3.0
+#: Linear-RGB slack before a colour counts as outside the sRGB gamut (as physics.color: the published
+#: 4-digit sRGB matrix maps the D65 white to 1 within 2e-4).
+GAMUT_TOLERANCE = 1e-3
+#: Relative luminance of the sRGB primaries (IEC 61966-2-1, the Y row of its RGB-to-XYZ matrix,
+#: taken from colour-science): the luminance of a linear sRGB colour is this dot product.
+SRGB_LUMINANCE = np.asarray(colour.RGB_COLOURSPACES["sRGB"].matrix_RGB_to_XYZ, dtype=float)[1]
 
 
 # ---------------------------------------------------------------------- validation
@@ -255,33 +267,71 @@ def order_overlaps(band_nm, lines_per_mm, order=1, incidence_deg=0.0, source_ban
 def order_sorting_filter_nm(band_nm, order=1, source_band_nm=(200.0, 1100.0)):
     """Long-pass filter edges (nm) that remove other orders from a band observed in ``order``.
 
-    Higher orders m' > m bring shorter wavelengths m·λ/m' onto the band: a long-pass edge just
-    below the band's short end removes them where the band spans less than the factor (m+1)/m;
-    a wider band needs a second filter section whose edge starts where the next order's light
-    enters, at (m+1)/m times the short end. Lower orders (m' < m) bring longer wavelengths
-    m·λ/m' that only a short-pass filter or the source's own band can remove: they are listed.
+    Higher orders m' > |m| bring shorter wavelengths |m|·λ/m' onto band position λ; the nearest,
+    m' = |m| + 1, brings the longest of them. They matter only where the source emits them: at
+    band positions below ``clean_below_nm`` = (|m|+1)/|m| × (source's short end) every such
+    wavelength is shorter than the source emits, and no filter is needed there. Above it, a
+    long-pass edge e placed over band positions [e, e·(|m|+1)/|m|) passes the band light (λ >= e)
+    and blocks the next order's (|m|·λ/(|m|+1) < e); a band wider than that needs a stepped filter
+    with further sections at (|m|+1)/|m| times the previous edge. Lower orders (m' < |m|) bring
+    longer wavelengths |m|·λ/m' that only a short-pass filter, a detector blind to them or a source
+    without them removes: they are listed.
 
     Returns
     -------
-    dict with ``edges_nm`` (long-pass edges, each applying from that wavelength of the band up),
-    ``longer_orders`` (lower orders whose longer wavelengths also land on the band, if the source
-    emits them) and ``note``.
+    dict with ``edges_nm`` (long-pass edges, each applying from that wavelength of the band up;
+    empty when no filter is needed), ``clean_below_nm`` (band positions below this need no
+    long-pass filter), ``longer_orders`` (lower orders whose longer wavelengths, emitted by the
+    source, also land on the band), ``longer_from_nm`` (the shortest of those wavelengths, or None)
+    and ``note`` (sentences for the page).
+
+    References
+    ----------
+    Palmer & Loewen, Diffraction Grating Handbook, sec. 2.7 (overlapping orders, order sorting).
     """
     lo, hi = _band(band_nm)
     m = abs(int(_order(order, nonzero=True, what="order sorting")))
     s_lo, s_hi = _band(source_band_nm, "source_band_nm")
-    edges = [lo]
-    nxt = lo * (m + 1) / m
+    step = (m + 1) / m
+    start = max(lo, s_lo * step)                                    # below this no higher order is emitted
+    edges = []
+    nxt = start
     while nxt < hi:
         edges.append(nxt)
-        nxt = nxt * (m + 1) / m
+        nxt = nxt * step
     longer = [mp for mp in range(1, m) if m * lo / mp < s_hi]
-    note = ("one long-pass filter with its edge just below {:.0f} nm suffices".format(lo) if len(edges) == 1 else
-            f"the band spans more than ×{(m + 1) / m:g}: use a stepped filter with long-pass sections from "
-            + ", ".join(f"{e:.0f}" for e in edges) + " nm")
+    notes = []
+    if not edges:
+        notes.append(f"No long-pass filter is needed: the higher orders would bring light shorter than "
+                     f"{lo / step:.0f} nm onto the band, and the source emits nothing below {s_lo:.0f} nm.")
+    else:
+        clean = (f"The band below {start:.0f} nm needs no filter: the source emits nothing short enough to "
+                 "reach it in a higher order. " if start > lo else "")
+        if len(edges) == 1:
+            notes.append(f"{clean}One long-pass filter with its edge just below {edges[0]:.0f} nm removes the "
+                         f"higher orders" + (f" from {edges[0]:.0f} nm up." if start > lo else "."))
+        else:
+            notes.append(f"{clean}The part to filter ({start:.0f}–{hi:.0f} nm) spans more than ×{step:.3g}, so "
+                         "one long-pass filter is not enough: use a stepped (segmented) filter with long-pass "
+                         "sections whose edges sit at "
+                         + _join_nm(edges) + " nm, each section covering the band from its edge to the next.")
     if longer:
-        note += "; lower orders " + ", ".join(map(str, longer)) + " add longer wavelengths the source emits"
-    return {"edges_nm": edges, "longer_orders": longer, "note": note}
+        which = (f"Order {longer[0]} also brings" if len(longer) == 1 else
+                 "Orders " + _join_words([str(k) for k in longer]) + " also bring")
+        notes.append(f"{which} longer wavelengths onto the band (from {m * lo / max(longer):.0f} nm; the source "
+                     f"emits up to {s_hi:.0f} nm). A long-pass filter cannot remove this light: use a short-pass "
+                     "filter, a detector blind to it, or a source without it.")
+    return {"edges_nm": edges, "clean_below_nm": start, "longer_orders": longer,
+            "longer_from_nm": (m * lo / max(longer)) if longer else None, "note": " ".join(notes)}
+
+
+def _join_words(words: list[str]) -> str:
+    """'a', 'a and b', 'a, b and c'."""
+    return words[0] if len(words) == 1 else ", ".join(words[:-1]) + " and " + words[-1]
+
+
+def _join_nm(values) -> str:
+    return _join_words([f"{v:.0f}" for v in values])
 
 
 # ---------------------------------------------------------------------- Littrow, blaze, anomalies
@@ -439,6 +489,84 @@ def grating_spectrum(view_deg, lines_per_mm, incidence_deg=0.0, *, kind="lamella
     return wl, power, first
 
 
+def _desaturated_linear(xyz, illuminant, observer):
+    """Linear sRGB of ``xyz`` (adapted to the display white) with negative channels removed by
+    mixing in the display white of the same luminance, as little as needed; see :func:`display_srgb`."""
+    lin = _linear_srgb(np.asarray(xyz, dtype=float), illuminant, observer)
+    y = np.clip(lin @ SRGB_LUMINANCE, 0.0, None)[..., None]        # luminance: kept by the mixing
+    with np.errstate(divide="ignore", invalid="ignore"):
+        need = np.where(lin < 0.0, -lin / (y - lin), 0.0)           # (1 − t)·c + t·Y = 0 for c < 0
+    t = np.clip(np.max(need, axis=-1, keepdims=True), 0.0, 1.0)
+    return (1.0 - t) * lin + t * y, lin
+
+
+def display_srgb(xyz, illuminant="D65", observer="2"):
+    """Display sRGB (encoded, 0..1) of XYZ (Y = 1 is the lamp's white), gamut-mapped without hue shifts.
+
+    Gamut mapping: constant-luminance desaturation toward the white point, then uniform scaling.
+    A colour with a negative linear sRGB channel (a chromaticity outside the sRGB triangle, such as
+    every spectral line) is mixed with the display white of the same luminance Y, by the least
+    amount that makes every channel >= 0: its chromaticity moves along the straight line toward
+    the white point (dominant wavelength kept) and its luminance is unchanged. A colour with a
+    channel above 1 is then scaled down as a whole (chromaticity kept, luminance lowered) until its
+    largest channel is 1, instead of clipping each channel: clipping the blue of an over-bright
+    violet while its red also saturates would show it as magenta. Straight-line mapping toward a
+    neutral point is one of the standard gamut-mapping families (J. Morovič, Color Gamut Mapping,
+    Wiley 2008, ch. 10; cited from memory); the sRGB matrix, CAT02 adaptation and encoding come from
+    colour-science (IEC 61966-2-1:1999).
+
+    Returns
+    -------
+    (rgb, out_of_gamut) : (..., 3) encoded sRGB in 0..1, and (...) True where mapping changed the colour.
+    """
+    mapped, lin = _desaturated_linear(xyz, illuminant, observer)
+    oog = np.any((lin < -GAMUT_TOLERANCE) | (lin > 1.0 + GAMUT_TOLERANCE), axis=-1)
+    peak = np.max(mapped, axis=-1, keepdims=True)
+    mapped = np.clip(mapped / np.where(peak > 1.0, peak, 1.0), 0.0, 1.0)   # the clip only trims rounding
+    return np.asarray(colour.models.eotf_inverse_sRGB(mapped), dtype=float), oog
+
+
+def spectral_line_srgb(wavelength_nm, observer="2"):
+    """Display sRGB (encoded, 0..1) of monochromatic lines seen on a display adapted to D65.
+
+    Each line is shown at the brightest display level its chromaticity allows after the gamut
+    mapping of :func:`display_srgb` (constant-luminance desaturation toward the white point, then
+    uniform scaling): the hue of a line at full display brightness. The display's blue primary has
+    a relative luminance of 0.07, so violet lines come out dim (Y about 0.13) and never magenta.
+    Wavelengths outside the CIE tables' 360-830 nm are black.
+
+    Returns
+    -------
+    (..., 3) array of display sRGB.
+
+    References
+    ----------
+    CIE 015:2018 colour-matching functions, via colour-science (``colour.wavelength_to_XYZ``).
+    """
+    wl = np.atleast_1d(_wavelength(wavelength_nm)).astype(float)
+    inside = (wl >= 360.0) & (wl <= 830.0)
+    cmfs = colour.MSDS_CMFS[_OBSERVER_CMFS[str(observer)]]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        xyz = np.asarray(colour.wavelength_to_XYZ(np.where(inside, wl, 555.0), cmfs), dtype=float).reshape(-1, 3)
+    mapped, _ = _desaturated_linear(xyz, "D65", observer)
+    peak = np.max(mapped, axis=-1, keepdims=True)
+    mapped = np.clip(mapped / np.where(peak > 0, peak, 1.0), 0.0, 1.0) * inside.reshape(-1, 1)
+    rgb = np.asarray(colour.models.eotf_inverse_sRGB(mapped), dtype=float)
+    return rgb.reshape(np.shape(wavelength_nm) + (3,))
+
+
+#: colour-science's table of each observer's colour-matching functions.
+_OBSERVER_CMFS = {"2": "CIE 1931 2 Degree Standard Observer", "10": "CIE 1964 10 Degree Standard Observer"}
+
+
+def _shown(xyz, scale, illuminant, observer):
+    """rgb, lab and out-of-gamut flag of ``xyz`` times ``scale`` (a number or one per direction)."""
+    scaled = xyz * np.asarray(scale)[..., None] if np.ndim(scale) else xyz * scale
+    rgb, oog = display_srgb(scaled, illuminant, observer)
+    return rgb, xyz_to_lab(scaled, illuminant, observer), oog
+
+
 def grating_color(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", observer="2", *, kind="lamellar",
                   duty_cycle=0.5, blaze_angle_deg=None, normalize="per_direction"):
     """Display sRGB of the light a grating sends to an eye at ``view_deg`` under white light.
@@ -447,9 +575,11 @@ def grating_color(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", o
     ----------
     normalize : {"per_direction", "common"} or float
         "per_direction" (default): each direction is shown at full display brightness (its largest
-        linear sRGB channel = 1), so the hue of every direction is visible; "common": one scale for
-        all directions given, the brightest shown as white (relative brightness kept); a number:
-        that Y is display white.
+        linear sRGB channel = 1 after the gamut mapping of :func:`display_srgb`), so the hue of every
+        direction is visible; "common": one scale for all directions given, the largest that keeps
+        every direction inside the display (the most intense direction has a channel at 1), so
+        relative brightness is kept; a number: that Y is display white (brighter colours are scaled
+        down into the display by :func:`display_srgb`).
 
     Returns
     -------
@@ -461,21 +591,18 @@ def grating_color(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65", o
                                         blaze_angle_deg=blaze_angle_deg)
     xyz = spectrum_to_xyz(power, wl, illuminant, observer)
     scale = _scale(xyz, normalize, illuminant, observer)
-    rgb, lab, oog = scaled_colors(xyz * np.asarray(scale)[..., None] if np.ndim(scale) else xyz * scale,
-                                  illuminant, observer, 1.0)
+    rgb, lab, oog = _shown(xyz, scale, illuminant, observer)
     return {"rgb": rgb, "xyz": xyz, "lab": lab, "out_of_gamut": oog, "orders": first,
             "dark": xyz[..., 1] <= 0, "scale": scale}
 
 
 def _scale(xyz, normalize, illuminant, observer):
-    from .color import _linear_srgb
-
-    if normalize == "per_direction":
-        peak = np.max(_linear_srgb(xyz, illuminant, observer), axis=-1)
-        return np.where(peak > 0, 1.0 / np.where(peak > 0, peak, 1.0), 0.0)
-    if normalize == "common":
-        ymax = float(xyz[..., 1].max()) if xyz.size else 0.0
-        return 1.0 / ymax if ymax > 0 else 1.0
+    if normalize in ("per_direction", "common"):
+        peak = np.max(_desaturated_linear(xyz, illuminant, observer)[0], axis=-1)
+        if normalize == "per_direction":
+            return np.where(peak > 0, 1.0 / np.where(peak > 0, peak, 1.0), 0.0)
+        top = float(peak.max()) if peak.size else 0.0
+        return 1.0 / top if top > 0 else 1.0
     y = float(require_finite("normalize", normalize, minimum=0.0, min_inclusive=False))
     return 1.0 / y
 
@@ -488,8 +615,7 @@ def grating_color_map(view_deg, lines_per_mm, incidence_deg=0.0, illuminant="D65
     xyz = np.stack([grating_color(view, g, incidence_deg, illuminant, observer, normalize=1.0, **kw)["xyz"]
                     for g in dens])
     scale = _scale(xyz, normalize, illuminant, observer)
-    rgb, lab, oog = scaled_colors(xyz * np.asarray(scale)[..., None] if np.ndim(scale) else xyz * scale,
-                                  illuminant, observer, 1.0)
+    rgb, lab, oog = _shown(xyz, scale, illuminant, observer)
     return {"rgb": rgb, "lab": lab, "out_of_gamut": oog, "dark": xyz[..., 1] <= 0, "lines_per_mm": dens,
             "view_deg": view}
 

@@ -289,7 +289,38 @@ def test_order_sorting_filter_by_hand():
     three = G.order_sorting_filter_nm((500.0, 700.0), 3)
     assert three["edges_nm"] == pytest.approx([500.0, 2000.0 / 3])
     assert three["longer_orders"] == [2]
+    assert "Order 2 also brings longer wavelengths" in three["note"] and "from 750 nm" in three["note"]
+    four = G.order_sorting_filter_nm((500.0, 700.0), 4, source_band_nm=(200.0, 3000.0))
+    assert four["longer_orders"] == [1, 2, 3] and "Orders 1, 2 and 3 also bring" in four["note"]
     assert G.order_sorting_filter_nm((500.0, 700.0), 3, source_band_nm=(200.0, 2500.0))["longer_orders"] == [1, 2]
+
+
+def test_order_sorting_filter_follows_the_source():
+    # 200-1000 nm in order 1 with a source from 200 nm: order 2 brings λ/2 onto band position λ, which the
+    # source emits only from λ = 400 nm (by hand): no filter below 400 nm, sections from 400 and 800 nm.
+    res = G.order_sorting_filter_nm((200.0, 1000.0), 1, source_band_nm=(200.0, 1100.0))
+    assert res["clean_below_nm"] == pytest.approx(400.0) and res["edges_nm"] == pytest.approx([400.0, 800.0])
+    assert "below 400 nm needs no filter" in res["note"] and "400 and 800 nm" in res["note"]
+    assert "200 nm" not in res["note"].split("needs no filter")[1]
+    # 200-350 nm: order 2 would bring 100-175 nm, which the source does not emit: no filter at all.
+    none = G.order_sorting_filter_nm((200.0, 350.0), 1, source_band_nm=(200.0, 1100.0))
+    assert none["edges_nm"] == [] and none["note"].startswith("No long-pass filter is needed")
+    one = G.order_sorting_filter_nm((450.0, 800.0), 1)
+    assert one["note"] == "One long-pass filter with its edge just below 450 nm removes the higher orders."
+
+
+@given(st.floats(150.0, 1000.0), st.floats(1.01, 6.0), positive_orders, st.floats(100.0, 900.0))
+def test_order_sorting_filter_blocks_every_emitted_higher_order(lo, ratio, m, s_lo):
+    hi = lo * ratio
+    res = G.order_sorting_filter_nm((lo, hi), m, source_band_nm=(s_lo, 20000.0))
+    edges = np.asarray(res["edges_nm"])
+    lam = np.linspace(lo, hi, 401)[:-1]
+    covered = lam >= res["clean_below_nm"]
+    # uncovered positions: the next order's light there is shorter than the source emits
+    assert np.all(lam[~covered] * m / (m + 1) < s_lo * (1 + 1e-12))
+    if covered.any():
+        e = edges[np.searchsorted(edges, lam[covered] * (1 + 1e-12), side="right") - 1]
+        assert np.all(lam[covered] >= e * (1 - 1e-12)) and np.all(lam[covered] * m / (m + 1) < e * (1 + 1e-12))
 
 
 @given(st.floats(200.0, 1000.0), st.floats(1.01, 6.0), positive_orders)
@@ -564,11 +595,13 @@ def test_normalize_common_keeps_relative_brightness():
     c = G.grating_color(VIEWS, 600.0, normalize="common")
     y = c["xyz"][..., 1]
     assert np.ndim(c["scale"]) == 0
-    assert float(c["scale"]) == pytest.approx(1.0 / y.max())
-    assert c["lab"][np.argmax(y), 0] == pytest.approx(100.0, abs=1e-6)
+    # one scale: the largest that keeps every direction inside the display, so the most intense
+    # direction has a channel at full scale and none is clipped
+    assert np.max(c["rgb"]) == pytest.approx(1.0, abs=1e-9)
+    assert c["lab"][..., 0].max() <= 100.0 + 1e-9
     order = np.argsort(y)
     assert np.all(np.diff(c["lab"][order, 0]) >= -1e-9)          # L* follows Y
-    np.testing.assert_allclose(c["lab"], xyz_to_lab(c["xyz"] / y.max()), atol=1e-9)
+    np.testing.assert_allclose(c["lab"], xyz_to_lab(c["xyz"] * c["scale"]), atol=1e-9)
 
 
 def test_normalize_number_is_display_white():
@@ -594,7 +627,90 @@ def test_colour_map_shapes_and_rows():
     for i, g in enumerate(dens):                         # per-direction scaling: rows equal single calls
         np.testing.assert_allclose(cm["rgb"][i], G.grating_color(views, g)["rgb"], atol=1e-12)
     common = G.grating_color_map(views, dens, normalize="common")
-    assert common["lab"][..., 0].max() == pytest.approx(100.0, abs=1e-6)
+    assert common["rgb"].max() == pytest.approx(1.0, abs=1e-9) and common["lab"][..., 0].max() <= 100.0 + 1e-9
+
+
+# ---------------------------------------------------------------------- display colours (gamut mapping)
+def _cs_linear_srgb(xyz):
+    """Linear sRGB of D65-relative XYZ by colour-science (independent of the module)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return np.asarray(colour.XYZ_to_RGB(xyz, "sRGB", apply_cctf_encoding=False), dtype=float)
+
+
+def _cs_decode(rgb):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return np.asarray(colour.models.eotf_sRGB(rgb), dtype=float)
+
+
+def _xy(xyz):
+    xyz = np.asarray(xyz, dtype=float)
+    return xyz[..., :2] / xyz.sum(axis=-1, keepdims=True)
+
+
+def test_display_srgb_of_in_gamut_colours_is_the_standard_encoding():
+    xyz = np.array([[0.2, 0.3, 0.25], [0.9505, 1.0, 1.089], [0.05, 0.04, 0.06]])      # inside sRGB
+    rgb, oog = G.display_srgb(xyz)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = np.asarray(colour.XYZ_to_sRGB(xyz), dtype=float)                      # IEC 61966-2-1 via colour-science
+    np.testing.assert_allclose(rgb, ref, atol=2e-3)
+    assert not oog.any()
+
+
+@pytest.mark.parametrize("wl", [400.0, 420.0, 480.0, 500.0, 520.0, 600.0, 700.0])
+def test_spectral_colours_are_desaturated_toward_white_at_constant_luminance(wl):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        xyz = np.asarray(colour.wavelength_to_XYZ(wl, colour.MSDS_CMFS[CMFS["2"]]))    # CIE 1931 via colour-science
+    xyz = 0.2 * xyz / xyz[1]                                   # dim enough to need no scaling down
+    rgb, oog = G.display_srgb(xyz)
+    assert oog
+    lin = _cs_decode(rgb)
+    assert lin.min() == pytest.approx(0.0, abs=1e-9)          # the least desaturation that fits
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        shown = np.asarray(colour.RGB_to_XYZ(lin, "sRGB", apply_cctf_decoding=False), dtype=float)
+    if lin.max() < 1.0 - 1e-9:                                # not scaled down: luminance kept
+        assert shown[1] == pytest.approx(0.2, rel=1e-3)
+    # the chromaticity lies on the straight line from the D65 white point to the spectral colour
+    white = np.array([0.3127, 0.3290])                        # IEC 61966-2-1 D65 white point
+    a, b = _xy(xyz) - white, _xy(shown) - white
+    assert abs(a[0] * b[1] - a[1] * b[0]) < 2e-4 * np.linalg.norm(a) and a @ b > 0
+
+
+def test_over_bright_violet_is_scaled_down_not_clipped_to_magenta():
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        xyz = np.asarray(colour.wavelength_to_XYZ(415.0, colour.MSDS_CMFS[CMFS["2"]]))
+    dim, _ = G.display_srgb(xyz / xyz[1] * 0.001)
+    bright, _ = G.display_srgb(xyz / xyz[1])                 # Y = 1: far beyond any displayable violet
+    r, g, b = bright
+    assert b == pytest.approx(1.0) and g == pytest.approx(0.0, abs=1e-9) and r < 0.6
+    lin_dim, lin_bright = _cs_decode(dim), _cs_decode(bright)
+    np.testing.assert_allclose(lin_dim / lin_dim.max(), lin_bright, atol=1e-6)        # same chromaticity
+
+
+def test_spectral_line_colours():
+    rgb = G.spectral_line_srgb(np.array([405.0, 430.0, 550.0, 620.0, 300.0]))
+    assert rgb.shape == (5, 3)
+    for r, g, b in rgb[:2]:                                   # violet: dim (the blue primary), not magenta
+        assert b == pytest.approx(1.0) and g == pytest.approx(0.0, abs=1e-9) and r < 0.6
+    assert np.argmax(rgb[2]) == 1 and np.argmax(rgb[3]) == 0
+    np.testing.assert_array_equal(rgb[4], 0.0)                # outside the CIE tables: black
+    assert np.max(rgb[:4], axis=-1) == pytest.approx(1.0)
+
+
+def test_violet_only_strip_is_dim_violet():
+    # 3600 lines/mm at 35° incidence: order 1 reaches at most d(sin α + 1) = 437 nm (by hand), so only
+    # 380-437 nm is seen; with relative brightness the strip is violet, darker toward 400 nm.
+    views = np.linspace(-80.0, 80.0, 321)
+    c = G.grating_color(views, 3600.0, 35.0, normalize="common", kind="blazed", blaze_angle_deg=17.5)
+    lit = ~c["dark"]
+    r, g, b = c["rgb"][lit].T
+    assert np.all(g <= 1e-9) and np.all(r <= 0.6 * b + 1e-9)
+    assert b.max() == pytest.approx(1.0) and b.min() < 0.2
 
 
 # ---------------------------------------------------------------------- spectrometer planning

@@ -9,8 +9,9 @@ from PIL import Image
 
 from physics import grating as gr
 from physics.gratingfile import list_grating_presets, load_grating_preset
-from views.grating import (FAN_RAYS, MAP_DENSITIES, VIEW_DEG, GratingSection, SOURCE_BAND_NM, compute_colour_map,
-                           line_colours)
+from views.grating import (DEFAULT_SOURCE_BAND_NM, FAN_RAYS, NO_PRESET, VIEW_DEG, GratingSection, compute_colour_map,
+                           csv_wavelengths_nm, line_colours, map_densities, parse_typed_number)
+from physics import InputError
 
 STEMS = [stem for stem, _ in list_grating_presets()]
 
@@ -64,9 +65,10 @@ def test_section_builds_with_no_argument_and_shows_the_caution(section):
 
 def test_overlap_table_and_filter_equal_physics(section):
     s = section.settings
-    rows = gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, SOURCE_BAND_NM)
+    assert s.source_band == DEFAULT_SOURCE_BAND_NM
+    rows = gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, s.source_band)
     assert section.overlaps["rows"] == rows and rows
-    assert section.overlaps["filter"] == gr.order_sorting_filter_nm(s.band, s.order, SOURCE_BAND_NM)
+    assert section.overlaps["filter"] == gr.order_sorting_filter_nm(s.band, s.order, s.source_band)
     for r in rows:
         assert f"{r['lo_nm']:.0f}–{r['hi_nm']:.0f}" in section.overlap_html.object
 
@@ -123,6 +125,20 @@ def test_ray_colours_are_those_of_monochromatic_lines():
     rgb = lambda h: [int(h[i:i + 2], 16) for i in (1, 3, 5)]  # noqa: E731
     assert np.argmax(rgb(blue)) == 2 and np.argmax(rgb(green)) == 1 and np.argmax(rgb(red)) == 0
     assert uv == "#9e9e9e"
+    for violet in line_colours([400.0, 415.0, 430.0]):       # violet: blue well above red, never magenta
+        r, g, b = rgb(violet)
+        assert b == 255 and g == 0 and r < 0.6 * b
+
+
+def test_colour_map_range_follows_the_groove_density(section):
+    assert map_densities(1200)[0] == 100 and map_densities(1200)[-1] == 2400
+    np.testing.assert_allclose(np.diff(map_densities(1200)), 20.0)
+    section.density.input.value = "3600"
+    top = section.map_fig.y_range.end
+    assert section.colour_map["lines_per_mm"][0] <= 3600 <= section.colour_map["lines_per_mm"][-1] == top
+    assert section.map_density.location == 3600 and "lines/mm)" in section.map_fig.title.text
+    section.density.input.value = "50"
+    assert section.colour_map["lines_per_mm"][0] <= 50
 
 
 # ---------------------------------------------------------------------- typed values
@@ -143,6 +159,86 @@ def test_bad_value_shows_message_beside_the_field_and_keeps_the_state(attr, text
     assert "role=\"alert\"" in field.message.object
 
 
+@pytest.mark.parametrize("text, value", [("1,200", 1200.0), ("1 200", 1200.0), ("1\u202f200", 1200.0),
+                                         ("1,200.5", 1200.5), ("1200", 1200.0), ("600,5", 600.5)])
+def test_density_with_a_thousands_separator_is_read_when_unambiguous(section, text, value):
+    section.density.input.value = text
+    assert section.settings.lines_per_mm == value and not section.density.message.visible
+
+
+@pytest.mark.parametrize("attr, text, words", [
+    ("density", "20,000", "could be read as 20 (decimal comma) or 20000"),
+    ("density", "12 000", "12000 lines/mm (from '12 000') is outside"),
+    ("focal", "1,200", "could be read as 1.2"),
+])
+def test_ambiguous_or_out_of_range_grouped_numbers_are_explained(section, attr, text, words):
+    before = section.settings
+    field = getattr(section, attr)
+    field.input.value = text
+    assert section.settings == before and field.message.visible
+    assert words in field.message.object and "thousands separator" in field.message.object
+
+
+def test_parse_typed_number_keeps_the_decimal_comma_of_the_other_tabs():
+    assert parse_typed_number("1,5", "x", 0, 10) == 1.5
+    assert parse_typed_number("−2", "x", -10, 10) == -2
+    with pytest.raises(InputError, match="not a number"):
+        parse_typed_number("1.200,5", "x", 0, 10_000)
+
+
+@pytest.mark.parametrize("lo, hi, other_lo, other_hi", [
+    ("band_lo", "band_hi", "band_lo_nm", "band_hi_nm"), ("source_lo", "source_hi", "source_lo_nm", "source_hi_nm")])
+def test_linked_pair_applies_both_typed_values_once_valid(lo, hi, other_lo, other_hi):
+    g = GratingSection()
+    lo_f, hi_f = getattr(g, lo), getattr(g, hi)
+    start = (getattr(g.settings, other_lo), getattr(g.settings, other_hi))
+    big = start[1] + 100
+    lo_f.input.value = f"{big:g}"                        # above the long end: refused
+    assert lo_f.message.visible and (getattr(g.settings, other_lo), getattr(g.settings, other_hi)) == start
+    hi_f.input.value = f"{big + 200:g}"                  # now the pair is valid: both typed values apply
+    assert (getattr(g.settings, other_lo), getattr(g.settings, other_hi)) == (big, big + 200)
+    assert not lo_f.message.visible and not hi_f.message.visible
+    if lo == "band_lo":
+        assert f"{big:g}–{big + 200:g} nm" in g.fan_fig.title.text
+        assert f"β at {big:g} nm" in g.readout_html.object
+    hi_f.input.value = f"{big - 50:g}"                   # below the short end: refused, marked, not applied
+    assert hi_f.message.visible and getattr(g.settings, other_hi) == big + 200
+
+
+def test_linked_pair_never_shows_an_unused_value_without_a_message():
+    g = GratingSection()                                 # band 400-700
+    g.band_lo.input.value = "800"
+    g.band_hi.input.value = "750"                        # still not a band: both fields say so
+    assert g.settings.band == (400.0, 700.0)
+    assert g.band_lo.message.visible and g.band_hi.message.visible
+    g.band_lo.input.value = "abc"                        # its own message; the other end is not applied either
+    assert g.band_lo.message.visible and "not a number" in g.band_lo.message.object
+    g.band_hi.input.value = "650"                        # applied with the short end in use (400 nm)
+    assert g.settings.band == (400.0, 650.0) and not g.band_hi.message.visible and g.band_lo.message.visible
+
+
+def test_source_band_sets_the_overlaps_and_the_filter():
+    g = GratingSection()
+    g.source_lo.input.value = "350"
+    g.source_hi.input.value = "1000"
+    s = g.settings
+    assert s.source_band == (350.0, 1000.0)
+    assert g.overlaps["rows"] == gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, (350.0, 1000.0))
+    assert "source taken to emit 350–1000 nm" in g.overlap_html.object
+    g.source_hi.input.value = "20001"
+    assert g.source_hi.message.visible and g.settings.source_band == (350.0, 1000.0)
+    g.source_lo.input.value = "500"                      # does not cover the band's short end: said
+    assert "does not cover all of the band" in g.overlap_html.object
+
+
+def test_hidden_groove_field_returns_to_its_value_in_use(section):
+    section.blaze.input.value = "-1"
+    assert section.blaze.message.visible
+    section.groove.value = "lamellar"
+    section.groove.value = "blazed"
+    assert section.blaze.input.value == "17.5" and not section.blaze.message.visible
+
+
 def test_good_value_after_a_bad_one_clears_the_message():
     g = GratingSection()
     g.order.input.value = "0"
@@ -160,6 +256,26 @@ def test_order_that_does_not_propagate_is_explained_not_refused():
     assert g.settings.order == 5 and not g.order.message.visible
     assert "evanescent" in g.readout_html.object
     assert "does not propagate" in g.overlap_html.object
+
+
+def test_changed_grating_leaves_its_preset_and_scenario(section):
+    assert section.preset.value == "compact_spectrometer_1200_blazed" and "Invented scenario" in section.scenario.object
+    section.density.input.value = "3600"
+    assert section.preset.value == "" and dict(section.preset.options)[NO_PRESET] == ""
+    assert "Invented scenario" not in section.scenario.object and "Changed from the preset" in section.scenario.object
+    assert "(changed)" in section.file_text() and '"scenario": ""' in section.file_text()
+    section.order.input.value = "2"                       # a view choice, not the grating: still changed
+    section.density.input.value = "1200"                  # the preset's grating again
+    assert section.preset.value == "compact_spectrometer_1200_blazed"
+    assert "Invented scenario" in section.scenario.object and "(changed)" not in section.file_text()
+    section.density.input.value = "3600"
+    section.preset.value = "compact_spectrometer_1200_blazed"     # choosing it again restores it
+    assert section.settings.lines_per_mm == 1200 and section.density.input.value == "1200"
+
+
+def test_preset_names_fit_their_selector():
+    # the selector is 300 px wide: about 36 characters of its 14 px font (measured in Chromium)
+    assert all(len(name) <= 36 for _, name in list_grating_presets())
 
 
 def test_preset_choice_resets_fields_and_messages(section):
@@ -204,10 +320,11 @@ def test_strip_and_map_equal_physics(section):
     col = gr.grating_color(VIEW_DEG, s.lines_per_mm, s.incidence_deg, s.illuminant, normalize=s.brightness,
                            **s.groove_kw())
     np.testing.assert_array_equal(section.strip["rgb"], col["rgb"])
-    cm = gr.grating_color_map(VIEW_DEG, MAP_DENSITIES, s.incidence_deg, s.illuminant, normalize=s.brightness,
+    dens = map_densities(s.lines_per_mm)
+    cm = gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness,
                               **s.groove_kw())
     np.testing.assert_array_equal(section.colour_map["rgb"], cm["rgb"])
-    assert section.map_src.data["image"][0].shape == (MAP_DENSITIES.size, VIEW_DEG.size)
+    assert section.map_src.data["image"][0].shape == (dens.size, VIEW_DEG.size)
     section.brightness.value = "per_direction"
     np.testing.assert_array_equal(section.colour_map["rgb"], compute_colour_map(section.settings)["rgb"])
 
@@ -220,20 +337,41 @@ def test_csv_download_parses_with_units_in_the_header(section):
     assert head[:3] == ["order", "wavelength_nm", "beta_deg"]
     assert "angular_dispersion_deg_per_nm" in head and "reciprocal_linear_dispersion_nm_per_mm" in head
     s = section.settings
-    assert len(body) == len(section.fan["drawn"]) * FAN_RAYS
+    wl = np.arange(400.0, 700.1, 5.0)                   # 400-700 nm: a 5 nm step (60 steps at most)
+    expected = [(m, w) for m in section.fan["drawn"] for w in wl
+                if np.isfinite(gr.diffraction_angle_deg(w, s.lines_per_mm, m, s.incidence_deg))]
+    assert [(int(r[0]), float(r[1])) for r in body] == expected         # evanescent rows left out
     for r in body:
-        m, wl = int(r[0]), float(r[1])
-        beta = gr.diffraction_angle_deg(wl, s.lines_per_mm, m, s.incidence_deg)
-        if r[2]:
-            assert float(r[2]) == pytest.approx(beta, abs=1e-6) and r[3] == "propagating"
-        else:
-            assert np.isnan(beta) and r[3] == "evanescent"
+        m, w = int(r[0]), float(r[1])
+        assert float(r[2]) == pytest.approx(gr.diffraction_angle_deg(w, s.lines_per_mm, m, s.incidence_deg), abs=1e-6)
+    assert "evanescent" in text and "left out" in text
+
+
+@pytest.mark.parametrize("band, step", [((400.0, 700.0), 5.0), ((380.0, 780.0), 10.0), ((400.0, 410.0), 0.2),
+                                        ((403.3, 700.0), 5.0), ((200.0, 1100.0), 20.0)])
+def test_csv_wavelengths_use_a_round_step_and_keep_the_band_ends(band, step):
+    wl = csv_wavelengths_nm(band)
+    assert wl[0] == band[0] and wl[-1] == band[1]
+    inner = wl[1:-1]
+    np.testing.assert_allclose(inner / step, np.round(inner / step), atol=1e-9)
+    assert np.all(np.diff(wl) <= step + 1e-9) and len(wl) <= 62
 
 
 @pytest.mark.parametrize("which", ["_map_png", "_strip_png"])
 def test_png_downloads_open(section, which):
     img = Image.open(getattr(section, which)())
     assert img.format == "PNG" and img.size[0] >= 800
+
+
+def test_strip_download_is_the_strip_on_the_page(section):
+    section.density.input.value = "3600"
+    img = np.asarray(Image.open(section._strip_png()).convert("RGB"))
+    shown = np.round(np.asarray(section.strip["rgb"]) * 255).astype(int)
+    # the row through the middle of the strip holds exactly the page's colours, and nothing else
+    colours = {tuple(c) for c in shown}
+    rows = [r for r in img if len({tuple(p) for p in r[40:-40]} - colours) <= 3]   # a frame and the zero-order line
+    assert len(rows) >= 100
+    assert "3600 lines/mm" in Image.open(section._strip_png()).info["Title"]
 
 
 def test_grooves_too_fine_for_the_band_leave_only_the_zero_order(section):

@@ -14,9 +14,9 @@ from __future__ import annotations
 
 import asyncio
 import csv
-import functools
 import io
 import logging
+import re
 import time
 from dataclasses import dataclass, replace
 from datetime import date
@@ -26,10 +26,11 @@ import numpy as np
 import panel as pn
 from bokeh.models import Arrow, ColumnDataSource, DataRange1d, HoverTool, Range1d, Span, VeeHead
 from bokeh.plotting import figure
+from PIL import Image
 
 from physics import InputError
 from physics import grating as gr
-from physics.color import spectrum_to_xyz, srgb_to_hex, srgb_to_xyz, xyz_to_srgb
+from physics.color import srgb_to_hex
 from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_grating_presets, load_grating_file,
                                 load_grating_preset)
 
@@ -49,13 +50,23 @@ CONVENTION = ("m·λ = d·(sin α + sin β): α incidence, β diffraction, both 
               "positive on the side the light comes from; d = 1/(groove density). β = −α is the zero order.")
 #: Lamps offered for the grating colours.
 ILLUMINANT_CHOICES = ("D65", "D50", "A", "F2", "F11")
-#: Wavelengths the source is taken to emit when other orders are checked for overlap (nm): a
-#: broadband lamp seen by a silicon detector.
-SOURCE_BAND_NM = (200.0, 1100.0)
+#: Wavelengths the source is taken to emit by default when other orders are checked for overlap (nm):
+#: a broadband lamp seen by a silicon detector (common practice: silicon responds from the deep UV
+#: to about 1100 nm). The user can type another band.
+DEFAULT_SOURCE_BAND_NM = (200.0, 1100.0)
 #: Viewing angles of the colour strip and map (degrees).
 VIEW_DEG = np.linspace(-80.0, 80.0, 321)
-#: Groove densities of the colour map (lines/mm).
-MAP_DENSITIES = np.arange(100.0, 2400.1, 20.0)
+#: Rows of the colour map (groove densities); 116 rows over 100-2400 lines/mm is a 20 lines/mm step.
+MAP_ROWS = 116
+#: Top of the colour map's groove-density axis (lines/mm): the smallest of these that holds the current
+#: density, so the map follows the grating without being recomputed for every typed density.
+MAP_TOPS_LINES_PER_MM = (2400.0, 4800.0, LIMITS["lines_per_mm"][1])
+#: Bottom of the map's density axis (lines/mm), or the lowest density allowed when the grating is coarser.
+MAP_BOTTOM_LINES_PER_MM = 100.0
+#: Wavelength steps offered for the orders CSV (nm): the smallest giving at most CSV_MAX_STEPS steps
+#: across the band.
+CSV_STEPS_NM = (0.1, 0.2, 0.5, 1.0, 2.0, 5.0, 10.0, 20.0, 50.0, 100.0, 200.0, 500.0, 1000.0)
+CSV_MAX_STEPS = 60
 #: Rays drawn per order in the fan (evenly spaced wavelengths across the band).
 FAN_RAYS = 31
 #: Highest |order| drawn in the fan (coarse gratings send hundreds of orders).
@@ -63,9 +74,8 @@ MAX_FAN_ORDER = 12
 #: Brightness of the grating colours: relative brightness kept (the brightest direction of the strip, or of
 #: the map, at full display brightness), or every direction at full brightness (hues of faint orders).
 BRIGHTNESS_CHOICES = {"relative brightness": "common", "each direction at full brightness": "per_direction"}
-#: The strip download shows the groove density ± this fraction, in this many rows.
-STRIP_PNG_SPAN = 0.05
-STRIP_PNG_ROWS = 21
+#: Height of the colour strip in its PNG download (px); its width is the colour map's plot width.
+STRIP_PNG_HEIGHT_PX = 120
 #: Grooves lit in the line-shape view (a small N makes the secondary maxima visible).
 N_CHOICES = (8, 40)
 #: Points along the line-shape curve (more, up to the second number, when many fringes are in view).
@@ -84,6 +94,37 @@ HOVER_ORDERS = (-3, -2, -1, 1, 2, 3)
 #: Size of the fan diagram (px); its axes keep one unit per pixel both ways, so angles look true.
 FAN_WIDTH_PX = 420
 FAN_HEIGHT_PX = {"reflection": 300, "transmission": 430}
+#: Shown in the preset selector when the settings are not those of a shipped preset.
+NO_PRESET = "(choose a preset)"
+#: Digits, then groups of exactly three digits after a comma or a space (a thousands separator), and
+#: an optional decimal part after a point: "1,200", "12 500", "1,200.5".
+_GROUPED = re.compile(r"^[+-]?\d{1,3}(?:([, \u00a0\u202f])\d{3})(?:\1\d{3})*(?:\.\d*)?$")
+
+
+def parse_typed_number(text: str, name: str, lo: float, hi: float, unit: str = "") -> float:
+    """A typed number of this tab: :func:`views.state.parse_number` (a comma is a decimal comma), but
+    a thousands separator is understood when only that reading is in range and refused with a
+    sentence when both readings are ("1,200" lines/mm is 1200; "20,000" could be 20 or 20000).
+
+    A typographic minus (U+2212) is read as a minus. Raises InputError with a sentence.
+    """
+    t = str(text).strip().replace("−", "-")
+    if _GROUPED.match(t):
+        grouped = float(re.sub(r"[, \u00a0\u202f]", "", t))
+        decimal = None
+        if "," in t and t.count(",") == 1 and "." not in t:
+            decimal = float(t.replace(",", "."))
+        decimal_ok = decimal is not None and lo <= decimal <= hi
+        u = f" {unit}" if unit else ""
+        if decimal_ok:
+            raise InputError(f"{name}: '{text}' could be read as {decimal:g} (decimal comma) or {grouped:g} "
+                             f"(thousands separator); type {decimal:g} or {grouped:g} without a thousands "
+                             "separator.")
+        if lo <= grouped <= hi:
+            return grouped
+        raise InputError(f"{name}: {grouped:g}{u} (from '{text}') is outside {lo:g} to {hi:g}{u}; type a value in "
+                         "that range, without a thousands separator.")
+    return parse_number(t, name, lo, hi, unit)
 
 
 # ---------------------------------------------------------------------- settings
@@ -108,10 +149,13 @@ class GratingSettings:
     order: int = 1
     illuminant: str = "D65"
     brightness: str = "common"
+    source_lo_nm: float = DEFAULT_SOURCE_BAND_NM[0]
+    source_hi_nm: float = DEFAULT_SOURCE_BAND_NM[1]
 
     @classmethod
     def from_file(cls, gf: GratingFile, previous: "GratingSettings | None" = None) -> "GratingSettings":
-        """Settings of a grating file; order, lamp and an unused blaze angle carry over from ``previous``."""
+        """Settings of a grating file; order, lamp, brightness, source band and an unused blaze angle carry
+        over from ``previous``."""
         prev = previous or cls()
         return cls(name=gf.name, scenario=gf.scenario, lines_per_mm=gf.lines_per_mm, kind=gf.kind,
                    groove=gf.groove,
@@ -120,10 +164,11 @@ class GratingSettings:
                    band_hi_nm=gf.band_nm[1], focal_length_mm=gf.focal_length_mm,
                    illuminated_width_mm=gf.illuminated_width_mm, detector_length_mm=gf.detector_length_mm,
                    pixel_pitch_um=gf.pixel_pitch_um, order=prev.order, illuminant=prev.illuminant,
-                   brightness=prev.brightness)
+                   brightness=prev.brightness, source_lo_nm=prev.source_lo_nm, source_hi_nm=prev.source_hi_nm)
 
     def to_file(self) -> GratingFile:
-        """The grating file of these settings (order, lamp and brightness are view choices, not stored)."""
+        """The grating file of these settings (order, lamp, brightness and source band are view choices,
+        not stored)."""
         return GratingFile(name=self.name or "untitled grating", scenario=self.scenario,
                            lines_per_mm=self.lines_per_mm, kind=self.kind, groove=self.groove,
                            blaze_angle_deg=self.blaze_angle_deg, duty_cycle=self.duty_cycle,
@@ -134,6 +179,18 @@ class GratingSettings:
     @property
     def band(self) -> tuple[float, float]:
         return (self.band_lo_nm, self.band_hi_nm)
+
+    @property
+    def source_band(self) -> tuple[float, float]:
+        """Wavelengths the source is taken to emit (nm), for the order overlaps and the filter."""
+        return (self.source_lo_nm, self.source_hi_nm)
+
+    def grating_fields(self) -> tuple:
+        """The stored grating (a grating file's fields but its name and scenario): what a preset fixes."""
+        gf = self.to_file()
+        return (gf.lines_per_mm, gf.kind, gf.groove, gf.blaze_angle_deg if gf.groove == "blazed" else None,
+                gf.duty_cycle if gf.groove == "lamellar" else None, gf.incidence_deg, gf.band_nm,
+                gf.focal_length_mm, gf.illuminated_width_mm, gf.detector_length_mm, gf.pixel_pitch_um)
 
     @property
     def centre_nm(self) -> float:
@@ -155,31 +212,49 @@ class GratingSettings:
                 f"{self.incidence_deg:g}°, band {self.band_lo_nm:g}–{self.band_hi_nm:g} nm")
 
     def map_key(self) -> tuple:
-        """What the colour map depends on (the groove density only moves its marker)."""
+        """What the colour map depends on (the groove density only moves its marker, or picks another
+        density range when it leaves the map's)."""
+        lo, hi = map_range_lines_per_mm(self.lines_per_mm)
         return (self.incidence_deg, self.groove, self.duty_cycle if self.groove == "lamellar" else None,
-                self.blaze, self.illuminant, self.brightness)
+                self.blaze, self.illuminant, self.brightness, lo, hi)
+
+
+def map_range_lines_per_mm(lines_per_mm: float) -> tuple[float, float]:
+    """(lowest, highest) groove density of the colour map (lines/mm) that holds ``lines_per_mm``."""
+    top = next((t for t in MAP_TOPS_LINES_PER_MM if lines_per_mm <= t), MAP_TOPS_LINES_PER_MM[-1])
+    bottom = MAP_BOTTOM_LINES_PER_MM if lines_per_mm >= MAP_BOTTOM_LINES_PER_MM else LIMITS["lines_per_mm"][0]
+    return bottom, top
+
+
+def map_densities(lines_per_mm: float) -> np.ndarray:
+    """Groove densities of the colour map's rows (lines/mm), increasing, for a grating of ``lines_per_mm``."""
+    return np.linspace(*map_range_lines_per_mm(lines_per_mm), MAP_ROWS)
+
+
+def csv_step_nm(band_nm) -> float:
+    """Wavelength step of the orders CSV (nm): the smallest of :data:`CSV_STEPS_NM` giving at most
+    :data:`CSV_MAX_STEPS` steps across the band."""
+    lo, hi = band_nm
+    return next((st for st in CSV_STEPS_NM if (hi - lo) / st <= CSV_MAX_STEPS), CSV_STEPS_NM[-1])
+
+
+def csv_wavelengths_nm(band_nm) -> np.ndarray:
+    """Wavelengths of the orders CSV (nm): the multiples of :func:`csv_step_nm` in the band, plus both ends."""
+    lo, hi = band_nm
+    step = csv_step_nm(band_nm)
+    inner = np.arange(np.ceil(lo / step), np.floor(hi / step) + 1) * step
+    return np.unique(np.round(np.concatenate([[lo], inner, [hi]]), 9))
 
 
 # ---------------------------------------------------------------------- computations (physics calls)
-@functools.lru_cache(maxsize=64)
-def _line_hex_cached(wavelengths: tuple) -> tuple:
-    grid = np.arange(360.0, 831.0, 1.0)
-    wl = np.asarray(wavelengths, dtype=float)
-    lines = np.clip(1.0 - np.abs(grid[None, :] - wl[:, None]), 0.0, None)     # 1 nm wide lines
-    xyz = spectrum_to_xyz(lines, grid, "D65")
-    primaries = srgb_to_xyz(np.eye(3), "D65")                                # XYZ of the sRGB primaries
-    linear = xyz @ np.linalg.inv(primaries)
-    peak = linear.max(axis=-1)
-    xyz = xyz / np.where(peak > 0, peak, 1.0)[:, None]                        # brightest channel = 1
-    rgb = xyz_to_srgb(xyz, "D65")
-    visible = (wl >= 380.0) & (wl <= 780.0)
-    return tuple(srgb_to_hex(c) if v else INVISIBLE for c, v in zip(rgb, visible))
-
-
 def line_colours(wavelength_nm) -> list[str]:
-    """Display colour ('#rrggbb') of a monochromatic line at each wavelength, at full brightness;
-    grey outside 380-780 nm."""
-    return list(_line_hex_cached(tuple(float(w) for w in np.atleast_1d(wavelength_nm))))
+    """Display colour ('#rrggbb') of a monochromatic line at each wavelength (the brightest display
+    colour of its hue, gamut-mapped by :func:`physics.grating.spectral_line_srgb`); grey outside
+    380-780 nm."""
+    wl = np.atleast_1d(np.asarray(wavelength_nm, dtype=float))
+    rgb = gr.spectral_line_srgb(wl)
+    visible = (wl >= 380.0) & (wl <= 780.0)
+    return [srgb_to_hex(c) if v else INVISIBLE for c, v in zip(rgb, visible)]
 
 
 def fan_orders(s: GratingSettings) -> list[int]:
@@ -259,10 +334,10 @@ def compute_overlaps(s: GratingSettings) -> dict:
     """Other orders on the band's angles and the order-sorting filter; ``error`` when the order
     of interest does not propagate in the band."""
     try:
-        rows = gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, SOURCE_BAND_NM)
+        rows = gr.order_overlaps(s.band, s.lines_per_mm, s.order, s.incidence_deg, s.source_band)
     except InputError as exc:
         return dict(rows=[], filter=None, error=str(exc))
-    return dict(rows=rows, filter=gr.order_sorting_filter_nm(s.band, s.order, SOURCE_BAND_NM), error=None)
+    return dict(rows=rows, filter=gr.order_sorting_filter_nm(s.band, s.order, s.source_band), error=None)
 
 
 def compute_line_shape(s: GratingSettings, n_slits: int) -> dict:
@@ -328,9 +403,11 @@ def compute_strip(s: GratingSettings) -> dict:
 
 
 def compute_colour_map(s: GratingSettings) -> dict:
-    """Colours over (groove density, viewing angle) for the current incidence, grooves and lamp."""
-    check_grid_points("grating colour map", VIEW_DEG.size * MAP_DENSITIES.size * gr.COLOUR_BAND_SAMPLES)
-    return gr.grating_color_map(VIEW_DEG, MAP_DENSITIES, s.incidence_deg, s.illuminant, normalize=s.brightness,
+    """Colours over (groove density, viewing angle) for the current incidence, grooves and lamp, over the
+    density range of :func:`map_densities` that holds the current density."""
+    dens = map_densities(s.lines_per_mm)
+    check_grid_points("grating colour map", VIEW_DEG.size * dens.size * gr.COLOUR_BAND_SAMPLES)
+    return gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness,
                                 **s.groove_kw())
 
 
@@ -392,6 +469,7 @@ class GratingSection:
         self.timings_ms = {}
         stem = preset or DEFAULT_PRESET
         self.settings = GratingSettings.from_file(load_grating_preset(stem))
+        self._origin = (stem, self.settings)
         self._build_widgets(stem)
         self._style_messages()
         self._build_plots()
@@ -402,8 +480,8 @@ class GratingSection:
     # ------------------------------------------------------------------ widgets
     def _build_widgets(self, stem):
         presets = list_grating_presets()
-        self.preset = pn.widgets.Select(label="Preset grating", options={name: st for st, name in presets},
-                                        value=stem, width=300, margin=(2, 5))
+        self.preset = pn.widgets.Select(label="Preset grating",
+                                        options={NO_PRESET: ""} | {name: st for st, name in presets}, value=stem, width=300, margin=(2, 5), css_classes=["fg-grating-preset"])
         self.scenario = pn.pane.HTML("", width=300, margin=(0, 5), styles={"font-size": "12px", "color": "#555"})
         self.density = Field("Groove density (lines/mm)", width=145, css="fg-grating-density")
         self.order = Field("Order of interest m", width=145, css="fg-grating-order")
@@ -419,6 +497,8 @@ class GratingSection:
                                             width=145, margin=(2, 5))
         self.band_lo = Field("Band from (nm)", width=145, css="fg-grating-band-lo")
         self.band_hi = Field("to (nm)", width=145, css="fg-grating-band-hi")
+        self.source_lo = Field("Source emits from (nm)", width=145, css="fg-grating-source-lo")
+        self.source_hi = Field("to (nm)", width=145, css="fg-grating-source-hi")
         self.focal = Field("Focal length (mm)", width=145)
         self.width = Field("Illuminated width (mm)", width=145)
         self.det_len = Field("Detector length (mm)", width=145)
@@ -446,8 +526,10 @@ class GratingSection:
         self.colour_caption = pn.pane.HTML(
             "<div style='font-size:12px;color:#444'>White light from the lamp at α, summed over all nonzero "
             "orders reaching each direction (black: no or too little visible light). "
-            "Relative brightness: the brightest direction of the strip (and of the map) is shown at full display "
-            "brightness; choose 'each direction at full brightness' to see the hue of faint orders. Dashed "
+            "Relative brightness: one scale for the strip (and one for the map), the most intense direction at full "
+            "display brightness. Colours a display cannot show (every spectral colour) are desaturated toward white "
+            "at constant luminance and scaled down, never clipped into another hue, so deep violet stays a dim "
+            "violet. Choose 'each direction at full brightness' to see the hue of faint orders. Dashed "
             "vertical line: the zero order (β = −α, specular or straight through), left out of the colours. On the map the dashed horizontal line is the current groove density. Hover for the "
             "wavelengths each order sends to an angle.</div>", margin=(0, 5), sizing_mode="stretch_width")
         self.readout_html = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-grating-readouts"],
@@ -476,11 +558,18 @@ class GratingSection:
             (self.incidence, "incidence_deg", "Incidence angle", *L["incidence_deg"][:2], "°"),
             (self.band_lo, "band_lo_nm", "Band from", *L["band_nm"]),
             (self.band_hi, "band_hi_nm", "Band to", *L["band_nm"]),
+            (self.source_lo, "source_lo_nm", "Source from", *L["band_nm"]),
+            (self.source_hi, "source_hi_nm", "Source to", *L["band_nm"]),
             (self.focal, "focal_length_mm", "Focal length", *L["focal_length_mm"]),
             (self.width, "illuminated_width_mm", "Illuminated width", *L["illuminated_width_mm"]),
             (self.det_len, "detector_length_mm", "Detector length", *L["detector_length_mm"]),
             (self.pitch, "pixel_pitch_um", "Pixel pitch", *L["pixel_pitch_um"]),
         ]
+
+    def _pairs(self):
+        """Linked pairs of fields (short end, long end, what they bound): both typed values are checked and
+        applied together whenever either changes."""
+        return [(self.band_lo, self.band_hi, "band"), (self.source_lo, self.source_hi, "source band")]
 
     def _build_plots(self):
         # a. fan of orders
@@ -559,8 +648,9 @@ class GratingSection:
         self.strip_fig = st
 
         self.map_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], x=[], y=[], dw=[], dh=[]))
+        dens = map_densities(self.settings.lines_per_mm)
         m = figure(height=330, sizing_mode="stretch_width", tools=tools,
-                   x_range=Range1d(VIEW_DEG[0], VIEW_DEG[-1]), y_range=Range1d(MAP_DENSITIES[0], MAP_DENSITIES[-1]),
+                   x_range=Range1d(VIEW_DEG[0], VIEW_DEG[-1]), y_range=Range1d(dens[0], dens[-1]),
                    x_axis_label="viewing angle β (°)", y_axis_label="groove density (lines/mm)",
                    title="Colour vs viewing angle and groove density")
         mimg = m.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.map_src)
@@ -601,19 +691,46 @@ class GratingSection:
             self.illuminant.value = s.illuminant
             self.brightness.value = s.brightness
             self._show_groove_fields()
-            sc = f" — {_esc(s.scenario)}" if s.scenario else ""
-            self.scenario.object = f"<i>{_esc(s.name)}</i>{sc}"
         finally:
             self._syncing = False
+        self._show_origin()
 
     def _show_groove_fields(self):
-        blazed = self.settings.groove == "blazed"
+        """Show the field the grooves use; the hidden one goes back to its value in use, without a message,
+        so it never reappears with a value the calculation is not using."""
+        s = self.settings
+        blazed = s.groove == "blazed"
         self.blaze.input.visible = blazed
         self.duty.input.visible = not blazed
-        if blazed:
-            self.duty.show_error(None)
+        hidden, key = (self.duty, "duty_cycle") if blazed else (self.blaze, "blaze_angle_deg")
+        syncing, self._syncing = self._syncing, True
+        try:
+            hidden.set_text(_fmt(getattr(s, key), 4))
+        finally:
+            self._syncing = syncing
+        hidden.show_error(None)
+
+    def modified(self) -> bool:
+        """True when the grating differs from the preset or file it was loaded from."""
+        return self.settings.grating_fields() != self._origin[1].grating_fields()
+
+    def _show_origin(self):
+        """The preset selector and scenario line: the preset while the grating is the preset's, else
+        "(choose a preset)" and a note that the preset's scenario no longer describes the settings."""
+        stem, origin = self._origin
+        changed = self.modified()
+        syncing, self._syncing = self._syncing, True
+        try:
+            self.preset.value = stem if (stem and not changed) else ""
+        finally:
+            self._syncing = syncing
+        if not changed:
+            sc = f" — {_esc(origin.scenario)}" if origin.scenario else ""
+            self.scenario.object = f"<i>{_esc(origin.name)}</i>{sc}"
         else:
-            self.blaze.show_error(None)
+            what = "preset" if stem else "grating"
+            self.scenario.object = (f"<i>Changed from the {what} “{_esc(origin.name)}”</i>: its scenario no longer "
+                                    "describes these settings. Choose the preset again to restore it.")
 
     # ------------------------------------------------------------------ input handlers
     def _take(self, field, new: GratingSettings) -> bool:
@@ -629,31 +746,63 @@ class GratingSection:
             field.show_error(None)
         self.settings = new
         _locked(partial(self._apply, new, results))
+        _locked(self._show_origin)
         return True
 
     def _on_number(self, field, key, name, lo, hi, unit, event):
         if self._syncing:
             return
+        pair = next((p for p in self._pairs() if field in p[:2]), None)
+        if pair is not None:
+            self._on_pair(pair, field)
+            return
         try:
-            value = parse_number(str(event.new).replace("−", "-"), name, lo, hi, unit)
-            new = replace(self.settings, **{key: value})
-            if key in ("band_lo_nm", "band_hi_nm") and not new.band_lo_nm < new.band_hi_nm:
-                raise InputError(f"{name}: the band runs from its short end to its long end; "
-                                 f"{new.band_lo_nm:g} nm is not below {new.band_hi_nm:g} nm.")
+            value = parse_typed_number(event.new, name, lo, hi, unit)
         except InputError as exc:
             field.show_error(str(exc))
             return
-        if key in ("band_lo_nm", "band_hi_nm"):
-            other = self.band_hi if key == "band_lo_nm" else self.band_lo
-            other.show_error(None)
-        self._take(field, new)
+        self._take(field, replace(self.settings, **{key: value}))
+
+    def _on_pair(self, pair, changed):
+        """Either field of a linked pair changed: check both typed values and apply them together.
+
+        The changed field's value is refused with a message beside it when it is not a number in range
+        or not below (above) the other end; a pair that becomes valid is applied whole, so both fields
+        always show values in use unless a message stands beside them."""
+        lo_f, hi_f, what = pair
+        spec = {f: (key, name, lo, hi, unit) for f, key, name, lo, hi, unit in self._fields()}
+        values, errors = {}, {}
+        for f in (lo_f, hi_f):
+            key, name, lo, hi, unit = spec[f]
+            try:
+                values[f] = parse_typed_number(f.input.value, name, lo, hi, unit)
+            except InputError as exc:
+                errors[f] = str(exc)
+        if changed in errors:
+            changed.show_error(errors[changed])
+            return
+        in_use = {f: getattr(self.settings, spec[f][0]) for f in (lo_f, hi_f)}
+        lo_v, hi_v = (values.get(f, in_use[f]) for f in (lo_f, hi_f))
+        if not lo_v < hi_v:
+            name = spec[changed][1]
+            msg = (f"{name}: the {what} runs from its short end to its long end; {lo_v:g} nm is not below "
+                   f"{hi_v:g} nm. Make the first field the shorter wavelength.")
+            for f in (lo_f, hi_f):
+                if f is changed or (f not in errors and values[f] != in_use[f]):
+                    f.show_error(msg)
+            return
+        new = replace(self.settings, **{spec[lo_f][0]: lo_v, spec[hi_f][0]: hi_v})
+        if self._take(changed, new):
+            for f in (lo_f, hi_f):
+                if f not in errors:
+                    f.show_error(None)
 
     def _on_order(self, event):
         if self._syncing:
             return
         field = self.order
         try:
-            value = parse_number(str(event.new).replace("−", "-"), "Order", -100, 100)
+            value = parse_typed_number(event.new, "Order", -100, 100)
             if value != int(value):
                 raise InputError(f"Order: {event.new} is not a whole number; orders are …, −2, −1, 1, 2, ….")
             if value == 0:
@@ -668,17 +817,27 @@ class GratingSection:
         if self._syncing or event.new is None:
             return
         new = replace(self.settings, **{key: event.new})
-        if self._take(None, new) and key == "groove":
-            self._show_groove_fields()
+        if self._take(None, new):
+            if key == "groove":
+                self._show_groove_fields()
+            return
+        syncing, self._syncing = self._syncing, True     # not taken: the widget shows the value in use
+        try:
+            getattr(self, key).value = getattr(self.settings, key)
+        finally:
+            self._syncing = syncing
 
     def _on_preset(self, event):
-        if not event.new:
+        if self._syncing or not event.new:
             return
         self.load_preset(event.new)
 
     def file_text(self, name: str | None = None) -> str:
-        """The current grating as the text of a grating file (``name`` replaces its name)."""
+        """The current grating as the text of a grating file (``name`` replaces its name). A grating changed
+        since its preset or file was loaded is named "… (changed)" and carries no scenario."""
         gf = self.settings.to_file()
+        if self.modified():
+            gf = replace(gf, name=f"{gf.name} (changed)"[:200], scenario="")
         if name:
             gf = replace(gf, name=name)
         return dump_grating_file(gf)
@@ -688,6 +847,7 @@ class GratingSection:
         gf = load_grating_file(text)
         new = GratingSettings.from_file(gf, self.settings)
         self._compute(new)                              # raises InputError before anything changes
+        self._origin = (None, new)
         self._take(None, new)
         self._sync_fields()
         return gf.name
@@ -696,6 +856,7 @@ class GratingSection:
         """Show one shipped grating preset (its order and lamp keep the current choice)."""
         new = GratingSettings.from_file(load_grating_preset(stem), self.settings)
         if self._take(None, new):
+            self._origin = (stem, new)
             self._sync_fields()
 
     # ------------------------------------------------------------------ computing and drawing
@@ -860,7 +1021,7 @@ class GratingSection:
     def _draw_overlaps(self):
         s, o = self.shown, self.overlaps
         mt = _order_text(s.order)
-        src = f"source taken to emit {SOURCE_BAND_NM[0]:g}–{SOURCE_BAND_NM[1]:g} nm"
+        src = f"source taken to emit {s.source_lo_nm:g}–{s.source_hi_nm:g} nm"
         if o["error"]:
             self.overlap_html.object = (f"<h4 style='margin:4px 0'>Order overlap (order {mt})</h4>"
                                         f"<div style='color:#b00020;font-size:13px'>{_esc(o['error'])}</div>")
@@ -870,9 +1031,13 @@ class GratingSection:
         table = (_table(["other order", "its wavelengths (nm)", f"land where order {mt} has (nm)"], rows)
                  if rows else "<div style='font-size:13px'>No other order of the same sign lands on the band.</div>")
         flt = o["filter"]
+        cover = ("" if s.source_lo_nm <= s.band_lo_nm and s.band_hi_nm <= s.source_hi_nm else
+                 "<div style='font-size:12px;color:#8a5a00'>The source band "
+                 f"({s.source_lo_nm:g}–{s.source_hi_nm:g} nm) "
+                 f"does not cover all of the band ({s.band_lo_nm:g}–{s.band_hi_nm:g} nm); set it under Light.</div>")
         self.overlap_html.object = (
-            f"<h4 style='margin:4px 0'>Order overlap on the band in order {mt} ({src})</h4>{table}"
-            f"<div style='font-size:13px;margin-top:4px'><b>Order-sorting filter:</b> {_esc(flt['note'])}.</div>")
+            f"<h4 style='margin:4px 0'>Order overlap on the band in order {mt} ({src})</h4>{cover}{table}"
+            f"<div style='font-size:13px;margin-top:4px'><b>Order-sorting filter:</b> {_esc(flt['note'])}</div>")
 
     def _draw_line_shape(self):
         s = self.shown
@@ -990,13 +1155,15 @@ class GratingSection:
         self.timings_ms["colour_map"] = ms
         self.colour_map, self._map_shown_key, self._map_settings = cm, key, s
         dv = VIEW_DEG[1] - VIEW_DEG[0]
-        dg = MAP_DENSITIES[1] - MAP_DENSITIES[0]
+        dens = cm["lines_per_mm"]
+        dg = dens[1] - dens[0]
         self.map_src.data = dict(image=[_rgba(cm["rgb"])], L=[cm["lab"][..., 0]], a=[cm["lab"][..., 1]],
-                                 b=[cm["lab"][..., 2]], x=[VIEW_DEG[0] - dv / 2], y=[MAP_DENSITIES[0] - dg / 2],
-                                 dw=[VIEW_DEG[-1] - VIEW_DEG[0] + dv], dh=[MAP_DENSITIES[-1] - MAP_DENSITIES[0] + dg])
+                                 b=[cm["lab"][..., 2]], x=[VIEW_DEG[0] - dv / 2], y=[dens[0] - dg / 2],
+                                 dw=[VIEW_DEG[-1] - VIEW_DEG[0] + dv], dh=[dens[-1] - dens[0] + dg])
+        self.map_fig.y_range.update(start=float(dens[0]), end=float(dens[-1]))
         grooves = f"blazed {s.blaze_angle_deg:g}°" if s.groove == "blazed" else f"lamellar, duty {s.duty_cycle:g}"
-        self.map_fig.title.text = (f"Colour vs viewing angle and groove density: α = {s.incidence_deg:g}°, "
-                                   f"{grooves}, lamp {s.illuminant}")
+        self.map_fig.title.text = (f"Colour vs viewing angle and groove density ({dens[0]:g}–{dens[-1]:g} "
+                                   f"lines/mm): α = {s.incidence_deg:g}°, {grooves}, lamp {s.illuminant}")
         self.map_status.object = ""
 
     # ------------------------------------------------------------------ downloads
@@ -1014,10 +1181,13 @@ class GratingSection:
                   f"{r['reciprocal_linear_dispersion_nm_per_mm']:.6g}; resolving_power {r['resolving_power']:.6g}; "
                   f"resolvable_nm {r['resolvable_nm']:.6g}; free_spectral_range_nm {r['free_spectral_range_nm']:.6g}; "
                   f"littrow_deg {r['littrow_deg']:.6g}\n")
+        wl = csv_wavelengths_nm(s.band)
+        out.write(f"# rows: every propagating order drawn on the page (|m| <= {MAX_FAN_ORDER}), every "
+                  f"{csv_step_nm(s.band):g} nm across the band; wavelengths at which an "
+                  "order is evanescent (no diffracted beam) are left out\n")
         w = csv.writer(out, lineterminator="\n")
-        w.writerow(["order", "wavelength_nm", "beta_deg", "status", "angular_dispersion_deg_per_nm",
+        w.writerow(["order", "wavelength_nm", "beta_deg", "angular_dispersion_deg_per_nm",
                     "reciprocal_linear_dispersion_nm_per_mm", "relative_efficiency"])
-        wl = self.fan["wavelengths"]
         for m in self.fan["drawn"]:
             beta = np.atleast_1d(gr.diffraction_angle_deg(wl, s.lines_per_mm, m, s.incidence_deg))
             eff = np.broadcast_to(gr.groove_efficiency(wl, s.lines_per_mm, m, **s.groove_kw()), wl.shape)
@@ -1028,8 +1198,9 @@ class GratingSection:
             else:
                 disp = rld = np.full(wl.shape, np.nan)
             for i, lam in enumerate(wl):
-                ok = np.isfinite(beta[i])
-                w.writerow([m, f"{lam:.6g}", f"{beta[i]:.6f}" if ok else "", "propagating" if ok else "evanescent",
+                if not np.isfinite(beta[i]):
+                    continue
+                w.writerow([m, f"{lam:.6g}", f"{beta[i]:.6f}",
                             f"{disp[i]:.6g}" if np.isfinite(disp[i]) else "",
                             f"{rld[i]:.6g}" if np.isfinite(rld[i]) else "", f"{eff[i]:.6g}"])
         out.seek(0)
@@ -1042,31 +1213,33 @@ class GratingSection:
         return self.colour_map
 
     def _map_png(self):
-        return self._colour_png(self._current_map()["rgb"], MAP_DENSITIES,
-                                "Grating colour vs viewing angle and groove density", "groove density (lines/mm)")
-
-    def _strip_png(self):
-        """The strip at the current density and at ±5 % around it (a truthful density axis; the middle
-        row is the strip on the page)."""
-        s = self.shown
-        dens = s.lines_per_mm * (1.0 + np.linspace(-STRIP_PNG_SPAN, STRIP_PNG_SPAN, STRIP_PNG_ROWS))
-        cm = gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness,
-                                  **s.groove_kw())
-        return self._colour_png(cm["rgb"], dens, f"Grating colour vs viewing angle near {s.lines_per_mm:g} "
-                                f"lines/mm (±{100 * STRIP_PNG_SPAN:g} %)", "lines/mm")
-
-    def _colour_png(self, rgb, densities, title, y_label):
-        s = self.shown
-        png = render.map_png(rgb, VIEW_DEG, densities, x_label="viewing angle β (°)", y_label=y_label, title=title,
-                             subtitle=(f"{s.kind}, {self._grooves_text()}, incidence α = {s.incidence_deg:g}°, lamp "
-                                       f"{s.illuminant}, CIE 2° observer; {self._brightness_text()}. Crosshair: "
-                                       f"{s.lines_per_mm:g} lines/mm and the zero order (β = −α)."),
+        s, cm = self.shown, self._current_map()
+        png = render.map_png(cm["rgb"], VIEW_DEG, cm["lines_per_mm"], x_label="viewing angle β (°)",
+                             y_label="groove density (lines/mm)",
+                             title="Grating colour vs viewing angle and groove density",
+                             subtitle=(f"{self._conditions_text()}. Crosshair: {s.lines_per_mm:g} lines/mm and the "
+                                       "zero order (β = −α)."),
                              crosshair=(-s.incidence_deg, s.lines_per_mm), footer=_footer())
         return io.BytesIO(png)
 
+    def _strip_png(self):
+        """The colour strip shown on the page (the current groove density), as a PNG."""
+        s = self.shown
+        png = _strip_image_png(self.strip["rgb"], VIEW_DEG, -s.incidence_deg,
+                               title=f"Grating colour at each viewing angle, {s.lines_per_mm:g} lines/mm",
+                               subtitle=(f"{self._conditions_text()}. Vertical line: the zero order (β = −α), "
+                                         "left out of the colours."),
+                               x_label="viewing angle β (° from the normal; + on the lamp's side)", footer=_footer())
+        return io.BytesIO(png)
+
+    def _conditions_text(self):
+        s = self.shown
+        return (f"{s.kind}, {self._grooves_text()}, incidence α = {s.incidence_deg:g}°, lamp {s.illuminant}, CIE 2° "
+                f"observer; {self._brightness_text()}")
+
     def _brightness_text(self):
         return ("each direction at full brightness" if self.shown.brightness == "per_direction"
-                else "relative brightness (brightest direction = full display brightness)")
+                else "relative brightness (the most intense direction at full display brightness)")
 
     def _grooves_text(self):
         s = self.shown
@@ -1083,6 +1256,9 @@ class GratingSection:
             head("Light"),
             _pair(self.incidence, self.illuminant),
             _pair(self.band_lo, self.band_hi),
+            _pair(self.source_lo, self.source_hi),
+            pn.pane.HTML("<div style='font-size:12px;color:#555'>Source band: what the lamp emits and the detector "
+                         "sees, for the order overlaps and the order-sorting filter.</div>", width=300, margin=(0, 5)),
             head("Spectrometer"),
             _pair(self.focal, self.width),
             _pair(self.det_len, self.pitch),
@@ -1117,6 +1293,42 @@ def _pair(left, right):
     widget = lambda f: f.input if isinstance(f, Field) else f  # noqa: E731
     msgs = [f.message for f in (left, right) if isinstance(f, Field)]
     return pn.Column(pn.Row(widget(left), widget(right), margin=0), *msgs, margin=0)
+
+
+def _strip_image_png(rgb, view_deg, zero_deg, *, title, subtitle, x_label, footer) -> bytes:
+    """One row of colours along the viewing angle as a PNG: title, subtitle, the strip framed, a dashed
+    white-and-black line at ``zero_deg``, round-number ticks, axis label and footer (drawn with the
+    helpers of :mod:`views.render`, at the colour map's plot width)."""
+    arr = np.clip(np.asarray(rgb, dtype=float).reshape(1, -1, 3), 0.0, 1.0)
+    pad, tick, plot_w, plot_h = render._PAD, render._TICK, render._MAP_WIDTH, STRIP_PNG_HEIGHT_PX
+    f_title, f_sub, f_lab, f_tick, f_foot = (render._font(30, bold=True), render._font(20), render._font(20),
+                                             render._font(18), render._font(15))
+    xe = render._cell_edges(np.asarray(view_deg, dtype=float))
+    x_lo, x_hi = float(xe[0]), float(xe[-1])
+    xt, xl = render._fit_ticks(x_lo, x_hi, plot_w, f_tick, horizontal=True)
+    left = right = pad + 10
+    width = left + plot_w + right
+    text_w = width - 2 * pad
+    title_lines = render._wrap(title, f_title, text_w)
+    sub_lines = render._wrap(subtitle, f_sub, text_w)
+    foot_lines = render._wrap(footer, f_foot, text_w)
+    top = pad + render._block_height(title_lines, f_title, 6) + 10 + render._block_height(sub_lines, f_sub) + 22
+    height = (top + plot_h + tick + 4 + render._lh(f_tick) + 12 + render._lh(f_lab) + 16
+              + render._block_height(foot_lines, f_foot) + pad)
+    cv = render._Canvas(width, height)
+    y = cv.text_block(pad, pad, title_lines, f_title, gap=6)
+    cv.text_block(pad, y - 6 + 10, sub_lines, f_sub)
+    ix = render._cell_index(xe, plot_w)
+    cv.img.paste(Image.fromarray(render._to_uint8(arr)[np.zeros(plot_h, dtype=int)][:, ix], "RGB"), (left, top))
+    if x_lo <= zero_deg <= x_hi:
+        px = min(render._px(zero_deg, x_lo, x_hi, left, plot_w), left + plot_w - 1)
+        cv.two_tone_vline(px, top, top + plot_h - 1)
+    cv.draw.rectangle((left - 1, top - 1, left + plot_w, top + plot_h), outline=render.BLACK, width=1)
+    render._draw_x_axis(cv, left, plot_w, top + plot_h, x_lo, x_hi, xt, xl, f_tick)
+    cv.text(left + plot_w / 2, top + plot_h + tick + 4 + render._lh(f_tick) + 12, x_label, f_lab, ha="c")
+    cv.text_block(pad, height - pad - render._block_height(foot_lines, f_foot), foot_lines, f_foot,
+                  fill=render.FOOTER_INK)
+    return render._png(cv.img, title=title, dpi=150)
 
 
 def _align(x: float, axis) -> str:
