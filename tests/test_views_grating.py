@@ -10,7 +10,8 @@ from PIL import Image
 from physics import grating as gr
 from physics.gratingfile import list_grating_presets, load_grating_preset
 from views.grating import (DEFAULT_SOURCE_BAND_NM, FAN_RAYS, NO_PRESET, VIEW_DEG, GratingSection, compute_colour_map,
-                           csv_wavelengths_nm, line_colours, map_densities, parse_typed_number)
+                           csv_wavelengths_nm, line_colours, map_densities)
+from views.state import parse_number
 from physics import InputError
 
 STEMS = [stem for stem, _ in list_grating_presets()]
@@ -179,11 +180,16 @@ def test_ambiguous_or_out_of_range_grouped_numbers_are_explained(section, attr, 
     assert words in field.message.object and "thousands separator" in field.message.object
 
 
-def test_parse_typed_number_keeps_the_decimal_comma_of_the_other_tabs():
-    assert parse_typed_number("1,5", "x", 0, 10) == 1.5
-    assert parse_typed_number("−2", "x", -10, 10) == -2
+def test_typed_numbers_keep_the_decimal_comma():
+    assert parse_number("1,5", "x", 0, 10) == 1.5
+    assert parse_number("−2", "x", -10, 10) == -2
     with pytest.raises(InputError, match="not a number"):
-        parse_typed_number("1.200,5", "x", 0, 10_000)
+        parse_number("1.200,5", "x", 0, 10_000)
+    assert parse_number("1,200", "x", 10, 10_000) == 1200            # 1.2 is out of range: a separator
+    with pytest.raises(InputError, match="could be read as 1.2"):      # 1.2 in range: never guessed
+        parse_number("1,200", "x", 0, 100)
+    with pytest.raises(InputError, match="could be read as 20"):
+        parse_number("20,000", "x", 0, 50_000)
 
 
 @pytest.mark.parametrize("lo, hi, other_lo, other_hi", [

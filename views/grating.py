@@ -16,7 +16,6 @@ import asyncio
 import csv
 import io
 import logging
-import re
 import time
 from dataclasses import dataclass, replace
 from datetime import date
@@ -96,35 +95,6 @@ FAN_WIDTH_PX = 420
 FAN_HEIGHT_PX = {"reflection": 300, "transmission": 430}
 #: Shown in the preset selector when the settings are not those of a shipped preset.
 NO_PRESET = "(choose a preset)"
-#: Digits, then groups of exactly three digits after a comma or a space (a thousands separator), and
-#: an optional decimal part after a point: "1,200", "12 500", "1,200.5".
-_GROUPED = re.compile(r"^[+-]?\d{1,3}(?:([, \u00a0\u202f])\d{3})(?:\1\d{3})*(?:\.\d*)?$")
-
-
-def parse_typed_number(text: str, name: str, lo: float, hi: float, unit: str = "") -> float:
-    """A typed number of this tab: :func:`views.state.parse_number` (a comma is a decimal comma), but
-    a thousands separator is understood when only that reading is in range and refused with a
-    sentence when both readings are ("1,200" lines/mm is 1200; "20,000" could be 20 or 20000).
-
-    A typographic minus (U+2212) is read as a minus. Raises InputError with a sentence.
-    """
-    t = str(text).strip().replace("−", "-")
-    if _GROUPED.match(t):
-        grouped = float(re.sub(r"[, \u00a0\u202f]", "", t))
-        decimal = None
-        if "," in t and t.count(",") == 1 and "." not in t:
-            decimal = float(t.replace(",", "."))
-        decimal_ok = decimal is not None and lo <= decimal <= hi
-        u = f" {unit}" if unit else ""
-        if decimal_ok:
-            raise InputError(f"{name}: '{text}' could be read as {decimal:g} (decimal comma) or {grouped:g} "
-                             f"(thousands separator); type {decimal:g} or {grouped:g} without a thousands "
-                             "separator.")
-        if lo <= grouped <= hi:
-            return grouped
-        raise InputError(f"{name}: {grouped:g}{u} (from '{text}') is outside {lo:g} to {hi:g}{u}; type a value in "
-                         "that range, without a thousands separator.")
-    return parse_number(t, name, lo, hi, unit)
 
 
 # ---------------------------------------------------------------------- settings
@@ -757,7 +727,7 @@ class GratingSection:
             self._on_pair(pair, field)
             return
         try:
-            value = parse_typed_number(event.new, name, lo, hi, unit)
+            value = parse_number(event.new, name, lo, hi, unit)
         except InputError as exc:
             field.show_error(str(exc))
             return
@@ -775,7 +745,7 @@ class GratingSection:
         for f in (lo_f, hi_f):
             key, name, lo, hi, unit = spec[f]
             try:
-                values[f] = parse_typed_number(f.input.value, name, lo, hi, unit)
+                values[f] = parse_number(f.input.value, name, lo, hi, unit)
             except InputError as exc:
                 errors[f] = str(exc)
         if changed in errors:
@@ -802,7 +772,7 @@ class GratingSection:
             return
         field = self.order
         try:
-            value = parse_typed_number(event.new, "Order", -100, 100)
+            value = parse_number(event.new, "Order", -100, 100)
             if value != int(value):
                 raise InputError(f"Order: {event.new} is not a whole number; orders are …, −2, −1, 1, 2, ….")
             if value == 0:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import functools
 import json
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -287,11 +288,33 @@ def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
     return StripResult(d, rgb, lab, marks)
 
 
+#: Digits, then groups of exactly three digits after a comma or a space (a thousands separator), and
+#: an optional decimal part after a point: "1,200", "12 500", "1,200.5".
+_GROUPED = re.compile(r"^[+-]?\d{1,3}(?:([, \u00a0\u202f])\d{3})(?:\1\d{3})*(?:\.\d*)?$")
+
+
 def parse_number(text: str, name: str, lo: float, hi: float, unit: str = "") -> float:
-    """A typed number checked against its range; InputError with a sentence otherwise."""
+    """A typed number checked against its range; InputError with a sentence otherwise.
+
+    A comma is a decimal comma ("1,5" is 1.5). A comma or space before exactly three digits may be a
+    thousands separator: "1,200" is 1200 where 1.2 is out of range, and refused with a sentence where
+    1.2 is in range (a guess could be wrong by a factor of 1000). A typographic minus (U+2212) is
+    read as a minus.
+    """
     u = f" {unit}" if unit else ""
+    t = str(text).strip().replace("\u2212", "-")
+    if _GROUPED.match(t):
+        grouped = float(re.sub(r"[, \u00a0\u202f]", "", t))
+        decimal = float(t.replace(",", ".")) if t.count(",") == 1 and "." not in t else None
+        if decimal is not None and lo <= decimal <= hi:         # a guess either way could be wrong by 1000x
+            raise InputError(f"{name}: '{text}' could be read as {decimal:g} (decimal comma) or {grouped:g} "
+                             f"(thousands separator); type {decimal:g} or {grouped:g} without a comma.")
+        if lo <= grouped <= hi:
+            return grouped
+        raise InputError(f"{name}: {grouped:g}{u} (from '{text}') is outside {lo:g} to {hi:g}{u}; type a value "
+                         "in that range, without a thousands separator.")
     try:
-        value = float(str(text).strip().replace(",", "."))
+        value = float(t.replace(",", "."))
     except ValueError:
         raise InputError(f"{name}: '{text}' is not a number; type a value from {lo:g} to {hi:g}{u}.") from None
     if not np.isfinite(value) or value < lo or value > hi:
