@@ -192,3 +192,18 @@ def test_editing_another_layer_keeps_the_current_thickness():
     assert ex.state.thickness_nm == 150.0
     assert ex.state.layer_rows()[1]["thickness_nm"] == 25.0
     assert ex.state.stack.layers[0].thickness_nm == 150.0
+
+
+def test_a_link_whose_stack_starts_with_a_byte_order_mark_is_read():
+    import base64
+    import zlib
+
+    from views.urlstate import apply_query
+
+    s = ExplorerState()
+    s.load_preset("thermal_oxide_on_silicon")
+    text = "\ufeff" + s.stack_json
+    link = base64.urlsafe_b64encode(zlib.compress(text.encode("utf-8"))).decode().rstrip("=")
+    other = ExplorerState()
+    assert apply_query(other, {"stack": link}) == []
+    assert json.loads(other.stack_json) == json.loads(s.stack_json)

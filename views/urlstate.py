@@ -44,7 +44,7 @@ def decode_stack(text: str) -> str:
         data = d.decompress(raw, MAX_STACK_BYTES)
         if d.unconsumed_tail:
             raise InputError("The stack in the link is too large; save it as a stack file and share the file.")
-        stack_json = data.decode("utf-8")
+        stack_json = data.decode("utf-8-sig")            # a leading BOM is not part of the JSON
         load_stack_file(stack_json)                          # the same checks as an uploaded file
         return stack_json
     except InputError:
