@@ -35,7 +35,7 @@ from .errors import InputError, WavelengthRangeError, require_finite
 from .stack import Stack, _check_layer_index, _Optics, sweep
 
 __all__ = ["fit_thickness", "FitResult", "read_spectrum", "SpectrumData", "reflectance_from_counts",
-           "optical_thickness_fft", "MIN_POINTS"]
+           "optical_thickness_fft", "noise_rms", "fit_thickness_reporting", "MIN_POINTS"]
 
 #: Fewest spectrum points accepted for a fit.
 MIN_POINTS = 10
@@ -57,8 +57,56 @@ FINISH_COST_RATIO = 4 * COMPETING_RMS_RATIO ** 2
 #: Scan minima re-sampled finely before ranking, and fine samples across each (two scan steps).
 FINE_CANDIDATES = 60
 FINE_POINTS = 41
+#: Quality of a fit. A right model leaves a residual equal to the measurement noise (reduced chi-square
+#: near 1; Press et al., Numerical Recipes, 3rd ed., sec. 15.1). A residual rms above this multiple of the
+#: noise (chi-square near 9) is a systematic misfit that noise cannot explain: the stated uncertainty then
+#: covers the noise only. The noise is estimated from the spectrum itself (see :func:`noise_rms`), which
+#: over-estimates it when few points sample each fringe, so the test errs towards leniency.
+MISFIT_NOISE_RATIO = 3.0
+#: ... and a residual rms above this fraction of the spectrum's own spread (standard deviation of the
+#: measured reflectance) means the model does not reproduce the fringes at all: it explains less than
+#: 1 - 0.5² = 75 % of the measured variation. Chosen on invented cases: right models give 0.03-0.2 (noise
+#: 0.3-2 %), a flat model under strong fringes about 1, a wrong fixed underlayer 0.6-1, percent read as a
+#: fraction far above 1.
+POOR_FIT_SPREAD_RATIO = 0.5
+#: Residuals below this rms (fraction) pass the misfit test whatever the noise: it is about the
+#: repeatability of a good reflectometer (0.1 % reflectance; common practice), and it keeps noise-free or
+#: coarsely rounded data from being judged against a noise estimate of zero.
+RMS_TOLERANCE = 1e-3
+#: Consistency factor of the median absolute deviation for normally distributed values (1/Φ⁻¹(3/4);
+#: value recalled from memory; Rousseeuw & Croux, JASA 88, 1273 (1993)).
+MAD_TO_SIGMA = 1.4826
+#: Smallest uncertainty quoted (nm). A statistical 1σ below this says nothing about a film: it is a
+#: thirtieth of an atomic layer (~0.3 nm; recalled from memory) and far below what the tabulated optical
+#: constants support, so the quoted value is floored here and the floor is stated.
+UNCERTAINTY_FLOOR_NM = 0.01
+#: The Fourier estimate guides the window only when the band holds at least this many fringes (fewer are
+#: not resolved; see :func:`optical_thickness_fft`).
+FOURIER_MIN_FRINGES = 2.0
+#: A window suggested from the Fourier estimate reaches this factor above it (the estimate's own error is a
+#: few percent; measured in tests/test_fit_outside.py).
+FOURIER_WINDOW_MARGIN = 1.1
+#: Dense spectra: above this many points, neighbouring points are averaged in equal groups before the fit,
+#: keeping at least :data:`BIN_POINTS_PER_FRINGE` points per fringe at the window's top (and at least
+#: :data:`MIN_BINNED_POINTS`). Averaging m points of a fringe of period P over a width w shrinks it by
+#: sinc(w/P) ≈ 1 - (πw/P)²/6, 0.2 % of the fringe amplitude at 30 points per fringe, well below the noise;
+#: the fringe positions, which set the thickness, do not move. The fit then costs a fraction of the time.
+MAX_FIT_POINTS = 2000
+BIN_POINTS_PER_FRINGE = 30
+MIN_BINNED_POINTS = 1000
 #: Reflectance read as a fraction above this is refused (a percentage or counts, not a fraction).
 MAX_FRACTION = 1.2
+#: Detection of the value column: a largest value above this is not a fraction (a fraction stays below 1,
+#: or a little above it against an imperfect reference), so the column is read as percent.
+PERCENT_ABOVE = 1.5
+#: ... and above this it is not a percentage either (measured reflectance stays near or below 100 %, even
+#: against a reference mirror; common practice), so the column is read as raw detector counts.
+COUNTS_ABOVE = 150.0
+#: Wavelengths outside this band (nm) are implausible for a film reflectometer (deep UV to mid infrared,
+#: generously; common practice): a unit choice that puts the data outside it gets a warning.
+PLAUSIBLE_WAVELENGTH_NM = (100.0, 30_000.0)
+#: Reflectance above this after the unit is applied is implausible (a percentage read as a fraction, or counts).
+PLAUSIBLE_MAX_REFLECTANCE = PERCENT_ABOVE
 
 
 # ---------------------------------------------------------------------- import
@@ -70,9 +118,10 @@ class SpectrumData:
     ----------
     wavelength_nm, values : (n,) sorted by wavelength, duplicates averaged
     wavelength_unit : "nm" or "um" as detected (or given)
-    value_unit : "fraction" or "percent" as detected (or given); ``reflectance`` applies it
+    value_unit : "fraction", "percent" or "counts" as detected (or given); ``reflectance`` applies it
     dropped_rows : rows without two numbers or with NaN (header lines are not counted)
-    notes : list of sentences for the user
+    notes : list of sentences for the user (always one saying how each column was read)
+    warnings : list of sentences: values that are implausible as read (a wrong unit, raw counts)
     """
 
     wavelength_nm: np.ndarray
@@ -81,11 +130,19 @@ class SpectrumData:
     value_unit: str
     dropped_rows: int
     notes: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)
 
     @property
     def reflectance(self) -> np.ndarray:
-        """Values as a fraction."""
+        """Values as a fraction. Raw counts (``value_unit`` "counts") come back unchanged: they are not a
+        reflectance until :func:`reflectance_from_counts` divides them by a reference, and
+        :func:`fit_thickness` refuses them."""
         return self.values / 100.0 if self.value_unit == "percent" else self.values
+
+    @property
+    def is_counts(self) -> bool:
+        """True when the value column holds raw detector counts (they need a reference spectrum)."""
+        return self.value_unit == "counts"
 
 
 _NUMBER = re.compile(r"^[-+]?(\d+([.,]\d*)?|[.,]\d+)([eE][-+]?\d+)?$")
@@ -178,21 +235,48 @@ def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: st
                          "Export wavelength and reflectance as two columns.")
     arr = np.array(rows)
     wl, val = arr[:, 0], arr[:, 1]
-    notes = []
+    notes, warnings = [], []
+    given_wl = wavelength_unit is not None
     if wavelength_unit is None:
         wavelength_unit = "um" if np.nanmax(wl) < 50 else "nm"
-        notes.append(f"Wavelengths read as {'µm' if wavelength_unit == 'um' else 'nm'} "
-                     f"({wl.min():g}-{wl.max():g}); override if wrong.")
     if wavelength_unit not in ("nm", "um"):
         raise InputError(f"wavelength_unit is 'nm' or 'um'; got {wavelength_unit!r}.")
+    wl_text = "µm" if wavelength_unit == "um" else "nm"
     if wavelength_unit == "um":
         wl = wl * 1000.0
+    notes.append(f"Wavelengths read as {wl_text} ({'as chosen' if given_wl else 'detected'}; "
+                 f"{wl.min():g}-{wl.max():g} nm)" + ("." if given_wl else "; override if wrong."))
+    lo, hi = PLAUSIBLE_WAVELENGTH_NM
+    if wl.min() < lo or wl.max() > hi:
+        warnings.append(f"Read as {wl_text}, the wavelengths span {wl.min():g}-{wl.max():g} nm, outside the "
+                        f"{lo:g}-{hi:g} nm a film reflectometer measures: check the wavelength unit.")
+    given_value = value_unit is not None
+    top = float(np.nanmax(val))
     if value_unit is None:
-        value_unit = "percent" if np.nanmax(val) > 1.5 else "fraction"
-        notes.append(f"Reflectance read as {'percent' if value_unit == 'percent' else 'a fraction'} "
-                     f"(largest value {val.max():g}); override if wrong.")
-    if value_unit not in ("fraction", "percent"):
-        raise InputError(f"value_unit is 'fraction' or 'percent'; got {value_unit!r}.")
+        value_unit = "counts" if top > COUNTS_ABOVE else "percent" if top > PERCENT_ABOVE else "fraction"
+    if value_unit not in ("fraction", "percent", "counts"):
+        raise InputError(f"value_unit is 'fraction', 'percent' or 'counts'; got {value_unit!r}.")
+    how = "as chosen" if given_value else "detected"
+    if value_unit == "counts":
+        notes.append(f"Values read as raw counts ({how}; largest value {top:g}).")
+        if not given_value:
+            warnings.append(f"The values reach {top:g}, too large for a reflectance in percent: they look like "
+                            "raw counts. Add a reference spectrum (and a dark one) to turn them into reflectance.")
+    else:
+        scale = 0.01 if value_unit == "percent" else 1.0
+        as_text = "percent" if value_unit == "percent" else "a fraction"
+        notes.append(f"Reflectance read as {as_text} ({how}; largest value {top:g}"
+                     + (f" = {top * scale:.4g} as a fraction" if scale != 1.0 else "") + ")"
+                     + ("." if given_value else "; override if wrong."))
+        if top * scale > PLAUSIBLE_MAX_REFLECTANCE:
+            warnings.append(f"Read as {as_text}, the reflectance reaches {top * scale:g}, above "
+                            f"{PLAUSIBLE_MAX_REFLECTANCE:g}: " + ("these look like percent; choose percent."
+                                                                  if top <= COUNTS_ABOVE else
+                                                                  "these look like raw counts; add a reference "
+                                                                  "spectrum (and a dark one)."))
+        elif value_unit == "percent" and given_value and top <= PERCENT_ABOVE:
+            notes.append(f"Every value is below {PERCENT_ABOVE:g} %: if the file holds fractions (0-1), choose "
+                         "fraction.")
     if np.any(wl <= 0):
         raise InputError("Some wavelengths are zero or negative; check the wavelength column.")
     order = np.argsort(wl, kind="stable")
@@ -208,7 +292,7 @@ def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: st
         notes.append(f"{dropped} row(s) without two numbers were dropped.")
     if wl.size < MIN_POINTS:
         raise InputError(f"Only {wl.size} distinct wavelengths; a fit needs at least {MIN_POINTS}.")
-    return SpectrumData(wl, val, wavelength_unit, value_unit, dropped, notes)
+    return SpectrumData(wl, val, wavelength_unit, value_unit, dropped, notes, warnings)
 
 
 def reflectance_from_counts(sample, reference, dark=None, reference_reflectance=1.0) -> np.ndarray:
@@ -260,6 +344,89 @@ def optical_thickness_fft(wavelength_nm, reflectance, angle_deg=0.0, n_ambient=1
     return f / 2.0
 
 
+def noise_rms(reflectance) -> float:
+    """Measurement noise (rms, same unit as ``reflectance``) estimated from the spectrum itself.
+
+    For white noise of rms σ the second difference R[i-1] - 2R[i] + R[i+1] has rms √6·σ; the median
+    absolute deviation, scaled by :data:`MAD_TO_SIGMA`, makes the estimate robust to the few large
+    second differences of fringes and spikes. Smooth fringes sampled by many points add little to it;
+    fringes sampled by few points inflate it (an over-estimate, never an under-estimate of the noise).
+
+    References
+    ----------
+    P. J. Rousseeuw and C. Croux, J. Am. Stat. Assoc. 88, 1273 (1993) (the MAD as a scale estimate).
+    """
+    R = np.asarray(reflectance, dtype=float).ravel()
+    if R.size < 3:
+        return 0.0
+    d2 = R[:-2] - 2.0 * R[1:-1] + R[2:]
+    return float(MAD_TO_SIGMA * np.median(np.abs(d2 - np.median(d2))) / np.sqrt(6.0))
+
+
+def _n_cos(stack, medium, wl_nm, angle_deg) -> np.ndarray:
+    """Real part of n·cos θ inside medium ``medium`` (0 = ambient, 1 = top layer) at ``wl_nm``."""
+    opt = _Optics(stack, np.atleast_1d(np.asarray(wl_nm, dtype=float)), np.array([float(angle_deg)]))
+    return np.abs(opt.kz[medium, 0, :].real)
+
+
+def _bin_dense(stack, wl, R, angle, unknown):
+    """Average a dense spectrum in equal groups of neighbouring points (see :data:`MAX_FIT_POINTS`).
+
+    ``unknown`` maps layer index -> the top of its window (nm). Returns (wl, R, points per group).
+    """
+    n = wl.size
+    if n <= MAX_FIT_POINTS:
+        return wl, R, 1
+    nc = _n_cos(stack, slice(1, len(stack.layers) + 1), [wl.min()], angle)[:, 0] if stack.layers else np.zeros(0)
+    thick = np.array([unknown.get(i, l.thickness_nm) for i, l in enumerate(stack.layers)])
+    opd = float(np.sum(nc * thick))                                    # n·d·cos θ summed, nm
+    k = 1.0 / wl
+    dk = np.percentile(np.abs(np.diff(k)), 99)                         # the sparsest spacing in 1/λ
+    fringe_dk = 1.0 / (2.0 * max(opd, 1e-9))                           # fringe period in 1/λ (Born & Wolf 7.5.1)
+    m = int(min(fringe_dk / (BIN_POINTS_PER_FRINGE * max(dk, 1e-300)), n // MIN_BINNED_POINTS))
+    if m < 2:
+        return wl, R, 1
+    starts = np.arange(0, n, m)
+    counts = np.diff(np.r_[starts, n])
+    return np.add.reduceat(wl, starts) / counts, np.add.reduceat(R, starts) / counts, m
+
+
+def _judge(rms, noise, spread, fourier_d, fringes, window, layer_name):
+    """(quality, quality_note, window_hint) of a fit; see :data:`MISFIT_NOISE_RATIO`."""
+    misfit = rms > RMS_TOLERANCE and rms > MISFIT_NOISE_RATIO * noise
+    poor = misfit and rms > POOR_FIT_SPREAD_RATIO * spread
+    hint = ""
+    if misfit and fourier_d is not None and fringes >= FOURIER_MIN_FRINGES:
+        lo, hi = window
+        if fourier_d > hi:
+            top = float(np.ceil(FOURIER_WINDOW_MARGIN * fourier_d / 100.0) * 100.0)
+            hint = (f"The Fourier estimate d ≈ {fourier_d:.0f} nm lies above the window searched ({lo:g}-{hi:g} nm): "
+                    f"widen the window to about {top:g} nm and fit again.")
+        elif fourier_d < lo:
+            bottom = float(np.floor(fourier_d / FOURIER_WINDOW_MARGIN / 100.0) * 100.0)
+            hint = (f"The Fourier estimate d ≈ {fourier_d:.0f} nm lies below the window searched ({lo:g}-{hi:g} nm): "
+                    f"start the window at about {max(bottom, 0.0):g} nm and fit again.")
+    if poor:
+        note = (f"The model does not reproduce the measured fringes (rms {100 * rms:.2g} % against a spread of "
+                f"{100 * spread:.2g} % in the spectrum): the thickness is not trustworthy. Check the stack "
+                f"(materials and fixed thicknesses), the units and the thickness window of {layer_name}.")
+    elif misfit:
+        note = (f"The residual (rms {100 * rms:.2g} %) is {rms / max(noise, 1e-300):.0f} times the noise seen in the "
+                "spectrum: the model misses a systematic part of it, and the ± covers the noise only. Check the "
+                "stack and the reference; free scale or offset may help.") if noise > 0 else (
+                f"The residual (rms {100 * rms:.2g} %) is larger than the noise seen in the spectrum: the model misses "
+                "a systematic part of it, and the ± covers the noise only.")
+    else:
+        note = ""
+    return ("poor" if poor else "misfit" if misfit else "good"), note, hint
+
+
+def fit_thickness_reporting(reporter, **kwargs) -> FitResult:
+    """:func:`fit_thickness` (``**kwargs``) telling ``reporter.report(fraction, text)`` how far it has come
+    (a worker process's progress channel, whose ``report`` raises to stop the fit)."""
+    return fit_thickness(**kwargs, progress=reporter.report)
+
+
 # ---------------------------------------------------------------------- fit
 @dataclass(frozen=True)
 class FitResult:
@@ -277,6 +444,18 @@ class FitResult:
     minima : list of (thickness_nm, rms) of the refined local minima, best first
     warning : a sentence when another minimum competes, else ""
     n_points, n_parameters : int
+    quality : "good" (residual at the noise level), "misfit" (a systematic residual: the uncertainty
+        covers noise only) or "poor" (the model does not reproduce the fringes: the thickness is not
+        trustworthy); see :data:`MISFIT_NOISE_RATIO`, :data:`POOR_FIT_SPREAD_RATIO`
+    quality_note : a sentence for "misfit" and "poor", else ""
+    noise_rms : measurement noise estimated from the spectrum itself (fraction, on the points fitted)
+    spread : standard deviation of the measured reflectance (fraction)
+    fourier_optical_nm, fourier_thickness_nm : the Fourier estimate of n·d·cos θ and of d for the unknown
+        layer (None when the band holds too few fringes); fourier_fringes: fringes it sees in the band
+    window_hint : a sentence when the Fourier estimate lies outside the window and the fit is not good
+    uncertainty_floor_nm : :data:`UNCERTAINTY_FLOOR_NM`; ``quoted_uncertainty_nm`` is never below it
+    n_points_read, points_per_bin : the spectrum's points in the range used, and how many were averaged
+        into each fitted point (1: none)
     """
 
     thickness_nm: float
@@ -296,6 +475,33 @@ class FitResult:
     n_parameters: int
     second_thickness_nm: float | None = None
     second_uncertainty_nm: float | None = None
+    quality: str = "good"
+    quality_note: str = ""
+    noise_rms: float = 0.0
+    spread: float = 0.0
+    fourier_optical_nm: float | None = None
+    fourier_thickness_nm: float | None = None
+    fourier_fringes: float = 0.0
+    window_hint: str = ""
+    uncertainty_floor_nm: float = UNCERTAINTY_FLOOR_NM
+    n_points_read: int = 0
+    points_per_bin: int = 1
+
+    @property
+    def quoted_uncertainty_nm(self) -> float:
+        """The 1σ to quote: the statistical one, floored at :attr:`uncertainty_floor_nm`."""
+        return max(self.uncertainty_nm, self.uncertainty_floor_nm)
+
+    @property
+    def second_quoted_uncertainty_nm(self) -> float | None:
+        if self.second_uncertainty_nm is None:
+            return None
+        return max(self.second_uncertainty_nm, self.uncertainty_floor_nm)
+
+    @property
+    def trustworthy(self) -> bool:
+        """False when the model does not reproduce the measured fringes (``quality`` "poor")."""
+        return self.quality != "poor"
 
 
 def _prepare(wavelength_nm, reflectance, stack, wavelength_range_nm):
@@ -304,8 +510,8 @@ def _prepare(wavelength_nm, reflectance, stack, wavelength_range_nm):
     if wl.size != R.size:
         raise InputError(f"wavelength_nm has {wl.size} values and reflectance {R.size}; they must match.")
     if R.size and R.max() > MAX_FRACTION:
-        raise InputError(f"Reflectance reaches {R.max():g}, more than {MAX_FRACTION:g} as a fraction: the values "
-                         "look like percent or raw counts. Divide percent by 100, or convert counts with a reference.")
+        raise InputError(f"Reflectance reaches {R.max():g} as a fraction, above {MAX_FRACTION:g}: give it as a "
+                         "fraction (0-1): percent divided by 100, raw counts divided by a reference spectrum.")
     order = np.argsort(wl)
     wl, R = wl[order], R[order]
     if wavelength_range_nm is not None:
@@ -394,7 +600,7 @@ def _local_minima(y):
 def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thickness_nm=(0, 3000),
                   angle_deg: float = 0.0, *, second_layer: int | None = None, second_thickness_nm=(0, 3000),
                   polarization: str = "unpolarized", free_scale: bool = False, free_offset: bool = False,
-                  wavelength_range_nm=None, max_grid_points: int | None = None) -> FitResult:
+                  wavelength_range_nm=None, max_grid_points: int | None = None, progress=None) -> FitResult:
     """Fit the thickness of one (or two) layers of ``stack`` to a measured reflectance spectrum.
 
     Parameters
@@ -410,11 +616,17 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
     wavelength_range_nm : (lo, hi), optional  the part of the spectrum used
     max_grid_points : int, optional  refuse (InputError) a scan whose model array, scan thicknesses x
         wavelengths, would hold more points than this (a server's memory guard)
+    progress : callable(fraction, text), optional  told how far the fit has come; it may raise to stop it
+
+    Spectra denser than :data:`MAX_FIT_POINTS` are averaged in equal groups of neighbouring points first
+    (``points_per_bin`` says how many). The result judges its own quality (``quality``, ``quality_note``)
+    and compares the window with the Fourier estimate (``window_hint``).
 
     Returns
     -------
     FitResult
     """
+    say = progress or (lambda fraction, text: None)
     if not isinstance(stack, Stack):
         raise InputError(f"fit_thickness needs a Stack; got {type(stack).__name__}.")
     _check_layer_index(stack, layer)
@@ -427,11 +639,14 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
         if second_layer == layer:
             raise InputError("The second unknown layer must differ from the first.")
         w2 = _window(second_thickness_nm, "second thickness window")
+    n_read = wl.size
+    wl, R, per_bin = _bin_dense(stack, wl, R, angle, {layer: w1[1], **({second_layer: w2[1]} if two else {})})
     grid1 = _scan_grid(stack, layer, w1, wl, angle, "thickness window")
     if max_grid_points is not None and grid1.size * wl.size > max_grid_points:
         raise InputError(f"The fit's scan needs {grid1.size:,} thicknesses x {wl.size:,} wavelengths = "
                          f"{grid1.size * wl.size:,} grid points; this server allows {int(max_grid_points):,}. "
                          "Narrow the thickness window or the wavelength range used.")
+    say(0.0, "scanning the thickness window")
     if not two:
         model = sweep(stack, layer, grid1, [angle], wl, polarization)[:, 0, :]        # (T, W)
         s, o, ssr = _linear_fit(model, R, free_scale, free_offset)
@@ -442,6 +657,8 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
         grid2 = _scan_grid(stack, second_layer, w2, wl, angle, "second thickness window")
         ssr2 = np.empty((grid1.size, grid2.size))
         for j, t2 in enumerate(grid2):
+            if j % 16 == 0:
+                say(0.8 * j / grid2.size, f"scanning both windows ({j} of {grid2.size} steps)")
             st2 = stack.with_thickness(second_layer, t2)
             model = sweep(st2, layer, grid1, [angle], wl, polarization)[:, 0, :]
             ssr2[:, j] = _linear_fit(model, R, free_scale, free_offset)[2]
@@ -475,6 +692,7 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
     lower = [w1[0]] + ([w2[0]] if two else []) + [-np.inf] * n_lin
     upper = [w1[1]] + ([w2[1]] if two else []) + [np.inf] * n_lin
     refined = []
+    say(0.8 if two else 0.4, "refining the best minima")
     for start in starts:
         base = model_at(list(start) + [1.0] * int(free_scale) + [0.0] * int(free_offset))
         model0 = base if not (free_scale or free_offset) else base
@@ -516,5 +734,18 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
         warning = (warning + " " if warning else "") + ("The fitted thickness is at the edge of its window; the "
                                                          "true value may lie outside it. Widen the window.")
     model = model_at(p)
+    noise, spread = noise_rms(R), float(np.std(R))
+    fringes, f_opt, f_d = 0.0, None, None
+    try:
+        f_opt = optical_thickness_fft(wl, R, angle)
+        fringes = 2.0 * f_opt * (1.0 / wl[0] - 1.0 / wl[-1])
+        if fringes >= FOURIER_MIN_FRINGES:
+            f_d = f_opt / float(_n_cos(stack, layer + 1, [0.5 * (wl[0] + wl[-1])], angle)[0])
+    except InputError:  # pragma: no cover - the points were checked above
+        pass
+    quality, note, hint = _judge(rms, noise, spread, f_d, fringes, w1, f"layer {layer}")
     return FitResult(float(t1), float(sig[0]), rms, float(sc), float(of), wl, R, model, R - model, grid1, scan_rms,
-                     minima, warning, n, k, float(t2) if two else None, float(sig[1]) if two else None)
+                     minima, warning, n, k, float(t2) if two else None, float(sig[1]) if two else None,
+                     quality=quality, quality_note=note, noise_rms=noise, spread=spread, fourier_optical_nm=f_opt,
+                     fourier_thickness_nm=f_d, fourier_fringes=float(fringes), window_hint=hint,
+                     n_points_read=int(n_read), points_per_bin=int(per_bin))

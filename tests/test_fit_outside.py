@@ -62,6 +62,7 @@ def test_oxide_on_silicon(truth, sigma, seed):
     r = fit_thickness(WL, R, OXIDE, 0, (0.0, 3000.0))
     assert_within(r.thickness_nm, truth, r.uncertainty_nm, 2.0, "oxide")
     assert r.warning == "", r.warning
+    assert r.quality == "good", r.quality_note
     assert 0.7 * sigma < r.rms < 1.3 * sigma                      # the residual is the noise, not model error
     assert r.scan_thickness_nm[0] == 0.0 and r.scan_thickness_nm[-1] == 3000.0
     assert r.minima[0][0] == pytest.approx(r.thickness_nm)
@@ -327,4 +328,4 @@ def test_import_fuzz_raises_only_input_error(content):
     except InputError:
         return
     assert d.wavelength_nm.size >= 10 and np.all(np.diff(d.wavelength_nm) > 0)
-    assert d.wavelength_nm.size == d.values.size and d.value_unit in ("fraction", "percent")
+    assert d.wavelength_nm.size == d.values.size and d.value_unit in ("fraction", "percent", "counts")

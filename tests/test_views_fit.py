@@ -62,15 +62,19 @@ def test_percent_and_micrometres_detected_with_overrides(section):
     assert section.import_info["wavelength_unit"] == "um" and section.import_info["value_unit"] == "percent"
     section.run_fit(sync=True)
     assert abs(section.result.thickness_nm - 300.0) <= 3 * section.result.uncertainty_nm
-    previous = section.result
     section.value_unit.value = "fraction"                  # a wrong override: values 10-50 read as fractions
+    assert section.result is None and "spectrum changed" in section.verdict.object   # the old fit is gone
+    assert "look like percent" in section.notes.object and "as chosen" in section.notes.object
     section.run_fit(sync=True)
-    assert section.fit_msg.message.visible and "percent" in section.fit_msg.message.object
-    assert section.result is previous
+    assert section.fit_msg.message.visible and "choose percent" in section.fit_msg.message.object
+    assert section.result is None
     section.value_unit.value = "auto"
+    assert not section.fit_msg.message.visible             # its cause is gone
     section.wl_unit.value = "nm"                           # a wrong override: 0.4-1 nm
+    assert "check the wavelength unit" in section.notes.object and "Wavelengths read as nm (as chosen" in \
+        section.notes.object
     section.run_fit(sync=True)
-    assert section.wl_lo.message.visible and section.result is previous
+    assert section.wl_lo.message.visible and section.result is None
 
 
 @pytest.mark.parametrize("bad,expect", [(b"", "usable rows"), (b"not a spectrum at all\n" * 3, "usable rows"),
@@ -176,8 +180,9 @@ def test_reference_and_dark_counts(section):
     # a reference that does not cover the sample
     assert not section.load_file("reference", _csv(WL[:100], ref_counts[:100], fmt="{:.4f},{:.3f}"), "short.csv")
     assert "covers" in section.file_msg["reference"].message.object
-    section._on_clear_ref()
-    assert not section.import_info["counts"]
+    section._on_clear_ref()                                # raw counts without a reference: nothing to fit
+    assert section.spectrum is None and section.result is None and not section.clear_ref.visible
+    assert "raw counts" in section.file_msg["sample"].message.object
 
 
 def test_second_unknown_layer_and_free_scale(section):
@@ -206,3 +211,166 @@ def test_second_unknown_layer_and_free_scale(section):
 
 def test_panel_builds(section):
     assert section.panel() is not None
+
+
+# ---------------------------------------------------------------------- honest verdicts
+def test_a_thick_film_outside_the_window_is_not_reported_as_a_result(section):
+    """An invented 5 µm oxide: the default 0-3000 nm window cannot hold it."""
+    r = _fit(section, 5000.0)
+    assert r.quality == "poor"
+    assert section.verdict.alert_type == "danger"
+    assert "not trustworthy" in section.verdict.object and "±" not in section.verdict.object
+    assert "does not reproduce the measured fringes" in section.verdict.object
+    assert "widen the window to about 5600 nm" in section.verdict.object
+    assert "outside the window searched" in section.details.object
+    assert "not trustworthy" in section.spec_fig.title.text
+    assert "not trustworthy" in section._curves_csv().getvalue()
+    assert json.loads(section._summary_json().getvalue())["result"]["quoted_uncertainty_nm"] is None
+    section.win_hi.input.value = "5600"                    # the page's own advice
+    section.run_fit(sync=True)
+    assert section.verdict.alert_type == "success" and abs(section.result.thickness_nm - 5000.0) < 1.0
+
+
+def test_percent_forced_on_fractions_is_not_a_result(section):
+    assert section.load_file("sample", _csv(WL, _spectrum(section, 640.0)), "fractions.csv")
+    section.value_unit.value = "percent"
+    assert "Reflectance read as percent (as chosen" in section.notes.object   # how the file was read stays
+    assert "choose fraction" in section.notes.object
+    section.run_fit(sync=True)
+    assert section.verdict.alert_type == "danger" and "not trustworthy" in section.verdict.object
+
+
+def test_a_wrong_fixed_underlayer_is_flagged(section):
+    """Nitride on oxide: the stack says 20 nm of oxide, the invented wafer has 60 nm."""
+    ex = section.ex
+    ex.state.load_preset("nitride_on_oxide_on_silicon")
+    ex._sync_widgets()
+    R = ex.state.stack.with_thickness(0, 300.0).with_thickness(1, 60.0).reflectance(WL)
+    R = R + np.random.default_rng(3).normal(0, 0.003, WL.size)
+    assert section.load_file("sample", _csv(WL, R), "nitride.csv")
+    section.win_hi.input.value = "2000"
+    section.run_fit(sync=True)
+    assert section.result.quality != "good" and section.verdict.alert_type in ("warning", "danger")
+    assert "check the stack" in section.verdict.object.lower()
+
+
+def test_a_good_fit_quotes_sensible_figures(section):
+    """A noise-free spectrum: the statistical 1σ is tiny, the quoted one is floored and says so."""
+    R = section.ex.state.stack.with_thickness(0, 640.0).reflectance(WL)
+    assert section.load_file("sample", _csv(WL, R, fmt="{:.4f},{:.12f}"), "ideal.csv")
+    section.run_fit(sync=True)
+    r = section.result
+    assert r.uncertainty_nm < 1e-3 and r.quoted_uncertainty_nm == pytest.approx(0.01)
+    assert "d = 640.000 ± 0.010 nm (1σ)" in section.verdict.object
+    assert "not meaningful" in section.verdict.object
+    assert "640.000 ± 0.010" in section.spec_fig.title.text
+    assert "640.000 +/- 0.010 (1 sigma)" in section._curves_csv().getvalue()
+    assert section.resid_fig.yaxis.axis_label in ("residual (ppm)", "residual (ppb)")
+    res = np.asarray(section.model_src.data["res"])
+    assert 0.1 <= np.abs(res).max() < 1000                 # ticks of everyday size
+    noisy = _fit(section, 640.0)                           # noise 0.3 %: percent and 2 significant digits
+    assert section.resid_fig.yaxis.axis_label == "residual (% reflectance)"
+    assert f"± {noisy.uncertainty_nm:.2f}" in section.verdict.object or f"± {noisy.uncertainty_nm:.3f}" in \
+        section.verdict.object
+
+
+# ---------------------------------------------------------------------- a changed measurement
+def test_a_new_spectrum_clears_the_old_fit(section):
+    _fit(section, 650.0)
+    assert not section.dl_csv.disabled and len(section.model_src.data["R"]) > 0
+    assert section.load_file("sample", _csv(WL, _spectrum(section, 900.0)), "second_wafer.csv")
+    assert section.result is None and "The spectrum changed" in section.verdict.object
+    assert section.verdict.alert_type == "light" and section.details.object == ""
+    assert len(section.model_src.data["R"]) == 0 and len(section.scan_src.data["d"]) == 0
+    assert len(section.minima_src.data["d"]) == 0 and not section.best_span.visible
+    assert section.dl_csv.disabled and section.dl_scan.disabled and section.dl_json.disabled
+    assert len(section.meas_src.data["wl"]) == WL.size          # the new measurement is shown
+    section.run_fit(sync=True)
+    assert abs(section.result.thickness_nm - 900.0) < 2.0
+    section.wl_unit.value = "nm"                           # re-read (same values): nothing changed, fit kept
+    assert section.result is not None
+
+
+def test_raw_counts_without_a_reference_are_recognised_at_upload(section):
+    counts = 20000.0 * _spectrum(section, 480.0, sigma=0.0) + 800.0
+    assert section.load_file("sample", _csv(WL, counts, fmt="{:.4f},{:.2f}"), "counts.csv")
+    msg = section.file_msg["sample"].message
+    assert msg.visible and "raw counts" in msg.object and "add a reference spectrum" in msg.object
+    assert "percent" not in section.notes.object
+    assert section.spectrum is None and not section.run_fit(sync=True)
+    assert "no reflectance" in section.fit_msg.message.object
+    ref = 20000.0 * Stack([], substrate="Si").reflectance(WL) + 800.0
+    assert section.load_file("reference", _csv(WL, ref, fmt="{:.4f},{:.2f}"), "ref.csv")
+    assert not msg.visible and section.spectrum is not None and section.clear_ref.visible
+    section.run_fit(sync=True)
+    assert not section.fit_msg.message.visible and section.result is not None
+
+
+def test_messages_clear_when_their_cause_is_gone(section):
+    lamp = 20000.0
+    R = _spectrum(section, 480.0, sigma=0.0)
+    r_si = Stack([], substrate="Si").reflectance(WL)
+    assert not section.clear_ref.visible and not section.ref_value_box.visible
+    assert section.load_file("sample", _csv(WL, lamp * R, fmt="{:.4f},{:.2f}"), "s.csv")
+    assert section.load_file("reference", _csv(WL, lamp * r_si, fmt="{:.4f},{:.2f}"), "r.csv")
+    section.ref_mode.value = "number"
+    assert section.ref_value_box.visible
+    section.ref_value.input.value = "35"
+    assert section.ref_value.message.visible
+    section.ref_mode.value = "silicon"
+    assert not section.ref_value.message.visible and not section.ref_value_box.visible
+    # a fit message goes when the spectrum it was about is replaced
+    section.wl_lo.input.value = "200"
+    section.wl_hi.input.value = "210"
+    section.run_fit(sync=True)
+    assert section.fit_msg.message.visible
+    section._on_clear_ref()
+    assert section.load_file("sample", _csv(WL, R), "fraction.csv")
+    assert not section.fit_msg.message.visible
+
+
+def test_numbers_with_commas(section):
+    section.win_hi.input.value = "1,5"
+    assert "read as 1.5 nm" in section.win_hi.message.object and "fg-error" not in section.win_hi.message.object
+    section.win_hi.input.value = "5,000"
+    assert "could be read as 5 (decimal comma) or 5000" in section.win_hi.message.object
+    assert section.load_file("sample", _csv(WL, _spectrum(section, 650.0)), "w.csv")
+    assert not section.run_fit(sync=True)
+    section.win_hi.input.value = "3000"
+    assert not section.win_hi.message.visible
+    assert section.run_fit(sync=True)
+
+
+def test_details_name_both_windows(section):
+    ex = section.ex
+    ex.state.load_preset("nitride_on_oxide_on_silicon")
+    ex._sync_widgets()
+    R = ex.state.stack.with_thickness(0, 220.0).with_thickness(1, 380.0).reflectance(WL)
+    section.load_file("sample", _csv(WL, R + np.random.default_rng(2).normal(0, 0.003, WL.size)), "two.csv")
+    section.second.value = 1
+    section.win_hi.input.value = "1000"
+    section.win2_hi.input.value = "800"
+    section.run_fit(sync=True)
+    assert "second window searched" in section.details.object and "0–800 nm (layer 1)" in section.details.object
+
+
+def test_a_dense_spectrum_is_averaged_and_says_so(section):
+    wl = np.linspace(400.0, 1000.0, 20000)
+    R = section.ex.state.stack.with_thickness(0, 1500.0).reflectance(wl)
+    R = R + np.random.default_rng(5).normal(0, 0.003, wl.size)
+    assert section.load_file("sample", _csv(wl, R), "dense.csv")
+    seen = []
+    section._show_progress = lambda job, f, text: seen.append(f)       # the progress the fit reports
+    section.run_fit(sync=True)
+    r = section.result
+    assert r.n_points_read == 20000 and r.points_per_bin > 1 and abs(r.thickness_nm - 1500.0) < 3 * r.uncertainty_nm
+    assert "averaged in groups of" in section.details.object
+    assert seen and not section.progress.visible and not section.fit_button.disabled
+
+
+def test_cancel_drops_the_running_fit(section):
+    assert section.load_file("sample", _csv(WL, _spectrum(section, 650.0)), "w.csv")
+    section._show_progress = lambda job, f, text: section.cancel()     # the user presses Cancel at once
+    assert section.run_fit(sync=True)
+    assert section.result is None and "cancelled" in section.status.object
+    assert not section.fit_button.disabled and not section.progress.visible

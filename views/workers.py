@@ -161,21 +161,6 @@ def photo_map(args: dict, channel) -> tuple:
                                order=r.order.astype(np.int16)), None
 
 
-def spectrum_fit(args: dict, max_grid_points: int) -> tuple:
-    """``physics.fit_thickness(**args)`` with its Fourier estimate → (result, fourier, None) or
-    (None, None, InputError)."""
-    from physics import InputError, fit_thickness, optical_thickness_fft
-    try:
-        result = fit_thickness(**args, max_grid_points=max_grid_points)
-    except InputError as exc:
-        return None, None, exc
-    try:
-        fourier = optical_thickness_fft(result.wavelength_nm, result.measured, args["angle_deg"])
-    except InputError:
-        fourier = None
-    return result, fourier, None
-
-
 # ---------------------------------------------------------------------- the page side
 async def run_in_worker(workers: int, fn, *args, channel: Channel | None = None, on_progress=None,
                         cancelled=None):
