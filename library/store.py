@@ -8,6 +8,7 @@ Layout on disk (one folder per kind under the library root)::
     <root>/stacks/Oxide wafer 7.v2.json.meta.json
     <root>/stacks/.archive/...                    archived files (never deleted)
     <root>/stacks/.lock                           lock file serialising savers
+    <root>/stacks/.changed                        a fresh token after every save or archive
 
 The saved file holds exactly the text the user saved (UTF-8), so it loads back
 identical. Metadata lives in a sidecar ``<file>.meta.json``: kind, name,
@@ -17,8 +18,17 @@ counts as corrupt or hand-edited: :meth:`Library.list` skips it and
 :meth:`Library.list_problems` reports it; :meth:`Library.load` refuses it.
 
 Saving never overwrites: a name that exists is saved as the next version.
+Names are one item whatever their upper and lower case ("Oxide 640 nm" and
+"oxide 640 NM" are the same item), because shared folders on Windows and macOS
+would make such files collide: a save joins the existing item, under the name
+as it was first saved, and its version numbers are counted across every case
+form. Folders written before this rule may hold several case forms of a name;
+they are all still listed and loaded as they are.
+
 Every file is written to a temporary file in the same folder, flushed and
-fsynced, then moved into place with ``os.replace``; the choice of version and
+fsynced, then moved into place with ``os.replace``. The temporary file is created
+with mode 0o666 less the process umask, as any ordinary file, so backups and
+other accounts in the server's group can read the library. The choice of version and
 the move happen under a lock (a process-wide thread lock plus an OS file lock
 on ``.lock``), so concurrent savers of one name get distinct versions. Any
 ``OSError`` while saving becomes :class:`LibraryWriteError` and leaves no
@@ -26,6 +36,10 @@ temporary or half-written file behind.
 
 Names are checked by :func:`sanitize_name`; every path read or written is
 checked to resolve inside the library root.
+
+:meth:`Library.change_marker` is a cheap fingerprint of a kind's folder (its
+stat and the ``.changed`` token), for pages that watch the folder without
+re-reading every file.
 """
 
 from __future__ import annotations
@@ -36,7 +50,7 @@ import json
 import math
 import os
 import re
-import tempfile
+import secrets
 import threading
 import unicodedata
 from dataclasses import dataclass
@@ -53,13 +67,12 @@ except ImportError:                     # pragma: no cover - Windows
     fcntl = None
 
 __all__ = [
-    "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "sanitize_name",
+    "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "ItemMissing", "sanitize_name",
     "validate_calibration", "KINDS", "NOUNS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS",
 ]
 
 #: The kinds of item the library holds (one folder each).
 KINDS = ("stacks", "gratings", "calibrations")
-#: Singular words used in messages.
 #: The singular noun of each kind, for messages.
 NOUNS = {"stacks": "stack", "gratings": "grating", "calibrations": "calibration"}
 #: Largest content accepted, bytes of UTF-8.
@@ -76,7 +89,13 @@ META_VERSION = 1
 _META_SUFFIX = ".meta.json"
 _ARCHIVE = ".archive"
 _LOCK = ".lock"
+#: Rewritten with a fresh random token after every save or archive (see Library.change_marker).
+_CHANGED = ".changed"
 _TMP_PREFIX = ".tmp-"
+#: Mode asked for new files; the process umask is taken off it, as for any ordinary file.
+_FILE_MODE = 0o666
+#: Attempts at a free random temporary name before giving up (a clash of 64 random bits is not expected).
+_TMP_ATTEMPTS = 20
 #: Safe in file names on every common file system and in shells when quoted.
 _ALLOWED_PUNCT = " -_.()+,"
 _WINDOWS_RESERVED = {"CON", "PRN", "AUX", "NUL", "CONIN$", "CONOUT$",
@@ -89,6 +108,10 @@ _WRITE_ADVICE = "your work is still in this page — download it as a file."
 
 class LibraryWriteError(InputError):
     """The library folder could not be written (read-only, full, or gone)."""
+
+
+class ItemMissing(InputError):
+    """The named version is not (or no longer) in the library: archived or never saved."""
 
 
 # ---------------------------------------------------------------------- records
@@ -104,11 +127,15 @@ class SaveResult:
         1 for the first save of a name, then 2, 3, ...
     message : str
         A sentence for the user ("Saved ..." or "A stack named ... already exists ...").
+    name : str
+        The name it is stored under: the name as first saved when the typed name differs
+        from an existing one only in upper and lower case.
     """
 
     path_name: str
     version: int
     message: str
+    name: str = ""
 
 
 @dataclass(frozen=True)
@@ -187,6 +214,12 @@ def sanitize_name(text) -> str:
     if stem in _WINDOWS_RESERVED:
         raise InputError(f"{allowed}; {shown} is a reserved device name on Windows; choose another name.")
     return name
+
+
+def name_key(name: str) -> str:
+    """The identity of a library name: NFC-normalised and case-folded, so names that differ only in
+    upper and lower case are one item (they would be one file on Windows and macOS shares)."""
+    return unicodedata.normalize("NFC", unicodedata.normalize("NFC", name).casefold())
 
 
 def _name_char_ok(ch: str) -> bool:
@@ -346,25 +379,54 @@ def _fsync_folder(folder: Path) -> None:
         os.close(fd)
 
 
-def _atomic_write(folder: Path, target: Path, data: bytes) -> None:
-    """Write ``data`` to ``target`` via a fsynced temporary file in ``folder`` and os.replace.
+def _create_temp(folder: Path):
+    """A new, empty temporary file in ``folder``: (open binary file, path).
 
-    On any failure the temporary file is removed and the exception propagates.
+    Made with ``os.open`` and mode 0o666, so the process umask decides who may read it, as for any
+    ordinary file (``tempfile`` would make it readable by this account only). ``O_EXCL`` with a
+    random name never opens an existing file.
+    """
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0) | getattr(os, "O_NOFOLLOW", 0)
+    for _ in range(_TMP_ATTEMPTS):
+        path = folder / f"{_TMP_PREFIX}{secrets.token_hex(8)}.part"
+        try:
+            fd = os.open(path, flags, _FILE_MODE)
+        except FileExistsError:
+            continue
+        return os.fdopen(fd, "wb"), path
+    raise OSError(f"no free temporary file name in {folder.name} after {_TMP_ATTEMPTS} attempts")
+
+
+def _atomic_write(folder: Path, target: Path, data: bytes, durable: bool = True) -> None:
+    """Write ``data`` to ``target`` via a temporary file in ``folder`` and os.replace.
+
+    ``durable`` flushes the file to the disk (fsync) before the move. On any failure the temporary
+    file is removed and the exception propagates.
     """
     tmp_name = None
     try:
-        with tempfile.NamedTemporaryFile(dir=folder, prefix=_TMP_PREFIX, suffix=".part",
-                                         delete=False) as f:
-            tmp_name = f.name
+        f, tmp_name = _create_temp(folder)
+        with f:
             _write_bytes(f, data)
             f.flush()
-            os.fsync(f.fileno())
+            if durable:
+                os.fsync(f.fileno())
         os.replace(tmp_name, target)
         tmp_name = None
     finally:
         if tmp_name is not None:
             with contextlib.suppress(OSError):
                 os.unlink(tmp_name)
+
+
+def _mark_changed(folder: Path) -> None:
+    """Write a fresh token to the folder's ``.changed`` (called under the folder lock).
+
+    Watchers compare it with the folder's own stat; it is a hint, not data, so a failure to
+    write it is ignored (the folder's modification time has changed anyway).
+    """
+    with contextlib.suppress(OSError):
+        _atomic_write(folder, folder / _CHANGED, secrets.token_hex(16).encode("ascii"), durable=False)
 
 
 def _now_iso() -> str:
@@ -466,8 +528,12 @@ class Library:
         self._inside(self.root)
         folder.mkdir(parents=True, exist_ok=True)
         self._inside(folder)
+        typed = name
         with _folder_lock(folder):
-            taken = self._versions_taken(folder, name)
+            variants = self._variants(folder, name)
+            if variants:
+                name = self._first_saved(folder, variants, typed)
+            taken = set().union(*variants.values())          # one count across every case form
             version = max(taken, default=0) + 1
             target = self._inside(folder / _file_name(name, version))
             meta_path = self._inside(folder / (target.name + _META_SUFFIX))
@@ -488,30 +554,65 @@ class Library:
                     os.unlink(target)        # our own file of this save: roll it back
                 raise
             _fsync_folder(folder)
+            _mark_changed(folder)
         noun = NOUNS[kind]
         if version == 1:
             message = f"Saved the {noun} '{name}' to the lab library."
         else:
             who = (f" (saved by {previous['user']} on {previous['saved_at'][:10]} {previous['saved_at'][11:16]} UTC)"
                    if previous else "")
-            message = (f"A {noun} named '{name}' already exists{who}; yours is saved as version {version}.")
-        return SaveResult(path_name=target.name, version=version, message=message)
+            if typed == name:
+                message = f"A {noun} named '{name}' already exists{who}; yours is saved as version {version}."
+            else:
+                message = (f"A {noun} named '{name}' already exists{who}. Library names do not distinguish "
+                           f"upper and lower case, so yours ('{typed}') is saved as version {version} "
+                           f"of '{name}'.")
+        return SaveResult(path_name=target.name, version=version, message=message, name=name)
 
-    def _versions_taken(self, folder: Path, name: str, archived: bool = True) -> set:
-        """Versions of ``name`` present in the folder or its archive (data or sidecar files)."""
-        taken = set()
+    def _variants(self, folder: Path, name: str, archived: bool = True) -> dict:
+        """{stored name: versions} of every case form of ``name`` in the folder (and its archive),
+        counting data and sidecar files."""
+        key = name_key(name)
+        found: dict = {}
         for where in (folder, folder / _ARCHIVE) if archived else (folder,):
             try:
                 names = os.listdir(where)
-            except FileNotFoundError:
+            except (FileNotFoundError, NotADirectoryError):
                 continue
             for fn in names:
                 if fn.endswith(_META_SUFFIX):
                     fn = fn[:-len(_META_SUFFIX)]
                 parsed = _parse_file_name(fn)
-                if parsed and parsed[0] == name:
-                    taken.add(parsed[1])
-        return taken
+                if parsed and name_key(parsed[0]) == key:
+                    found.setdefault(parsed[0], set()).add(parsed[1])
+        return found
+
+    def _first_saved(self, folder: Path, variants: dict, typed: str) -> str:
+        """The stored name a save of ``typed`` joins: ``typed`` itself when it is stored as typed,
+        otherwise the case form saved first (lowest version, then earliest saved_at)."""
+        if typed in variants:
+            return typed
+
+        def first(stored):
+            v = min(variants[stored])
+            meta = _read_meta(folder / (_file_name(stored, v) + _META_SUFFIX))
+            if isinstance(meta, str):
+                meta = _read_meta(folder / _ARCHIVE / (_file_name(stored, v) + _META_SUFFIX))
+            return (v, meta["saved_at"] if isinstance(meta, dict) else "~", stored)
+        return min(variants, key=first)
+
+    def _stored_name(self, folder: Path, name: str, version: int | None = None) -> str:
+        """The stored case form of ``name`` for reading: ``name`` when it has files in the folder
+        (of ``version`` when given), else the one case form that has, else ``name`` unchanged."""
+        variants = self._variants(folder, name, archived=False)
+        matching = [n for n, vs in variants.items() if version is None or version in vs]
+        if name in matching or not matching:
+            return name
+        return self._first_saved(folder, {n: variants[n] for n in matching}, name)
+
+    def _versions_taken(self, folder: Path, name: str, archived: bool = True) -> set:
+        """Versions of exactly ``name`` present in the folder or its archive (data or sidecar files)."""
+        return self._variants(folder, name, archived).get(name, set())
 
     def _latest_meta(self, folder: Path, name: str):
         for version in sorted(self._versions_taken(folder, name), reverse=True):
@@ -519,6 +620,27 @@ class Library:
             if isinstance(meta, dict):
                 return meta
         return None
+
+    def change_marker(self, kind: str):
+        """A cheap fingerprint of ``kind``'s folder that changes when an item is saved, archived, added
+        or removed: the folder's inode and modification time and the ``.changed`` token.
+
+        Costs two ``stat``-sized system calls and one small read, whatever the number of files, so a
+        page may call it every few seconds and re-read the folder (:meth:`list`) only when it differs.
+        Never raises for a missing or unreadable folder (that is a state of its own).
+        """
+        folder = self._kind_dir(kind)
+        try:
+            st = os.stat(folder)
+            here = (st.st_ino, st.st_mtime_ns, st.st_ctime_ns)
+        except OSError as exc:
+            return ("unreadable", exc.errno)
+        try:
+            with open(folder / _CHANGED, "rb") as f:
+                token = f.read(64)
+        except OSError:
+            token = b""
+        return here, token
 
     # ------------------------------------------------------------ reading
     def _scan(self, kind: str):
@@ -604,6 +726,10 @@ class Library:
         """Valid saved items of ``kind``, newest first (corrupt files are skipped; see list_problems)."""
         return self._scan(kind)[0]
 
+    def list_with_problems(self, kind: str) -> tuple:
+        """(:meth:`list`, :meth:`list_problems`) from one reading of the folder."""
+        return self._scan(kind)
+
     def list_problems(self, kind: str) -> list:
         """Files of ``kind`` that :meth:`list` skipped, as :class:`Problem` (file name and sentence)."""
         return self._scan(kind)[1]
@@ -611,27 +737,33 @@ class Library:
     def load(self, kind: str, name: str, version: int | None = None) -> str:
         """The text saved under ``name`` (latest valid version by default), checked on read.
 
+        A name that differs from the stored one only in upper and lower case finds it.
+
         Raises
         ------
+        ItemMissing
+            Unknown name or version (never saved, or archived since).
         InputError
-            Unknown name or version, or the file is corrupt or was changed by hand.
+            The file is corrupt or was changed by hand.
         """
         folder = self._kind_dir(kind)
         name = sanitize_name(name)
         noun = NOUNS[kind]
+        if version is not None:
+            version = _check_version(version)
+        name = self._stored_name(folder, name, version)
         if version is None:
             versions = [e.version for e in self.list(kind) if e.name == name]
             if not versions:        # only damaged versions: name the newest in the error
                 versions = [v for v in self._versions_taken(folder, name, archived=False)
                             if (folder / _file_name(name, v)).exists()]
             if not versions:
-                raise InputError(f"There is no {noun} named '{name}' in the lab library.")
+                raise ItemMissing(f"There is no {noun} named '{name}' in the lab library.")
             version = max(versions)
-        version = _check_version(version)
         fn = _file_name(name, version)
         path = self._inside(folder / fn)
         if not path.exists():
-            raise InputError(f"There is no version {version} of the {noun} '{name}' in the lab library.")
+            raise ItemMissing(f"There is no version {version} of the {noun} '{name}' in the lab library.")
         try:
             self._check_file(kind, folder, fn, (name, version))
             text = path.read_bytes().decode("utf-8")
@@ -661,23 +793,28 @@ class Library:
 
         Raises
         ------
+        ItemMissing
+            Unknown name or version (never saved, or archived already).
         InputError
-            Unknown name or version.
+            A bad kind, name or version.
         LibraryWriteError
             The folder cannot be written.
         """
         folder = self._kind_dir(kind)
         name = sanitize_name(name)
         version = _check_version(version)
+        name = self._stored_name(folder, name, version)
         fn = _file_name(name, version)
         source = self._inside(folder / fn)
         if not source.exists():
-            raise InputError(f"There is no version {version} of the {NOUNS[kind]} '{name}' to archive.")
+            raise ItemMissing(f"There is no version {version} of the {NOUNS[kind]} '{name}' to archive.")
         try:
             archive_dir = folder / _ARCHIVE
             archive_dir.mkdir(exist_ok=True)
             self._inside(archive_dir)
             with _folder_lock(folder):
+                if not source.exists():       # archived by another saver since the check above
+                    raise ItemMissing(f"There is no version {version} of the {NOUNS[kind]} '{name}' to archive.")
                 moved = None
                 for src in (source, folder / (fn + _META_SUFFIX)):
                     if not src.exists():
@@ -687,6 +824,7 @@ class Library:
                     moved = moved or dest
                 _fsync_folder(folder)
                 _fsync_folder(archive_dir)
+                _mark_changed(folder)
         except OSError as exc:
             raise LibraryWriteError(
                 f"The lab library folder cannot be written (read-only or full): "

@@ -258,7 +258,7 @@ def test_read_only_folder_simulated(lib, monkeypatch):
     def read_only(*args, **kwargs):
         raise OSError(errno.EROFS, os.strerror(errno.EROFS))
 
-    monkeypatch.setattr(store.tempfile, "NamedTemporaryFile", read_only)
+    monkeypatch.setattr(store, "_create_temp", read_only)
     with pytest.raises(LibraryWriteError, match="read-only or full"):
         lib.save("calibrations", "Wafer", CALIBRATION, user="b")
     monkeypatch.undo()
@@ -495,3 +495,129 @@ def test_nothing_is_written_outside_root(tmp_path, monkeypatch):
     with pytest.raises(InputError, match="outside the lab library"):
         lib.save("calibrations", "cal", CALIBRATION, user="c")
     assert sorted(p.name for p in (parent / "neighbour").iterdir()) == ["keep.txt"]
+
+
+# ---------------------------------------------------------------------- names that differ only in case
+def test_a_name_in_other_case_joins_the_item_as_first_saved(lib):
+    text = _preset(STACK_PRESETS[0])
+    assert lib.save("stacks", "Oxide 640 nm", text, user="ann").name == "Oxide 640 nm"
+    res = lib.save("stacks", "oxide 640 NM", text, user="bob")
+    assert (res.name, res.version, res.path_name) == ("Oxide 640 nm", 2, "Oxide 640 nm.v2.json")
+    assert "'Oxide 640 nm' already exists (saved by ann" in res.message
+    assert "('oxide 640 NM') is saved as version 2 of 'Oxide 640 nm'" in res.message
+    assert [(e.name, e.version) for e in lib.list("stacks")] == [("Oxide 640 nm", 2), ("Oxide 640 nm", 1)]
+    assert sorted(p.name for p in (lib.root / "stacks").glob("*.json") if not p.name.endswith(".meta.json")) \
+        == ["Oxide 640 nm.json", "Oxide 640 nm.v2.json"]
+    assert lib.load("stacks", "OXIDE 640 NM") == text                # found whatever the case
+    assert lib.load("stacks", "oxide 640 nm", 1) == text
+    lib.archive("stacks", "OXIDE 640 nm", 1)
+    assert [e.version for e in lib.list("stacks")] == [2]
+
+
+def test_a_name_whose_only_versions_are_archived_keeps_its_first_form(lib):
+    lib.save("calibrations", "Wafer A", CALIBRATION, user="a")
+    lib.archive("calibrations", "Wafer A", 1)
+    res = lib.save("calibrations", "WAFER a", CALIBRATION, user="b")
+    assert (res.name, res.version) == ("Wafer A", 2)
+
+
+def test_case_forms_saved_at_once_get_distinct_versions_of_one_item(lib):
+    forms = ["Shared", "SHARED", "shared", "sHaReD", "Shared", "SHARED"]
+    barrier = threading.Barrier(len(forms))
+    results = []
+
+    def worker(form):
+        barrier.wait()
+        results.append(lib.save("calibrations", form, CALIBRATION, user=form))
+
+    threads = [threading.Thread(target=worker, args=(f,)) for f in forms]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert sorted(r.version for r in results) == list(range(1, len(forms) + 1))
+    assert len({r.name for r in results}) == 1
+    assert len(lib.list("calibrations")) == len(forms)
+
+
+def test_folders_with_case_forms_from_before_stay_readable(lib, monkeypatch):
+    """A folder written when case still made two items: both stay listed and loadable, and a new save
+    joins one of them with a version number neither uses (no file can collide on a case-blind share)."""
+    text = _preset(STACK_PRESETS[0])
+    monkeypatch.setattr(store, "name_key", lambda name: name)       # the earlier, case-sensitive identity
+    lib.save("stacks", "Oxide", text, user="first")
+    lib.save("stacks", "Oxide", text, user="second")
+    lib.save("stacks", "OXIDE", text, user="third")
+    monkeypatch.undo()
+    before = _tree(lib.root / "stacks")
+    assert sorted((e.name, e.version) for e in lib.list("stacks")) == [("OXIDE", 1), ("Oxide", 1), ("Oxide", 2)]
+    assert lib.list_problems("stacks") == []
+    assert lib.load("stacks", "OXIDE") == lib.load("stacks", "Oxide", 2) == text
+    res = lib.save("stacks", "oxide", text, user="fourth")
+    assert (res.name, res.version) == ("Oxide", 3)
+    res = lib.save("stacks", "OXIDE", text, user="fifth")     # typed exactly as stored: joins that form
+    assert (res.name, res.version) == ("OXIDE", 4)
+    after = _tree(lib.root / "stacks")
+    assert all(after[k] == v for k, v in before.items() if k not in (".lock", ".changed"))   # nothing rewritten
+
+
+# ---------------------------------------------------------------------- file permissions
+@pytest.mark.parametrize("umask, mode", [(0o022, 0o644), (0o002, 0o664), (0o077, 0o600)])
+def test_files_take_their_mode_from_the_umask(lib, umask, mode):
+    old = os.umask(umask)
+    try:
+        lib.save("stacks", "Shared read", _preset(STACK_PRESETS[0]), user="a")
+    finally:
+        os.umask(old)
+    folder = lib.root / "stacks"
+    for fn in ("Shared read.json", "Shared read.json.meta.json"):
+        assert (folder / fn).stat().st_mode & 0o777 == mode, fn
+    assert _leftovers(lib.root) == []
+
+
+def test_a_temporary_name_that_exists_is_never_opened(lib, monkeypatch):
+    folder = lib.root / "stacks"
+    folder.mkdir(parents=True)
+    squatter = folder / ".tmp-aaaaaaaaaaaaaaaa.part"
+    squatter.write_bytes(b"someone else's")
+    tokens = iter(["aaaaaaaaaaaaaaaa", "bbbbbbbbbbbbbbbb", "cccccccccccccccc", "dddddddddddddddd"])
+    monkeypatch.setattr(store.secrets, "token_hex", lambda n: next(tokens) if n == 8 else "e" * (2 * n))
+    lib.save("stacks", "S", _preset(STACK_PRESETS[0]), user="a")
+    assert squatter.read_bytes() == b"someone else's"
+    assert lib.load("stacks", "S") == _preset(STACK_PRESETS[0])
+
+
+# ---------------------------------------------------------------------- change marker and missing items
+def test_change_marker_changes_with_every_save_and_archive_only(lib):
+    empty = lib.change_marker("stacks")                  # no folder yet: still a value, no error
+    assert lib.change_marker("stacks") == empty
+    text = _preset(STACK_PRESETS[0])
+    lib.save("stacks", "A", text, user="a")
+    m1 = lib.change_marker("stacks")
+    assert m1 != empty
+    lib.list("stacks"), lib.load("stacks", "A")         # reading changes nothing
+    assert lib.change_marker("stacks") == m1
+    lib.save("stacks", "A", text, user="b")
+    m2 = lib.change_marker("stacks")
+    lib.archive("stacks", "A", 1)
+    m3 = lib.change_marker("stacks")
+    assert len({m1, m2, m3}) == 3
+    lib.save("gratings", "G", _preset(GRATING_PRESETS[0]), user="g")    # another kind's folder
+    assert lib.change_marker("stacks") == m3
+    assert lib.list_problems("stacks") == []            # the marker file is not an item
+
+
+def test_change_marker_sees_files_added_by_hand(lib):
+    lib.save("stacks", "A", _preset(STACK_PRESETS[0]), user="a")
+    before = lib.change_marker("stacks")
+    (lib.root / "stacks" / "copied in.json").write_text("{}")
+    assert lib.change_marker("stacks") != before
+
+
+def test_missing_items_raise_item_missing(lib):
+    lib.save("stacks", "A", _preset(STACK_PRESETS[0]), user="a")
+    lib.archive("stacks", "A", 1)
+    for call in (lambda: lib.load("stacks", "A"), lambda: lib.load("stacks", "A", 1),
+                 lambda: lib.archive("stacks", "A", 1), lambda: lib.load("stacks", "Never saved")):
+        with pytest.raises(store.ItemMissing):
+            call()

@@ -3,6 +3,7 @@
 import errno
 import io
 import os
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -14,12 +15,17 @@ from physics.appearance import color_map
 from views.explorer import FilmExplorer
 from views.grating import GratingSection
 from views.inverse import ColourToThickness
-from views.library import LIBRARY_ENV, LibrarySection
+from views.library import LIBRARY_ENV, LibrarySection, library_title
 
 
 def _page(lib):
     ex = FilmExplorer()
     return LibrarySection(ex, ColourToThickness(ex), GratingSection(), library=lib)
+
+
+def _choose(section, i):
+    """Select the ``i``-th listed entry, as a click in the list does."""
+    section.select_file(section.entries[i].file_name)
 
 
 def _save(section, kind, name, user):
@@ -46,9 +52,9 @@ def test_two_users_saving_one_name_get_two_versions_and_the_second_is_told(lib):
     a.refresh()
     assert [(e.version, e.user) for e in a.entries] == [(2, "bz"), (1, "ak")]
     # a loads b's version: the explorer takes b's thickness
-    a.listing.value = 0
+    _choose(a, 0)
     assert a.load_selected() and abs(a.ex.state.thickness_nm - 480.0) < 1e-9
-    a.listing.value = 1
+    _choose(a, 1)
     assert a.load_selected() and abs(a.ex.state.thickness_nm - 120.0) < 1e-9
     assert "saved by ak" in a.message.object
 
@@ -110,7 +116,7 @@ def test_folder_read_only_or_full_says_so_and_keeps_the_page(lib, monkeypatch, e
 
     def fail(*args, **kwargs):
         raise OSError(err, os.strerror(err))
-    monkeypatch.setattr(store.tempfile, "NamedTemporaryFile", fail)
+    monkeypatch.setattr(store, "_create_temp", fail)
     assert not _save(a, "stacks", "Kept", "bz")
     monkeypatch.undo()
     assert a.message.alert_type == "danger" and "Not saved" in a.message.object
@@ -157,3 +163,200 @@ def test_library_from_the_environment(tmp_path, monkeypatch):
     monkeypatch.setenv(LIBRARY_ENV, str(tmp_path / "shared"))
     a = LibrarySection(FilmExplorer())
     assert a.lib is not None and a.lib.root == (tmp_path / "shared").absolute()
+
+
+# ---------------------------------------------------------------------- every action says its own outcome
+def test_a_refused_name_replaces_the_message_of_the_save_before(lib):
+    a = _page(lib)
+    assert _save(a, "stacks", "Oxide", "ak") and _save(a, "stacks", "Oxide", "ak")
+    assert "version 2" in a.message.object
+    assert not _save(a, "stacks", "../../etc/passwd", "ak")
+    assert a.message.alert_type == "danger" and "Not saved" in a.message.object and "'/'" in a.message.object
+    assert "version 2" not in a.message.object
+    assert a.name.message.visible
+    assert not _save(a, "stacks", "", "")
+    assert a.message.alert_type == "warning" and "a name to save under and your name" in a.message.object
+    assert _save(a, "stacks", "Fine name", "ak")
+    assert a.message.alert_type == "success" and not a.name.message.visible
+    a.select_file(None)
+    assert not a.load_selected() and "Nothing loaded" in a.message.object
+    a.refresh_pressed()
+    assert a.message.alert_type == "info" and "3 stacks" in a.message.object
+
+
+# ---------------------------------------------------------------------- the list follows the folder
+def test_another_windows_save_shows_without_refresh_and_keeps_the_choice(lib, monkeypatch):
+    a, b = _page(lib), _page(lib)
+    assert _save(b, "stacks", "First", "bz")
+    assert a.check_for_changes() and [e.name for e in a.entries] == ["First"]
+    _choose(a, 0)
+    reads = []
+    real = lib.list_with_problems
+    monkeypatch.setattr(lib, "list_with_problems", lambda kind: reads.append(kind) or real(kind))
+    assert not a.check_for_changes() and reads == []            # nothing changed: the folder is not re-read
+    assert _save(b, "stacks", "Second", "bz")
+    reads.clear()                                               # b's own re-read after its save
+    assert a.check_for_changes() and reads == ["stacks"]
+    assert [e.name for e in a.entries] == ["Second", "First"]
+    assert a.selected().name == "First"                         # the user's choice stays
+
+
+def test_a_selected_version_archived_elsewhere_is_dropped_and_explained(lib):
+    a, b = _page(lib), _page(lib)
+    assert _save(b, "stacks", "Recipe", "bz") and _save(b, "stacks", "Recipe", "bz")
+    a.refresh()
+    _choose(a, 1)                                               # version 1
+    lib.archive("stacks", "Recipe", 1)
+    assert a.check_for_changes()
+    assert a.selected() is None and [e.version for e in a.entries] == [2]
+    assert "archived or changed by someone else" in a.message.object
+
+
+@pytest.mark.parametrize("action", ["load", "archive"])
+def test_load_or_archive_of_a_version_that_vanished_refreshes_and_says_so(lib, action):
+    a, b = _page(lib), _page(lib)
+    assert _save(b, "stacks", "Recipe", "bz") and _save(b, "stacks", "Recipe", "bz")
+    a.refresh()
+    _choose(a, 1)
+    assert a.ask_archive() if action == "archive" else True
+    lib.archive("stacks", "Recipe", 1)                          # another window, before a's click arrives
+    ok = a.load_selected() if action == "load" else a.confirm_archive()
+    assert not ok
+    assert "Recipe v1 is no longer in the lab library: it was archived or changed by someone else" \
+        in a.message.object
+    assert [e.version for e in a.entries] == [2] and a.selected() is None
+    assert len(list((lib.root / "stacks" / ".archive").glob("Recipe*.json"))) == 2   # file and sidecar, once
+
+
+def test_a_version_changed_by_hand_counts_as_changed_by_someone_else(lib):
+    a = _page(lib)
+    assert _save(a, "stacks", "Recipe", "ak")
+    a.refresh()
+    path = lib.root / "stacks" / "Recipe.json"
+    path.write_text(path.read_text().replace("Si", "Ge"))
+    assert not a.load_selected() and "changed by someone else" in a.message.object
+    assert a.entries == [] and "Recipe.json" in a.problems.object
+
+
+# ---------------------------------------------------------------------- archiving asks first
+def test_archive_asks_naming_the_version_and_keep_archives_nothing(lib):
+    a = _page(lib)
+    assert _save(a, "stacks", "Old recipe", "ak") and _save(a, "stacks", "New recipe", "ak")
+    _choose(a, 1)
+    assert a.ask_archive()
+    assert a.confirm_row.visible and "Old recipe" in a.confirm_text.object and "v1" in a.confirm_text.object
+    assert a.archive_button.disabled and not a.message.visible
+    assert len(lib.list("stacks")) == 2                        # the first click archives nothing
+    a.keep()
+    assert not a.confirm_row.visible and "nothing was archived" in a.message.object
+    assert len(lib.list("stacks")) == 2
+    assert not a.confirm_archive() and len(lib.list("stacks")) == 2   # no question open: nothing to confirm
+
+
+def test_after_archiving_nothing_is_selected_so_a_second_click_archives_nothing(lib):
+    a = _page(lib)
+    for name in ("A", "B", "C"):
+        assert _save(a, "stacks", name, "ak")
+    _choose(a, 1)
+    assert a.ask_archive() and a.confirm_archive()
+    assert [e.name for e in a.entries] == ["C", "A"]
+    assert a.selected() is None and a.archive_button.disabled and a.load_button.disabled
+    assert "Nothing is selected" in a.detail.object
+    assert not a.ask_archive() and not a.confirm_archive()
+    assert [e.name for e in lib.list("stacks")] == ["C", "A"]
+    a.check_for_changes()                                      # a later re-read does not pick one either
+    a._reread()
+    assert a.selected() is None
+
+
+def test_the_archive_question_lapses_and_follows_the_selection(lib, monkeypatch):
+    import views.library as vl
+    a = _page(lib)
+    assert _save(a, "stacks", "A", "ak") and _save(a, "stacks", "B", "ak")
+    assert a.ask_archive()
+    now = vl.time.monotonic()
+    monkeypatch.setattr(vl.time, "monotonic", lambda: now + vl.CONFIRM_MS / 1000 + 1)
+    assert not a.confirm_archive() and "lapsed" in a.message.object
+    monkeypatch.undo()
+    assert len(lib.list("stacks")) == 2
+    assert a.ask_archive()
+    _choose(a, 1)                                              # another item chosen: the question goes
+    assert not a.confirm_row.visible and not a.confirm_archive()
+    assert len(lib.list("stacks")) == 2
+
+
+# ---------------------------------------------------------------------- names in any case
+def test_a_save_in_other_case_joins_the_first_name_and_says_which(lib):
+    a = _page(lib)
+    assert _save(a, "stacks", "Oxide 640 nm", "ak")
+    assert _save(a, "stacks", "oxide 640 NM", "bz")
+    assert a.message.alert_type == "warning"
+    assert "version 2 of 'Oxide 640 nm'" in a.message.object and "oxide 640 NM" in a.message.object
+    assert [(e.name, e.version) for e in a.entries] == [("Oxide 640 nm", 2), ("Oxide 640 nm", 1)]
+    assert a.selected().version == 2
+
+
+# ---------------------------------------------------------------------- what the explorer is told
+def test_a_loaded_stack_gives_the_explorer_its_library_name(lib):
+    a = _page(lib)
+    assert _save(a, "stacks", "thermal_oxide_on_silicon", "ak")   # a library name that is also a preset's file
+    assert a.load_selected()
+    title = a.ex.state.preset_name
+    assert title == library_title("thermal_oxide_on_silicon", 1) and "thermal_oxide_on_silicon" in title
+    assert a.ex.preset.value == ""                             # the preset menu does not claim the preset
+
+
+# ---------------------------------------------------------------------- the periodic check's life
+class _Doc:
+    """Enough of a served Bokeh document to watch the periodic check start and stop."""
+
+    def __init__(self):
+        self.session_context = SimpleNamespace(request=SimpleNamespace(arguments={}))
+        self.periodic, self.destroyed, self.shown = [], [], set()
+
+    def add_periodic_callback(self, cb, period_ms):
+        self.periodic.append((cb, period_ms))
+        return cb
+
+    def remove_periodic_callback(self, cb):
+        self.periodic = [p for p in self.periodic if p[0] is not cb]
+
+    def on_session_destroyed(self, cb):
+        self.destroyed.append(cb)
+
+    def add_timeout_callback(self, cb, ms):
+        pass
+
+    def add_next_tick_callback(self, cb):
+        cb()
+
+    def select(self, selector):
+        return [object()] if selector.get("name") in self.shown else []
+
+
+def test_the_check_runs_only_while_the_tab_is_shown_and_the_page_is_open(lib, monkeypatch):
+    from panel.io.state import set_curdoc
+
+    from views.library import WATCH_PERIOD_MS
+    a = _page(lib)
+    doc = _Doc()
+    with set_curdoc(doc):
+        doc.shown.add(a.body_name)
+        a.refresh()                                            # the page opens the tab
+        a.refresh()                                            # ... twice: still one check
+        assert a.watching() and len(doc.periodic) == 1 and doc.periodic[0][1] == WATCH_PERIOD_MS
+        tick = doc.periodic[0][0]
+        lib.save("stacks", "From elsewhere", a.ex.state.file_text(), user="bz")
+        tick()
+        assert [e.name for e in a.entries] == ["From elsewhere"]
+        doc.shown.clear()                                      # another tab opened
+        tick()
+        assert not a.watching() and doc.periodic == []
+        doc.shown.add(a.body_name)
+        a.refresh()
+        assert a.watching() and len(doc.periodic) == 1
+        assert len(doc.destroyed) == 1                         # one hook per page
+        doc.session_context = None                             # the page closes
+        for cb in doc.destroyed:
+            cb(None)
+        assert not a.watching()

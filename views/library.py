@@ -2,39 +2,91 @@
 
 Every item lives in the server's library folder (:mod:`library.store`, set by ``serve.py
 --library``, read here from ``FRINGEGAUGE_LIBRARY``). Saving never overwrites: a name that
-exists is saved as its next version and the user is told. A file that fails validation is
-listed under "Skipped files" with the reason and never loaded. When the server writes nothing
-(no library folder set, or the folder is read-only or full) the page says so, and what is on the
-page stays as it is, ready to download.
+exists (in any mix of upper and lower case) is saved as its next version and the user is told
+which name it joined. A file that fails validation is listed under "Skipped files" with the
+reason and never loaded. When the server writes nothing (no library folder set, or the folder is
+read-only or full) the page says so, and what is on the page stays as it is, ready to download.
+
+Every action (save, load, archive, refresh) replaces the message at the top with its own
+outcome. While the tab is on screen the list follows the folder: every ``WATCH_PERIOD_MS`` a
+periodic document callback compares :meth:`Library.change_marker` (a stat and a small read) with
+the last one and re-reads the list only when it differs; the callback removes itself once the tab
+is hidden or the page is closed, and ``refresh`` (called when the tab is opened) starts it
+again. Archiving takes two clicks: the first asks, naming the version, and the question lapses
+after ``CONFIRM_MS``; afterwards nothing is selected, so a further click cannot archive another
+item.
 """
 
 from __future__ import annotations
 
 import os
+import time
+import uuid
+from dataclasses import dataclass, field
+from functools import partial
 
 import panel as pn
 
-from library.store import NOUNS, Library, LibraryWriteError, validate_calibration
+from library.store import NOUNS, ItemMissing, Library, LibraryWriteError, validate_calibration
 from physics import InputError
 from physics.stackfile import load_stack_file
 
-from .explorer import Field, _esc, _label
+from .explorer import Field, _esc
 from .inverse import locked
+from .limits import served
 
 #: Environment variable naming the library folder (set by serve.py).
 LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
 #: Most entries listed per kind (newest first); older ones stay in the folder.
 MAX_LISTED = 500
+#: How often the shown tab checks the folder for changes (ms): soon enough that a save in another
+#: window appears while one looks, rare enough that the check (tens of microseconds) is negligible.
+WATCH_PERIOD_MS = 3000
+#: How long an archive question stays answerable (ms); after that a second click is needed again.
+CONFIRM_MS = 8000
 
 _SOURCE = {"stacks": "the Film explorer's stack (with its thickness and view)",
            "gratings": "the Gratings tab's grating and spectrometer",
            "calibrations": "the calibration box and reference on the Colour → thickness tab"}
+
+#: Headings of the tab's two columns: a real gap below them, so they never touch the controls.
+_CSS = """
+.fg-lib-heading { font-size: 14px; font-weight: 600; color: #333; margin: 0; line-height: 1.3; }
+.fg-lib-confirm { font-size: 13px; line-height: 1.35; }
+"""
 
 
 def library_from_env() -> Library | None:
     """The library named by ``FRINGEGAUGE_LIBRARY``, or None when it is not set."""
     root = os.environ.get(LIBRARY_ENV, "").strip()
     return Library(root) if root else None
+
+
+def library_title(name: str, version: int) -> str:
+    """The title given to the Film explorer for a stack loaded from the library, e.g.
+    ``"Gate oxide (lab library, version 2)"``: it names the item and, having a form no preset file
+    name takes, never makes the preset menu claim a preset is loaded."""
+    return f"{name} (lab library, version {version})"
+
+
+def _heading(text: str) -> pn.pane.HTML:
+    return pn.pane.HTML(f'<div class="fg-lib-heading">{text}</div>', margin=(8, 5, 8, 5), stylesheets=[_CSS])
+
+
+@dataclass
+class _PendingArchive:
+    """An archive question on screen: the exact version it names, and when it lapses."""
+
+    kind: str
+    entry: object
+    deadline: float                                   # time.monotonic() seconds
+    token: object = field(default_factory=object)     # identifies this question to its timeout
+
+
+def _stop_watch(section, session_context) -> None:
+    """Session-destroyed callback: the page has closed. Bokeh has already dropped the document's
+    callbacks by then, so the section only forgets its own."""
+    section.stop_watching(session_ended=True)
 
 
 class LibrarySection:
@@ -44,16 +96,32 @@ class LibrarySection:
         self.ex, self.inverse, self.grating = explorer, inverse, grating
         self.lib = library if library is not None else library_from_env()
         self.entries: list = []
+        self.skipped = 0                 # files of the kind that failed the checks (listed under the buttons)
+        self._marker = None              # the folder's change marker when the list was last read
+        self._pending: _PendingArchive | None = None
+        self._watch = None               # the document's periodic callback while the tab is shown
+        self._watch_doc = None
+        self._closing_hooked = set()     # documents told to stop the watch when their session ends
+        #: Name of the tab's body in the Bokeh document: present there only while the tab is on screen.
+        self.body_name = f"fg-lib-body-{uuid.uuid4().hex}"
         self.kind = pn.widgets.RadioButtonGroup(options={"Stacks": "stacks", "Gratings": "gratings",
                                                          "Calibrations": "calibrations"},
                                                 value="stacks", margin=(2, 5))
-        self.listing = pn.widgets.Select(options={}, size=14, width=560, margin=(2, 5),
-                                         css_classes=["fg-lib-list"])
+        # a list box that can also select nothing (a Select always falls back to its first option),
+        # so that after an archive no other item is selected; one item at a time (see _selection_changed)
+        self.listing = pn.widgets.MultiSelect(options={}, value=[], size=14, width=560, margin=(2, 5),
+                                              css_classes=["fg-lib-list"])
         self.detail = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"}, css_classes=["fg-lib-detail"])
         self.load_button = pn.widgets.Button(label="Load into the page", color="primary", width=170, margin=(6, 5))
         self.refresh_button = pn.widgets.Button(label="Refresh list", color="light", width=120, margin=(6, 5))
-        self.archive_button = pn.widgets.Button(label="Archive this version", color="light", width=170,
+        self.archive_button = pn.widgets.Button(label="Archive this version…", color="light", width=170,
                                                 margin=(6, 5))
+        self.confirm_text = pn.pane.HTML("", margin=(4, 5), width=300, css_classes=["fg-lib-confirm"],
+                                         stylesheets=[_CSS])
+        self.confirm_button = pn.widgets.Button(label="Yes, archive it", color="danger", width=120, margin=(6, 5))
+        self.keep_button = pn.widgets.Button(label="Keep it", color="light", width=90, margin=(6, 5))
+        self.confirm_row = pn.Row(self.confirm_text, self.confirm_button, self.keep_button, visible=False,
+                                  margin=0, css_classes=["fg-lib-confirm-row"])
         self.name = Field("Name to save under", width=300)
         self.user = Field("Your name or initials (saved with the item)", width=300)
         self.source = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"})
@@ -67,39 +135,70 @@ class LibrarySection:
         if login:
             self.user.set_text(str(login))
             self.user.input.disabled = True
-        self.kind.param.watch(lambda e: self.refresh(), "value")
-        self.listing.param.watch(lambda e: self._show_detail(), "value")
-        self.refresh_button.on_click(lambda e: self.refresh())
-        # loading reaches other tabs' Bokeh models: under the document lock (see views.inverse.locked)
+        # every handler below changes Bokeh models: under the document lock (see views.inverse.locked)
+        self.kind.param.watch(locked(lambda e: self._kind_changed()), "value")
+        self.listing.param.watch(locked(self._selection_changed), "value")
+        self.refresh_button.on_click(locked(lambda e: self.refresh_pressed()))
         self.load_button.on_click(locked(lambda e: self.load_selected()))
-        self.archive_button.on_click(lambda e: self.archive_selected())
-        self.save_button.on_click(lambda e: self.save_current())
-        self.refresh()
+        self.archive_button.on_click(locked(lambda e: self.ask_archive()))
+        self.confirm_button.on_click(locked(lambda e: self.confirm_archive()))
+        self.keep_button.on_click(locked(lambda e: self.keep()))
+        self.save_button.on_click(locked(lambda e: self.save_current()))
+        self._reread()
 
     # ------------------------------------------------------------------ listing
     def refresh(self) -> None:
-        """Re-read the kind's folder: valid entries newest first, skipped files with their reasons."""
+        """Re-read the kind's folder and, when served, keep following it while the tab is shown.
+
+        The page calls this when the tab is opened.
+        """
+        self._reread()
+        self.start_watching()
+
+    def refresh_pressed(self) -> None:
+        """The "Refresh list" button: re-read and say what the list holds."""
+        self.refresh()
+        if self.lib is None:
+            return
+        noun = NOUNS[self.kind.value]
+        n, skipped = len(self.entries), self.skipped
+        self._say(f"The list is up to date: {n} {noun}{'' if n == 1 else 's'}"
+                  + (f", and {skipped} skipped file{'' if skipped == 1 else 's'} below." if skipped else "."), "info")
+
+    def _reread(self, select: str = "keep") -> bool:
+        """Re-read the kind's folder: valid entries newest first, skipped files with their reasons.
+
+        ``select``: "keep" the user's choice (the newest entry when nothing was listed before),
+        select the "newest" entry, or select "none". Returns True when the entry the user had
+        selected is no longer listed (archived, or changed by hand).
+        """
         kind = self.kind.value
         self.source.object = f"Saves {_SOURCE[kind]}."
         if self.lib is None:
-            self._set_listing([])
+            self._set_listing([], None)
             self.problems.object = ""
             self._say("No library folder is set on this server, so nothing can be shared or saved here. "
                       "Start the page with <code>python serve.py --library FOLDER</code>; until then, use the "
                       "download buttons on each tab.", "warning")
-            return
-        try:
-            entries = self.lib.list(kind)
-            problems = self.lib.list_problems(kind)
-        except (InputError, OSError) as exc:
-            self._set_listing([])
-            self._say(f"The library folder cannot be read: {_esc(str(exc))}", "danger")
-            return
-        entries = sorted(entries, key=lambda e: (e.saved_at, e.name, e.version), reverse=True)[:MAX_LISTED]
+            return False
         chosen = self.selected()
-        self._set_listing(entries)
-        if chosen is not None:
-            self._select(chosen.name, chosen.version)               # keep the user's choice
+        try:
+            self._marker = self.lib.change_marker(kind)       # before reading: a change meanwhile shows next time
+            entries, problems = self.lib.list_with_problems(kind)
+        except (InputError, OSError) as exc:
+            self._set_listing([], None)
+            self._say(f"The library folder cannot be read: {_esc(str(exc))}", "danger")
+            return False
+        entries = sorted(entries, key=lambda e: (e.saved_at, e.name, e.version), reverse=True)[:MAX_LISTED]
+        newest = entries[0].file_name if entries else None
+        if select == "none":
+            keep = None
+        elif select == "newest" or (chosen is None and not self.entries):
+            keep = newest
+        else:
+            keep = chosen.file_name if chosen is not None and any(e == chosen for e in entries) else None
+        self._set_listing(entries, keep)
+        self.skipped = len(problems)
         if problems:
             items = "".join(f"<li>{_esc(str(p))}</li>" for p in problems[:50])
             more = f"<li>… and {len(problems) - 50} more</li>" if len(problems) > 50 else ""
@@ -107,42 +206,117 @@ class LibrarySection:
                                     f"the checks; whoever looks after the server can inspect them.<ul>{items}{more}</ul>")
         else:
             self.problems.object = ""
+        return chosen is not None and keep is None and select == "keep"
 
-    def _set_listing(self, entries) -> None:
+    def _set_listing(self, entries, keep) -> None:
+        """Show ``entries``; select the one whose file is ``keep`` (None: nothing selected)."""
         self.entries = list(entries)
-        options = {}
-        for i, e in enumerate(self.entries):
-            options[f"{e.name}  ·  v{e.version}  ·  {e.user}  ·  {_when(e.saved_at)}"] = i
-        self.listing.options = options
-        self.listing.value = 0 if self.entries else None
-        self._show_detail()
+        self.listing.options = {f"{e.name}  ·  v{e.version}  ·  {e.user}  ·  {_when(e.saved_at)}": e.file_name
+                                for e in self.entries}
+        self.select_file(keep)
+
+    def select_file(self, file_name: str | None) -> None:
+        """Select the listed entry stored in ``file_name`` (None, or a file not listed: nothing)."""
+        self.listing.value = [file_name] if any(e.file_name == file_name for e in self.entries) else []
+        self._selection_changed()
 
     def selected(self):
-        i = self.listing.value
-        return self.entries[i] if isinstance(i, int) and 0 <= i < len(self.entries) else None
+        """The selected :class:`library.store.Entry`, or None (nothing, or more than one, selected)."""
+        value = self.listing.value or []
+        return next((e for e in self.entries if e.file_name == value[0]), None) if len(value) == 1 else None
 
-    def _show_detail(self) -> None:
+    def _selection_changed(self, event=None) -> None:
+        if event is not None and len(event.new or []) > 1:          # a shift- or ctrl-click: keep the newest
+            added = [v for v in event.new if v not in (event.old or [])]
+            self.listing.value = (added or list(event.new))[-1:]
+            return                                                  # the watcher runs again with one item
         e = self.selected()
+        if self._pending is not None and (e is None or e != self._pending.entry):
+            self._withdraw()                       # the question named another item
+        self.load_button.disabled = e is None
+        self.archive_button.disabled = e is None or self._pending is not None
         if e is None:
             noun = NOUNS[self.kind.value]
-            self.detail.object = f"No {noun} saved yet." if self.lib is not None else ""
+            self.detail.object = ("" if self.lib is None else f"No {noun} saved yet." if not self.entries
+                                  else f"Nothing is selected: choose a {noun} in the list to load or archive it.")
             return
         self.detail.object = (f"<div class='fg-lib-entry'><b>{_esc(e.name)}</b>, version {e.version}: saved by "
                               f"{_esc(e.user)} on {_esc(_when(e.saved_at))} (UTC), {e.size:,} bytes, file "
                               f"<code>{_esc(e.file_name)}</code></div>")
+
+    def _kind_changed(self) -> None:
+        self._withdraw()
+        self._reread(select="newest")
+
+    # ------------------------------------------------------------------ following the folder
+    def start_watching(self) -> bool:
+        """Check the folder every ``WATCH_PERIOD_MS`` while the tab is shown (served pages only)."""
+        doc = pn.state.curdoc
+        if self._watch is not None or self.lib is None or not served(doc):
+            return self._watch is not None
+        self._watch_doc = doc
+        self._watch = doc.add_periodic_callback(self._tick, WATCH_PERIOD_MS)
+        if id(doc) not in self._closing_hooked:
+            self._closing_hooked.add(id(doc))
+            doc.on_session_destroyed(partial(_stop_watch, self))
+        return True
+
+    def stop_watching(self, session_ended: bool = False) -> None:
+        """Remove the periodic check (the tab was hidden or the page closed)."""
+        cb, doc = self._watch, self._watch_doc
+        self._watch = self._watch_doc = None
+        if cb is not None and doc is not None and not session_ended:
+            try:
+                doc.remove_periodic_callback(cb)
+            except (ValueError, KeyError):           # already gone with its session
+                pass
+
+    def watching(self) -> bool:
+        return self._watch is not None
+
+    def on_screen(self) -> bool:
+        """True while the tab's body is part of the live page (a hidden tab's body is not)."""
+        doc = self._watch_doc
+        return served(doc) and bool(doc.select({"name": self.body_name}))
+
+    def _tick(self) -> None:
+        if not self.on_screen():
+            self.stop_watching()
+            return
+        self.check_for_changes()
+
+    def check_for_changes(self) -> bool:
+        """Re-read the list when the folder changed since it was read; True when it did.
+
+        Costs one :meth:`Library.change_marker` when nothing changed.
+        """
+        if self.lib is None:
+            return False
+        try:
+            marker = self.lib.change_marker(self.kind.value)
+        except (InputError, OSError):
+            return False
+        if marker == self._marker:
+            return False
+        chosen = self.selected()
+        if self._reread() and chosen is not None:
+            self._say(f"{_esc(chosen.name)} v{chosen.version}, which you had selected, is no longer in the "
+                      "lab library: it was archived or changed by someone else. Nothing is selected now.",
+                      "warning")
+        return True
 
     # ------------------------------------------------------------------ actions
     def load_selected(self) -> bool:
         """Load the selected entry into its tab; on a problem say why and change nothing."""
         e, kind = self.selected(), self.kind.value
         if self.lib is None or e is None:
-            self._say("Choose an item in the list first.", "warning")
+            self._say("Nothing loaded: choose an item in the list first.", "warning")
             return False
         try:
             text = self.lib.load(kind, e.name, e.version)
             if kind == "stacks":
                 sf = load_stack_file(text)
-                self.ex.state.load(sf, e.name)
+                self.ex.state.load(sf, library_title(e.name, e.version))
                 self.ex._sync_widgets()
                 where = "the Film explorer"
             elif kind == "gratings":
@@ -156,31 +330,39 @@ class LibrarySection:
                 self.inverse.apply_calibration(validate_calibration(text))
                 where = "the Colour → thickness tab"
         except (InputError, OSError) as exc:
+            if self._gone(e, exc):
+                return False
             self._say(f"Could not load {_esc(e.name)} v{e.version}: {_esc(str(exc))}", "danger")
             return False
         self._say(f"Loaded {_esc(e.name)} v{e.version} (saved by {_esc(e.user)}) into {where}.", "success")
+        return True
+
+    def _gone(self, e, exc) -> bool:
+        """After a failed load or archive of ``e``: re-read the list and, if ``e`` has left it, say so."""
+        self._reread()
+        if not isinstance(exc, ItemMissing) and any(x == e for x in self.entries):
+            return False
+        self._say(f"{_esc(e.name)} v{e.version} is no longer in the lab library: it was archived or changed by "
+                  "someone else. The list now shows what is there.", "warning")
         return True
 
     def save_current(self) -> bool:
         """Save what the page shows under the typed name; a taken name becomes its next version."""
         kind = self.kind.value
         if self.lib is None:
-            self.refresh()
+            self._reread()
             return False
         name = self.name.input.value.strip()
         user = self.user.input.value.strip()
-        ok = True
+        missing = []
+        self.name.show_error(None if name else "Type a name to save under.")
+        self.user.show_error(None if user else "Type your name or initials: the lab sees who saved each item.")
         if not name:
-            self.name.show_error("Type a name to save under.")
-            ok = False
-        else:
-            self.name.show_error(None)
+            missing.append("a name to save under")
         if not user:
-            self.user.show_error("Type your name or initials: the lab sees who saved each item.")
-            ok = False
-        else:
-            self.user.show_error(None)
-        if not ok:
+            missing.append("your name or initials")
+        if missing:
+            self._say(f"Not saved: type {' and '.join(missing)}.", "warning")
             return False
         try:
             content = self._current_text(kind, name)
@@ -194,27 +376,75 @@ class LibrarySection:
             return False
         except InputError as exc:
             self.name.show_error(str(exc))
+            self._say(f"Not saved: {_esc(str(exc))}", "danger")
             return False
-        self.refresh()
-        self._select(name, result.version)
+        self._reread()
+        self.select_file(result.path_name)
         self._say(_esc(result.message), "success" if result.version == 1 else "warning")
         return True
 
-    def archive_selected(self) -> bool:
-        """Move the selected version to the kind's archive folder (never deleted)."""
-        e, kind = self.selected(), self.kind.value
+    def ask_archive(self) -> bool:
+        """First click of Archive: ask about the selected version, by name, for ``CONFIRM_MS``."""
+        e = self.selected()
         if self.lib is None or e is None:
-            self._say("Choose an item in the list first.", "warning")
+            self._withdraw()
+            self._say("Nothing archived: choose an item in the list first.", "warning")
+            return False
+        pending = _PendingArchive(self.kind.value, e, time.monotonic() + CONFIRM_MS / 1000)
+        self._pending = pending
+        self.confirm_text.object = (f"Archive <b>{_esc(e.name)}</b> v{e.version}? It leaves the list; the file is "
+                                    "kept in the library's archive folder.")
+        self.confirm_row.visible = True
+        self.archive_button.disabled = True
+        self.message.visible = False              # the question is this click's outcome
+        doc = pn.state.curdoc
+        if served(doc):
+            doc.add_timeout_callback(partial(self._lapse, pending.token), CONFIRM_MS)
+        return True
+
+    def confirm_archive(self) -> bool:
+        """Second click: archive exactly the version the question named, then select nothing."""
+        p = self._pending
+        self._withdraw()
+        if p is None or p.kind != self.kind.value:
+            self._say("Nothing archived: press “Archive this version…” first.", "warning")
+            return False
+        e = p.entry
+        if time.monotonic() > p.deadline:
+            self._say(f"Nothing archived: the question about {_esc(e.name)} v{e.version} lapsed. Press "
+                      "“Archive this version…” again.", "warning")
             return False
         try:
-            self.lib.archive(kind, e.name, e.version)
+            self.lib.archive(p.kind, e.name, e.version)
         except (InputError, OSError) as exc:
+            if self._gone(e, exc):
+                return False
             self._say(f"Not archived: {_esc(str(exc))}", "danger")
             return False
-        self.refresh()
+        self._reread(select="none")
         self._say(f"Archived {_esc(e.name)} v{e.version}: it is no longer listed, and whoever looks after the "
                   "server can still restore it from the library's .archive folder.", "success")
         return True
+
+    def archive_selected(self) -> bool:
+        """Archive the selected version in one call (both clicks): for scripts and tests."""
+        return self.ask_archive() and self.confirm_archive()
+
+    def keep(self) -> None:
+        """Answer "Keep it": nothing is archived."""
+        p = self._pending
+        self._withdraw()
+        if p is not None:
+            self._say(f"Kept {_esc(p.entry.name)} v{p.entry.version}: nothing was archived.", "info")
+
+    def _lapse(self, token) -> None:
+        if self._pending is not None and self._pending.token is token:
+            self._withdraw()
+
+    def _withdraw(self) -> None:
+        self._pending = None
+        self.confirm_row.visible = False
+        self.archive_button.disabled = self.selected() is None
 
     def _current_text(self, kind: str, name: str) -> str:
         if kind == "stacks":
@@ -227,12 +457,6 @@ class LibrarySection:
             raise InputError("This page has no Colour → thickness tab to save from.")
         return self.inverse.calibration_text(name)
 
-    def _select(self, name: str, version: int) -> None:
-        for i, e in enumerate(self.entries):
-            if e.name == name and e.version == version:
-                self.listing.value = i
-                return
-
     def _say(self, html: str, kind: str) -> None:
         self.message.object = f'<div class="fg-lib-text">{html}</div>'        # the class lets tests find it
         self.message.alert_type, self.message.visible = kind, True
@@ -242,14 +466,15 @@ class LibrarySection:
         intro = pn.pane.HTML(
             "<div style='font-size:13px;max-width:900px'>The lab library is a folder on this server that "
             "everyone using the page shares. Saving never replaces anyone's work: a name that is already "
-            "taken is saved as its next version, and you are told. Archived versions are kept in the "
-            "folder, not deleted.</div>", margin=(5, 5))
-        browse = pn.Column(_label("Saved in the lab library (newest first)"), self.kind, self.listing, self.detail,
-                           pn.Row(self.load_button, self.refresh_button, self.archive_button), self.problems,
-                           width=600)
-        save = pn.Column(_label("Save what this page shows"), self.source, self.name.view(), self.user.view(),
+            "taken (in any mix of upper and lower case) is saved as its next version, and you are told. "
+            "Archived versions are kept in the folder, not deleted.</div>", margin=(5, 5))
+        browse = pn.Column(_heading("Saved in the lab library (newest first)"), self.kind, self.listing,
+                           self.detail, pn.Row(self.load_button, self.refresh_button, self.archive_button),
+                           self.confirm_row, self.problems, width=600, margin=(0, 20, 0, 0))
+        save = pn.Column(_heading("Save what this page shows"), self.source, self.name.view(), self.user.view(),
                          self.save_button, width=340)
-        return pn.Column(intro, self.message, pn.Row(browse, save), sizing_mode="stretch_width", scroll=True)
+        body = pn.Row(browse, save, name=self.body_name)
+        return pn.Column(intro, self.message, body, sizing_mode="stretch_width", scroll=True)
 
 
 def _when(iso: str) -> str:
