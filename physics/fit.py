@@ -743,7 +743,7 @@ def fit_thickness(wavelength_nm, reflectance, stack: Stack, layer: int = 0, thic
             f_d = f_opt / float(_n_cos(stack, layer + 1, [0.5 * (wl[0] + wl[-1])], angle)[0])
     except InputError:  # pragma: no cover - the points were checked above
         pass
-    quality, note, hint = _judge(rms, noise, spread, f_d, fringes, w1, f"layer {layer}")
+    quality, note, hint = _judge(rms, noise, spread, f_d, fringes, w1, f"layer {layer + 1}")
     return FitResult(float(t1), float(sig[0]), rms, float(sc), float(of), wl, R, model, R - model, grid1, scan_rms,
                      minima, warning, n, k, float(t2) if two else None, float(sig[1]) if two else None,
                      quality=quality, quality_note=note, noise_rms=noise, spread=spread, fourier_optical_nm=f_opt,

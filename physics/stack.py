@@ -161,8 +161,9 @@ class Stack:
         return self._power(wavelength_nm, angle_deg, polarization)
 
     def roles(self) -> list[str]:
-        """Names of the media top to bottom: 'ambient', 'layer 0', ..., 'substrate'."""
-        return ["ambient", *(f"layer {i}" for i in range(len(self.layers))), "substrate"]
+        """Names of the media top to bottom, as people count layers: 'ambient', 'layer 1', ..., 'substrate'
+        (layer 1 is ``layers[0]``, next to the ambient)."""
+        return ["ambient", *(f"layer {i + 1}" for i in range(len(self.layers))), "substrate"]
 
     def wavelength_range_nm(self) -> tuple[float, float]:
         """The band (nm) where every medium of the stack has data: the intersection of their ranges."""

@@ -171,7 +171,7 @@ def test_sweep_cost_does_not_depend_on_layers_above_and_below():
     (lambda: Stack([Layer("unobtainium", 10)]), "Unknown material"),
     (lambda: Stack([Layer(1.5 - 0.1j, 10)]), "k"),
     (lambda: Stack([], substrate="Si", ambient=1.5 + 0.1j).reflectance(500), "ambient"),
-    (lambda: Stack([Layer("SiO2", 10)], substrate="Si", ambient=1.0).reflectance(100.0), "layer 0 (SiO2)"),
+    (lambda: Stack([Layer("SiO2", 10)], substrate="Si", ambient=1.0).reflectance(100.0), "layer 1 (SiO2)"),
     (lambda: sweep(Stack([Layer(1.46, 10)]), 3, [1, 2], 0, [500]), "layer"),
     (lambda: sweep(Stack([Layer(1.46, 10)]), 0, [[1, 2]], 0, [500]), "1-D"),
     (lambda: sweep(Stack([Layer(1.46, 10)]), 0, [1, -2], 0, [500]), "thickness_nm"),

@@ -351,7 +351,7 @@ def test_details_name_both_windows(section):
     section.win_hi.input.value = "1000"
     section.win2_hi.input.value = "800"
     section.run_fit(sync=True)
-    assert "second window searched" in section.details.object and "0–800 nm (layer 1)" in section.details.object
+    assert "second window searched" in section.details.object and "0–800 nm (layer 2)" in section.details.object
 
 
 def test_a_dense_spectrum_is_averaged_and_says_so(section):

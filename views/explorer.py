@@ -143,7 +143,7 @@ class FilmExplorer:
                                               placeholder="e.g. nitride, GaN, Johnson", width=300, margin=(2, 5))
         self.db_results = pn.pane.HTML("", width=300, margin=(0, 5), styles={"font-size": "12px"})
 
-        self.swept = pn.widgets.Select(label="Swept layer (map and strip)", options={}, width=300, margin=(2, 5))
+        self.swept = pn.widgets.Select(label="Swept layer (map and strip; 1 is the top layer)", options={}, width=300, margin=(2, 5))
         self.thickness_slider = pn.widgets.FloatSlider(label="Thickness of the swept layer (nm)", start=0.0,
                                                        end=s.thickness_max_nm, step=0.5, value=s.thickness_nm,
                                                        width=300, margin=(2, 5), css_classes=["fg-thickness-slider"])
@@ -279,7 +279,7 @@ class FilmExplorer:
             self.plate_mm.set_text(_fmt(d["substrate_thickness_mm"], 3) if d.get("substrate_thickness_mm") else "1")
             self.plate_mm.input.visible = self.plate.value
             self._rebuild_layers(s.layer_rows())
-            self.swept.options = {f"{i}: {_spec_text(l['material'])}": i for i, l in enumerate(d["layers"])} or {"(no layer)": 0}
+            self.swept.options = {f"{i + 1}: {_spec_text(l['material'])}": i for i, l in enumerate(d["layers"])} or {"(no layer)": 0}
             self.swept.value = s.swept_layer
             self.thickness_slider.end = max(s.thickness_max_nm, s.thickness_nm)
             self.thickness_slider.value = s.thickness_nm
@@ -301,7 +301,7 @@ class FilmExplorer:
         for i, layer in enumerate(layers):
             mat = pn.widgets.AutocompleteInput(options=[n for n, _, _ in list_materials()], value=_spec_text(layer["material"]),
                                                case_sensitive=False, search_strategy="includes", restrict=False,
-                                               min_characters=1, width=120, margin=(2, 2), label=f"Layer {i}")
+                                               min_characters=1, width=120, margin=(2, 2), label=f"Layer {i + 1}")
             thick = pn.widgets.TextInput(value=_fmt(layer["thickness_nm"], 2), width=80, margin=(2, 2), label="nm")
             self._row_thickness.append(thick)
             msg = pn.pane.HTML("", visible=False, margin=(0, 5))
@@ -309,7 +309,7 @@ class FilmExplorer:
             for label, action, tip in (("↑", "up", "move up"), ("↓", "down", "move down"),
                                        ("⊕", "dup", "duplicate"), ("✕", "del", "remove")):
                 b = pn.widgets.Button(label=label, width=26, height=30, margin=(18, 1, 2, 1), color="light",
-                                      description=f"{tip} layer {i}")
+                                      description=f"{tip} layer {i + 1}")
                 b.on_click(partial(self._on_layer_action, i, action))
                 buttons.append(b)
             mat.param.watch(partial(self._on_layer_edit, i, "material", msg), "value")
@@ -389,7 +389,7 @@ class FilmExplorer:
             if key == "material":
                 layers[index]["material"] = parse_material(event.new)
             else:
-                layers[index]["thickness_nm"] = parse_number(event.new, f"Layer {index} thickness",
+                layers[index]["thickness_nm"] = parse_number(event.new, f"Layer {index + 1} thickness",
                                                              *THICKNESS_LIMITS_NM, "nm")
             self.state.set_stack(layers=layers)
         except InputError as exc:
@@ -646,7 +646,7 @@ class FilmExplorer:
                                      x=[d0 - dd / 2], y=[a0 - da / 2], dw=[d1 - d0 + dd], dh=[a1 - a0 + da])
             self.map_fig.x_range.update(start=d0, end=d1)
             self.map_fig.y_range.update(start=a0, end=a1)
-            self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer} and viewing angle — "
+            self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer + 1} and viewing angle — "
                                        f"{s.illuminant}, {s.observer}° observer, {s.polarization}"
                                        + (f", cone NA {s.na:g}" if s.na else "")
                                        + (", brightest = white" if s.brightness == "normalized" else ""))
@@ -684,7 +684,7 @@ class FilmExplorer:
             "# fringegauge spectrum (computed; not certified metrology)",
             f"# date: {date.today().isoformat()}",
             f"# stack (top to bottom): {_stack_text(s)}",
-            f"# swept layer {s.swept_layer} thickness_nm: {s.thickness_nm:g}; angle_deg: {s.angle_deg:g}; "
+            f"# swept layer {s.swept_layer + 1} (from the top) thickness_nm: {s.thickness_nm:g}; angle_deg: {s.angle_deg:g}; "
             f"cone NA: {s.na:g}; polarization: {s.polarization}",
             f"# colour: illuminant {s.illuminant}, observer {s.observer} deg: sRGB {pt.hex}, "
             f"L*a*b* {pt.lab[0]:.2f} {pt.lab[1]:.2f} {pt.lab[2]:.2f}",
@@ -710,7 +710,7 @@ class FilmExplorer:
         marks = [(float(st.thickness_nm[0]), "order 1")] + [(float(x), f"order {i + 2}")
                                                              for i, x in enumerate(st.order_marks)]
         png = render.strip_png(st.rgb, st.thickness_nm, title=f"Reference colours: {_stack_text(s)}",
-                               subtitle=f"layer {s.swept_layer} swept; viewing angle {s.angle_deg:g}°; " + _light_text(s),
+                               subtitle=f"layer {s.swept_layer + 1} swept; viewing angle {s.angle_deg:g}°; " + _light_text(s),
                                order_marks=marks, footer=_footer())
         return io.BytesIO(png)
 

@@ -212,9 +212,9 @@ class SpectrumFitSection:
             self.second.options = {"(none)": -1}
             return
         swept = min(s.swept_layer, len(names) - 1)
-        self.unknown.object = (f"Unknown layer: <b>layer {swept} ({_esc(names[swept])})</b>, the explorer's "
+        self.unknown.object = (f"Unknown layer: <b>layer {swept + 1} ({_esc(names[swept])})</b>, the explorer's "
                                f"swept layer; angle {s.angle_deg:g}°, {s.polarization}.")
-        opts = {"(none)": -1} | {f"{i}: {n}": i for i, n in enumerate(names) if i != swept}
+        opts = {"(none)": -1} | {f"{i + 1}: {n}": i for i, n in enumerate(names) if i != swept}
         keep = self.second.value if self.second.value in opts.values() else -1
         self.second.options = opts
         self.second.value = keep
@@ -651,22 +651,22 @@ class SpectrumFitSection:
         trusted = r.trustworthy
         if trusted:
             label = "1σ" + (", noise only" if r.quality == "misfit" else "")
-            lines = [f"<b>d = {_pm(r.thickness_nm, r.quoted_uncertainty_nm)} nm ({label})</b> — layer {a['layer']} "
+            lines = [f"<b>d = {_pm(r.thickness_nm, r.quoted_uncertainty_nm)} nm ({label})</b> — layer {a['layer'] + 1} "
                      f"({_esc(names[a['layer']])})"]
             if r.second_thickness_nm is not None:
                 lines.append(f"<b>d₂ = {_pm(r.second_thickness_nm, r.second_quoted_uncertainty_nm)} nm ({label})</b> — "
-                             f"layer {a['second_layer']} ({_esc(names[a['second_layer']])})")
+                             f"layer {a['second_layer'] + 1} ({_esc(names[a['second_layer']])})")
             floored = [u for u in (r.uncertainty_nm, r.second_uncertainty_nm) if u is not None
                        and u < r.uncertainty_floor_nm]
             if floored:
                 lines.append(f"The ± is statistical; below {r.uncertainty_floor_nm:g} nm it is not meaningful, so "
                              f"{r.uncertainty_floor_nm:g} nm is quoted (the fit's own 1σ: {max(floored):.1g} nm).")
         else:
-            lines = [f"<b>d ≈ {r.thickness_nm:.0f} nm: not trustworthy</b> — layer {a['layer']} "
+            lines = [f"<b>d ≈ {r.thickness_nm:.0f} nm: not trustworthy</b> — layer {a['layer'] + 1} "
                      f"({_esc(names[a['layer']])}); no uncertainty is quoted"]
             if r.second_thickness_nm is not None:
                 lines.append(f"<b>d₂ ≈ {r.second_thickness_nm:.0f} nm: not trustworthy</b> — layer "
-                             f"{a['second_layer']} ({_esc(names[a['second_layer']])})")
+                             f"{a['second_layer'] + 1} ({_esc(names[a['second_layer']])})")
         lines.append(f"rms residual {_sig(100 * r.rms)} % over {r.n_points} points, {r.n_parameters} free "
                      f"parameter{'s' if r.n_parameters > 1 else ''}; noise seen in the spectrum {_sig(100 * r.noise_rms)} %")
         if a["free_scale"] or a["free_offset"]:
@@ -687,10 +687,10 @@ class SpectrumFitSection:
             used += (f": the {r.n_points_read} points read averaged in groups of {r.points_per_bin}, still "
                      f"{BIN_POINTS_PER_FRINGE} or more per fringe")
         rows = [("wavelengths used", used + ")"),
-                ("window searched", f"{a['thickness_nm'][0]:g}–{a['thickness_nm'][1]:g} nm (layer {a['layer']})")]
+                ("window searched", f"{a['thickness_nm'][0]:g}–{a['thickness_nm'][1]:g} nm (layer {a['layer'] + 1})")]
         if "second_layer" in a:
             rows.append(("second window searched", f"{a['second_thickness_nm'][0]:g}–{a['second_thickness_nm'][1]:g} nm "
-                                                   f"(layer {a['second_layer']})"))
+                                                   f"(layer {a['second_layer'] + 1})"))
         rows.append(("angle, polarization", f"{a['angle_deg']:g}°, {a['polarization']}"))
         if r.minima:
             rows.append(("minima (thickness, rms)", "; ".join(f"{t:.1f} nm, {_sig(100 * v)} %" for t, v in r.minima)))
@@ -721,7 +721,7 @@ class SpectrumFitSection:
         self.scan_fig.y_range.start, self.scan_fig.y_range.end = lo / 2.0, hi * 4.0   # room for the labels above
         self.best_span.location = r.thickness_nm
         self.best_span.visible = True
-        self.scan_fig.title.text = (f"Goodness of fit against the thickness of layer {a['layer']}"
+        self.scan_fig.title.text = (f"Goodness of fit against the thickness of layer {a['layer'] + 1}"
                                     + (" (minimised over the second layer)" if r.second_thickness_nm is not None else "")
                                     + "; triangles: refined minima")
 
@@ -761,10 +761,10 @@ class SpectrumFitSection:
             f"# date: {self.result_info['date']}",
             f"# stack (top to bottom): {st.ambient.name} / {layers} / {st.substrate.name}",
             f"# angle_deg: {a['angle_deg']:g}; polarization: {a['polarization']}",
-            f"# layer {a['layer']} thickness_nm: {_thickness_text(r, r.thickness_nm, r.quoted_uncertainty_nm)}",
+            f"# layer {a['layer'] + 1} thickness_nm: {_thickness_text(r, r.thickness_nm, r.quoted_uncertainty_nm)}",
         ]
         if r.second_thickness_nm is not None:
-            lines.append(f"# layer {a['second_layer']} thickness_nm: "
+            lines.append(f"# layer {a['second_layer'] + 1} thickness_nm: "
                          f"{_thickness_text(r, r.second_thickness_nm, r.second_quoted_uncertainty_nm)}")
         lines.append(f"# fit quality: {r.quality}" + (f" ({r.quality_note})" if r.quality_note else ""))
         lines.append(f"# rms (fraction): {r.rms:.6g}; noise seen (fraction): {r.noise_rms:.3g}; scale: {r.scale:.6g}; "
@@ -817,7 +817,7 @@ class SpectrumFitSection:
             },
             "stack": {
                 "ambient": medium("ambient", st.ambient),
-                "layers": [medium(f"layer {i}", l.material, l.thickness_nm, i) for i, l in enumerate(st.layers)],
+                "layers": [medium(f"layer {i + 1}", l.material, l.thickness_nm, i) for i, l in enumerate(st.layers)],
                 "substrate": medium("substrate", st.substrate),
                 "substrate_thickness_mm": st.substrate_thickness_mm,
             },

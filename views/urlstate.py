@@ -100,7 +100,7 @@ def apply_query(state: ExplorerState, query) -> list[str]:
         if update.get("swept_layer", state.swept_layer) > max(n - 1, 0):
             if "swept_layer" in update:
                 errors.append(f"Link field 'layer' was not applied: the stack has {n} layer(s); "
-                              f"layer {update['swept_layer']} does not exist.")
+                              f"layer {update['swept_layer'] + 1} does not exist.")
             update["swept_layer"] = 0
     if "thickness_nm" in update and "thickness_max_nm" not in update:
         update["thickness_max_nm"] = max(state.thickness_max_nm, update["thickness_nm"])
