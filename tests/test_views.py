@@ -207,3 +207,64 @@ def test_a_link_whose_stack_starts_with_a_byte_order_mark_is_read():
     other = ExplorerState()
     assert apply_query(other, {"stack": link}) == []
     assert json.loads(other.stack_json) == json.loads(s.stack_json)
+
+
+def test_removing_every_layer_shows_the_bare_substrate_not_the_last_stack():
+    ex = FilmExplorer()
+    ex.preset.value = "thermal_oxide_on_silicon"
+    while json.loads(ex.state.stack_json)["layers"]:
+        ex._on_layer_action(0, "del")
+    bare = Stack([], substrate="Si", ambient="air")
+    assert ex._point.hex == _physics_hex(bare)
+    assert "bare substrate" in ex.swatch.object and ex.error.visible and ex.error.alert_type == "warning"
+    assert ex.map_src.data["image"] == [] and ex.strip_src.data["image"] == []
+    ex.add_layer.clicks += 1                                         # a layer again: the map comes back
+    assert not ex.error.visible and len(ex.map_src.data["image"]) == 1
+
+
+def test_the_preset_list_names_a_preset_only_while_it_is_what_is_shown():
+    from views.urlstate import apply_query, state_to_query
+
+    ex = FilmExplorer()
+    ex.preset.value = "nitride_on_oxide_on_silicon"
+    assert ex.preset.value == "nitride_on_oxide_on_silicon"
+    ex.state.thickness_nm = 150.0                                    # moving the thickness is not an edit
+    assert ex.preset.value == "nitride_on_oxide_on_silicon"
+    layers = ex.state.layer_rows()
+    layers[0]["material"] = "TiO2"
+    ex.state.set_stack(layers=layers)
+    assert ex.preset.value == "" and "since edited" in ex.scenario.object
+    other = FilmExplorer()                                           # a shared link of a preset's stack
+    shared = FilmExplorer()
+    shared.preset.value = "nitride_on_oxide_on_silicon"
+    query = dict(pair.split("=", 1) for pair in state_to_query(shared.state)[1:].split("&"))
+    from urllib.parse import unquote
+    assert apply_query(other.state, {k: unquote(v) for k, v in query.items()}) == []
+    other._sync_widgets()
+    assert other.preset.value == ""
+
+
+def test_the_swatch_names_the_swept_layer_and_says_when_it_is_beyond_the_map():
+    ex = FilmExplorer()
+    ex.preset.value = "nitride_on_oxide_on_silicon"
+    assert "layer 1 (" in ex.swatch.object and "of 2" in ex.swatch.object
+    ex.thickness.input.value = "1500"
+    ex.tmax.input.value = "1000"
+    assert "beyond the map, which ends at 1000 nm" in ex.swatch.object
+
+
+def test_a_dark_swatch_points_to_the_brightness_choice():
+    ex = FilmExplorer()
+    ex.preset.value = "broadband_ar_on_bk7"
+    assert ex._point.lab[0] < 10 and "brightest = white" in ex.swatch.object
+    ex.brightness.value = "normalized"
+    assert "Little light comes back" not in ex.swatch.object
+
+
+def test_the_first_layer_cannot_move_up_nor_the_last_down():
+    ex = FilmExplorer()
+    ex.preset.value = "nitride_on_oxide_on_silicon"
+    rows = ex.layers_box.objects
+    up = [b for b in rows[0].objects[0].objects if getattr(b, "label", "") == "↑"][0]
+    down = [b for b in rows[-1].objects[0].objects if getattr(b, "label", "") == "↓"][0]
+    assert up.disabled and down.disabled

@@ -32,7 +32,7 @@ from .uploads import COMPACT, CappedDropper
 from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key, upload_refusal
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
-                    parse_number, parse_spd_csv, MAX_SPD_BYTES)
+                    parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES)
 
 log = logging.getLogger("fringegauge")
 
@@ -271,8 +271,7 @@ class FilmExplorer:
         self._syncing = True
         try:
             d = json.loads(s.stack_json)
-            # the preset list names the preset only while it is what is loaded (not a file or a library entry)
-            self.preset.value = s.preset_name if s.preset_name in self.preset.options.values() else ""
+            self._show_stack_name()
             self.ambient.value = _spec_text(d["ambient"])
             self.substrate.value = _spec_text(d["substrate"])
             self.plate.value = d.get("substrate_thickness_mm") is not None
@@ -290,10 +289,24 @@ class FilmExplorer:
             self.observer.value = s.observer
             self.na_slider.value = s.na
             self.brightness.value = s.brightness
-            sc = d.get("scenario", "")
-            self.scenario.object = f"<i>{_esc(d.get('name', ''))}</i>" + (f" — {_esc(sc)}" if sc else "")
         finally:
             self._syncing = False
+
+    def _show_stack_name(self):
+        """The preset list names a preset only while it is what is shown (not a link, a file, a library
+        entry or an edited preset); the line under it says when the stack was edited since loading."""
+        s = self.state
+        was, self._syncing = self._syncing, True
+        try:
+            self.preset.value = s.preset_name if s.preset_name in self.preset.options.values() else ""
+            d = json.loads(s.stack_json)
+            sc = d.get("scenario", "")
+            edited = s.preset_name.endswith(EDITED_MARK)
+            self.scenario.object = (f"<i>{_esc(d.get('name', ''))}</i>"
+                                    + (" <b>as loaded, since edited</b>" if edited else "")
+                                    + (f" — {_esc(sc)}" if sc else ""))
+        finally:
+            self._syncing = was
 
     def _rebuild_layers(self, layers):
         rows = []
@@ -309,7 +322,8 @@ class FilmExplorer:
             for label, action, tip in (("↑", "up", "move up"), ("↓", "down", "move down"),
                                        ("⊕", "dup", "duplicate"), ("✕", "del", "remove")):
                 b = pn.widgets.Button(label=label, width=26, height=30, margin=(18, 1, 2, 1), color="light",
-                                      description=f"{tip} layer {i + 1}")
+                                      description=f"{tip} layer {i + 1}",
+                                      disabled=(action == "up" and i == 0) or (action == "down" and i == len(layers) - 1))
                 b.on_click(partial(self._on_layer_action, i, action))
                 buttons.append(b)
             mat.param.watch(partial(self._on_layer_edit, i, "material", msg), "value")
@@ -542,6 +556,8 @@ class FilmExplorer:
 
     def _on_state(self, *events):
         names = {e.name for e in events}
+        if "preset_name" in names:
+            self._show_stack_name()
         if "thickness_nm" in names and not self._dragging:
             self._show_row_thickness()
         kinds = {"point"}
@@ -600,6 +616,10 @@ class FilmExplorer:
     def _compute(s: ExplorerState, kinds, scale, session: str = ""):
         out = {"kinds": kinds, "state": s, "error": None}
         try:
+            if not s.stack.layers:               # the bare substrate: a colour and a spectrum, nothing to sweep
+                out.update(bare=True, scale=1.0,
+                           point=compute_point(s, 1.0, np.arange(*_spectrum_range(s), SPECTRUM_STEP_NM)))
+                return out
             if "map" in kinds:
                 with logged_job("colour_map", MAP_THICKNESS_POINTS * MAP_ANGLE_POINTS, session):
                     out["map"] = compute_map(s, Limits.from_env().max_grid_points)
@@ -628,12 +648,20 @@ class FilmExplorer:
         if self.status.object != busy:
             self.status.object = busy
         if result["error"]:
+            self.error.alert_type = "danger"
             self.error.object = result["error"]
             self.error.visible = True
             return
-        self.error.visible = False
         s = result["state"]
         self._scale = result["scale"]
+        if result.get("bare"):
+            self.error.alert_type = "warning"
+            self.error.object = ("The stack has no layer: the swatch and spectrum show the bare substrate. "
+                                 "Add a layer to see its colour against thickness and angle.")
+            self.error.visible = True
+            self._clear_map_and_strip()
+        else:
+            self.error.visible = False
         if "map" in result:
             self._map = cm = result["map"]
             rgb = np.transpose(cm.rgb, (1, 0, 2))          # rows = angle
@@ -666,12 +694,21 @@ class FilmExplorer:
             self.spec_src.data = dict(wl=pt.wavelength_nm, R=pt.R * 100, Rs=pt.Rs * 100, Rp=pt.Rp * 100, T=T)
             self.line_T.visible = pt.T is not None
             self.line_Rs.visible = self.line_Rp.visible = s.polarization == "unpolarized"
-            self.spec_fig.title.text = (f"Spectrum at {s.thickness_nm:.1f} nm, {s.angle_deg:.1f}°"
+            self.spec_fig.title.text = ((f"Spectrum of the bare substrate at {s.angle_deg:.1f}°" if result.get("bare")
+                                         else f"Spectrum at {s.thickness_nm:.1f} nm, {s.angle_deg:.1f}°")
                                         + (f", cone NA {s.na:g}" if s.na else ""))
-            self.swatch.object = _swatch_html(pt, s)
+            self.swatch.object = _swatch_html(pt, s, bare=bool(result.get("bare")))
             self.vspan.location = s.thickness_nm
             self.hspan.location = s.angle_deg
             self.strip_mark.location = s.thickness_nm
+
+    def _clear_map_and_strip(self):
+        """Nothing to sweep: the map and strip show nothing rather than the last stack's colours."""
+        self._map = self._strip = None
+        self.map_src.data = {k: [] for k in self.map_src.data}
+        self.strip_src.data = {k: [] for k in self.strip_src.data}
+        self.order_src.data = {k: [] for k in self.order_src.data}
+        self.map_fig.title.text = "Colour vs thickness and viewing angle: add a layer to sweep"
 
     # ------------------------------------------------------------------ downloads
     def _stack_file_bytes(self):
@@ -750,9 +787,11 @@ class FilmExplorer:
         main = pn.Column(
             pn.Row(self.status, self.error, margin=0),
             pn.Row(self.swatch, pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
+            pn.pane.HTML("Tap the map to set thickness and angle.", margin=(4, 5, 0, 5),
+                         styles={"font-size": "12px", "color": "#555"}),
             pn.pane.Bokeh(self.map_fig, sizing_mode="stretch_width"),
             pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
-            pn.pane.Markdown("Tap the map to set thickness and angle. " + CAUTIONS.split("**Cautions.** ")[1],
+            pn.pane.Markdown(CAUTIONS.split("**Cautions.** ")[1],
                              styles={"font-size": "11px", "color": "#555"}),
             sizing_mode="stretch_both", scroll=True, margin=(0, 10),
         )
@@ -822,7 +861,36 @@ def _esc(text: str) -> str:
     return (str(text).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;"))
 
 
-def _swatch_html(pt, s: ExplorerState) -> str:
+def _dark_hint(pt, s: ExplorerState) -> str:
+    if pt.lab[0] >= DARK_SWATCH_L or s.brightness == "normalized":
+        return ""
+    return ("<div style='color:#555;font-size:12px'>Little light comes back (an anti-reflection stack?): choose "
+            "“brightest = white” under Brightness to see its hue.</div>")
+
+
+#: Below this lightness L* the swatch is nearly black and its hue hard to judge (recalled from memory:
+#: CIELAB L* of about 10 is a very dark grey on a typical office display).
+DARK_SWATCH_L = 10.0
+
+
+def _swatch_headline(pt, s: ExplorerState, bare: bool) -> str:
+    """What the swatch shows: the swept layer's thickness, the angle, the fringe order and which layer."""
+    if bare:
+        return f"<b>bare substrate</b> at <b>{s.angle_deg:.1f}°</b>"
+    line = f"<b>{s.thickness_nm:.1f} nm</b> at <b>{s.angle_deg:.1f}°</b>, fringe order {pt.order}"
+    try:
+        layers = json.loads(s.stack_json)["layers"]
+        which = f"layer {s.swept_layer + 1} ({_esc(_spec_text(layers[s.swept_layer]['material']))})"
+        line += f"<br>{which}" + (f" of {len(layers)}" if len(layers) > 1 else "")
+    except (ValueError, KeyError, IndexError, TypeError):
+        pass
+    if s.thickness_nm > s.thickness_max_nm:
+        line += (f"<br><span style='color:#8a5a00'>beyond the map, which ends at {s.thickness_max_nm:g} nm: "
+                 "raise “Map up to” to see it there</span>")
+    return line
+
+
+def _swatch_html(pt, s: ExplorerState, bare: bool = False) -> str:
     L, a, b = pt.lab
     gamut = ("<div style='color:#b00020'>outside the sRGB gamut: the screen shows the nearest colour</div>"
              if pt.out_of_gamut else "<div style='color:#2e7d32'>inside the sRGB gamut</div>")
@@ -830,10 +898,10 @@ def _swatch_html(pt, s: ExplorerState) -> str:
 <div role="img" aria-label="colour swatch {pt.hex}" data-hex="{pt.hex}"
      style="width:240px;height:110px;border:1px solid #888;border-radius:4px;background:{pt.hex}"></div>
 <div class="fg-swatch-values" style="margin-top:6px">
-<b>{s.thickness_nm:.1f} nm</b> at <b>{s.angle_deg:.1f}°</b>, fringe order {pt.order}<br>
+{_swatch_headline(pt, s, bare)}<br>
 sRGB <span class="fg-hex">{pt.hex}</span><br>
 L*a*b* {L:.1f}, {a:.1f}, {b:.1f}<br>
 xy {pt.xy[0]:.4f}, {pt.xy[1]:.4f}<br>
 {gamut}
-<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer. Not certified metrology.</div>
+{_dark_hint(pt, s)}<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer. Not certified metrology.</div>
 </div>"""

@@ -39,6 +39,10 @@ ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom"]
 DEFAULT_PRESET = "thermal_oxide_on_silicon"
 
 
+#: Added to the name of a loaded stack once its layers, ambient or substrate are changed.
+EDITED_MARK = " (edited)"
+
+
 class ExplorerState(param.Parameterized):
     """Everything that defines the view; the URL carries all of it."""
 
@@ -55,7 +59,8 @@ class ExplorerState(param.Parameterized):
     na = param.Number(default=0.0, bounds=(0.0, MAX_NA), doc="Numerical aperture of the viewing cone (0 = one direction).")
     brightness = param.Selector(default="absolute", objects=["absolute", "normalized"],
                                 doc="Absolute reflectance, or scaled so the brightest colour on the map is white.")
-    preset_name = param.String(default="", doc="Name of the loaded preset or file (for titles only).")
+    preset_name = param.String(default="", doc="Name of the loaded preset or file, marked once the stack is "
+                                               "edited (a preset's name only while it is what is shown).")
 
     # ------------------------------------------------------------------ stack
     def stack_file(self) -> StackFile:
@@ -102,7 +107,11 @@ class ExplorerState(param.Parameterized):
         sf = stack_from_dict(d)                      # validates materials, thicknesses, fields
         _ = colour_band_nm(sf.stack)                 # the stack must have data over the visible
         thickness = sf.stack.layers[swept].thickness_nm if n else self.thickness_nm
+        before = json.loads(self.stack_json)
+        edited = any(before.get(k) != d.get(k) for k in ("ambient", "layers", "substrate", "substrate_thickness_mm"))
         with param.parameterized.batch_call_watchers(self):
+            if edited and not self.preset_name.endswith(EDITED_MARK):
+                self.preset_name = (self.preset_name or d.get("name", "") or "stack") + EDITED_MARK
             self.stack_json = _compact(d)
             self.swept_layer = swept
             if n:

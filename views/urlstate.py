@@ -102,6 +102,8 @@ def apply_query(state: ExplorerState, query) -> list[str]:
                 errors.append(f"Link field 'layer' was not applied: the stack has {n} layer(s); "
                               f"layer {update['swept_layer'] + 1} does not exist.")
             update["swept_layer"] = 0
+    if "stack_json" in update:
+        update["preset_name"] = ""                 # a link carries a stack, not which preset it came from
     if "thickness_nm" in update and "thickness_max_nm" not in update:
         update["thickness_max_nm"] = max(state.thickness_max_nm, update["thickness_nm"])
     state.param.update(**update)
