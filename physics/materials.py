@@ -423,8 +423,9 @@ def material(spec) -> Material:
             return material(value.real if value.imag == 0 else value)
         near = [name for name, _ in search_materials(text, limit=5, database=False)]
         hint = f" Did you mean {', '.join(near)}?" if near else ""
-        raise InputError(f"Unknown material {spec!r}.{hint} Give a curated name (list_materials()), "
-                         "a database page 'shelf/book/page', or a number n or n+ik.")
+        raise InputError(f"Unknown material {spec!r}.{hint} Give a curated name such as SiO2, Si3N4 or TiO2 "
+                         "(the page's 'Find a material' box, or search_materials(), finds the rest), a database "
+                         "page 'shelf/book/page', or a number n or n+ik (e.g. 1.7 for a film of known index).")
     raise InputError(f"A material is a name, a page, a number or a Material; got {type(spec).__name__}.")
 
 
