@@ -268,3 +268,11 @@ def test_the_first_layer_cannot_move_up_nor_the_last_down():
     up = [b for b in rows[0].objects[0].objects if getattr(b, "label", "") == "↑"][0]
     down = [b for b in rows[-1].objects[0].objects if getattr(b, "label", "") == "↓"][0]
     assert up.disabled and down.disabled
+
+
+def test_the_spectrum_download_says_why_transmittance_is_empty():
+    ex = FilmExplorer()
+    ex.preset.value = "thermal_oxide_on_silicon"
+    assert "T_percent is empty: the substrate absorbs" in ex._spectrum_csv().getvalue()
+    ex.preset.value = "broadband_ar_on_bk7"
+    assert "T_percent is empty" not in ex._spectrum_csv().getvalue()

@@ -195,7 +195,10 @@ class FilmExplorer:
         self.line_Rp = p.line("wl", "Rp", source=self.spec_src, line_width=1.2, color="#c0392b", line_dash="dotted",
                               legend_label="R p")
         self.line_T = p.line("wl", "T", source=self.spec_src, line_width=1.5, color="#2e8b57", legend_label="T")
-        p.legend.location = "top_right"
+        p.legend.orientation = "horizontal"           # above the plot: inside it covers the curves
+        p.add_layout(p.legend[0], "above")
+        p.legend.update(location="top_right", margin=0, padding=2, spacing=8, label_height=12, glyph_height=12,
+                        border_line_alpha=0)
         p.legend.background_fill_alpha = 0.7
         p.legend.click_policy = "hide"
         p.legend.label_text_font_size = "11px"
@@ -725,8 +728,10 @@ class FilmExplorer:
             f"cone NA: {s.na:g}; polarization: {s.polarization}",
             f"# colour: illuminant {s.illuminant}, observer {s.observer} deg: sRGB {pt.hex}, "
             f"L*a*b* {pt.lab[0]:.2f} {pt.lab[1]:.2f} {pt.lab[2]:.2f}",
-            "wavelength_nm,R_percent,R_s_percent,R_p_percent,T_percent",
         ]
+        if pt.T is None:
+            lines.append("# T_percent is empty: the substrate absorbs, so no light comes through the stack")
+        lines.append("wavelength_nm,R_percent,R_s_percent,R_p_percent,T_percent")
         T = pt.T if pt.T is not None else np.full_like(pt.R, np.nan)
         for row in zip(pt.wavelength_nm, pt.R * 100, pt.Rs * 100, pt.Rp * 100, T * 100):
             lines.append(",".join("" if not np.isfinite(v) else f"{v:.6g}" for v in row))
