@@ -742,7 +742,7 @@ class FilmExplorer:
         cm = self._map if self._map is not None else compute_map(s)
         png = render.map_png(np.transpose(cm.rgb, (1, 0, 2)), cm.thickness_nm, cm.angle_deg,
                              x_label="thickness of the swept layer (nm)", y_label="viewing angle (°)",
-                             title=f"Film colour: {_stack_text(s)}", subtitle=_light_text(s),
+                             title=f"Film colour: {_stack_text(s, swept_range=True)}", subtitle=_light_text(s),
                              crosshair=(s.thickness_nm, s.angle_deg), footer=_footer())
         return io.BytesIO(png)
 
@@ -751,8 +751,9 @@ class FilmExplorer:
         st = compute_strip(s, self._scale)
         marks = [(float(st.thickness_nm[0]), "order 1")] + [(float(x), f"order {i + 2}")
                                                              for i, x in enumerate(st.order_marks)]
-        png = render.strip_png(st.rgb, st.thickness_nm, title=f"Reference colours: {_stack_text(s)}",
-                               subtitle=f"layer {s.swept_layer + 1} swept; viewing angle {s.angle_deg:g}°; " + _light_text(s),
+        png = render.strip_png(st.rgb, st.thickness_nm, title=f"Reference colours: {_stack_text(s, swept_range=True)}",
+                               subtitle=(f"layer {s.swept_layer + 1} swept; viewing angle {s.angle_deg:g}°; "
+                                         "marks: start of each fringe order at 550 nm; " + _light_text(s)),
                                order_marks=marks, footer=_footer())
         return io.BytesIO(png)
 
@@ -839,10 +840,15 @@ def _spec_text(spec) -> str:
     return str(spec)
 
 
-def _stack_text(s: ExplorerState) -> str:
+def _stack_text(s: ExplorerState, swept_range: bool = False) -> str:
+    """'air / SiO2 100 nm / Si'; with ``swept_range`` the swept layer reads 'SiO2 0–1000 nm swept' (a chart
+    over thickness)."""
     d = json.loads(s.stack_json)
     parts = [_spec_text(d["ambient"])]
     for i, l in enumerate(d["layers"]):
+        if i == s.swept_layer and swept_range:
+            parts.append(f"{_spec_text(l['material'])} 0–{s.thickness_max_nm:g} nm swept")
+            continue
         t = s.thickness_nm if i == s.swept_layer else l["thickness_nm"]
         parts.append(f"{_spec_text(l['material'])} {t:g} nm")
     sub = _spec_text(d["substrate"])
