@@ -40,7 +40,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from .appearance import color_map, interference_order, scaled_colors
+from .appearance import color_map, interference_order
 from .color import (_linear_srgb, _xyz_to_linear_srgb_matrix, delta_e_2000, illuminant_white_xyz, srgb_decode_table,
                     srgb_to_hex, srgb_to_xyz, xyz_to_lab)
 from .errors import InputError, require_finite
@@ -60,8 +60,21 @@ LUT_STEP_NM = 0.5
 #: Distinct photo colours matched per chunk: progress is reported (and a cancel noticed) between
 #: chunks, and the working arrays stay a few tens of MB.
 MATCH_CHUNK_COLOURS = 50_000
-#: Most points on a colour path (a wide window gets a coarser step).
+#: Most points on a colour path (a wide window gets a coarser step, and the verdict says so).
 LUT_MAX_POINTS = 20_001
+#: Widest window scanned at the full :data:`LUT_STEP_NM` step (nm).
+FULL_STEP_WINDOW_NM = (LUT_MAX_POINTS - 1) * LUT_STEP_NM
+#: Thickness step (nm) of the local colour path computed around each candidate: its thickness and
+#: its colour-equal range are read there, so their precision does not depend on the window's width.
+REFINE_STEP_NM = 0.1
+#: Most points of one local path (a basin wider than this times REFINE_STEP_NM is sampled more coarsely).
+REFINE_MAX_POINTS = 4001
+#: Times a local path is widened when the colour-equal range reaches its end.
+REFINE_WIDENINGS = 4
+#: Local minima of the scanned path refined into candidates, best first: enough for the ``top``
+#: returned and a rival of another order; a wide window has hundreds of minima, mostly poor.
+MINIMA_REFINED_PER_TOP = 3
+MINIMA_REFINED_MIN = 12
 #: Nearest path points (by CIELAB distance) examined per order before ranking by ΔE00.
 KNN_PER_ORDER = 4
 #: Orders (nearest first by CIELAB distance) whose best match is ranked by ΔE00 for each colour.
@@ -74,6 +87,9 @@ CONTINUITY_WINDOW_FRACTION = 0.06
 MAX_SATURATED_FRACTION = 0.01
 #: A calibration box darker than this (linear light) carries no usable colour.
 MIN_BOX_LINEAR = 0.003
+#: Percentiles of a map's thickness reported as its robust range (1st-99th: common practice for
+#: setting aside a few stray pixels without hiding a real spread).
+ROBUST_PERCENTILES = (1.0, 99.0)
 
 
 # ---------------------------------------------------------------------- colours
@@ -180,9 +196,14 @@ def _colour_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polariza
         return _compute_path(*key)
 
 
-def _compute_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na) -> _Path:
-    n = int(min(LUT_MAX_POINTS, np.ceil((hi - lo) / LUT_STEP_NM) + 1))
-    d = np.linspace(lo, hi, max(n, 3))
+def _path_points(lo, hi) -> int:
+    """Points of the scanned colour path over [lo, hi] nm: a LUT_STEP_NM step, at most LUT_MAX_POINTS."""
+    return max(3, int(min(LUT_MAX_POINTS, np.ceil((hi - lo) / LUT_STEP_NM) + 1)))
+
+
+def _compute_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na, n=None) -> _Path:
+    """Colour path over [lo, hi] nm in ``n`` evenly spaced thicknesses (default :func:`_path_points`)."""
+    d = np.linspace(lo, hi, _path_points(lo, hi) if n is None else max(int(n), 3))
     cm = color_map(stack, layer, d, [angle_deg], illuminant=illuminant, observer=observer,
                    polarization=polarization, na=na)
     order = np.floor(interference_order(stack, layer, d, angle_deg)).astype(int) + 1
@@ -251,6 +272,10 @@ class Candidates(list):
         A sentence for the user saying what the colour tells and what would decide.
     observed_lab : list of (3,) arrays, one per viewing angle.
     window_nm : (lo, hi)
+    scan_step_nm : float
+        Step of the scan that finds the candidates (nm): :data:`LUT_STEP_NM`, coarser for a window wider
+        than :data:`FULL_STEP_WINDOW_NM` (the message then says so). Each candidate's thickness and
+        range are refined locally at :data:`REFINE_STEP_NM` whatever the window.
     """
 
     acceptable: bool = False
@@ -258,6 +283,7 @@ class Candidates(list):
     message: str = ""
     observed_lab: list = []
     window_nm: tuple = (0.0, 0.0)
+    scan_step_nm: float = LUT_STEP_NM
 
 
 def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), angle_deg=0.0,
@@ -308,12 +334,11 @@ def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1
     de_each = np.stack([delta_e_2000(p.lab_for(dsp), o[None, :])
                         for p, o, dsp in zip(paths, observed, display)])   # (n_angles, N)
     de = np.sqrt(np.mean(de_each ** 2, axis=0))
-    minima = _refine_minima(de)
+    minima = _refine_minima(de)[:max(MINIMA_REFINED_MIN, MINIMA_REFINED_PER_TOP * int(top))]
     path = paths[0]
     result = Candidates()
     for i in minima:
-        t = _parabolic_min(path.thickness_nm, de, i)
-        result.append(_candidate_at(t, i, de, de_each, path, stack, layer, angles, observed, display, illuminant,
+        result.append(_candidate_at(i, de, path, stack, layer, angles, observed, display, illuminant,
                                     observer, polarization, na, nominal_nm, tolerance_nm))
     result.sort(key=lambda c: c.delta_e)
     result = _break_ties_by_nominal(result, nominal_nm)
@@ -322,10 +347,15 @@ def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1
     out = Candidates(_distinct(result)[:top])
     out.observed_lab = observed
     out.window_nm = (lo, hi)
+    out.scan_step_nm = float(path.thickness_nm[1] - path.thickness_nm[0])
     out.acceptable = best.delta_e <= MATCH_DE_MAX
     rival = others[0] if others else None
     out.ambiguous = bool(out.acceptable and rival is not None and rival.delta_e - best.delta_e < AMBIGUOUS_DE)
     out.message = _verdict(out, best, rival, lo, hi, nominal_nm, len(colors))
+    if out.scan_step_nm > LUT_STEP_NM * (1 + 1e-9):
+        out.message += (f" The {hi - lo:g} nm window was scanned every {out.scan_step_nm:.2g} nm (a window up to "
+                        f"{FULL_STEP_WINDOW_NM:g} nm is scanned every {LUT_STEP_NM:g} nm), so a match between "
+                        "samples can be missed; narrow the window for a full search.")
     return out
 
 
@@ -340,32 +370,72 @@ def _parabolic_min(d, de, i):
     return float(d[i])
 
 
-def _candidate_at(t, i, de, de_each, path, stack, layer, angles, observed, display, illuminant, observer,
+def _contiguous(mask: np.ndarray, i: int) -> tuple[int, int]:
+    """First and last index of the run of True in ``mask`` that holds index ``i``."""
+    j0 = j1 = i
+    while j0 > 0 and mask[j0 - 1]:
+        j0 -= 1
+    while j1 < mask.size - 1 and mask[j1 + 1]:
+        j1 += 1
+    return j0, j1
+
+
+def _local_de(stack, layer, a, b, n, angles, observed, display, illuminant, observer, polarization, na):
+    """Thicknesses (n,) of a local path over [a, b] nm and their ΔE00 to the observation, each angle (n_angles, n)."""
+    paths = [_compute_path(stack, layer, a, b, ang, illuminant, observer, polarization, na, n=n) for ang in angles]
+    de_each = np.stack([delta_e_2000(p.lab_for(dsp), o[None, :]) for p, o, dsp in zip(paths, observed, display)])
+    return paths[0].thickness_nm, de_each
+
+
+def _candidate_at(i, de, path, stack, layer, angles, observed, display, illuminant, observer,
                   polarization, na, nominal_nm, tolerance_nm) -> Candidate:
+    """The candidate of the scanned path's local minimum ``i``, refined on a local path.
+
+    The basin around ``i`` (thicknesses within one ΔE00 of its minimum, plus one scan step each side)
+    is sampled again every :data:`REFINE_STEP_NM`, widened while the colour-equal range reaches an end
+    short of the window; the thickness is the parabola vertex there and the range is read there, so
+    neither depends on the scan step.
+    """
+    d_scan = path.thickness_nm
+    lo_w, hi_w = float(d_scan[0]), float(d_scan[-1])
+    j0, j1 = _contiguous(de <= de[i] + AMBIGUOUS_DE, i)
+    a, b = float(d_scan[max(j0 - 1, 0)]), float(d_scan[min(j1 + 1, d_scan.size - 1)])
+    for _ in range(REFINE_WIDENINGS + 1):
+        n = int(np.clip(np.ceil((b - a) / REFINE_STEP_NM) + 1, 3, REFINE_MAX_POINTS))
+        d, de_each = _local_de(stack, layer, a, b, n, angles, observed, display, illuminant, observer,
+                               polarization, na)
+        de_loc = np.sqrt(np.mean(de_each ** 2, axis=0))
+        k = int(np.argmin(de_loc))
+        k0, k1 = _contiguous(de_loc <= de_loc[k] + AMBIGUOUS_DE, k)
+        width = b - a
+        grow_lo, grow_hi = k0 == 0 and a > lo_w, k1 == n - 1 and b < hi_w
+        if not (grow_lo or grow_hi):
+            break
+        a = max(lo_w, a - width) if grow_lo else a
+        b = min(hi_w, b + width) if grow_hi else b
+    t = _parabolic_min(d, de_loc, k)
     per_angle = []
     lab0 = rgb0 = None
-    for k, a in enumerate(angles):
-        cm = color_map(stack, layer, [t], [a], illuminant=illuminant, observer=observer, polarization=polarization, na=na)
-        lab_k = (xyz_to_lab(srgb_to_xyz(cm.rgb[0, 0], illuminant, observer), illuminant, observer)
-                 if display[k] else cm.lab[0, 0])
-        per_angle.append(float(delta_e_2000(lab_k, observed[k])))
-        if k == 0:
+    for q, ang in enumerate(angles):
+        cm = color_map(stack, layer, [t], [ang], illuminant=illuminant, observer=observer, polarization=polarization,
+                       na=na)
+        lab_q = (xyz_to_lab(srgb_to_xyz(cm.rgb[0, 0], illuminant, observer), illuminant, observer)
+                 if display[q] else cm.lab[0, 0])
+        per_angle.append(float(delta_e_2000(lab_q, observed[q])))
+        if q == 0:
             lab0, rgb0 = cm.lab[0, 0], cm.rgb[0, 0]
     d_e = float(np.sqrt(np.mean(np.square(per_angle))))
-    if d_e > de[i]:                    # the vertex was no better than the sample
-        t, d_e, per_angle = float(path.thickness_nm[i]), float(de[i]), [float(x[i]) for x in de_each]
-        lab0, rgb0 = path.lab[i], scaled_colors(path.xyz[i], illuminant, observer)[0]
-    within = de <= d_e + AMBIGUOUS_DE
-    j0 = j1 = i
-    while j0 > 0 and within[j0 - 1]:
-        j0 -= 1
-    while j1 < de.size - 1 and within[j1 + 1]:
-        j1 += 1
+    if d_e > de_loc[k]:                    # the vertex was no better than the sample
+        t, d_e, per_angle = float(d[k]), float(de_loc[k]), [float(x[k]) for x in de_each]
+        cm = color_map(stack, layer, [t], [angles[0]], illuminant=illuminant, observer=observer,
+                       polarization=polarization, na=na)
+        lab0, rgb0 = cm.lab[0, 0], cm.rgb[0, 0]
+    r0, r1 = _contiguous(de_loc <= d_e + AMBIGUOUS_DE, k)
     order = int(np.floor(interference_order(stack, layer, t, angles[0]))) + 1
     in_tol = None
     if nominal_nm is not None and tolerance_nm is not None:
         in_tol = bool(abs(t - nominal_nm) <= tolerance_nm)
-    return Candidate(t, d_e, order, (float(path.thickness_nm[j0]), float(path.thickness_nm[j1])), lab0, rgb0,
+    return Candidate(t, d_e, order, (float(d[r0]), float(d[r1])), lab0, rgb0,
                      srgb_to_hex(rgb0), tuple(per_angle), in_tol)
 
 
@@ -422,8 +492,16 @@ class ThicknessMap:
         (large = the order is clear from colour alone; NaN when only one order exists in the window)
     order : (H, W) int, fringe order of the chosen match (0 where none)
     gains : (3,) linear RGB gains applied by the calibration (1 without)
-    stats : dict with mean_nm, std_nm, min_nm, max_nm, uniformity, valid_fraction, pixels
+    stats : dict
+        mean_nm, median_nm, std_nm, min_nm, max_nm; p_low_nm and p_high_nm, the
+        :data:`ROBUST_PERCENTILES` of the thickness (its robust range); uniformity = (max - min)/(2 mean)
+        and uniformity_robust = (p_high - p_low)/(2 mean); valid_fraction and pixels (matched);
+        order_outliers and order_outlier_fraction (of matched pixels), see ``order_outlier``.
     message : str
+    order_outlier : (H, W) bool
+        Matched pixels whose fringe order differs from the dominant order of their neighbourhood
+        (a window of :data:`CONTINUITY_WINDOW_FRACTION` of the image's larger side): most likely a
+        wrong order, flagged for review and kept in the map.
     """
 
     thickness_nm: np.ndarray
@@ -433,6 +511,7 @@ class ThicknessMap:
     gains: np.ndarray
     stats: dict = field(default_factory=dict)
     message: str = ""
+    order_outlier: np.ndarray | None = None
 
 
 def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
@@ -524,12 +603,26 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     T, D, O, M = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm)
     full = lambda a, fill: _embed(a, (H, W), (x0, y0, x1, y1), fill)  # noqa: E731
     thick = full(T, np.nan)
-    stats = _stats(T)
-    msg = (f"{stats['valid_fraction']:.0%} of the region matched within ΔE00 {max_de:g}; "
-           f"mean {stats['mean_nm']:.1f} nm, range {stats['min_nm']:.1f}-{stats['max_nm']:.1f} nm."
-           if stats["pixels"] else f"No pixel matched within ΔE00 {max_de:g}: check the stack, lamp and calibration.")
+    outlier = _order_outliers(O, np.isfinite(T))
+    stats = _stats(T, outlier)
     say(1.0, "done")
-    return ThicknessMap(thick, full(D, np.nan), full(M, np.nan), full(O, 0), gains, stats, msg)
+    return ThicknessMap(thick, full(D, np.nan), full(M, np.nan), full(O, 0), gains, stats, _map_message(stats, max_de),
+                        full(outlier, False))
+
+
+def _map_message(stats: dict, max_de: float) -> str:
+    """One paragraph on a map's statistics: matched share, mean, robust and full range, stray orders."""
+    if not stats["pixels"]:
+        return f"No pixel matched within ΔE00 {max_de:g}: check the stack, lamp and calibration."
+    p0, p1 = ROBUST_PERCENTILES
+    msg = (f"{stats['valid_fraction']:.0%} of the region matched within ΔE00 {max_de:g}; "
+           f"mean {stats['mean_nm']:.1f} nm, range {stats['p_low_nm']:.1f}-{stats['p_high_nm']:.1f} nm "
+           f"(percentiles P{p0:g}-P{p1:g}; min-max {stats['min_nm']:.1f}-{stats['max_nm']:.1f} nm).")
+    if stats["order_outliers"]:
+        msg += (f" {stats['order_outliers']:,} matched pixels ({stats['order_outlier_fraction']:.1%}) take another "
+                "fringe order than their neighbourhood: most likely a wrong order; check them before using "
+                "the min-max.")
+    return msg
 
 
 def _box(box, W, H, name):
@@ -676,14 +769,60 @@ def _embed(a, shape, box, fill):
     return out
 
 
-def _stats(T):
+def _order_outliers(O: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    """Matched pixels whose order is the most common one nowhere around them, (h, w) bool.
+
+    The most common order is counted in windows of the continuity size (:data:`CONTINUITY_WINDOW_FRACTION`
+    of the larger side), centred on the cells of the reduced grid of :func:`_smooth_reference`. A pixel
+    is flagged when its order is the most common in neither its own cell nor any of the eight around
+    it, so a pixel beside a true order boundary is not flagged, and a stray one inside a region is.
+    """
+    h, w = O.shape
+    out = np.zeros((h, w), dtype=bool)
+    orders, counts = np.unique(O[valid], return_counts=True)
+    if orders.size < 2:
+        return out
+    size = max(3, int(round(CONTINUITY_WINDOW_FRACTION * max(h, w))))
+    step = max(1, size // 6)
+    k = max(1, size // step)
+    hh, ww = -(-h // step) * step, -(-w // step) * step
+    best = np.full((hh // step, ww // step), -1.0)
+    dominant = np.zeros((hh // step, ww // step), dtype=O.dtype)
+    for o in orders[np.argsort(counts)[::-1]]:
+        ind = np.zeros((hh, ww), dtype=np.float32)
+        ind[:h, :w] = valid & (O == o)
+        if step > 1:
+            ind = ind.reshape(hh // step, step, ww // step, step).sum(axis=(1, 3))
+        c = ndimage.uniform_filter(ind.astype(np.float64), k, mode="nearest")
+        take = c > best + 1e-12
+        best = np.where(take, c, best)
+        dominant = np.where(take, o, dominant)
+    padded = np.pad(dominant, 1, mode="edge")
+    gh, gw = dominant.shape
+    out[:] = valid
+    for dy in (0, 1, 2):
+        for dx in (0, 1, 2):
+            cell = np.repeat(np.repeat(padded[dy:dy + gh, dx:dx + gw], step, axis=0), step, axis=1)[:h, :w]
+            out &= O != cell
+    return out
+
+
+def _stats(T, outlier=None):
+    """Statistics of a thickness region (nm), NaN = unmatched; ``outlier`` flags stray-order pixels."""
     v = T[np.isfinite(T)]
     if v.size == 0:
-        return {"mean_nm": float("nan"), "std_nm": float("nan"), "min_nm": float("nan"), "max_nm": float("nan"),
-                "uniformity": float("nan"), "valid_fraction": 0.0, "pixels": 0}
+        nan = float("nan")
+        return {"mean_nm": nan, "median_nm": nan, "std_nm": nan, "min_nm": nan, "max_nm": nan, "p_low_nm": nan,
+                "p_high_nm": nan, "uniformity": nan, "uniformity_robust": nan, "valid_fraction": 0.0, "pixels": 0,
+                "order_outliers": 0, "order_outlier_fraction": 0.0}
     v = v.astype(np.float64)
     mean = float(v.sum() / v.size)
     std = float(np.sqrt(max(float(np.dot(v, v)) / v.size - mean * mean, 0.0)))
-    return {"mean_nm": mean, "std_nm": std, "min_nm": float(v.min()), "max_nm": float(v.max()),
+    p_low, median, p_high = (float(x) for x in np.percentile(v, [ROBUST_PERCENTILES[0], 50.0, ROBUST_PERCENTILES[1]]))
+    n_out = int(np.count_nonzero(outlier)) if outlier is not None else 0
+    return {"mean_nm": mean, "median_nm": median, "std_nm": std, "min_nm": float(v.min()), "max_nm": float(v.max()),
+            "p_low_nm": p_low, "p_high_nm": p_high,
             "uniformity": float((v.max() - v.min()) / (2 * mean)) if mean > 0 else float("nan"),
-            "valid_fraction": float(v.size / T.size), "pixels": int(v.size)}
+            "uniformity_robust": float((p_high - p_low) / (2 * mean)) if mean > 0 else float("nan"),
+            "valid_fraction": float(v.size / T.size), "pixels": int(v.size),
+            "order_outliers": n_out, "order_outlier_fraction": n_out / v.size}

@@ -93,3 +93,36 @@ def test_nominal_and_tolerance():
 def test_bad_arguments(kwargs, fragment):
     with pytest.raises(InputError, match=fragment):
         thickness_candidates("#4f719f", OXIDE, **kwargs)
+
+
+def test_thickness_and_range_do_not_depend_on_the_window():
+    """Each candidate is refined on a local path, so a wide window (coarse scan) gives the same answer."""
+    from physics.inverse import FULL_STEP_WINDOW_NM, LUT_STEP_NM
+    colour = _hex(OXIDE, 100.0)
+    narrow = thickness_candidates(colour, OXIDE, 0, (0, 1000))
+    wide = thickness_candidates(colour, OXIDE, 0, (0, 100_000))
+    assert narrow.scan_step_nm == pytest.approx(LUT_STEP_NM) and wide.scan_step_nm > LUT_STEP_NM
+    assert wide[0].thickness_nm == pytest.approx(narrow[0].thickness_nm, abs=0.1)
+    assert np.allclose(wide[0].range_nm, narrow[0].range_nm, atol=0.2)
+    assert narrow[0].range_nm[1] - narrow[0].range_nm[0] > 2          # not collapsed to one sample
+    assert "scanned every" in wide.message and "scanned every" not in narrow.message
+    assert f"{FULL_STEP_WINDOW_NM:g}" in wide.message
+
+
+def test_map_statistics_give_a_robust_range_and_flag_stray_orders():
+    from physics.inverse import ROBUST_PERCENTILES, _order_outliers, _stats
+    # an invented thickness field: a smooth 100 -> 500 nm ramp (orders 1-3) with 30 stray pixels of order 5
+    h, w = 80, 200
+    T = np.tile(np.linspace(100.0, 500.0, w, dtype=np.float32), (h, 1))
+    O = np.where(T < 190, 1, np.where(T < 380, 2, 3)).astype(np.int16)
+    rng = np.random.default_rng(1)
+    ys, xs = rng.integers(0, h, 30), rng.integers(0, w, 30)
+    T[ys, xs], O[ys, xs] = 950.0, 5
+    flagged = _order_outliers(O, np.isfinite(T))
+    assert flagged[ys, xs].all() and flagged.sum() == len(set(zip(ys, xs)))   # none beside the true boundaries
+    st = _stats(T, flagged)
+    assert st["max_nm"] == 950.0 and st["p_high_nm"] <= 500.0
+    assert st["p_low_nm"] == pytest.approx(np.percentile(T, ROBUST_PERCENTILES[0]))
+    assert st["uniformity_robust"] < st["uniformity"] and st["order_outliers"] == flagged.sum()
+    empty = _stats(np.full((3, 3), np.nan))
+    assert empty["pixels"] == 0 and empty["order_outliers"] == 0

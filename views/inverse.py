@@ -2,8 +2,8 @@
 
 Shares the explorer's state: the stack, the unknown layer (the swept layer), the
 viewing angle, the lamp and the observer are the ones set there. Every number
-comes from ``physics.inverse``; photo maps run in the shared thread pool with a
-progress bar, and a new request supersedes an unfinished one.
+comes from ``physics.inverse``; photo maps run in the worker processes (views/workers.py)
+with a progress bar and a Cancel, and a new request supersedes an unfinished one.
 """
 
 from __future__ import annotations
@@ -13,26 +13,27 @@ import csv
 import io
 import json
 import logging
-from datetime import date
+from datetime import date, datetime
 from functools import partial
 
 import numpy as np
 import panel as pn
 from bokeh.events import SelectionGeometry, Tap
-from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, HoverTool, LinearColorMapper, Range1d)
+from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, DataRange1d, HoverTool, LinearColorMapper,
+                          Range1d)
 from bokeh.palettes import Viridis256, Magma256
 from bokeh.plotting import figure
 
-from physics import InputError, thickness_candidates, thickness_map
+from physics import InputError, parse_color, thickness_candidates, thickness_map
 from physics.imageio import box_mean_linear, load_image
-from physics.inverse import AMBIGUOUS_DE, MATCH_DE_MAX, _lab_from_linear
+from physics.inverse import AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, ROBUST_PERCENTILES, _lab_from_linear
 
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
 from .uploads import CappedDropper
-from .state import THICKNESS_LIMITS_NM, compute_strip
+from .state import ANGLE_MAX_DEG, THICKNESS_LIMITS_NM, compute_strip, parse_number
 
 log = logging.getLogger("fringegauge")
 
@@ -42,6 +43,20 @@ DISPLAY_MAX_SIDE = 900
 MAX_UPLOAD_BYTES = 200 * 2**20
 #: Half-size of the square averaged when a point of a photo is picked (pixels).
 PICK_HALF_SIZE = 4
+#: Widest search window the page accepts (nm): the widest that ``physics.inverse`` scans at its full
+#: step, so a window never coarsens the search. Colours of high orders grow pale and repeat, so a
+#: wider window adds ambiguity rather than answers.
+WINDOW_MAX_WIDTH_NM = FULL_STEP_WINDOW_NM
+#: Width of the typed-colour column (px); messages beside its fields wrap inside it.
+TYPED_COLUMN_PX = 340
+#: Width of a field message in that column (px).
+MESSAGE_PX = TYPED_COLUMN_PX - 20
+#: Stylesheet letting a field message wrap anywhere (a quoted input may be one long word).
+WRAP_CSS = ".fg-error { white-space: normal; overflow-wrap: anywhere; }"
+#: Candidate labels on the strip closer than this fraction of its span to an end are aligned inward.
+LABEL_EDGE_FRACTION = 0.06
+#: Bins of the thickness histogram over the map's robust range.
+HIST_BINS = 60
 
 
 class ColourToThickness:
@@ -55,7 +70,10 @@ class ColourToThickness:
         self._strip_stale = False
         self.roi = None
         self.result = None
+        self.result_label = ""                  # which run the map on the page is ("map 2, made 14:02:33")
         self._job = 0
+        self._runs = 0                          # maps started for the open photo
+        self._cancelled_job = None              # the job the user cancelled, until another starts
         self.last_candidates = None
         self._build()
 
@@ -63,12 +81,16 @@ class ColourToThickness:
     def _build(self):
         self.colour = Field("Observed colour", width=300, placeholder="#4f719f · 79, 113, 159 · lab(52, -3, -27)",
                             css="fg-colour-field")
-        self.colour2 = Field("Same spot, tilted (optional colour)", width=190, placeholder="#6a7fae")
-        self.angle2 = Field("at angle (°)", width=100, placeholder="45")
-        self.win_lo = Field("Window from (nm)", width=140)
-        self.win_hi = Field("to (nm)", width=140)
-        self.nominal = Field("Nominal (nm, optional)", width=140)
-        self.tolerance = Field("± tolerance (nm)", width=140)
+        self.colour2 = Field("Same spot tilted: colour (optional)", width=190, placeholder="e.g. #6a7fae",
+                             css="fg-colour2-field")
+        self.angle2 = Field("Tilt angle (°)", width=110, placeholder="e.g. 45", css="fg-angle2-field")
+        self.win_lo = Field("Window from (nm)", width=150, css="fg-win-lo")
+        self.win_hi = Field("Window to (nm)", width=150, css="fg-win-hi")
+        self.nominal = Field("Nominal (nm, optional)", width=150, css="fg-nominal")
+        self.tolerance = Field("± tolerance (nm)", width=150, css="fg-tolerance")
+        for f in self._typed_fields():
+            f.message.width = MESSAGE_PX
+            f.message.stylesheets = [*f.message.stylesheets, WRAP_CSS]
         self.win_lo.set_text("0")
         self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
         self.find = pn.widgets.Button(label="Find thicknesses", color="primary", width=200, margin=(6, 5),
@@ -77,7 +99,7 @@ class ColourToThickness:
                                      "layer), viewing angle, lamp and observer are those of the film explorer.",
                                      alert_type="light", margin=(5, 5), css_classes=["fg-verdict"])
         self.table = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-candidates"])
-        self.cand_src = ColumnDataSource(dict(x=[], label=[]))
+        self.cand_src = ColumnDataSource(dict(x=[], label=[], align=[]))
         self.strip_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         st = figure(height=130, sizing_mode="stretch_width", tools="xpan,xwheel_zoom,reset,save",
                     title="Candidates on the colour strip at the current angle", x_axis_label="thickness (nm)",
@@ -86,7 +108,7 @@ class ColourToThickness:
         st.scatter(x="x", y=0.5, size=16, marker="inverted_triangle", color="white", line_color="black",
                    source=self.cand_src)
         st.text(x="x", y=0.75, text="label", source=self.cand_src, text_font_size="11px", text_color="black",
-                text_align="center", background_fill_color="white", background_fill_alpha=0.8)
+                text_align="align", background_fill_color="white", background_fill_alpha=0.8)
         st.yaxis.visible = False
         st.ygrid.visible = False
         self.strip_fig = st
@@ -115,8 +137,8 @@ class ColourToThickness:
         self.map_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(5, 5))
         self.photo_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         self.box_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[], color=[], name=[]))
-        pf = figure(height=380, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
-                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+        pf = figure(height=420, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
+                    **_image_ranges(),
                     title="Photo: drag to draw the selected box; in 'pick' mode tap a point or drag a rectangle")
         pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
         pf.rect(x="x", y="y", width="w", height="h", fill_alpha=0.0, line_color="color", line_width=2,
@@ -134,7 +156,7 @@ class ColourToThickness:
         self.tmap_src = ColumnDataSource(dict(image=[], de=[], x=[], y=[], dw=[], dh=[]))
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
-                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+                    **_image_ranges(),
                     title="Thickness map (grey: no acceptable match)")
         img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
         tm.add_tools(HoverTool(renderers=[img], tooltips=[("x, y", "$x{0}, $y{0} px"), ("thickness", "@image{0.0} nm"),
@@ -144,7 +166,7 @@ class ColourToThickness:
         self.cmap_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         self.cmapper = LinearColorMapper(palette=Magma256[::-1], low=0, high=MATCH_DE_MAX, nan_color="#d9d9d9")
         cf = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
-                    x_range=Range1d(0, 1), y_range=Range1d(0, 1),
+                    **_image_ranges(),
                     title="Confidence: ΔE00 of the match (lower is better)")
         cf.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.cmap_src, color_mapper=self.cmapper)
         cf.add_layout(ColorBar(color_mapper=self.cmapper, title="ΔE00", width=12), "right")
@@ -168,33 +190,107 @@ class ColourToThickness:
         self.colour.input.param.watch(locked(self._on_find), "enter_pressed")
         self.run_map.on_click(locked(self._on_run_map))
         self.cancel_map.on_click(locked(lambda e: self.cancel()))
+        for group, fields in self._groups().items():
+            for f in fields:
+                f.input.param.watch(locked(partial(self._on_field, group)), "value")
         self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "illuminant",
                                                     "observer", "polarization", "na", "thickness_max_nm"])
 
     # ------------------------------------------------------------------ typed colour
-    def _window(self):
-        lo = self._num(self.win_lo, "Window from", *THICKNESS_LIMITS_NM)
-        hi = self._num(self.win_hi, "Window to", *THICKNESS_LIMITS_NM)
-        if lo is None or hi is None:
-            return None
-        if not lo < hi:
-            self.win_hi.show_error("The window's end must be above its start.")
-            return None
-        return lo, hi
+    def _typed_fields(self):
+        return (self.colour, self.colour2, self.angle2, self.win_lo, self.win_hi, self.nominal, self.tolerance)
 
-    def _num(self, field, name, lo, hi, optional=False):
-        text = field.input.value.strip()
-        if optional and not text:
-            field.show_error(None)
-            return None
-        from .state import parse_number
+    def _groups(self):
+        """Fields checked together (a pair's check depends on both), keyed by the name of their checker."""
+        return {"colour": (self.colour,), "tilt": (self.colour2, self.angle2), "window": (self.win_lo, self.win_hi),
+                "target": (self.nominal, self.tolerance)}
+
+    def _on_field(self, group, *_):
+        """A field changed: check its group at once, so a message goes as soon as its field is valid or empty."""
         try:
-            v = parse_number(text, name, lo, hi, "nm" if "°" not in name else "°")
-        except InputError as exc:
-            field.show_error(str(exc))
-            raise _Stop from None
-        field.show_error(None)
-        return v
+            self._check({group}, live=True)
+        except _Stop:
+            pass                                   # the message is beside the field
+
+    def _check(self, groups, live=False):
+        """Check the named field groups; every field gets its message (or loses it).
+
+        ``live``: a field still empty is not an error yet (the user may be filling it in), but a message
+        about it from the last search stays while its cause does. Returns the values read:
+        ``colour``, ``tilt`` ((colour, angle °) or None), ``window`` ((lo, hi) nm), ``nominal`` and
+        ``tolerance`` (nm or None). Raises :class:`_Stop` when any field is invalid.
+        """
+        errors, values = {}, {}
+
+        def number(field, lo, hi, unit):
+            text = field.input.value.strip()
+            if not text:
+                return None
+            try:
+                return parse_number(text, field.input.name, lo, hi, unit)
+            except InputError as exc:
+                errors[field] = str(exc)
+                return None
+
+        def missing(field, text):
+            if not live or field.message.visible:
+                errors[field] = text
+
+        def colour(field):
+            text = field.input.value.strip()
+            if not text:
+                return None
+            try:
+                parse_color(text)
+            except InputError as exc:
+                errors[field] = f"{field.input.name}: {exc}"
+                return None
+            return text
+
+        if "colour" in groups:
+            values["colour"] = colour(self.colour)
+            if values["colour"] is None and self.colour not in errors:
+                missing(self.colour, f"{self.colour.input.name}: type a colour, e.g. #4f719f, 79, 113, 159 or "
+                                     "lab(52, -3, -27).")
+        if "tilt" in groups:
+            c2 = colour(self.colour2)
+            a2 = number(self.angle2, 0.0, ANGLE_MAX_DEG, "°")
+            if c2 is not None and a2 is None and self.angle2 not in errors:
+                missing(self.angle2, f"{self.angle2.input.name}: type the angle the second colour was seen at, "
+                                     f"in degrees from the normal (0 to {ANGLE_MAX_DEG:g}).")
+            values["tilt"] = (c2, a2) if c2 is not None and a2 is not None else None
+        if "window" in groups:
+            lo = number(self.win_lo, *THICKNESS_LIMITS_NM, "nm")
+            hi = number(self.win_hi, *THICKNESS_LIMITS_NM, "nm")
+            for f, v, what in ((self.win_lo, lo, "thinnest"), (self.win_hi, hi, "thickest")):
+                if v is None and f not in errors:
+                    missing(f, f"{f.input.name}: type the {what} thickness to search, in nm.")
+            if lo is not None and hi is not None:
+                if not lo < hi:
+                    errors[self.win_hi] = (f"{self.win_hi.input.name}: the end ({hi:g} nm) must be above the start "
+                                           f"({lo:g} nm); swap them or type a larger end.")
+                elif hi - lo > WINDOW_MAX_WIDTH_NM:
+                    errors[self.win_hi] = (f"{self.win_hi.input.name}: the window is {hi - lo:g} nm wide; search at "
+                                           f"most {WINDOW_MAX_WIDTH_NM:g} nm at once (high orders grow pale and "
+                                           "repeat): narrow it around the expected thickness.")
+            values["window"] = (lo, hi) if not errors.keys() & {self.win_lo, self.win_hi} else None
+        if "target" in groups:
+            nominal = number(self.nominal, *THICKNESS_LIMITS_NM, "nm")
+            tol = number(self.tolerance, 0.001, THICKNESS_LIMITS_NM[1], "nm")
+            if tol is not None and nominal is None and self.nominal not in errors:
+                missing(self.tolerance, f"{self.tolerance.input.name}: a tolerance needs a nominal thickness; "
+                                        f"type {self.nominal.input.name.split(' (')[0]} too, or clear the tolerance.")
+            values["nominal"], values["tolerance"] = nominal, tol
+        for group in groups:
+            for f in self._groups()[group]:
+                f.show_error(errors.get(f))
+        if errors:
+            raise _Stop(" ".join(errors.values()))
+        return values
+
+    def _window(self):
+        """The search window (lo, hi) nm; raises :class:`_Stop` when a window field is invalid."""
+        return self._check({"window"})["window"]
 
     def _on_find(self, *_):
         try:
@@ -202,39 +298,56 @@ class ColourToThickness:
         except _Stop:
             pass
 
+    def _refuse(self, text):
+        """A search was refused: drop the previous result so it cannot be read as this one's answer."""
+        self.last_candidates = None
+        self.verdict.alert_type = "warning"
+        self.verdict.object = _esc(text)
+        self.table.object = ""
+        self.cand_src.data = dict(x=[], label=[], align=[])
+
     def find_candidates(self, colour, lab=None):
-        """Rank thicknesses for a typed colour (or a picked point's CIELAB); shows the verdict and table."""
+        """Rank thicknesses for a typed colour (or a picked point's CIELAB); shows the verdict and table.
+
+        Every field is checked first; when any is invalid, each says why beside it, the previous
+        result is cleared and None is returned.
+        """
         s = self.ex.state
-        window = self._window()
-        nominal = self._num(self.nominal, "Nominal", *THICKNESS_LIMITS_NM, optional=True)
-        tol = self._num(self.tolerance, "Tolerance", 0.001, THICKNESS_LIMITS_NM[1], optional=True)
-        second = self.colour2.input.value.strip()
-        colours, angles = [colour if lab is None else f"lab({lab[0]:.4f}, {lab[1]:.4f}, {lab[2]:.4f})"], [s.angle_deg]
-        if second:
-            a2 = self._num(self.angle2, "Second angle (°)", 0.0, 89.9)
-            if a2 is None:
-                self.angle2.show_error("Give the viewing angle of the second colour.")
-                return None
-            colours.append(second)
-            angles.append(a2)
+        groups = {"tilt", "window", "target"} | ({"colour"} if lab is None else set())
+        try:
+            v = self._check(groups)
+        except _Stop:
+            bad = [f.input.name for f in self._typed_fields() if f.message.visible]
+            self._refuse(f"Not searched: fix {', '.join(bad) or 'the field marked in red'} (the message beside "
+                         "it says how), then press “Find thicknesses”. The previous result was cleared.")
+            return None
+        first = v["colour"] if lab is None else f"lab({lab[0]:.4f}, {lab[1]:.4f}, {lab[2]:.4f})"
+        colours, angles = [first], [s.angle_deg]
+        if v["tilt"] is not None:
+            colours.append(v["tilt"][0])
+            angles.append(v["tilt"][1])
+        nominal, tol = v["nominal"], v["tolerance"]
         try:
             cands = thickness_candidates(colours if len(colours) > 1 else colours[0], s.stack, s.swept_layer,
-                                         window, angles if len(angles) > 1 else angles[0], s.illuminant_spec(), top=6,
-                                         observer=s.observer, polarization=s.polarization, na=s.na,
+                                         v["window"], angles if len(angles) > 1 else angles[0], s.illuminant_spec(),
+                                         top=6, observer=s.observer, polarization=s.polarization, na=s.na,
                                          nominal_nm=nominal, tolerance_nm=tol)
         except InputError as exc:
-            self.colour.show_error(str(exc))
+            self._refuse(f"Not searched: {exc}")
             return None
-        self.colour.show_error(None)
         self.last_candidates = cands
-        self._show_candidates(cands, colours[0] if lab is None else None, lab)
+        note = ""
+        if nominal is not None and tol is None:
+            note = (f" The nominal {nominal:g} nm only breaks near-ties: the in-tolerance check needs both "
+                    f"{self.nominal.input.name.split(' (')[0]} and {self.tolerance.input.name}.")
+        self._show_candidates(cands, colours[0] if lab is None else None, lab, note)
         return cands
 
-    def _show_candidates(self, cands, typed, lab):
+    def _show_candidates(self, cands, typed, lab, note=""):
         kind = "danger" if not cands.acceptable else ("warning" if cands.ambiguous else "success")
         self.verdict.alert_type = kind
-        self.verdict.object = _esc(cands.message) + (" Estimates from colour are not certified metrology."
-                                                     if cands.acceptable else "")
+        self.verdict.object = _esc(cands.message + note) + (" Estimates from colour are not certified metrology."
+                                                            if cands.acceptable else "")
         from physics import lab_to_xyz, xyz_to_srgb, srgb_to_hex
         s = self.ex.state
         obs_hex = srgb_to_hex(xyz_to_srgb(lab_to_xyz(cands.observed_lab[0], s.illuminant_spec(), s.observer),
@@ -253,8 +366,15 @@ class ColourToThickness:
             f"<th>observed · predicted</th>{tol_head}</tr>{rows}</table>"
             f"<div style='font-size:11px;color:#555'>ΔE00 ≤ {AMBIGUOUS_DE:g}: not distinguishable by eye; "
             f"> {MATCH_DE_MAX:g}: not accepted as a match (common practice).</div>")
-        self.cand_src.data = dict(x=[c.thickness_nm for c in cands], label=[f"#{i + 1}" for i in range(len(cands))])
         self._refresh_strip()
+        x = [c.thickness_nm for c in cands]
+        self.cand_src.data = dict(x=x, label=[f"#{i + 1}" for i in range(len(cands))], align=self._label_align(x))
+
+    def _label_align(self, x):
+        """Text alignment of each strip label: inward near an end of the strip, so no label is cut off."""
+        lo, hi = self.strip_fig.x_range.start, self.strip_fig.x_range.end
+        edge = LABEL_EDGE_FRACTION * max(hi - lo, 1e-9)
+        return ["left" if v < lo + edge else "right" if v > hi - edge else "center" for v in x]
 
     def _refresh_strip(self):
         s = self.ex.state
@@ -267,6 +387,8 @@ class ColourToThickness:
         self.strip_src.data = dict(image=[_rgba(st.rgb[None, :, :])], x=[d[0] - dd / 2], y=[0],
                                    dw=[d[-1] - d[0] + dd], dh=[1])
         self.strip_fig.x_range.update(start=d[0], end=d[-1])
+        if self.cand_src.data["x"]:
+            self.cand_src.data = dict(self.cand_src.data, align=self._label_align(self.cand_src.data["x"]))
 
     def _on_state(self, *events):
         if any(e.name == "thickness_max_nm" for e in events):
@@ -299,13 +421,15 @@ class ColourToThickness:
         self.photo_msg.show_error(None)
         self.photo, self.photo_name = photo, name
         self.calib_box = self.roi = None
-        self.result = None
+        self._job += 1                            # a map still running belongs to the previous photo
+        self._runs = 0
+        self._clear_map()
+        self.progress.visible = self.cancel_map.visible = False
+        self.progress_text.object = ""
         step = max(1, int(np.ceil(max(photo.width, photo.height) / DISPLAY_MAX_SIDE)))
         small = photo.rgb[::step, ::step]
         rgb = small.astype(float) / (65535.0 if photo.bit_depth == 16 else 255.0)
         self.photo_src.data = dict(image=[_rgba(rgb)], x=[0], y=[0], dw=[photo.width], dh=[photo.height])
-        self.photo_fig.x_range.update(start=0, end=photo.width)
-        self.photo_fig.y_range.update(start=photo.height, end=0)
         self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo.bit_depth}-bit"
         self._draw_boxes()
         self.run_map.disabled = False
@@ -431,12 +555,33 @@ class ColourToThickness:
     def _on_run_map(self, *_):
         self.start_map()
 
+    def _shown_map_text(self) -> str:
+        """Which map the page shows, as a sentence."""
+        if self.result is None:
+            return "No map is shown."
+        return f"The map shown is the earlier one ({self.result_label})."
+
     def cancel(self) -> None:
         """Drop the running photo map: it stops at its next stage and its result is never shown."""
+        self._cancelled_job = self._job
         self._job += 1
         self.progress.visible = self.cancel_map.visible = False
         self.run_map.disabled = self.photo is None
-        self.progress_text.object = "Cancelled; the server stops the map at its next stage."
+        self.progress_text.object = ("Cancelled: this map's result will not be shown; the server stops it at its "
+                                     "next stage. " + _esc(self._shown_map_text()))
+
+    def _clear_map(self):
+        """Take the map, its statistics and downloads off the page."""
+        self.result = None
+        self.result_label = ""
+        for src in (self.tmap_src, self.cmap_src):
+            src.data = {k: [] for k in src.data}
+        self.hist_src.data = dict(left=[], right=[], top=[])
+        self.hist_fig.title.text = "Histogram of thickness"
+        self.stats.object = ""
+        self.map_msg.visible = False
+        for w in (self.dl_npy, self.dl_png, self.dl_csv):
+            w.disabled = True
 
     def start_map(self, sync=False):
         """Compute the thickness map of the photo (off the event loop when served)."""
@@ -445,15 +590,16 @@ class ColourToThickness:
         s = self.ex._snapshot()
         try:
             ref = "substrate" if self.reference.value == "substrate" else _grey_value(self.grey)
-            window = self._window()
-            nominal = self._num(self.nominal, "Nominal", *THICKNESS_LIMITS_NM, optional=True)
+            v = self._check({"window", "target"})
         except (_Stop, InputError) as exc:
-            self.map_msg.object, self.map_msg.alert_type, self.map_msg.visible = str(exc), "danger", True
+            self.map_msg.object = _esc(f"Not started: {exc} " + self._shown_map_text())
+            self.map_msg.alert_type, self.map_msg.visible = "danger", True
             return
-        if window is None:
-            return
+        window, nominal = v["window"], v["nominal"]
         self._job += 1
-        job = self._job
+        self._cancelled_job = None
+        self._runs += 1
+        job, run_number = self._job, self._runs
         args = dict(image=self.photo, stack=s.stack, layer=s.swept_layer, thickness_nm=window,
                     reference_box=self.calib_box, illuminant=s.illuminant_spec(), angle_deg=s.angle_deg,
                     observer=s.observer, polarization=s.polarization, na=s.na, reference=ref, roi=self.roi,
@@ -482,9 +628,9 @@ class ColourToThickness:
                         result = thickness_map(progress=channel.report, **args), None
                     except InputError as exc:
                         result = None, str(exc)
-                    self._finish_map(job, s, *result)
+                    self._finish_map(job, s, *result, run_number=run_number)
             except InputError as exc:
-                self._finish_map(job, s, None, str(exc))
+                self._finish_map(job, s, None, str(exc), run_number=run_number)
             except JobCancelled:
                 pass
             return
@@ -507,50 +653,67 @@ class ColourToThickness:
             except Exception:  # never lose the session to one failed computation
                 log.exception("photo thickness map failed")
                 result = None, "The thickness map failed unexpectedly; the server log has the details."
-            post_to_page(doc, partial(self._finish_map, job, s, *result))
+            post_to_page(doc, partial(self._finish_map, job, s, *result, run_number=run_number))
         pn.state.execute(run)
 
-    def _finish_map(self, job, s, result, error):
-        if job != self._job:                      # superseded by a newer request
+    def _finish_map(self, job, s, result, error, run_number=0):
+        if job != self._job:                      # superseded by a newer request, or cancelled
+            if job == self._cancelled_job and self._job == job + 1 and result is not None:
+                self.progress_text.object = _esc(
+                    "Cancelled, but the map had already finished on the server before the cancel reached it; "
+                    "as asked, its result is not shown. " + self._shown_map_text()
+                    + " Press “Make thickness map” to run it again.")
             return
         self.progress.visible = self.cancel_map.visible = False
         self.run_map.disabled = False
         if error:
-            self.map_msg.object, self.map_msg.alert_type, self.map_msg.visible = error, "danger", True
+            self.map_msg.object = _esc(f"{error} " + self._shown_map_text())
+            self.map_msg.alert_type, self.map_msg.visible = "danger", True
             return
         self.result, self.result_state = result, s
+        self.result_label = f"map {run_number} of {self.photo_name}, made {datetime.now():%H:%M:%S}"
         st = result.stats
-        self.map_msg.object = _esc(result.message) + " Colour estimates are not certified metrology."
-        self.map_msg.alert_type = "success" if st["valid_fraction"] > 0.5 else "warning"
+        self.map_msg.object = (f"<b>{_esc(self.result_label.capitalize())}.</b> " + _esc(result.message)
+                               + " Colour estimates are not certified metrology.")
+        self.map_msg.alert_type = ("success" if st["valid_fraction"] > 0.5 and not st["order_outliers"]
+                                   else "warning")
         self.map_msg.visible = True
+        self.progress_text.object = ""
         H, W = result.thickness_nm.shape
         step = max(1, int(np.ceil(max(W, H) / DISPLAY_MAX_SIDE)))
         T = result.thickness_nm[::step, ::step]
         D = result.delta_e[::step, ::step]
         self.tmap_src.data = dict(image=[T], de=[D], x=[0], y=[0], dw=[W], dh=[H])
         self.cmap_src.data = dict(image=[D], x=[0], y=[0], dw=[W], dh=[H])
-        for f in (self.tmap_fig, self.conf_fig):
-            f.x_range.update(start=0, end=W)
-            f.y_range.update(start=H, end=0)
+        p0, p1 = ROBUST_PERCENTILES
         if st["pixels"]:
-            self.tmapper.update(low=st["min_nm"], high=max(st["max_nm"], st["min_nm"] + 1e-6))
+            lo, hi = st["p_low_nm"], max(st["p_high_nm"], st["p_low_nm"] + 1e-6)
+            self.tmapper.update(low=lo, high=hi)
             v = result.thickness_nm[np.isfinite(result.thickness_nm)]
-            top, edges = np.histogram(v, bins=60)
+            top, edges = np.histogram(v, bins=HIST_BINS, range=(lo, hi))
+            outside = int(v.size - top.sum())
             self.hist_src.data = dict(left=edges[:-1], right=edges[1:], top=top)
             self.hist_fig.x_range.update(start=edges[0], end=edges[-1])
             self.hist_fig.y_range.update(start=0, end=max(1, top.max()) * 1.05)
+            self.hist_fig.title.text = (f"Histogram of thickness, P{p0:g}–P{p1:g} range"
+                                        + (f" ({outside:,} pixels outside it)" if outside else ""))
         else:
             self.hist_src.data = dict(left=[], right=[], top=[])
+            self.hist_fig.title.text = "Histogram of thickness"
         g = result.gains
-        self.stats.object = (
-            "<table style='font-size:13px' cellpadding='2'>"
-            + "".join(f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in (
-                ("mean", f"{st['mean_nm']:.1f} nm"), ("standard deviation", f"{st['std_nm']:.1f} nm"),
-                ("min – max", f"{st['min_nm']:.1f} – {st['max_nm']:.1f} nm"),
-                ("uniformity (max − min)/(2 mean)", f"{100 * st['uniformity']:.1f} %"),
-                ("pixels matched", f"{st['pixels']:,} ({100 * st['valid_fraction']:.1f} % of region)"),
-                ("calibration gains R, G, B", f"{g[0]:.3f}, {g[1]:.3f}, {g[2]:.3f}")))
-            + "</table>")
+        rows = (
+            ("mean", f"{st['mean_nm']:.1f} nm"), ("median", f"{st['median_nm']:.1f} nm"),
+            ("standard deviation", f"{st['std_nm']:.1f} nm"),
+            (f"range P{p0:g} – P{p1:g} (percentiles)", f"{st['p_low_nm']:.1f} – {st['p_high_nm']:.1f} nm"),
+            ("min – max", f"{st['min_nm']:.1f} – {st['max_nm']:.1f} nm"),
+            (f"uniformity (P{p1:g} − P{p0:g})/(2 mean)", f"{100 * st['uniformity_robust']:.1f} %"),
+            ("uniformity (max − min)/(2 mean)", f"{100 * st['uniformity']:.1f} %"),
+            ("pixels matched", f"{st['pixels']:,} ({100 * st['valid_fraction']:.1f} % of region)"),
+            ("of another order than their neighbourhood",
+             f"{st['order_outliers']:,} ({100 * st['order_outlier_fraction']:.1f} % of matched)"),
+            ("calibration gains R, G, B", f"{g[0]:.3f}, {g[1]:.3f}, {g[2]:.3f}"))
+        self.stats.object = ("<table style='font-size:13px' cellpadding='2'>"
+                             + "".join(f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in rows) + "</table>")
         for w in (self.dl_npy, self.dl_png, self.dl_csv):
             w.disabled = False
 
@@ -564,7 +727,7 @@ class ColourToThickness:
     def _png(self):
         s = self.result_state
         return io.BytesIO(render.colorbar_png(self.result.thickness_nm, label="thickness (nm)",
-                                              title=f"Thickness of layer {s.swept_layer}: {_stack_text(s)}",
+                                              title=f"Thickness of layer {s.swept_layer + 1}: {_stack_text(s)}",
                                               footer=_footer()))
 
     def _stats_csv(self):
@@ -572,27 +735,32 @@ class ColourToThickness:
         out = io.StringIO()
         out.write(f"# fringegauge thickness map statistics (computed from colour; not certified metrology)\n"
                   f"# date: {date.today().isoformat()}\n# photo: {getattr(self, 'photo_name', '')}\n"
-                  f"# stack: {_stack_text(s)}; unknown layer {s.swept_layer}\n"
+                  f"# stack: {_stack_text(s)}; unknown layer {s.swept_layer + 1} (from the top)\n"
                   f"# illuminant {s.illuminant}, observer {s.observer} deg, angle {s.angle_deg:g} deg\n"
-                  f"# calibration box: {self.calib_box}; region: {self.roi}\n")
+                  f"# calibration box: {self.calib_box}; region: {self.roi}\n"
+                  f"# {self.result_label}\n")
         w = csv.writer(out)
+        p0, p1 = ROBUST_PERCENTILES
         w.writerow(["mean_nm", "std_nm", "min_nm", "max_nm", "uniformity", "valid_fraction", "pixels",
-                    "gain_r", "gain_g", "gain_b"])
+                    "gain_r", "gain_g", "gain_b", "median_nm", f"p{p0:g}_nm", f"p{p1:g}_nm", "uniformity_robust",
+                    "order_outliers"])
         w.writerow([f"{st['mean_nm']:.3f}", f"{st['std_nm']:.3f}", f"{st['min_nm']:.3f}", f"{st['max_nm']:.3f}",
                     f"{st['uniformity']:.5f}", f"{st['valid_fraction']:.5f}", st["pixels"],
-                    f"{g[0]:.5f}", f"{g[1]:.5f}", f"{g[2]:.5f}"])
+                    f"{g[0]:.5f}", f"{g[1]:.5f}", f"{g[2]:.5f}", f"{st['median_nm']:.3f}", f"{st['p_low_nm']:.3f}",
+                    f"{st['p_high_nm']:.3f}", f"{st['uniformity_robust']:.5f}", st["order_outliers"]])
         out.seek(0)
         return out
 
     # ------------------------------------------------------------------ layout
     def panel(self):
+        def pair(a, b):                        # two inputs keep their row; their messages wrap below it
+            return pn.Column(pn.Row(a.input, b.input, margin=0), a.message, b.message, margin=0,
+                             width=TYPED_COLUMN_PX)
         typed = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A colour to thickness candidates</h3>"),
             self.colour.view(),
-            pn.Row(self.colour2.view(), self.angle2.view(), margin=0),
-            pn.Row(self.win_lo.view(), self.win_hi.view(), margin=0),
-            pn.Row(self.nominal.view(), self.tolerance.view(), margin=0),
-            self.find, width=340)
+            pair(self.colour2, self.angle2), pair(self.win_lo, self.win_hi), pair(self.nominal, self.tolerance),
+            self.find, width=TYPED_COLUMN_PX)
         results = pn.Column(self.verdict, self.table, pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
                             sizing_mode="stretch_width")
         photo_controls = pn.Column(
@@ -632,6 +800,11 @@ def _locked(fn):
         doc.add_next_tick_callback(fn)
     else:
         fn()
+
+
+def _image_ranges():
+    """x and y ranges of a photo figure: fitted to the image (y down), so with ``match_aspect`` a pixel is square."""
+    return dict(x_range=DataRange1d(range_padding=0), y_range=DataRange1d(range_padding=0, flipped=True))
 
 
 class _Stop(Exception):
