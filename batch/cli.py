@@ -52,7 +52,9 @@ __all__ = ["run_batch", "process_photo", "main", "build_parser", "DEFAULT_PATTER
 DEFAULT_PATTERNS = ("*.jpg", "*.jpeg", "*.png", "*.tif", "*.tiff")
 #: Columns of summary.csv, in order; also the keys of each row returned by :func:`run_batch`.
 SUMMARY_FIELDS = ("file", "status", "message", "mean_nm", "std_nm", "min_nm", "max_nm", "uniformity",
-                  "valid_fraction", "gains_r", "gains_g", "gains_b", "seconds")
+                  "valid_fraction", "gains_r", "gains_g", "gains_b", "seconds",
+                  # robust statistics, after the first columns so that readers by position keep working
+                  "median_nm", "p_low_nm", "p_high_nm", "uniformity_robust", "order_outlier_fraction")
 #: Default output folder, inside the photo folder.
 OUT_SUBDIR = "thickness_maps"
 #: Said on every summary and figure.
@@ -60,10 +62,12 @@ NOT_METROLOGY = "computed from colour; not certified metrology"
 #: Seconds allowed to reach a scheduler given by address.
 CONNECT_TIMEOUT_S = 15
 _PROG = "python -m batch"
-_STAT_KEYS = ("mean_nm", "std_nm", "min_nm", "max_nm", "uniformity", "valid_fraction")
+_STAT_KEYS = ("mean_nm", "std_nm", "min_nm", "max_nm", "uniformity", "valid_fraction", "median_nm", "p_low_nm",
+              "p_high_nm", "uniformity_robust", "order_outlier_fraction")
 #: Decimal places of each numeric column in summary.csv.
 _CSV_DECIMALS = {"mean_nm": 2, "std_nm": 2, "min_nm": 2, "max_nm": 2, "uniformity": 4, "valid_fraction": 4,
-                 "gains_r": 5, "gains_g": 5, "gains_b": 5, "seconds": 2}
+                 "gains_r": 5, "gains_g": 5, "gains_b": 5, "seconds": 2, "median_nm": 2, "p_low_nm": 2,
+                 "p_high_nm": 2, "uniformity_robust": 4, "order_outlier_fraction": 4}
 
 
 # ---------------------------------------------------------------------- settings shipped to workers

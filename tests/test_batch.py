@@ -108,6 +108,9 @@ def _check_outputs(out: Path, rows):
     assert [t["status"] for t in table].count("ok") == 3 and table[-1]["status"] == "error"
     assert table[-1]["message"] == bad["message"] and table[-1]["mean_nm"] == ""
     assert abs(float(table[0]["mean_nm"]) - rows[0]["mean_nm"]) < 0.01
+    first = {k: float(table[0][k]) for k in ("min_nm", "p_low_nm", "median_nm", "p_high_nm", "max_nm")}
+    assert first["min_nm"] <= first["p_low_nm"] <= first["median_nm"] <= first["p_high_nm"] <= first["max_nm"]
+    assert table[-1]["median_nm"] == "" and 0 <= float(table[0]["order_outlier_fraction"]) < 0.05
 
 
 def test_batch_on_a_given_scheduler(photos_dir, cluster, tmp_path):
