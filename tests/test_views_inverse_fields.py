@@ -173,6 +173,8 @@ def test_map_statistics_are_robust_to_stray_pixels(section):
     left, right = section.hist_src.data["left"], section.hist_src.data["right"]
     assert left[0] == pytest.approx(st["p_low_nm"]) and right[-1] == pytest.approx(st["p_high_nm"])
     assert "map 1 of stray.png" in section.map_msg.object.lower()
+    overlay = section.stray_src.data["image"][0]                 # drawn over the map, at display size
+    assert overlay.shape == section.tmap_src.data["image"][0].shape and (overlay != 0).sum() >= 0.9 * len(set(zip(ys, xs)))
 
 
 def test_a_new_photo_takes_the_old_map_off_the_page(section):
@@ -182,6 +184,7 @@ def test_a_new_photo_takes_the_old_map_off_the_page(section):
     assert section.tmap_src.data["image"]
     section.load_photo(data, "b.png")
     assert section.result is None and not section.tmap_src.data["image"] and section.stats.object == ""
+    assert not section.stray_src.data["image"]
     assert section.dl_npy.disabled and not section.map_msg.visible
 
 

@@ -157,8 +157,10 @@ class ColourToThickness:
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
                     **_image_ranges(),
-                    title="Thickness map (grey: no acceptable match)")
+                    title="Thickness map (grey: no acceptable match; red: a fringe order unlike its neighbours)")
         img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
+        self.stray_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
+        tm.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.stray_src)
         tm.add_tools(HoverTool(renderers=[img], tooltips=[("x, y", "$x{0}, $y{0} px"), ("thickness", "@image{0.0} nm"),
                                                           ("ΔE00", "@de{0.0}")]))
         tm.add_layout(ColorBar(color_mapper=self.tmapper, title="nm", width=12), "right")
@@ -574,7 +576,7 @@ class ColourToThickness:
         """Take the map, its statistics and downloads off the page."""
         self.result = None
         self.result_label = ""
-        for src in (self.tmap_src, self.cmap_src):
+        for src in (self.tmap_src, self.cmap_src, self.stray_src):
             src.data = {k: [] for k in src.data}
         self.hist_src.data = dict(left=[], right=[], top=[])
         self.hist_fig.title.text = "Histogram of thickness"
@@ -685,6 +687,10 @@ class ColourToThickness:
         D = result.delta_e[::step, ::step]
         self.tmap_src.data = dict(image=[T], de=[D], x=[0], y=[0], dw=[W], dh=[H])
         self.cmap_src.data = dict(image=[D], x=[0], y=[0], dw=[W], dh=[H])
+        stray = result.order_outlier
+        self.stray_src.data = (dict(image=[_stray_overlay(stray, step)], x=[0], y=[0], dw=[W], dh=[H])
+                               if stray is not None and st["order_outliers"] else
+                               dict(image=[], x=[], y=[], dw=[], dh=[]))
         p0, p1 = ROBUST_PERCENTILES
         if st["pixels"]:
             lo, hi = st["p_low_nm"], max(st["p_high_nm"], st["p_low_nm"] + 1e-6)
@@ -778,6 +784,21 @@ class ColourToThickness:
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
+
+
+#: Colour of pixels whose fringe order differs from their neighbourhood, drawn over the thickness map
+#: (packed RGBA for Bokeh's image_rgba: opaque red, which the Viridis palette never shows).
+STRAY_RGBA = np.array([0xE0, 0x10, 0x10, 0xFF], dtype=np.uint8).view(np.uint32)[0]
+
+
+def _stray_overlay(mask: np.ndarray, step: int) -> np.ndarray:
+    """The stray-order mask at display size (a block is marked if any of its pixels is), as RGBA."""
+    h, w = mask.shape
+    hs, ws = -(-h // step), -(-w // step)
+    padded = np.zeros((hs * step, ws * step), dtype=bool)
+    padded[:h, :w] = mask
+    blocks = padded.reshape(hs, step, ws, step).any(axis=(1, 3))
+    return np.where(blocks, STRAY_RGBA, np.uint32(0)).astype(np.uint32)
 
 
 def locked(handler):
