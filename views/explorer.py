@@ -34,6 +34,8 @@ from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_L
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
                     parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES)
 
+#: Slider read-outs as the typed fields write numbers: no trailing zeros (numbro format: 101.5, 100).
+SLIDER_FORMAT = "0.[00]"
 log = logging.getLogger("fringegauge")
 
 #: Slider values are rounded to this many decimals (a 0.5 nm step sums to 101.00000000000001).
@@ -146,12 +148,13 @@ class FilmExplorer:
         self.swept = pn.widgets.Select(label="Swept layer (map and strip; 1 is the top layer)", options={}, width=300, margin=(2, 5))
         self.thickness_slider = pn.widgets.FloatSlider(label="Thickness of the swept layer (nm)", start=0.0,
                                                        end=s.thickness_max_nm, step=0.5, value=s.thickness_nm,
-                                                       width=300, margin=(2, 5), css_classes=["fg-thickness-slider"])
+                                                       format=SLIDER_FORMAT, width=300, margin=(2, 5),
+                                                       css_classes=["fg-thickness-slider"])
         self.thickness = Field("Thickness (nm)", width=140, css="fg-thickness-field")
         self.tmax = Field("Map up to (nm)", width=140)
         self.angle_slider = pn.widgets.FloatSlider(label="Viewing angle (° from normal)", start=0.0, end=ANGLE_MAX_DEG,
-                                                   step=0.1, value=s.angle_deg, width=300, margin=(2, 5),
-                                                   css_classes=["fg-angle-slider"])
+                                                   step=0.1, value=s.angle_deg, format=SLIDER_FORMAT, width=300,
+                                                   margin=(2, 5), css_classes=["fg-angle-slider"])
         self.angle = Field("Angle (°)", width=140, css="fg-angle-field")
         self.polarization = pn.widgets.RadioButtonGroup.from_param(s.param.polarization, label="Polarization",
                                                                    color="default", margin=(2, 5))
