@@ -257,6 +257,16 @@ def test_every_tab_and_a_preset_change_fetch_nothing_from_outside(page):
     assert page.console_errors == []
 
 
+def test_clicking_a_tick_box_s_words_ticks_it(page):
+    page.get_by_text("Spectrum → thickness").click()
+    words = page.get_by_text("Free scale (imperfect reference)").first
+    words.scroll_into_view_if_needed()
+    words.click()
+    box = page.locator("label", has_text="Free scale").locator("input[type=checkbox]").first
+    page.wait_for_function("(el) => el.checked", arg=box.element_handle(), timeout=10_000)
+    assert page.console_errors == []
+
+
 def test_spectrum_fit_in_the_page(page, tmp_path):
     """An invented oxide monitor wafer measured with a fibre probe: semicolon CSV in percent."""
     import numpy as np

@@ -276,3 +276,15 @@ def test_the_spectrum_download_says_why_transmittance_is_empty():
     assert "T_percent is empty: the substrate absorbs" in ex._spectrum_csv().getvalue()
     ex.preset.value = "broadband_ar_on_bk7"
     assert "T_percent is empty" not in ex._spectrum_csv().getvalue()
+
+
+def test_a_tick_box_is_one_boolean_whichever_side_changes():
+    from views.explorer import TickBox
+
+    box = TickBox("Thick plate")
+    seen = []
+    box.param.watch(lambda e: seen.append(e.new), "value")
+    box._group.value = ["Thick plate"]                               # ticked in the page (box or words)
+    assert box.value is True and seen == [True]
+    box.value = False                                                # set from Python
+    assert box._group.value == [] and seen == [True, False]

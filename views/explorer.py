@@ -19,6 +19,7 @@ from types import SimpleNamespace
 
 import numpy as np
 import panel as pn
+import param
 from panel.io import hold
 from bokeh.models import ColumnDataSource, HoverTool, Range1d, Span, TapTool
 from bokeh.events import Tap
@@ -66,6 +67,23 @@ def _rule() -> pn.pane.HTML:
 
 def _label(text: str) -> pn.pane.HTML:
     return pn.pane.HTML(f'<div class="fg-label">{text}</div>', margin=(4, 5, 0, 5), stylesheets=[CSS])
+
+
+class TickBox(pn.viewable.Viewer):
+    """A checkbox whose words tick it too, with a boolean ``value`` (Bokeh's own Checkbox puts its label
+    beside the box, where a click does nothing; a one-option checkbox group wraps both in a label)."""
+
+    value = param.Boolean(default=False, doc="Whether the box is ticked.")
+
+    def __init__(self, label: str, margin=(4, 5), **params):
+        super().__init__(**params)
+        self._label = label
+        self._group = pn.widgets.CheckBoxGroup(options=[label], value=[label] if self.value else [], margin=margin)
+        self._group.param.watch(lambda e: setattr(self, "value", bool(e.new)), "value")
+        self.param.watch(lambda e: setattr(self._group, "value", [label] if e.new else []), "value")
+
+    def __panel__(self):
+        return self._group
 
 
 class Field:
@@ -137,7 +155,7 @@ class FilmExplorer:
                                                       search_strategy="includes", restrict=False,
                                                       min_characters=1, width=300, margin=(2, 5))
         self.substrate_msg = Field("")
-        self.plate = pn.widgets.Checkbox(label="Thick plate: add its back face (incoherent)", margin=(4, 5))
+        self.plate = TickBox("Thick plate: add its back face (incoherent)")
         self.plate_mm = Field("Plate thickness (mm)", width=140)
         self.layers_box = pn.Column(margin=0)
         self.add_layer = pn.widgets.Button(label="+ Add layer", color="light", width=120, margin=(4, 5))

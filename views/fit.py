@@ -30,7 +30,7 @@ from physics.fit import BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, fit_t
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
 from .uploads import COMPACT, CappedDropper
-from .explorer import Field, _esc, _fmt, _label
+from .explorer import Field, TickBox, _esc, _fmt, _label
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 
@@ -115,8 +115,8 @@ class SpectrumFitSection:
         self.win2_hi = Field("to (nm)", width=140)
         self.win2_lo.set_text(_fmt(DEFAULT_SECOND_WINDOW_NM[0]))
         self.win2_hi.set_text(_fmt(DEFAULT_SECOND_WINDOW_NM[1]))
-        self.free_scale = pn.widgets.Checkbox(label="Free scale (imperfect reference)", margin=(4, 5))
-        self.free_offset = pn.widgets.Checkbox(label="Free offset (stray light)", margin=(4, 5))
+        self.free_scale = TickBox("Free scale (imperfect reference)")
+        self.free_offset = TickBox("Free offset (stray light)")
         self.wl_lo = Field("Use wavelengths from (nm)", width=140, placeholder="all")
         self.wl_hi = Field("to (nm)", width=140, placeholder="all")
         self.fit_button = pn.widgets.Button(label="Fit thickness", color="primary", width=200, margin=(6, 5),
