@@ -205,8 +205,9 @@ def test_second_unknown_layer_and_free_scale(section):
     assert "d₂ = " in section.verdict.object and "scale" in section.verdict.object
     summary = section.summary()
     assert summary["stack"]["layers"][1]["unknown"] == "second" and summary["inputs"]["free_scale"]
-    ex.state.angle_deg = 10.0                              # the explorer changes: the result is marked stale
-    assert "changed" in section.status.object
+    ex.state.angle_deg = 10.0                              # the explorer changes: a fit of another model goes
+    assert section.result is None and "changed since the last fit" in section.verdict.object
+    assert section.dl_json.disabled and section.model_src.data["wl"] == []
 
 
 def test_panel_builds(section):

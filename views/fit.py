@@ -223,8 +223,9 @@ class SpectrumFitSection:
         self._sync_layers()
         if "reference" in self.files and self.ref_mode.value == "silicon":
             self._reimport()                        # the computed reference depends on the angle and ambient
-        if self.result is not None:
-            self.status.object = "The stack, unknown layer or angle changed since this fit: press “Fit thickness”."
+        if self.result is not None:                 # a fit of another model must not look current
+            self._clear_result("The stack, unknown layer, angle or polarization changed since the last fit: "
+                               "press “Fit thickness”.")
 
     # ------------------------------------------------------------------ import
     def _on_clear_ref(self, *_):
