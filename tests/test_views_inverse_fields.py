@@ -214,3 +214,16 @@ def test_a_map_that_finished_before_the_cancel_is_not_shown_and_this_is_said(sec
     assert section.result is first
     text = section.progress_text.object
     assert "had already finished" in text and "not shown" in text and "map 1 of wedge.png" in text
+
+
+def test_the_verdict_reads_the_tolerance_and_a_changed_view_clears_the_search(section):
+    ex = section.ex
+    _set(section, colour=GOOD, nominal="100", tolerance="10")      # 100 nm of oxide
+    section._on_find()
+    assert "within 100 ± 10 nm" in section.verdict.object
+    section.nominal.input.value = "600"
+    section._on_find()
+    assert "600 ± 10 nm" in section.verdict.object and section.verdict.alert_type in ("warning", "danger")
+    assert "The best match is within" not in section.verdict.object
+    ex.state.angle_deg = 30.0                                     # the explorer's view changed: not this search
+    assert section.last_candidates is None and "changed since this search" in section.verdict.object

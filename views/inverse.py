@@ -157,7 +157,7 @@ class ColourToThickness:
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
                     **_image_ranges(),
-                    title="Thickness map (grey: no acceptable match; red: a fringe order unlike its neighbours)")
+                    title="Thickness map (grey: no acceptable match; red: stray fringe order)")
         img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
         self.stray_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         tm.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.stray_src)
@@ -300,10 +300,11 @@ class ColourToThickness:
         except _Stop:
             pass
 
-    def _refuse(self, text):
-        """A search was refused: drop the previous result so it cannot be read as this one's answer."""
+    def _refuse(self, text, alert_type="warning"):
+        """A search was refused (or its inputs changed): drop the previous result so it cannot be read as
+        this one's answer."""
         self.last_candidates = None
-        self.verdict.alert_type = "warning"
+        self.verdict.alert_type = alert_type
         self.verdict.object = _esc(text)
         self.table.object = ""
         self.cand_src.data = dict(x=[], label=[], align=[])
@@ -342,11 +343,14 @@ class ColourToThickness:
         if nominal is not None and tol is None:
             note = (f" The nominal {nominal:g} nm only breaks near-ties: the in-tolerance check needs both "
                     f"{self.nominal.input.name.split(' (')[0]} and {self.tolerance.input.name}.")
-        self._show_candidates(cands, colours[0] if lab is None else None, lab, note)
+        self._show_candidates(cands, colours[0] if lab is None else None, lab, note, nominal, tol)
         return cands
 
-    def _show_candidates(self, cands, typed, lab, note=""):
+    def _show_candidates(self, cands, typed, lab, note="", nominal=None, tol=None):
         kind = "danger" if not cands.acceptable else ("warning" if cands.ambiguous else "success")
+        if cands.acceptable and nominal is not None and tol is not None and cands[0].in_tolerance is not None:
+            kind, verdict = _tolerance_verdict(cands, nominal, tol, kind)
+            note = verdict + note
         self.verdict.alert_type = kind
         self.verdict.object = _esc(cands.message + note) + (" Estimates from colour are not certified metrology."
                                                             if cands.acceptable else "")
@@ -395,6 +399,9 @@ class ColourToThickness:
     def _on_state(self, *events):
         if any(e.name == "thickness_max_nm" for e in events):
             self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
+        if self.last_candidates is not None and any(e.name != "thickness_max_nm" for e in events):
+            self._refuse("The stack, unknown layer, angle, lamp or observer changed since this search: press "
+                         "“Find thicknesses” again.", alert_type="light")
         if self.shown:
             self._refresh_strip()
         else:                                   # drawn when the tab is opened, not on every slider move
@@ -784,6 +791,20 @@ class ColourToThickness:
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
+
+
+def _tolerance_verdict(cands, nominal: float, tol: float, kind: str) -> tuple[str, str]:
+    """The in-tolerance reading of a search that has a nominal and a tolerance: (alert kind, sentence)."""
+    span = f"{nominal:g} ± {tol:g} nm"
+    best = cands[0]
+    if best.in_tolerance:
+        return kind, f" The best match is within {span}."
+    inside = [(i, c) for i, c in enumerate(cands) if c.in_tolerance and c.delta_e <= MATCH_DE_MAX]
+    if not inside:
+        return "danger", f" Out of tolerance: no acceptable match lies within {span}."
+    i, c = inside[0]
+    return "warning", (f" The best match is outside {span}, but #{i + 1} ({c.thickness_nm:.0f} nm, ΔE00 "
+                       f"{c.delta_e:.1f}) is inside it: colour alone cannot tell which.")
 
 
 #: Colour of pixels whose fringe order differs from their neighbourhood, drawn over the thickness map
