@@ -303,7 +303,7 @@ def order_sorting_filter_nm(band_nm, order=1, source_band_nm=(200.0, 1100.0)):
     notes = []
     if not edges:
         notes.append(f"No long-pass filter is needed: the higher orders would bring light shorter than "
-                     f"{lo / step:.0f} nm onto the band, and the source emits nothing below {s_lo:.0f} nm.")
+                     f"{hi / step:.0f} nm onto the band, and the source emits nothing below {s_lo:.0f} nm.")
     else:
         clean = (f"The band below {start:.0f} nm needs no filter: the source emits nothing short enough to "
                  "reach it in a higher order. " if start > lo else "")

@@ -913,3 +913,9 @@ def test_no_nan_for_propagating_orders(wl, lpmm, alpha, width, f):
                       G.rayleigh_wavelength_nm(lpmm, m, alpha),
                       G.groove_efficiency(wl, lpmm, m, "blazed", blaze_angle_deg=20.0)):
             assert np.all(np.isfinite(value))
+
+
+def test_no_filter_note_quotes_the_longest_higher_order_wavelength():
+    # band 400-800 nm in order 1: order 2 brings 200-400 nm onto it; a source from 500 nm emits none of it
+    r = G.order_sorting_filter_nm((400.0, 800.0), 1, source_band_nm=(500.0, 600.0))
+    assert r["edges_nm"] == [] and "shorter than 400 nm" in r["note"]

@@ -757,9 +757,10 @@ class GratingSection:
             name = spec[changed][1]
             msg = (f"{name}: the {what} runs from its short end to its long end; {lo_v:g} nm is not below "
                    f"{hi_v:g} nm. Make the first field the shorter wavelength.")
-            for f in (lo_f, hi_f):
-                if f is changed or (f not in errors and values[f] != in_use[f]):
-                    f.show_error(msg)
+            changed.show_error(msg)
+            other = hi_f if changed is lo_f else lo_f
+            if other not in errors and values[other] != in_use[other]:   # said once; the other field only points to it
+                other.show_error(f"{spec[other][1]}: not in use until the {what} is valid (see {name}).")
             return
         new = replace(self.settings, **{spec[lo_f][0]: lo_v, spec[hi_f][0]: hi_v})
         if self._take(changed, new):
