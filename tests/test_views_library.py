@@ -360,3 +360,17 @@ def test_the_check_runs_only_while_the_tab_is_shown_and_the_page_is_open(lib, mo
         for cb in doc.destroyed:
             cb(None)
         assert not a.watching()
+
+
+def test_switching_kind_takes_the_other_kind_s_message_away(tmp_path, monkeypatch):
+    monkeypatch.setenv("FRINGEGAUGE_LIBRARY", str(tmp_path / "lib"))
+    from views.explorer import FilmExplorer
+    from views.grating import GratingSection
+    from views.inverse import ColourToThickness
+    from views.library import LibrarySection
+
+    ex = FilmExplorer()
+    lib = LibrarySection(ex, ColourToThickness(ex), GratingSection())
+    lib._say("The list is up to date: 1 stack.", "success")
+    lib.kind.value = "gratings"
+    assert not lib.message.visible or "stack" not in lib.message.object

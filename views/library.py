@@ -246,6 +246,7 @@ class LibrarySection:
 
     def _kind_changed(self) -> None:
         self._withdraw()
+        self.message.visible = False                 # a message about the other kind's list no longer applies
         self._reread(select="newest")
 
     # ------------------------------------------------------------------ following the folder
