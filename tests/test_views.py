@@ -218,8 +218,9 @@ def test_removing_every_layer_shows_the_bare_substrate_not_the_last_stack():
     assert ex._point.hex == _physics_hex(bare)
     assert "bare substrate" in ex.swatch.object and ex.error.visible and ex.error.alert_type == "warning"
     assert ex.map_src.data["image"] == [] and ex.strip_src.data["image"] == []
+    assert not ex.strip_mark.visible and not ex.vspan.visible
     ex.add_layer.clicks += 1                                         # a layer again: the map comes back
-    assert not ex.error.visible and len(ex.map_src.data["image"]) == 1
+    assert not ex.error.visible and len(ex.map_src.data["image"]) == 1 and ex.strip_mark.visible
 
 
 def test_the_preset_list_names_a_preset_only_while_it_is_what_is_shown():

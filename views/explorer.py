@@ -687,6 +687,8 @@ class FilmExplorer:
             self._clear_map_and_strip()
         else:
             self.error.visible = False
+        for mark in (self.vspan, self.hspan, self.strip_mark):     # nothing is swept without a layer
+            mark.visible = not result.get("bare")
         if "map" in result:
             self._map = cm = result["map"]
             rgb = np.transpose(cm.rgb, (1, 0, 2))          # rows = angle
