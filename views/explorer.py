@@ -111,6 +111,19 @@ def _fmt(x: float, digits: int = 1) -> str:
     return f"{x:.{digits}f}".rstrip("0").rstrip(".") if digits else f"{x:.0f}"
 
 
+def field_pair(left, right, message_width: int | None = None, **column):
+    """Two fields (or a field and a widget) side by side, their messages below both (a long message beside
+    a field would push its neighbour out of the column); ``message_width`` fixes where they wrap and
+    ``column`` goes to the enclosing Column."""
+    fields = [f for f in (left, right) if isinstance(f, Field)]
+    if message_width is not None:
+        for f in fields:
+            f.message.width = message_width
+    widget = lambda f: f.input if isinstance(f, Field) else f  # noqa: E731
+    return pn.Column(pn.Row(widget(left), widget(right), margin=0), *(f.message for f in fields),
+                     **{"margin": 0, **column})
+
+
 class FilmExplorer:
     """One session's page."""
 
@@ -896,6 +909,11 @@ def _esc(text: str) -> str:
     return (str(text).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;"))
 
 
+#: Below this lightness L* the swatch is nearly black and its hue hard to judge (recalled from memory:
+#: CIELAB L* of about 10 is a very dark grey on a typical office display).
+DARK_SWATCH_L = 10.0
+
+
 def _dark_hint(pt, s: ExplorerState) -> str:
     if pt.lab[0] >= DARK_SWATCH_L or s.brightness == "normalized":
         return ""
@@ -903,22 +921,14 @@ def _dark_hint(pt, s: ExplorerState) -> str:
             "“brightest = white” under Brightness to see its hue.</div>")
 
 
-#: Below this lightness L* the swatch is nearly black and its hue hard to judge (recalled from memory:
-#: CIELAB L* of about 10 is a very dark grey on a typical office display).
-DARK_SWATCH_L = 10.0
-
-
 def _swatch_headline(pt, s: ExplorerState, bare: bool) -> str:
     """What the swatch shows: the swept layer's thickness, the angle, the fringe order and which layer."""
     if bare:
         return f"<b>bare substrate</b> at <b>{s.angle_deg:.1f}°</b>"
-    line = f"<b>{s.thickness_nm:.1f} nm</b> at <b>{s.angle_deg:.1f}°</b>, fringe order {pt.order}"
-    try:
-        layers = json.loads(s.stack_json)["layers"]
-        which = f"layer {s.swept_layer + 1} ({_esc(_spec_text(layers[s.swept_layer]['material']))})"
-        line += f"<br>{which}" + (f" of {len(layers)}" if len(layers) > 1 else "")
-    except (ValueError, KeyError, IndexError, TypeError):
-        pass
+    layers = json.loads(s.stack_json)["layers"]             # not bare: the swept layer exists
+    line = (f"<b>{s.thickness_nm:.1f} nm</b> at <b>{s.angle_deg:.1f}°</b>, fringe order {pt.order}<br>"
+            f"layer {s.swept_layer + 1} ({_esc(_spec_text(layers[s.swept_layer]['material']))})"
+            + (f" of {len(layers)}" if len(layers) > 1 else ""))
     if s.thickness_nm > s.thickness_max_nm:
         line += (f"<br><span style='color:#8a5a00'>beyond the map, which ends at {s.thickness_max_nm:g} nm: "
                  "raise “Map up to” to see it there</span>")

@@ -30,7 +30,7 @@ from physics.fit import BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, fit_t
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
 from .uploads import COMPACT, CappedDropper
-from .explorer import Field, TickBox, _esc, _fmt, _label
+from .explorer import Field, TickBox, _esc, _fmt, _label, field_pair
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 
@@ -858,10 +858,10 @@ class SpectrumFitSection:
             _label("The reference's reflectance"), self.ref_mode, self.ref_value_box,
             pn.Row(self.wl_unit, self.value_unit, margin=0), self.notes,
             pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Model</h3>"),
-            self.unknown, _pair(self.win_lo, self.win_hi),
-            self.second, _pair(self.win2_lo, self.win2_hi),
+            self.unknown, field_pair(self.win_lo, self.win_hi, PAIR_MESSAGE_WIDTH),
+            self.second, field_pair(self.win2_lo, self.win2_hi, PAIR_MESSAGE_WIDTH),
             self.free_scale, self.free_offset,
-            _pair(self.wl_lo, self.wl_hi),
+            field_pair(self.wl_lo, self.wl_hi, PAIR_MESSAGE_WIDTH),
             self.fit_button, self.fit_msg.message, self.status, self.progress, self.cancel_button,
             pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Downloads</h3>"),
             self.dl_csv, self.dl_scan, self.dl_json, width=340)
@@ -872,14 +872,6 @@ class SpectrumFitSection:
             pn.pane.Bokeh(self.scan_fig, sizing_mode="stretch_width"),
             sizing_mode="stretch_width")
         return pn.Row(controls, results, sizing_mode="stretch_width", scroll=True)
-
-
-def _pair(lo: Field, hi: Field):
-    """Two fields side by side, their messages below both at the column's width (a long message beside a
-    field would push its neighbour out of the controls column)."""
-    for f in (lo, hi):
-        f.message.width = PAIR_MESSAGE_WIDTH
-    return pn.Column(pn.Row(lo.input, hi.input, margin=0), lo.message, hi.message, margin=0)
 
 
 def _pm(value: float, sigma: float) -> str:

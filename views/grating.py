@@ -34,7 +34,7 @@ from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_gr
                                 load_grating_preset)
 
 from . import render
-from .explorer import Field, _esc, _fmt, _label, _rgba, _rule
+from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, field_pair
 from .inverse import _locked
 from .limits import check_grid_points, interactive_executor, post_to_page, served
 from .state import parse_number
@@ -1221,18 +1221,18 @@ class GratingSection:
         head = lambda t: pn.pane.HTML(f"<h3 style='margin:8px 5px 0;font-size:15px'>{t}</h3>")  # noqa: E731
         controls = pn.Column(
             head("Grating"), self.preset, self.scenario,
-            _pair(self.density, self.order),
+            field_pair(self.density, self.order),
             _label("Kind"), self.kind, _label("Grooves"), self.groove,
             self.blaze.view(), self.duty.view(),
             head("Light"),
-            _pair(self.incidence, self.illuminant),
-            _pair(self.band_lo, self.band_hi),
-            _pair(self.source_lo, self.source_hi),
+            field_pair(self.incidence, self.illuminant),
+            field_pair(self.band_lo, self.band_hi),
+            field_pair(self.source_lo, self.source_hi),
             pn.pane.HTML("<div style='font-size:12px;color:#555'>Source band: what the lamp emits and the detector "
                          "sees, for the order overlaps and the order-sorting filter.</div>", width=300, margin=(0, 5)),
             head("Spectrometer"),
-            _pair(self.focal, self.width),
-            _pair(self.det_len, self.pitch),
+            field_pair(self.focal, self.width),
+            field_pair(self.det_len, self.pitch),
             pn.pane.HTML(f"<div style='font-size:12px;color:#555'>{CONVENTION}</div>", width=300, margin=(6, 5)),
             head("Downloads"), self.dl_csv, self.dl_map, self.dl_strip,
             width=320, margin=(0, 5), scroll=True, sizing_mode="stretch_height",
@@ -1257,13 +1257,6 @@ class GratingSection:
             self.caution_end,
             sizing_mode="stretch_both", scroll=True, margin=(0, 5))
         return pn.Row(controls, views, sizing_mode="stretch_both", css_classes=["fg-gratings"])
-
-
-def _pair(left, right):
-    """Two fields (or a field and a widget) side by side, their messages below at full width."""
-    widget = lambda f: f.input if isinstance(f, Field) else f  # noqa: E731
-    msgs = [f.message for f in (left, right) if isinstance(f, Field)]
-    return pn.Column(pn.Row(widget(left), widget(right), margin=0), *msgs, margin=0)
 
 
 def _strip_image_png(rgb, view_deg, zero_deg, *, title, subtitle, x_label, footer) -> bytes:

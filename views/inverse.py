@@ -29,7 +29,7 @@ from physics.imageio import box_mean_linear, load_image
 from physics.inverse import AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, ROBUST_PERCENTILES, _lab_from_linear
 
 from . import render
-from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer
+from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer, field_pair
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
 from .uploads import CappedDropper
@@ -766,13 +766,12 @@ class ColourToThickness:
 
     # ------------------------------------------------------------------ layout
     def panel(self):
-        def pair(a, b):                        # two inputs keep their row; their messages wrap below it
-            return pn.Column(pn.Row(a.input, b.input, margin=0), a.message, b.message, margin=0,
-                             width=TYPED_COLUMN_PX)
         typed = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A colour to thickness candidates</h3>"),
             self.colour.view(),
-            pair(self.colour2, self.angle2), pair(self.win_lo, self.win_hi), pair(self.nominal, self.tolerance),
+            *(field_pair(a, b, width=TYPED_COLUMN_PX) for a, b in ((self.colour2, self.angle2),
+                                                                    (self.win_lo, self.win_hi),
+                                                                    (self.nominal, self.tolerance))),
             self.find, width=TYPED_COLUMN_PX)
         results = pn.Column(self.verdict, self.table, pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
                             sizing_mode="stretch_width")

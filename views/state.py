@@ -90,16 +90,14 @@ class ExplorerState(param.Parameterized):
                   swept_layer=None) -> None:
         """Replace parts of the stack after validating the whole; raises InputError and changes nothing if bad."""
         d = json.loads(self.stack_json)
-        if ambient is not None:
-            d["ambient"] = ambient
-        if layers is not None:
-            if len(layers) > MAX_LAYERS:
-                raise InputError(f"At most {MAX_LAYERS} layers; remove one before adding another.")
-            d["layers"] = layers
-        if substrate is not None:
-            d["substrate"] = substrate
+        if layers is not None and len(layers) > MAX_LAYERS:
+            raise InputError(f"At most {MAX_LAYERS} layers; remove one before adding another.")
+        changes = {k: v for k, v in (("ambient", ambient), ("layers", layers), ("substrate", substrate))
+                   if v is not None}
         if substrate_thickness_mm is not ...:
-            d["substrate_thickness_mm"] = substrate_thickness_mm
+            changes["substrate_thickness_mm"] = substrate_thickness_mm
+        edited = any(d.get(k) != v for k, v in changes.items())
+        d.update(changes)
         n = len(d["layers"])
         swept = self.swept_layer if swept_layer is None else swept_layer
         swept = min(max(swept, 0), max(n - 1, 0))
@@ -107,8 +105,6 @@ class ExplorerState(param.Parameterized):
         sf = stack_from_dict(d)                      # validates materials, thicknesses, fields
         _ = colour_band_nm(sf.stack)                 # the stack must have data over the visible
         thickness = sf.stack.layers[swept].thickness_nm if n else self.thickness_nm
-        before = json.loads(self.stack_json)
-        edited = any(before.get(k) != d.get(k) for k in ("ambient", "layers", "substrate", "substrate_thickness_mm"))
         with param.parameterized.batch_call_watchers(self):
             if edited and not self.preset_name.endswith(EDITED_MARK):
                 self.preset_name = (self.preset_name or d.get("name", "") or "stack") + EDITED_MARK
