@@ -536,8 +536,7 @@ def _window(thickness_nm, name):
 
 def _scan_grid(stack, layer, window, wl, angle_deg, name):
     """A thickness grid fine enough to sample every fringe of the shortest wavelength."""
-    opt = _Optics(stack, np.array([wl.min()]), np.array([float(angle_deg)]))
-    nkz = float(np.abs(opt.kz[layer + 1, 0, 0].real))
+    nkz = float(_n_cos(stack, layer + 1, wl.min(), angle_deg)[0])
     period = wl.min() / (2.0 * max(nkz, 1e-6))                         # thickness per fringe
     n = int(np.ceil((window[1] - window[0]) / period * SAMPLES_PER_FRINGE)) + 1
     if n > MAX_SCAN_POINTS:

@@ -32,12 +32,8 @@ import warnings
 
 import numpy as np
 
-from .color import _linear_srgb, spectrum_to_xyz, xyz_to_lab
+from .color import GAMUT_TOLERANCE, _linear_srgb, _observer, colour, spectrum_to_xyz, xyz_to_lab
 from .errors import InputError, require_finite
-
-with warnings.catch_warnings():
-    warnings.simplefilter("ignore")
-    import colour
 
 __all__ = [
     "groove_spacing_nm", "diffraction_angle_deg", "order_status", "propagating_orders", "order_band_nm",
@@ -60,9 +56,6 @@ COLOUR_BAND_SAMPLES = int(COLOUR_BAND_NM[1] - COLOUR_BAND_NM[0]) + 1
 #: Pixels per resolution element assumed when a spectrometer's resolution is quoted (Nyquist-type
 #: sampling of the slit image, common practice).
 PIXELS_PER_RESOLUTION_ELEMENT = 3.0
-#: Linear-RGB slack before a colour counts as outside the sRGB gamut (as physics.color: the published
-#: 4-digit sRGB matrix maps the D65 white to 1 within 2e-4).
-GAMUT_TOLERANCE = 1e-3
 #: Relative luminance of the sRGB primaries (IEC 61966-2-1, the Y row of its RGB-to-XYZ matrix,
 #: taken from colour-science): the luminance of a linear sRGB colour is this dot product.
 SRGB_LUMINANCE = np.asarray(colour.RGB_COLOURSPACES["sRGB"].matrix_RGB_to_XYZ, dtype=float)[1]
@@ -545,7 +538,7 @@ def spectral_line_srgb(wavelength_nm, observer="2"):
     """
     wl = np.atleast_1d(_wavelength(wavelength_nm)).astype(float)
     inside = (wl >= 360.0) & (wl <= 830.0)
-    cmfs = colour.MSDS_CMFS[_OBSERVER_CMFS[str(observer)]]
+    cmfs = colour.MSDS_CMFS[_observer(observer)]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         xyz = np.asarray(colour.wavelength_to_XYZ(np.where(inside, wl, 555.0), cmfs), dtype=float).reshape(-1, 3)
@@ -554,10 +547,6 @@ def spectral_line_srgb(wavelength_nm, observer="2"):
     mapped = np.clip(mapped / np.where(peak > 0, peak, 1.0), 0.0, 1.0) * inside.reshape(-1, 1)
     rgb = np.asarray(colour.models.eotf_inverse_sRGB(mapped), dtype=float)
     return rgb.reshape(np.shape(wavelength_nm) + (3,))
-
-
-#: colour-science's table of each observer's colour-matching functions.
-_OBSERVER_CMFS = {"2": "CIE 1931 2 Degree Standard Observer", "10": "CIE 1964 10 Degree Standard Observer"}
 
 
 def _shown(xyz, scale, illuminant, observer):

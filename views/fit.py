@@ -68,7 +68,6 @@ class SpectrumFitSection:
         self.import_info = {}          # what the import detected and did
         self.result = None             # physics.fit.FitResult
         self.result_info = None        # inputs and extras of the shown result
-        self.fourier = None
         self._job = 0
         self._waiting_for_reference = False    # a raw-counts sample is held until a reference arrives
         self._fit_error_fields = []            # fields showing a message from the last fit
@@ -323,7 +322,7 @@ class SpectrumFitSection:
     def _clear_fit_messages(self):
         """Messages the last fit put beside fields: their cause (that fit) is gone."""
         self.fit_msg.show_error(None)
-        for field in getattr(self, "_fit_error_fields", ()):
+        for field in self._fit_error_fields:
             field.show_error(None)
         self._fit_error_fields = []
 
@@ -331,7 +330,7 @@ class SpectrumFitSection:
         """Take the shown fit off the page (curves, verdict, details, downloads) and drop a running fit."""
         self._job += 1
         self._end_progress()
-        self.result = self.result_info = self.fourier = None
+        self.result = self.result_info = None
         self.details.object = ""
         self.verdict.alert_type = "light"
         self.verdict.object = why or "Press “Fit thickness” to fit the spectrum."
@@ -469,7 +468,7 @@ class SpectrumFitSection:
             self._number(field, name, lo, hi, optional=True)
         except _Stop:
             pass
-        if field in getattr(self, "_fit_error_fields", ()):
+        if field in self._fit_error_fields:
             self._fit_error_fields.remove(field)
 
     def _window(self, lo_field, hi_field, name):
@@ -628,7 +627,7 @@ class SpectrumFitSection:
         if error is not None:
             self._show_fit_error(error)
             return
-        self.result, self.fourier = result, result.fourier_optical_nm
+        self.result = result
         self.result_info = dict(args=args, import_info=info, date=date.today().isoformat())
         self._show_result()
 
@@ -643,7 +642,7 @@ class SpectrumFitSection:
         else:
             field = self.fit_msg
         field.show_error(text)
-        self._fit_error_fields = [*getattr(self, "_fit_error_fields", []), field]
+        self._fit_error_fields.append(field)
 
     def _verdict_lines(self):
         """The result box: kind ("success", "warning", "danger") and its lines (HTML)."""
