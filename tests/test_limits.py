@@ -184,7 +184,7 @@ def test_a_cancelled_job_stops_in_its_worker_process():
     seen = []
 
     async def run(cancel):
-        channel = await asyncio.get_running_loop().run_in_executor(None, workers.Channel.make)
+        channel = await workers.new_channel()
         return await workers.run_in_worker(1, workers.photo_map, args, channel=channel,
                                            on_progress=lambda f, t: seen.append(f), cancelled=lambda: cancel)
     try:

@@ -10,7 +10,6 @@ previous spectrum and result stay on screen.
 
 from __future__ import annotations
 
-import asyncio
 import io
 import json
 import logging
@@ -598,7 +597,7 @@ class SpectrumFitSection:
             limits = Limits.from_env()
             try:
                 with heavy_job("spectrum_fit", size, session, limits):
-                    channel = await asyncio.get_running_loop().run_in_executor(None, workers.Channel.make)
+                    channel = await workers.new_channel()
                     result = await workers.run_in_worker(
                         limits.max_jobs_server, partial(fit_thickness_reporting, **args,
                                                         max_grid_points=limits.max_grid_points),

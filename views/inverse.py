@@ -8,7 +8,6 @@ with a progress bar and a Cancel, and a new request supersedes an unfinished one
 
 from __future__ import annotations
 
-import asyncio
 import csv
 import io
 import json
@@ -648,7 +647,7 @@ class ColourToThickness:
             limits = Limits.from_env()
             try:
                 with heavy_job("photo_map", size, session, limits):
-                    channel = await asyncio.get_running_loop().run_in_executor(None, workers.Channel.make)
+                    channel = await workers.new_channel()
                     result = await workers.run_in_worker(
                         limits.max_jobs_server, workers.photo_map, args, channel=channel,
                         on_progress=lambda f, text: post_to_page(doc, partial(show, f, text)), cancelled=gone)

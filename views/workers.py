@@ -162,6 +162,11 @@ def photo_map(args: dict, channel) -> tuple:
 
 
 # ---------------------------------------------------------------------- the page side
+async def new_channel() -> Channel:
+    """A new :class:`Channel`, made off the event loop (it takes round trips to the manager process)."""
+    return await asyncio.get_running_loop().run_in_executor(None, Channel.make)
+
+
 async def run_in_worker(workers: int, fn, *args, channel: Channel | None = None, on_progress=None,
                         cancelled=None):
     """Run ``fn(*args)`` (or ``fn(*args, channel)``) in the pool and await it.
