@@ -5,6 +5,9 @@ so it works from any working directory. ``panel.serve`` is used rather than the
 ``panel serve`` command line because it takes Tornado handlers directly (the
 ``/health`` endpoint) and receives the password and cookie secret in memory, never on
 a command line where other users of the machine could read them.
+
+The server's protections live in :mod:`labserver` (routes, websocket bounds, page limits,
+login) and :mod:`views.limits` (heavy work); this file reads the options and puts them together.
 """
 
 from __future__ import annotations
@@ -32,10 +35,21 @@ OAUTH_PROVIDERS = ("azure", "bitbucket", "github", "gitlab", "google", "okta", "
 MIN_COOKIE_SECRET_CHARS = 32
 #: How often Panel looks for sessions whose browser has gone (ms).
 CHECK_UNUSED_MS = 17_000
+#: Largest HTTP request body: the page sends nothing over plain HTTP but the login form (uploads go
+#: through the websocket in chunks), so a large body is never legitimate.
+MAX_REQUEST_BODY_BYTES = 64 * 1024
+#: Seconds an HTTP connection may sit idle, and a request body may take, before it is closed (a
+#: client that opens connections and sends nothing would otherwise hold them for an hour).
+IDLE_CONNECTION_S = 60
+BODY_TIMEOUT_S = 30
+#: Environment variable telling the page how users are known: off, shared, users or oauth.
+AUTH_ENV = "FRINGEGAUGE_AUTH"
 
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
+from labserver.login import DEFAULT_LOGIN_HOURS, read_password_file  # noqa: E402
+from labserver.sessions import SessionLimits  # noqa: E402
 from views.limits import THREADS_ENV, WEBSOCKET_MESSAGE_CAP_BYTES, Limits  # noqa: E402
 
 log = logging.getLogger("fringegauge")
@@ -115,6 +129,13 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _fraction(text: str) -> float:
+    value = _positive_float(text)
+    if value > 1:
+        raise argparse.ArgumentTypeError(f"{text} must be a fraction between 0 and 1")
+    return value
+
+
 class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
     """Show defaults, except for options that are off unless given."""
 
@@ -123,7 +144,7 @@ class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    d = Limits()
+    d, s = Limits(), SessionLimits()
     p = argparse.ArgumentParser(
         prog="python serve.py",
         description="Serve the fringegauge page (http://HOST:PORT/app) for a lab.",
@@ -154,6 +175,24 @@ def build_parser() -> argparse.ArgumentParser:
                         "so logins end when the server restarts")
     p.add_argument("--idle-timeout-s", type=_positive_float, default=900.0,
                    help="seconds after the browser goes away before a session and its memory are freed")
+    p.add_argument("--tls-cert", metavar="CERT_FILE", type=Path,
+                   help="serve https with this certificate (PEM, with its chain); needs --tls-key")
+    p.add_argument("--tls-key", metavar="KEY_FILE", type=Path,
+                   help="the certificate's private key (PEM); keep it readable only by the server's account")
+    p.add_argument("--login-hours", type=_positive_float, default=DEFAULT_LOGIN_HOURS,
+                   help="hours a --basic-auth login lasts before the person logs in again")
+    p.add_argument("--max-sessions", type=_int_in(1), default=s.max_sessions,
+                   help="open pages the server holds in all (each keeps about 18 MB until its tab has been "
+                        "closed for --idle-timeout-s); beyond it people are told the server is full")
+    p.add_argument("--max-sessions-per-address", type=_int_in(1), default=s.max_per_address,
+                   help="open pages from one client address (raise it behind a proxy or NAT, where many "
+                        "people share one address)")
+    p.add_argument("--page-opens-per-minute", type=_positive_float, default=s.opens_per_minute,
+                   help=f"page opens per client address and minute, after a burst of {s.burst}")
+    p.add_argument("--loop-share-per-address", type=_fraction, default=s.loop_share,
+                   help="fraction of the server's event loop (the one thread that applies every page's changes) "
+                        "one client address may keep busy once a burst is spent; its further changes then wait "
+                        "(1 lets one address take it all)")
     p.add_argument("--max-grid-points", type=_int_in(1), default=d.max_grid_points,
                    help="largest number of grid points (positions x wavelengths) one computation may evaluate; the film map is coarsened to fit, other computations are refused with a message")
     p.add_argument("--max-photo-megapixels", type=_positive_float, default=d.max_photo_megapixels,
@@ -181,23 +220,7 @@ def default_origins(host: str, port: int) -> list[str]:
 
 def read_basic_auth(path: Path):
     """The password (str) or {user: password} from *path*; raises ValueError without echoing content."""
-    try:
-        text = path.read_text(encoding="utf-8").strip()
-    except OSError as exc:
-        raise ValueError(f"cannot read password file {path}: {exc.strerror}") from None
-    if not text:
-        raise ValueError(f"password file {path} is empty")
-    if text.startswith("{"):
-        try:
-            users = json.loads(text)
-        except json.JSONDecodeError:
-            raise ValueError(f"password file {path} starts with '{{' but is not valid JSON") from None
-        if not users or not all(isinstance(k, str) and isinstance(v, str) and v for k, v in users.items()):
-            raise ValueError(f"password file {path} must map user names to non-empty passwords")
-        return users
-    if "\n" in text:
-        raise ValueError(f"password file {path} must hold a single line (or a JSON object of users)")
-    return text
+    return read_password_file(path)
 
 
 def read_cookie_secret(path: Path | None) -> str | None:
@@ -235,14 +258,31 @@ class Settings:
     idle_timeout_s: float
     limits: Limits
     log_level: str
+    sessions: SessionLimits = dataclasses.field(default_factory=SessionLimits)
+    tls_cert: Path | None = None
+    tls_key: Path | None = None
+    login_hours: float = DEFAULT_LOGIN_HOURS
+
+    @property
+    def tls(self) -> bool:
+        return self.tls_cert is not None
+
+    @property
+    def auth_mode(self) -> str:
+        """How users are known: "off", "shared" (one password, names typed), "users" (a password each) or "oauth"."""
+        if self.basic_auth is not None:
+            return "users" if isinstance(self.basic_auth, dict) else "shared"
+        return "oauth" if self.oauth_provider else "off"
 
     def describe(self) -> dict:
         """What is safe to log: no password, no secret."""
         return {"host": self.host, "port": self.port, "allow_origin": self.origins, "threads": self.threads,
                 "library": str(self.library), "auth": ("basic" if self.basic_auth else f"oauth:{self.oauth_provider}" if self.oauth_provider
                                                                   else "off"),
+                "auth_mode": self.auth_mode, "tls": self.tls,
                 "cookie_secret": "given" if self.cookie_secret else ("random per start" if self.basic_auth else "unused"),
-                "idle_timeout_s": self.idle_timeout_s, **dataclasses.asdict(self.limits)}
+                "idle_timeout_s": self.idle_timeout_s, **dataclasses.asdict(self.limits),
+                **{f"sessions_{k}": v for k, v in dataclasses.asdict(self.sessions).items()}}
 
 
 def parse_settings(argv=None) -> Settings:
@@ -263,6 +303,12 @@ def parse_settings(argv=None) -> Settings:
         limits = Limits(max_grid_points=args.max_grid_points, max_photo_megapixels=args.max_photo_megapixels,
                         max_upload_mb=args.max_upload_mb, max_jobs_per_session=args.max_jobs_per_session,
                         max_jobs_server=args.max_jobs_server)
+        sessions = dataclasses.replace(SessionLimits(), max_sessions=args.max_sessions,
+                                       max_per_address=min(args.max_sessions_per_address, args.max_sessions),
+                                       opens_per_minute=args.page_opens_per_minute,
+                                       max_connections_per_address=3 * args.max_sessions_per_address,
+                                       loop_share=args.loop_share_per_address)
+        tls_cert, tls_key = check_tls_files(args.tls_cert, args.tls_key)
         library = args.library.expanduser().resolve()
         try:
             library.mkdir(parents=True, exist_ok=True)
@@ -274,7 +320,28 @@ def parse_settings(argv=None) -> Settings:
     return Settings(host=args.host, port=args.port, origins=origins, threads=args.threads, library=library,
                     basic_auth=basic_auth, cookie_secret=cookie_secret, oauth_provider=args.oauth_provider,
                     oauth_redirect_uri=args.oauth_redirect_uri, idle_timeout_s=args.idle_timeout_s,
-                    limits=limits, log_level=args.log_level)
+                    limits=limits, log_level=args.log_level, sessions=sessions, tls_cert=tls_cert, tls_key=tls_key,
+                    login_hours=args.login_hours)
+
+
+def check_tls_files(cert: Path | None, key: Path | None):
+    """Both TLS files or neither, each a readable PEM file that loads as a pair; raises ValueError."""
+    if cert is None and key is None:
+        return None, None
+    if cert is None or key is None:
+        raise ValueError("give both --tls-cert and --tls-key, or neither")
+    import ssl
+
+    cert, key = cert.expanduser().resolve(), key.expanduser().resolve()
+    for path, what in ((cert, "--tls-cert"), (key, "--tls-key")):
+        if not path.is_file():
+            raise ValueError(f"{what} {path} is not a file")
+    try:
+        ssl.create_default_context(ssl.Purpose.CLIENT_AUTH).load_cert_chain(certfile=str(cert), keyfile=str(key))
+    except (ssl.SSLError, OSError) as exc:
+        raise ValueError(f"--tls-cert and --tls-key do not load as a certificate and its key "
+                         f"({getattr(exc, 'reason', None) or exc.__class__.__name__})") from None
+    return cert, key
 
 
 # ---------------------------------------------------------------------------- health
@@ -283,8 +350,10 @@ def health_handler(started: float):
     import tornado.web
 
     class HealthHandler(tornado.web.RequestHandler):
-        """GET /health → {"status", "sessions", "heavy_jobs", "max_jobs_server", "uptime_s"}; no login needed,
-        no page state. ``heavy_jobs`` is the number of photo maps and fits running now."""
+        """GET /health → {"status", "sessions", "max_sessions", "heavy_jobs", "max_jobs_server", "workers",
+        "uptime_s"}; no login needed, no page state. ``heavy_jobs`` is the number of photo maps and fits running
+        now; ``workers`` the state of the processes that run them. HTTP 200 with status "ok" while everything
+        works; HTTP 503 with status "degraded" when photo maps and fits cannot run (the pages still answer)."""
 
         def get(self):
             app = self.application  # the BokehTornado application serving the page
@@ -292,12 +361,19 @@ def health_handler(started: float):
                 sessions = sum(len(app.get_sessions(path)) for path in app.app_paths)
             except Exception:
                 sessions = None
+            from views import workers
+            from views.limits import running_jobs
+            worker_state = workers.status() if hasattr(workers, "status") else {"state": "ok"}
+            degraded = worker_state.get("state") == "degraded"
+            guard = getattr(app, "fringegauge_sessions", None)
+            self.set_status(503 if degraded else 200)
             self.set_header("Content-Type", "application/json")
             self.set_header("Cache-Control", "no-store")
-            from views.limits import running_jobs
-            self.write(json.dumps({"status": "ok", "sessions": sessions,
+            self.write(json.dumps({"status": "degraded" if degraded else "ok", "sessions": sessions,
+                                   "max_sessions": guard.limits.max_sessions if guard is not None else None,
                                    "heavy_jobs": len(running_jobs()["server"]),
                                    "max_jobs_server": Limits.from_env().max_jobs_server,
+                                   "workers": worker_state,
                                    "uptime_s": round(time.monotonic() - started, 1)}))
 
     return HealthHandler
@@ -305,21 +381,28 @@ def health_handler(started: float):
 
 # ---------------------------------------------------------------------------- start
 
-def main(argv=None) -> int:
-    settings = parse_settings(argv)
-    configure_logging(getattr(logging, settings.log_level))
-    os.environ.update(settings.limits.to_env())
-    os.environ[LIBRARY_ENV] = str(settings.library)
-    os.environ[THREADS_ENV] = str(settings.threads)
-    started = time.monotonic()
+def raise_open_file_limit() -> int:
+    """Raise this process's limit on open files to the system's hard limit (each open page and each
+    waiting connection holds one); returns the limit now in force."""
+    try:
+        import resource
+    except ImportError:                                  # pragma: no cover - not POSIX
+        return -1
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if hard == resource.RLIM_INFINITY or hard > soft:
+        target = 65_536 if hard == resource.RLIM_INFINITY else hard
+        try:
+            resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+            soft = target
+        except (ValueError, OSError):
+            pass
+    return soft
 
-    import panel as pn
-    from tornado.ioloop import IOLoop
 
-    cookie_secret = settings.cookie_secret
-    if settings.basic_auth and not cookie_secret:
-        cookie_secret = secrets.token_urlsafe(32)
-        log.warning("no cookie secret given: using a random one, so logins end when the server restarts")
+def server_options(settings: Settings, started: float, cookie_secret: str | None, login) -> dict:
+    """Everything handed to ``panel.serve``: the page's routes, the session and websocket settings, TLS."""
+    from labserver.login import EXCLUDED_COOKIES
+
     options = dict(
         port=settings.port, address=settings.host, websocket_origin=settings.origins,
         show=False, start=False, verbose=False, threaded=False,
@@ -327,17 +410,65 @@ def main(argv=None) -> int:
         unused_session_lifetime_milliseconds=int(settings.idle_timeout_s * 1000),
         check_unused_sessions_milliseconds=min(CHECK_UNUSED_MS, int(settings.idle_timeout_s * 1000)),
         websocket_max_message_size=WEBSOCKET_MESSAGE_CAP_BYTES,
+        # session ids signed with a key made at each start: only this server's pages carry valid ones
+        sign_sessions=True, secret_key=secrets.token_bytes(32), generate_session_ids=True,
+        exclude_cookies=list(EXCLUDED_COOKIES),
+        http_server_kwargs=dict(max_body_size=MAX_REQUEST_BODY_BYTES, idle_connection_timeout=IDLE_CONNECTION_S,
+                                body_timeout=BODY_TIMEOUT_S),
     )
-    if settings.basic_auth:
-        options["basic_auth"] = settings.basic_auth
+    if login is not None:
+        options["auth_provider"] = login.provider()
     if settings.oauth_provider:            # key and secret: Panel reads PANEL_OAUTH_KEY / PANEL_OAUTH_SECRET
         options["oauth_provider"] = settings.oauth_provider
         if settings.oauth_redirect_uri:
             options["oauth_redirect_uri"] = settings.oauth_redirect_uri
     if cookie_secret:
         options["cookie_secret"] = cookie_secret
+    if settings.tls:
+        options["ssl_certfile"], options["ssl_keyfile"] = str(settings.tls_cert), str(settings.tls_key)
+    return options
 
-    server = pn.serve({"app": str(APP_PATH)}, **options)
+
+def _on_loopback(host: str) -> bool:
+    return host in ("127.0.0.1", "localhost", "::1")
+
+
+def main(argv=None) -> int:
+    settings = parse_settings(argv)
+    configure_logging(getattr(logging, settings.log_level))
+    os.environ.update(settings.limits.to_env())
+    os.environ[LIBRARY_ENV] = str(settings.library)
+    os.environ[THREADS_ENV] = str(settings.threads)
+    os.environ[AUTH_ENV] = settings.auth_mode
+    started = time.monotonic()
+    open_files = raise_open_file_limit()
+
+    import panel as pn
+    from tornado.ioloop import IOLoop
+
+    from labserver.login import Credentials, LabLogin
+    from labserver.routes import restrict_routes
+    from labserver.sessions import SessionGuard
+    from labserver.websocket import install_handlers
+
+    cookie_secret = settings.cookie_secret
+    if settings.basic_auth and not cookie_secret:
+        cookie_secret = secrets.token_urlsafe(32)
+        log.warning("no cookie secret given: using a random one, so logins end when the server restarts")
+    login = None
+    if settings.basic_auth is not None:
+        login = LabLogin(Credentials.from_file_content(settings.basic_auth), tls=settings.tls,
+                         origins=settings.origins, hours=settings.login_hours)
+        if not settings.tls and not _on_loopback(settings.host):
+            log.warning("basic auth without TLS: passwords cross the network unencrypted; "
+                        "give --tls-cert and --tls-key")
+    guard = SessionGuard(settings.sessions)
+    install_handlers()
+    server = pn.serve({"app": str(APP_PATH)}, **server_options(settings, started, cookie_secret, login))
+    server._tornado.fringegauge_sessions = guard
+    restrict_routes(server._tornado)
+    if login is not None:
+        login.on_logout = guard.close_pages_of
     loop = IOLoop.current()
 
     def stop(signum, _frame):
@@ -348,11 +479,15 @@ def main(argv=None) -> int:
         signal.signal(sig, stop)
     from views import workers
     server.start()
+    guard.start(server._tornado)
     workers.warm(settings.limits.max_jobs_server)        # the first photo map should not wait for imports
-    log.info("serving", extra={"url": f"http://{settings.host}:{server.port}/app", **settings.describe()})
+    scheme = "https" if settings.tls else "http"
+    log.info("serving", extra={"url": f"{scheme}://{settings.host}:{server.port}/app", "open_files": open_files,
+                               **settings.describe()})
     try:
         loop.start()
     finally:
+        guard.stop()
         server.stop()
         workers.shutdown()
         log.info("stopped")

@@ -29,7 +29,7 @@ from pathlib import Path
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from tests.support.loadclient import Crowd, log_problems, serve, synthetic_wedge_png  # noqa: E402
+from tests.support.loadclient import CROWD_SERVER_ARGS, Crowd, log_problems, serve, synthetic_wedge_png  # noqa: E402
 
 GOAL_RATIO = 2.0
 
@@ -72,7 +72,7 @@ def main(argv=None):
     args = p.parse_args(argv)
     counts = [int(x) for x in args.users.split(",")]
     png = None if args.no_photo else synthetic_wedge_png()
-    with tempfile.TemporaryDirectory() as tmp, serve(Path(tmp)) as server:
+    with tempfile.TemporaryDirectory() as tmp, serve(Path(tmp), *CROWD_SERVER_ARGS) as server:
         rss0 = server.rss_kb() / 1024
         rows, ref, opening = asyncio.run(_bench(server, counts, args.moves, png))
         problems = log_problems(server.log_text())

@@ -37,7 +37,9 @@ WS_CAP_BYTES = WEBSOCKET_MESSAGE_CAP_BYTES
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
-    with served_lab(tmp_path_factory.mktemp("faults"), "--max-upload-mb", "1") as (base, proc, log_path):
+    # page opens as fast as these tests make them (the limits on pages are tested in test_server_hostile.py)
+    with served_lab(tmp_path_factory.mktemp("faults"), "--max-upload-mb", "1", "--page-opens-per-minute", "600") \
+            as (base, proc, log_path):
         yield {"port": int(base.rsplit(":", 1)[1]), "log": log_path, "proc": proc}
 
 
@@ -135,12 +137,13 @@ GARBAGE = {
 
 
 def test_garbage_on_the_websocket_drops_that_connection_only(server):
-    """Each kind of garbage on its own connection (all at once, one session's token): each connection is
-    closed or its garbage ignored; then the server still serves a fresh page and a fresh session."""
+    """Each kind of garbage on its own connection (all at once, up to three connections per page, the
+    server's limit): each connection is closed or its garbage ignored; then the server still serves a
+    fresh page and a fresh session."""
     port = server["port"]
-    token = _token(port)
+    tokens = [_token(port) for _ in range(-(-len(GARBAGE) // 3))]
 
-    async def one(frames):
+    async def one(frames, token):
         ws = await _connect(port, token)
         try:
             ack = await _read_message(ws)
@@ -154,7 +157,7 @@ def test_garbage_on_the_websocket_drops_that_connection_only(server):
             ws.close()
 
     async def run():
-        return await asyncio.gather(*(one(frames) for frames in GARBAGE.values()))
+        return await asyncio.gather(*(one(frames, tokens[i // 3]) for i, frames in enumerate(GARBAGE.values())))
     outcomes = dict(zip(GARBAGE, asyncio.run(run())))
     assert set(outcomes.values()) <= {"closed", "ignored"}, outcomes
     # Bokeh closes on a protocol error; a lone frame waits for the rest of its message (ignored)

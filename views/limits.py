@@ -35,6 +35,14 @@ from collections.abc import Mapping
 ENV_PREFIX = "FRINGEGAUGE_"
 
 
+def require_positive(settings) -> None:
+    """Raise ValueError naming the first field of the dataclass ``settings`` that is not positive."""
+    for field in dataclasses.fields(settings):
+        value = getattr(settings, field.name)
+        if not value > 0:
+            raise ValueError(f"{field.name} must be positive, got {value!r}")
+
+
 @dataclasses.dataclass(frozen=True)
 class Limits:
     """Safe defaults for one lab server (2 cores, a few simultaneous users)."""
@@ -48,10 +56,7 @@ class Limits:
     max_jobs_server: int = 2
 
     def __post_init__(self):
-        for field in dataclasses.fields(self):
-            value = getattr(self, field.name)
-            if not value > 0:
-                raise ValueError(f"{field.name} must be positive, got {value!r}")
+        require_positive(self)
 
     @staticmethod
     def env_name(field_name: str) -> str:
@@ -121,13 +126,26 @@ def interactive_executor() -> ThreadPoolExecutor:
         return _interactive
 
 
+#: Hex digits of a session id's hash kept in keys and log lines: enough to tell pages apart, useless
+#: for joining a page (the id itself grants access to a live page, so it is never logged).
+SESSION_HASH_CHARS = 12
+
+
+def session_hash(session_id: str) -> str:
+    """A short, one-way name for a Bokeh session id, safe to log and to compare."""
+    import hashlib
+
+    return "s-" + hashlib.sha256(str(session_id).encode("utf-8", "surrogatepass")).hexdigest()[:SESSION_HASH_CHARS]
+
+
 def session_key(fallback: object = None) -> str:
-    """A short key for the current page session (its Bokeh session id), or ``id(fallback)`` outside a server."""
+    """A short key for the current page session (a hash of its Bokeh session id, never the id itself),
+    or ``id(fallback)`` outside a server."""
     try:
         import panel as pn
         ctx = pn.state.curdoc.session_context if pn.state.curdoc is not None else None
         if ctx is not None:
-            return str(ctx.id)
+            return session_hash(ctx.id)
     except Exception:  # pragma: no cover - no Panel state at all
         pass
     return f"local-{id(fallback):x}"

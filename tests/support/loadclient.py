@@ -170,6 +170,12 @@ class Server:
         return rss_kb(self.proc.pid)
 
 
+#: Server options for a crowd of simulated users: they all come from 127.0.0.1, where a lab's people come
+#: from their own stations, so the per-address limits are lifted (the limits are tested elsewhere).
+CROWD_SERVER_ARGS = ("--max-sessions-per-address", "100", "--page-opens-per-minute", "1200",
+                     "--loop-share-per-address", "1")
+
+
 @contextlib.contextmanager
 def serve(workdir: Path, *args: str):
     """Run ``serve.py`` on a free loopback port with a library under *workdir*; yield a :class:`Server`."""
