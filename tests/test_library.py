@@ -54,6 +54,14 @@ def _can_write(folder: Path) -> bool:
         return False
 
 
+@pytest.fixture(autouse=True, scope="module")
+def _key_file(tmp_path_factory):
+    """Every library here signs with a key in a temporary folder, never one in the home folder."""
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv(store.KEY_FILE_ENV, str(tmp_path_factory.mktemp("key") / "library.key"))
+        yield
+
+
 @pytest.fixture
 def lib(tmp_path):
     return Library(tmp_path / "lab")
@@ -125,10 +133,10 @@ def test_second_save_becomes_version_2(lib):
     lib.save("stacks", "Oxide", text, user="ann")
     res = lib.save("stacks", "Oxide", text, user="bob")
     assert res.version == 2 and res.path_name == "Oxide.v2.json"
-    assert res.message.startswith("A stack named 'Oxide' already exists (saved by ann on ")
+    assert res.message.startswith("A stack named 'Oxide' already exists (saved by ann (typed name) on ")
     assert res.message.endswith("yours is saved as version 2.")
     res3 = lib.save("stacks", "Oxide", text, user="cy")
-    assert "saved by bob" in res3.message and "version 3" in res3.message
+    assert "saved by bob (typed name)" in res3.message and "version 3" in res3.message
     entries = lib.list("stacks")
     assert [e.version for e in entries] == [3, 2, 1]          # newest first
     assert lib.load("stacks", "Oxide", 1) == text
@@ -189,11 +197,11 @@ def test_crash_at_metadata_rolls_back_the_data_file(lib, monkeypatch):
     real_replace = os.replace
     calls = []
 
-    def second_fails(src, dst):
+    def second_fails(src, dst, **dir_fds):
         calls.append(dst)
         if len(calls) == 2:
             raise OSError(errno.EIO, "simulated crash")
-        return real_replace(src, dst)
+        return real_replace(src, dst, **dir_fds)
 
     monkeypatch.setattr(os, "replace", second_fails)
     with pytest.raises(LibraryWriteError):
@@ -314,6 +322,7 @@ def test_valid_sidecar_but_invalid_content_is_reported(lib):
     meta = json.loads((folder / "S.json.meta.json").read_text())
     import hashlib
     meta.update(size=len(bad), sha256=hashlib.sha256(bad).hexdigest())
+    meta["hmac"] = store.meta_mac(lib.signing_key(), meta)              # signed as the server would
     (folder / "S.json.meta.json").write_text(json.dumps(meta))
     assert lib.list("stacks") == []
     [problem] = lib.list_problems("stacks")
@@ -327,7 +336,7 @@ def test_symlink_out_of_root_is_skipped(tmp_path):
     lib.save("stacks", "S", _preset(STACK_PRESETS[0]), user="a")
     os.symlink(outside, tmp_path / "lab" / "stacks" / "Link.json")
     assert [e.name for e in lib.list("stacks")] == ["S"]
-    assert "outside" in {p.file_name: p.message for p in lib.list_problems("stacks")}["Link.json"]
+    assert "is a link" in {p.file_name: p.message for p in lib.list_problems("stacks")}["Link.json"]
 
 
 # ---------------------------------------------------------------------- archive
