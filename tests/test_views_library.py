@@ -6,6 +6,7 @@ import os
 from types import SimpleNamespace
 
 import numpy as np
+import panel as pn
 import pytest
 from PIL import Image
 
@@ -33,6 +34,14 @@ def _save(section, kind, name, user):
     section.name.set_text(name)
     section.user.set_text(user)
     return section.save_current()
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _key_file(tmp_path_factory):
+    """Every library here signs with a key in a temporary folder, never one in the home folder."""
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("FRINGEGAUGE_LIBRARY_KEY_FILE", str(tmp_path_factory.mktemp("key") / "library.key"))
+        yield
 
 
 @pytest.fixture()
@@ -374,3 +383,100 @@ def test_switching_kind_takes_the_other_kind_s_message_away(tmp_path, monkeypatc
     lib._say("The list is up to date: 1 stack.", "success")
     lib.kind.value = "gratings"
     assert not lib.message.visible or "stack" not in lib.message.object
+
+
+# ---------------------------------------------------------------------- who saved
+@pytest.fixture()
+def login(monkeypatch):
+    """Set the page's login as the server sees it (``pn.state.user`` and the request's cookies)."""
+    def set_login(user, cookies=None):
+        monkeypatch.setattr(type(pn.state), "user", property(lambda self: user))
+        monkeypatch.setattr(type(pn.state), "cookies", property(lambda self: cookies or {}))
+    return set_login
+
+
+@pytest.mark.parametrize("mode", ["users", "oauth"])
+def test_with_a_per_user_login_the_login_is_the_saver_whatever_the_field_sends(lib, monkeypatch, login, mode):
+    monkeypatch.setenv("FRINGEGAUGE_AUTH", mode)
+    login("alice")
+    a = _page(lib)
+    assert a.user.input.value == "alice" and a.user.input.disabled
+    a.name.set_text("Gate oxide")
+    a.user.input.value = "mallory"                     # a value change sent by a client despite the disabled field
+    assert a.save_current()
+    [entry] = lib.list("stacks")
+    assert entry.user == "alice"
+    assert (entry.user_verified, entry.saved_by) == (True, "alice")
+    assert a.user.input.value == "alice"               # the field shows who it was saved as
+    assert "(typed name)" not in next(iter(a.listing.options))
+
+
+def test_with_a_per_user_login_a_page_without_one_saves_nothing(lib, monkeypatch, login):
+    monkeypatch.setenv("FRINGEGAUGE_AUTH", "users")
+    login(None)
+    a = _page(lib)
+    a.name.set_text("Gate oxide")
+    a.user.input.value = "mallory"
+    assert not a.save_current()
+    assert "no login" in a.message.object and lib.list("stacks") == []
+
+
+def test_a_guest_cookie_is_not_a_login(lib, monkeypatch, login):
+    monkeypatch.setenv("FRINGEGAUGE_AUTH", "users")
+    login("guest", cookies={"is_guest": "1"})          # Panel answers "guest" for this unsigned cookie
+    a = _page(lib)
+    a.name.set_text("Gate oxide")
+    assert not a.save_current() and lib.list("stacks") == []
+
+
+@pytest.mark.parametrize("mode", ["shared", "off", "", "no-such-mode"])
+def test_without_a_per_user_login_the_name_is_typed_and_shown_as_typed(lib, monkeypatch, login, mode):
+    monkeypatch.setenv("FRINGEGAUGE_AUTH", mode)
+    login("anyone" if mode == "shared" else None)      # a shared password takes any user name
+    a = _page(lib)
+    assert not a.user.input.disabled
+    assert a.user.input.value == ("anyone" if mode == "shared" else "")
+    assert _save(a, "stacks", "Gate oxide", "J. Ortiz")
+    [entry] = lib.list("stacks")
+    assert (entry.user, entry.user_verified) == ("J. Ortiz", False)
+    assert "J. Ortiz (typed name)" in next(iter(a.listing.options))
+    assert "J. Ortiz (typed name)" in a.detail.object and "not checked by a login" in a.detail.object
+    assert a.load_selected() and "saved by J. Ortiz (typed name)" in a.message.object
+
+
+def test_the_auth_mode_defaults_to_off(monkeypatch):
+    from views.library import auth_mode
+    monkeypatch.delenv("FRINGEGAUGE_AUTH", raising=False)
+    assert auth_mode() == "off"
+    monkeypatch.setenv("FRINGEGAUGE_AUTH", " OAuth ")
+    assert auth_mode() == "oauth"
+
+
+# ---------------------------------------------------------------------- a folder that goes away
+def test_a_library_folder_deleted_after_start_is_said_and_not_recreated(lib):
+    import shutil
+    a = _page(lib)
+    assert _save(a, "stacks", "Kept", "ak")
+    shutil.rmtree(lib.root)
+    a.refresh()
+    assert a.message.alert_type == "warning" and "folder is missing (deleted or unmounted?)" in a.message.object
+    assert not _save(a, "stacks", "Again", "ak")
+    assert "folder is missing" in a.message.object and "your work is still in this page" in a.message.object
+    assert not lib.root.exists()
+
+
+def test_the_tab_shows_no_server_path(lib, monkeypatch):
+    a = _page(lib)
+    assert _save(a, "stacks", "Kept", "ak")
+    secret = str(lib.root)
+
+    def denied(kind):
+        raise OSError(errno.EACCES, "Permission denied", secret + "/stacks")
+    monkeypatch.setattr(lib, "list_with_problems", denied)
+    a.refresh()
+    assert "Permission denied" in a.message.object and secret not in a.message.object
+    monkeypatch.undo()
+    a.refresh()
+    monkeypatch.setattr(lib, "load", lambda *args: (_ for _ in ()).throw(OSError(errno.EIO, "I/O error", secret)))
+    assert not a.load_selected()
+    assert "I/O error" in a.message.object and secret not in a.message.object

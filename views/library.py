@@ -15,6 +15,16 @@ is hidden or the page is closed, and ``refresh`` (called when the tab is opened)
 again. Archiving takes two clicks: the first asks, naming the version, and the question lapses
 after ``CONFIRM_MS``; afterwards nothing is selected, so a further click cannot archive another
 item.
+
+Who saved. ``FRINGEGAUGE_AUTH`` (set by serve.py) says what the server's login proves: "users"
+(a password per user) or "oauth" (an identity provider) prove the name, so the saver is the login
+name (``pn.state.user``) read on the server at the moment of saving, whatever the page's name field
+holds, and it is recorded as verified; the field only shows it. "shared" (one password for
+everyone: Panel's basic auth then accepts any user name) and "off" prove nothing, so the person
+types a name, which is recorded and shown as typed ("J. Ortiz (typed name)"). Unset or unknown
+values count as "off": nothing is claimed as verified that the server did not check.
+
+Messages on the page name items and files inside the library, never the server's folders.
 """
 
 from __future__ import annotations
@@ -27,7 +37,8 @@ from functools import partial
 
 import panel as pn
 
-from library.store import NOUNS, ItemMissing, Library, LibraryWriteError, validate_calibration
+from library.store import (NOUNS, TYPED_MARK, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
+                           validate_calibration)
 from physics import InputError
 from physics.stackfile import load_stack_file
 
@@ -37,6 +48,12 @@ from .limits import served
 
 #: Environment variable naming the library folder (set by serve.py).
 LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
+#: Environment variable saying what the server's login proves (set by serve.py): one of AUTH_MODES.
+AUTH_ENV = "FRINGEGAUGE_AUTH"
+#: "off": no login; "shared": one password for everyone; "users": a password per user; "oauth": a provider.
+AUTH_MODES = ("off", "shared", "users", "oauth")
+#: The modes whose login name identifies a person, so it is the saver and recorded as verified.
+VERIFIED_AUTH_MODES = ("users", "oauth")
 #: Most entries listed per kind (newest first); older ones stay in the folder.
 MAX_LISTED = 500
 #: How often the shown tab checks the folder for changes (ms): soon enough that a save in another
@@ -54,6 +71,25 @@ _CSS = """
 .fg-lib-heading { font-size: 14px; font-weight: 600; color: #333; margin: 0; line-height: 1.3; }
 .fg-lib-confirm { font-size: 13px; line-height: 1.35; }
 """
+
+
+def auth_mode() -> str:
+    """``FRINGEGAUGE_AUTH`` as one of AUTH_MODES; unset, empty or unknown values are "off" (nothing verified)."""
+    mode = os.environ.get(AUTH_ENV, "").strip().lower()
+    return mode if mode in AUTH_MODES else "off"
+
+
+def login_name() -> str | None:
+    """The page's login name as the server knows it (``pn.state.user``, from the signed login cookie), or
+    None. Panel answers "guest" for an unsigned ``is_guest`` cookie a browser can set by itself, so that
+    answer is not taken as a login."""
+    try:
+        if pn.state.cookies.get("is_guest"):
+            return None
+        user = pn.state.user
+    except (AttributeError, RuntimeError, ValueError):     # no session (a script or test without a page)
+        return None
+    return str(user) if user else None
 
 
 def library_from_env() -> Library | None:
@@ -131,10 +167,16 @@ class LibrarySection:
                                      css_classes=["fg-lib-message"])
         self.problems = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#8a4b00"},
                                      css_classes=["fg-lib-problems"])
-        login = getattr(pn.state, "user", None)
-        if login:
-            self.user.set_text(str(login))
-            self.user.input.disabled = True
+        self.auth = auth_mode()
+        self._login_at_start = login_name()      # read on the server as the page is built
+        if self.verified_logins():
+            self.user.input.name = "Saved under your login"
+            self.user.set_text(self._login_at_start or "")
+            self.user.input.disabled = True      # shows the login; what it holds is never used for saving
+        else:
+            self.user.input.name = f"Your name or initials (saved with the item, shown {TYPED_MARK})"
+            if self._login_at_start:             # a shared password proves no name: a suggestion only
+                self.user.set_text(self._login_at_start)
         # every handler below changes Bokeh models: under the document lock (see views.inverse.locked)
         self.kind.param.watch(locked(lambda e: self._kind_changed()), "value")
         self.listing.param.watch(locked(self._selection_changed), "value")
@@ -145,6 +187,20 @@ class LibrarySection:
         self.keep_button.on_click(locked(lambda e: self.keep()))
         self.save_button.on_click(locked(lambda e: self.save_current()))
         self._reread()
+
+    def verified_logins(self) -> bool:
+        """True when the server's login identifies each person (FRINGEGAUGE_AUTH "users" or "oauth")."""
+        return self.auth in VERIFIED_AUTH_MODES
+
+    def saver(self):
+        """(user, verified) for a save now: the login name under a per-user login (None when the page has
+        none), else the typed name."""
+        if self.verified_logins():
+            login = login_name() or self._login_at_start
+            if login:
+                self.user.set_text(login)
+            return login, True
+        return self.user.input.value.strip(), False
 
     # ------------------------------------------------------------------ listing
     def refresh(self) -> None:
@@ -185,10 +241,17 @@ class LibrarySection:
         try:
             self._marker = self.lib.change_marker(kind)       # before reading: a change meanwhile shows next time
             entries, problems = self.lib.list_with_problems(kind)
+        except LibraryKeyError as exc:
+            self._set_listing([], None)
+            self._say(_esc(error_text(exc)), "danger")
+            return False
         except (InputError, OSError) as exc:
             self._set_listing([], None)
-            self._say(f"The library folder cannot be read: {_esc(str(exc))}", "danger")
+            self._say(f"The library folder cannot be read: {_esc(error_text(exc))}", "danger")
             return False
+        gone = self.lib.root_problem()
+        if gone:
+            self._say(_esc(gone), "warning")
         entries = sorted(entries, key=lambda e: (e.saved_at, e.name, e.version), reverse=True)[:MAX_LISTED]
         newest = entries[0].file_name if entries else None
         if select == "none":
@@ -203,7 +266,9 @@ class LibrarySection:
             items = "".join(f"<li>{_esc(str(p))}</li>" for p in problems[:50])
             more = f"<li>… and {len(problems) - 50} more</li>" if len(problems) > 50 else ""
             self.problems.object = (f"<b>Skipped files ({len(problems)})</b>: not loaded because they failed "
-                                    f"the checks; whoever looks after the server can inspect them.<ul>{items}{more}</ul>")
+                                    "the checks (links, special or oversized files, metadata not written by this "
+                                    "server, changed content); whoever looks after the server can inspect them."
+                                    f"<ul>{items}{more}</ul>")
         else:
             self.problems.object = ""
         return chosen is not None and keep is None and select == "keep"
@@ -211,7 +276,7 @@ class LibrarySection:
     def _set_listing(self, entries, keep) -> None:
         """Show ``entries``; select the one whose file is ``keep`` (None: nothing selected)."""
         self.entries = list(entries)
-        self.listing.options = {f"{e.name}  ·  v{e.version}  ·  {e.user}  ·  {_when(e.saved_at)}": e.file_name
+        self.listing.options = {f"{e.name}  ·  v{e.version}  ·  {e.saved_by}  ·  {_when(e.saved_at)}": e.file_name
                                 for e in self.entries}
         self.select_file(keep)
 
@@ -240,8 +305,10 @@ class LibrarySection:
             self.detail.object = ("" if self.lib is None else f"No {noun} saved yet." if not self.entries
                                   else f"Nothing is selected: choose a {noun} in the list to load or archive it.")
             return
+        who = ("" if e.user_verified else
+               " — a name typed when saving, not checked by a login, so anyone could have typed it")
         self.detail.object = (f"<div class='fg-lib-entry'><b>{_esc(e.name)}</b>, version {e.version}: saved by "
-                              f"{_esc(e.user)} on {_esc(_when(e.saved_at))} (UTC), {e.size:,} bytes, file "
+                              f"{_esc(e.saved_by)}{who} on {_esc(_when(e.saved_at))} (UTC), {e.size:,} bytes, file "
                               f"<code>{_esc(e.file_name)}</code></div>")
 
     def _kind_changed(self) -> None:
@@ -333,9 +400,9 @@ class LibrarySection:
         except (InputError, OSError) as exc:
             if self._gone(e, exc):
                 return False
-            self._say(f"Could not load {_esc(e.name)} v{e.version}: {_esc(str(exc))}", "danger")
+            self._say(f"Could not load {_esc(e.name)} v{e.version}: {_esc(error_text(exc))}", "danger")
             return False
-        self._say(f"Loaded {_esc(e.name)} v{e.version} (saved by {_esc(e.user)}) into {where}.", "success")
+        self._say(f"Loaded {_esc(e.name)} v{e.version} (saved by {_esc(e.saved_by)}) into {where}.", "success")
         return True
 
     def _gone(self, e, exc) -> bool:
@@ -354,14 +421,16 @@ class LibrarySection:
             self._reread()
             return False
         name = self.name.input.value.strip()
-        user = self.user.input.value.strip()
-        missing = []
+        user, verified = self.saver()
         self.name.show_error(None if name else "Type a name to save under.")
+        if verified and not user:
+            self.user.show_error("This server saves under your login, and this page has none.")
+            self._say("Not saved: this server saves each item under the saver's login, and this page has no "
+                      "login. Reload the page and log in.", "warning")
+            return False
         self.user.show_error(None if user else "Type your name or initials: the lab sees who saved each item.")
-        if not name:
-            missing.append("a name to save under")
-        if not user:
-            missing.append("your name or initials")
+        missing = [what for what, given in (("a name to save under", name), ("your name or initials", user))
+                   if not given]
         if missing:
             self._say(f"Not saved: type {' and '.join(missing)}.", "warning")
             return False
@@ -371,9 +440,9 @@ class LibrarySection:
             self._say(f"Nothing to save: {_esc(str(exc))}", "warning")
             return False
         try:
-            result = self.lib.save(kind, name, content, user=user)
-        except LibraryWriteError as exc:
-            self._say(f"Not saved: {_esc(str(exc))}", "danger")
+            result = self.lib.save(kind, name, content, user=user, user_verified=verified)
+        except (LibraryWriteError, LibraryKeyError) as exc:
+            self._say(f"Not saved: {_esc(error_text(exc))}", "danger")
             return False
         except InputError as exc:
             self.name.show_error(str(exc))
@@ -420,7 +489,7 @@ class LibrarySection:
         except (InputError, OSError) as exc:
             if self._gone(e, exc):
                 return False
-            self._say(f"Not archived: {_esc(str(exc))}", "danger")
+            self._say(f"Not archived: {_esc(error_text(exc))}", "danger")
             return False
         self._reread(select="none")
         self._say(f"Archived {_esc(e.name)} v{e.version}: it is no longer listed, and whoever looks after the "
