@@ -37,7 +37,7 @@ from functools import partial
 
 import panel as pn
 
-from library.store import (NOUNS, TYPED_MARK, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
+from library.store import (NOUNS, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
                            validate_calibration)
 from physics import InputError
 from physics.stackfile import load_stack_file
@@ -174,7 +174,7 @@ class LibrarySection:
             self.user.set_text(self._login_at_start or "")
             self.user.input.disabled = True      # shows the login; what it holds is never used for saving
         else:
-            self.user.input.name = f"Your name or initials (saved with the item, shown {TYPED_MARK})"
+            self.user.input.name = "Your name or initials (saved with the item)"   # listed as typed
             if self._login_at_start:             # a shared password proves no name: a suggestion only
                 self.user.set_text(self._login_at_start)
         # every handler below changes Bokeh models: under the document lock (see views.inverse.locked)
