@@ -49,6 +49,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 from labserver.login import DEFAULT_LOGIN_HOURS, read_password_file  # noqa: E402
+from library.store import DEFAULT_KEY_FILE, KEY_FILE_ENV, load_or_create_key, prepare_root  # noqa: E402
 from labserver.sessions import SessionLimits  # noqa: E402
 from views.limits import THREADS_ENV, WEBSOCKET_MESSAGE_CAP_BYTES, Limits  # noqa: E402
 
@@ -159,6 +160,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="worker threads shared by all pages for quick work (spectra, strips, film and grating maps); photo maps and fits get their own --max-jobs-server threads")
     p.add_argument("--library", type=Path, default=Path("lab-library"),
                    help="folder for the shared library (created if missing; relative to the current directory)")
+    p.add_argument("--library-key-file", metavar="KEY_FILE", type=Path,
+                   help=f"file holding the key that signs the library's metadata, made at first start (mode 0600); "
+                        f"outside the library folder. Default: ${KEY_FILE_ENV}, else ~/{DEFAULT_KEY_FILE}. "
+                        "Back it up apart from the library: without it saved items show as not written by this server "
+                        "until `python -m library sign` accepts them again")
     p.add_argument("--basic-auth", metavar="PASSWORD_FILE", type=Path,
                    help="turn on a login page; the file holds one shared password, or a JSON object "
                         "{\"user\": \"password\", ...}. Off by default. The password is never printed or logged")
@@ -262,6 +268,7 @@ class Settings:
     tls_cert: Path | None = None
     tls_key: Path | None = None
     login_hours: float = DEFAULT_LOGIN_HOURS
+    library_notes: list = dataclasses.field(default_factory=list)
 
     @property
     def tls(self) -> bool:
@@ -310,10 +317,10 @@ def parse_settings(argv=None) -> Settings:
                                        loop_share=args.loop_share_per_address)
         tls_cert, tls_key = check_tls_files(args.tls_cert, args.tls_key)
         library = args.library.expanduser().resolve()
-        try:
-            library.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise ValueError(f"cannot create library folder {library}: {exc.strerror}") from None
+        library_notes = prepare_root(library)          # makes it on first start, cleans what a killed save left
+        if args.library_key_file is not None:
+            os.environ[KEY_FILE_ENV] = str(args.library_key_file.expanduser().resolve())
+        load_or_create_key(library_root=library)        # an unusable key stops the start, not the first save
     except ValueError as exc:
         parser.error(str(exc))
     origins = args.allow_origin or default_origins(args.host, args.port)
@@ -321,7 +328,7 @@ def parse_settings(argv=None) -> Settings:
                     basic_auth=basic_auth, cookie_secret=cookie_secret, oauth_provider=args.oauth_provider,
                     oauth_redirect_uri=args.oauth_redirect_uri, idle_timeout_s=args.idle_timeout_s,
                     limits=limits, log_level=args.log_level, sessions=sessions, tls_cert=tls_cert, tls_key=tls_key,
-                    login_hours=args.login_hours)
+                    login_hours=args.login_hours, library_notes=library_notes)
 
 
 def check_tls_files(cert: Path | None, key: Path | None):
@@ -442,6 +449,8 @@ def main(argv=None) -> int:
     os.environ[AUTH_ENV] = settings.auth_mode
     started = time.monotonic()
     open_files = raise_open_file_limit()
+    for note in settings.library_notes:
+        log.info(note)
 
     import panel as pn
     from tornado.ioloop import IOLoop

@@ -21,7 +21,9 @@ ROOT = Path(__file__).resolve().parents[1]
 SERVE = ROOT / "serve.py"
 OPTIONS = ["--host", "--port", "--allow-origin", "--threads", "--library", "--basic-auth", "--cookie-secret-file",
            "--idle-timeout-s", "--max-grid-points", "--max-photo-megapixels", "--max-upload-mb",
-           "--max-jobs-per-session", "--max-jobs-server", "--oauth-provider", "--oauth-redirect-uri"]
+           "--max-jobs-per-session", "--max-jobs-server", "--oauth-provider", "--oauth-redirect-uri", "--tls-cert",
+           "--tls-key", "--login-hours", "--max-sessions", "--max-sessions-per-address", "--page-opens-per-minute",
+           "--loop-share-per-address", "--library-key-file"]
 
 
 def run_serve(*args, cwd, env=None, timeout=30):
@@ -81,6 +83,29 @@ def test_bad_arguments_exit_2_with_a_message(tmp_path, args, message):
     assert result.returncode == 2
     assert message in result.stderr
     assert "Traceback" not in result.stderr
+
+
+def test_a_folder_that_is_not_a_library_and_a_key_inside_the_library_are_refused_at_start(tmp_path):
+    other = tmp_path / "home-folder"
+    other.mkdir()
+    (other / "thesis.txt").write_text("someone's files")
+    result = run_serve("--library", str(other), cwd=tmp_path)
+    assert result.returncode == 2 and "library" in result.stderr and (other / "thesis.txt").exists()
+    lib = tmp_path / "lib"
+    result = run_serve("--library", str(lib), "--library-key-file", str(lib / "k.key"), cwd=tmp_path)
+    assert result.returncode == 2 and "key" in result.stderr.lower()
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--tls-cert", "cert.pem"], "--tls-key"),
+    (["--tls-cert", "missing.pem", "--tls-key", "missing.key"], "not a file"),
+    (["--loop-share-per-address", "1.5"], "fraction"),
+    (["--max-sessions", "0"], "--max-sessions"),
+])
+def test_bad_tls_and_page_limits_exit_2_with_a_message(tmp_path, args, message):
+    (tmp_path / "cert.pem").write_text("not a certificate")
+    result = run_serve(*args, cwd=tmp_path)
+    assert result.returncode == 2 and message in result.stderr, result.stderr
 
 
 def test_oauth_needs_a_cookie_secret_and_keeps_its_client_secret_quiet(tmp_path):
