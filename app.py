@@ -10,6 +10,7 @@ from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
 from views.offline import serve_everything_locally
+from views.tabs import BuiltOnFirstOpen
 from views.limits import page_closed, quiet_closed_connections, served
 from views.urlstate import apply_query, state_to_query
 
@@ -20,9 +21,14 @@ pn.extension("filedropper", design="native", notifications=False)
 ADDRESS_DELAY_MS = 400
 
 
-def tab_opened(inverse, library, title):
-    """Sections that draw only while their tab is open, or re-read the library when it is opened."""
-    inverse.set_shown(title == "Colour → thickness")
+def tab_opened(tabs, library, title):
+    """Build a tab's section when it is first opened; sections that draw only while their tab is open are
+    told so; the library is re-read when its tab is opened."""
+    inverse = tabs["Colour → thickness"]
+    if title in tabs:
+        tabs[title].get()
+    if inverse.built:
+        inverse.set_shown(title == "Colour → thickness")
     if title == "Lab library":
         library.refresh()
 
@@ -56,16 +62,18 @@ def page():
                 pending.append(doc.add_timeout_callback(write_address, ADDRESS_DELAY_MS))
         explorer.state.param.watch(address_soon, list(explorer.state.param))
         pn.state.onload(write_address)
-    inverse = ColourToThickness(explorer)
-    inverse.set_shown(False)                       # the page opens on the film explorer
-    fit = SpectrumFitSection(explorer)
-    gratings = GratingSection()
-    library = LibrarySection(explorer, inverse, gratings)
-    return explorer.panel(extra_tabs=[("Colour → thickness", inverse.panel()),
-                                      ("Spectrum → thickness", fit.panel()),
-                                      ("Gratings", gratings.panel()),
+    def colour_section():
+        inverse = ColourToThickness(explorer)
+        inverse.set_shown(False)
+        return inverse
+
+    tabs = {"Colour → thickness": BuiltOnFirstOpen(colour_section),
+            "Spectrum → thickness": BuiltOnFirstOpen(lambda: SpectrumFitSection(explorer)),
+            "Gratings": BuiltOnFirstOpen(GratingSection)}
+    library = LibrarySection(explorer, tabs["Colour → thickness"], tabs["Gratings"])
+    return explorer.panel(extra_tabs=[*((title, tab.holder) for title, tab in tabs.items()),
                                       ("Lab library", library.panel())],
-                          without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, inverse, library)))
+                          without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, tabs, library)))
 
 
 page().servable(title="fringegauge")

@@ -19,16 +19,18 @@ path                   methods     what
 =====================  ==========  ==================================================
 
 Matching is on the raw request path (as Tornado routes it), anchored at both ends, so no
-encoding or ``..`` trick reaches a route that is not listed.
+encoding or ``..`` trick reaches a route that is not listed. The access log (:func:`log_request`)
+leaves out every query string.
 """
 
 from __future__ import annotations
 
+import logging
 import re
 
 import tornado.web
 
-__all__ = ["ALLOWED", "allowed", "restrict_routes"]
+__all__ = ["ALLOWED", "allowed", "restrict_routes", "log_request"]
 
 #: (path pattern, methods) of every route the page needs.
 ALLOWED = (
@@ -71,6 +73,24 @@ class RefusedRoute(tornado.web.RequestHandler):
         return None
 
 
+_access = logging.getLogger("tornado.access")
+
+
+def log_request(handler) -> None:
+    """One access-log line per request: status, method, path without its query, client, duration.
+
+    The query is left out: it may carry a session id or token (which grant access to a page) or a
+    long page state; neither belongs in a log. 5xx answers of the server's own limits (503) are
+    warnings, like other refusals; only other 5xx are errors.
+    """
+    status = handler.get_status()
+    level = logging.INFO if status < 400 else logging.ERROR if status >= 500 and status != 503 else logging.WARNING
+    if _access.isEnabledFor(level):
+        request = handler.request
+        _access.log(level, "%d %s %s (%s) %.1fms", status, request.method, (request.path or "")[:200],
+                    request.remote_ip, 1000.0 * request.request_time())
+
+
 def restrict_routes(tornado_app) -> None:
     """Answer every request outside :data:`ALLOWED` with :class:`RefusedRoute`, before Tornado looks
     for the handler Panel or Bokeh registered for it (so none of their code runs for it)."""
@@ -83,3 +103,4 @@ def restrict_routes(tornado_app) -> None:
         return routed(request, **kwargs)
 
     tornado_app.find_handler = find_handler      # Tornado's HTTP server asks the application for each request
+    tornado_app.settings["log_function"] = log_request

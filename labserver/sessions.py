@@ -9,6 +9,7 @@ and the loop. :class:`SessionGuard` decides, before a page is built, whether it 
 - page opens per address come from a bucket of ``burst`` that refills at ``opens_per_minute``;
 - a page whose websocket has not connected ``connect_within_s`` after it was built is freed
   (a browser connects within a second or two of receiving the page);
+- pages are built one at a time, with a breath for the loop after each (:meth:`SessionGuard.building`);
 - at most ``max_connections_per_session`` websockets per page and ``max_connections_per_address``
   per address;
 - each address has a share of the event loop: ``loop_share`` seconds of loop time per second after
@@ -24,6 +25,8 @@ guard needs no lock; its tables are bounded by the limits themselves.
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
 import dataclasses
 import logging
 import time
@@ -36,6 +39,11 @@ _log = logging.getLogger("fringegauge")
 
 #: How often the sweeper looks for pages whose browser never connected (s).
 SWEEP_EVERY_S = 1.0
+#: After building a page, the next build waits this fraction of the build's time (at most
+#: BREATH_MAX_S): a request that arrived meanwhile (another page's message, /health) needs a few
+#: turns of the loop, and back-to-back builds would leave it none.
+BREATH_FRACTION = 0.5
+BREATH_MAX_S = 0.5
 #: Client addresses whose page-open bucket is remembered; beyond it the fullest buckets are forgotten
 #: (a full bucket is the same as a new one, so forgetting it loses nothing).
 MAX_TRACKED_ADDRESSES = 10_000
@@ -52,8 +60,9 @@ class SessionLimits:
     #: page opens per address and minute, after a burst of ``burst``: a reload every 3 s is plenty
     opens_per_minute: float = 20.0
     burst: int = 6
-    #: seconds a built page waits for its browser's websocket before it is freed
-    connect_within_s: float = 10.0
+    #: seconds a built page waits for its browser's websocket before it is freed: a browser connects
+    #: within a second or two of receiving the page, a few more while the server builds others' pages
+    connect_within_s: float = 15.0
     #: websockets on one page (a reconnect overlaps the old connection for a moment)
     max_connections_per_session: int = 3
     #: websockets per client address
@@ -120,6 +129,7 @@ class SessionGuard:
         self._connections: dict[str, int] = {}        # address -> open websockets
         self._loop_use: dict[str, tuple[float, float]] = {}  # address -> (seconds owed, at)
         self._timer = None
+        self._building = None                          # asyncio.Lock, made on the loop
         self.refused = 0
 
     # ------------------------------------------------------------------ pages
@@ -203,6 +213,19 @@ class SessionGuard:
 
     def open_pages(self) -> int:
         return len(self._pages)
+
+    @contextlib.asynccontextmanager
+    async def building(self):
+        """Build one page at a time: pages are built on the event loop, each in one piece; between two
+        builds the loop gets a breath for everything else that is waiting."""
+        if self._building is None:
+            self._building = asyncio.Lock()
+        async with self._building:
+            t0 = time.perf_counter()
+            try:
+                yield
+            finally:
+                await asyncio.sleep(min(BREATH_MAX_S, BREATH_FRACTION * (time.perf_counter() - t0)))
 
     # ------------------------------------------------------------------ websockets
     def connect(self, session_id: str, address: str, socket) -> Refusal | None:

@@ -37,7 +37,7 @@ import logging
 import time
 
 from bokeh.protocol.exceptions import MessageError, ProtocolError, ValidationError
-from bokeh.util.token import get_session_id
+from bokeh.util.token import check_token_signature, get_session_id, get_token_payload
 from panel.io.server import DocHandler as PanelDocHandler
 from panel.io.server import WSHandler as PanelWSHandler
 
@@ -158,6 +158,27 @@ class GuardedWSHandler(PanelWSHandler):
                                                 **({"session": session_hash(self._joined)} if self._joined else {})})
         self.close(code, reason)
 
+    def open(self, *args, **kwargs):
+        """Refuse a connection without a valid, unexpired token of this server quietly (Bokeh would log the
+        session id it names and raise a traceback), then let Panel and Bokeh open it."""
+        token = self._token
+        problem = None
+        if self.selected_subprotocol != "bokeh" or not token:
+            problem = "no page token"
+        elif not check_token_signature(token, signed=self.application.sign_sessions,
+                                       secret_key=self.application.secret_key):
+            problem = "a token this server did not sign"
+        else:
+            try:
+                expiry = get_token_payload(token).get("session_expiry")
+            except Exception:
+                expiry = None
+            if not isinstance(expiry, (int, float)) or expiry <= time.time():
+                problem = "an expired token"
+        if problem is not None:
+            return self._refuse(4001, "This page has expired; reload it.", problem)
+        return super().open(*args, **kwargs)
+
     async def _async_open(self, token: str) -> None:
         guard = _guard(self)
         session_id = str(get_session_id(token))
@@ -275,12 +296,15 @@ class GuardedDocHandler(PanelDocHandler):
             self.finish(simple_page("the server is full", reservation.message))
             return
         self._reservation = reservation
-        t0 = time.thread_time()
         try:
-            return await super().get(*args, **kwargs)
+            async with guard.building():
+                t0 = time.thread_time()
+                try:
+                    return await super().get(*args, **kwargs)
+                finally:
+                    guard.charge(self.request.remote_ip, time.thread_time() - t0)
         finally:
             reservation.release(refund=True)          # no page was built (a login redirect, an error)
-            guard.charge(self.request.remote_ip, time.thread_time() - t0)
 
     async def get_session(self):
         session = await super().get_session()
