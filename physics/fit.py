@@ -26,6 +26,7 @@ the curvature); P. Virtanen et al., SciPy 1.0, Nat. Methods 17, 261 (2020).
 from __future__ import annotations
 
 import re
+import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -34,8 +35,9 @@ from scipy.optimize import least_squares
 from .errors import InputError, WavelengthRangeError, require_finite
 from .stack import Stack, _check_layer_index, _Optics, sweep
 
-__all__ = ["fit_thickness", "FitResult", "read_spectrum", "SpectrumData", "reflectance_from_counts",
-           "optical_thickness_fft", "noise_rms", "fit_thickness_reporting", "MIN_POINTS"]
+__all__ = ["fit_thickness", "FitResult", "read_spectrum", "read_spectrum_table", "SpectrumData", "SpectrumTable",
+           "reflectance_from_counts", "optical_thickness_fft", "noise_rms", "fit_thickness_reporting", "text_lines",
+           "MIN_POINTS", "MAX_SPECTRUM_BYTES", "MAX_SPECTRUM_LINES", "MAX_LINE_CHARS", "SPECTRUM_READ_BUDGET_S"]
 
 #: Fewest spectrum points accepted for a fit.
 MIN_POINTS = 10
@@ -107,6 +109,38 @@ COUNTS_ABOVE = 150.0
 PLAUSIBLE_WAVELENGTH_NM = (100.0, 30_000.0)
 #: Reflectance above this after the unit is applied is implausible (a percentage read as a fraction, or counts).
 PLAUSIBLE_MAX_REFLECTANCE = PERCENT_ABOVE
+#: Largest spectrum file read (bytes; 1 MB = 10**6 bytes throughout): two columns of a few thousand rows are
+#: tens of kB, so this leaves room for exports with many columns.
+MAX_SPECTRUM_BYTES = 20_000_000
+#: Most lines read from a spectrum file (header, comments and data together); reading stops at the next one.
+#: A spectrometer export has one row per detector pixel or wavelength step: 1024-4096 for an array
+#: spectrometer, 901 for 200-1100 nm at 1 nm (common practice). 200,000 is a 0.005 nm step over 1000 nm, far
+#: finer than a film fit uses (it averages dense spectra down to about MAX_FIT_POINTS).
+MAX_SPECTRUM_LINES = 200_000
+#: Longest line read from a text file of numbers (characters). Two numbers and a separator need a few dozen,
+#: export headers a few hundred. A longer line is refused before it is split, so no split or pattern match
+#: works on more than this: each is one C call that holds the interpreter lock while it runs.
+MAX_LINE_CHARS = 4096
+#: Time allowed for reading one spectrum file (s). MAX_SPECTRUM_LINES lines read in about 1 s on one core of
+#: the 2-core lab machine (measured); ten times that leaves room for a busy server and still stops a read that
+#: goes on far longer than any real file needs.
+SPECTRUM_READ_BUDGET_S = 10.0
+#: Lines between two progress reports while a text file is read (its time budget is checked every 1024).
+PROGRESS_EVERY_LINES = 10_000
+#: Lines between two hand-overs of the interpreter lock (``time.sleep(0)``) while a text file is read. A
+#: thread running Python keeps the lock for the switch interval (5 ms) each time another thread asks for
+#: it, and a server answering one request asks a few dozen times. Measured on the 2-core machine beside a
+#: reading thread: twenty short waits, as in one request, took about 110 ms (median) without hand-overs,
+#: 40 ms with one every 256 lines and 10 ms with one every 64. A hand-over is one system call (0.08 ms on
+#: the busy machine), so reading 200,000 lines takes up to 0.25 s longer.
+YIELD_EVERY_LINES = 64
+#: Characters split into lines at a time, so no single split covers the whole text (more than any line allowed).
+_LINE_BLOCK_CHARS = 1 << 16
+#: Characters in which line breaks are counted before reading, to refuse a file of far too many lines at
+#: once: one C call over at most this much text holds the interpreter lock for 10-30 ms (measured).
+_COUNT_CHARS = 20_000_000
+#: What str.splitlines ends a line at.
+_LINE_ENDS = "\r\n\v\f\x1c\x1d\x1e\x85\u2028\u2029"
 
 
 # ---------------------------------------------------------------------- import
@@ -175,39 +209,114 @@ def _num(text: str) -> float:
     return float(text.replace(",", "."))
 
 
-def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: str | None = None,
-                  max_bytes: int = 20_000_000) -> SpectrumData:
-    """Read a spectrometer export: two numeric columns, wavelength and reflectance.
+def text_lines(text: str, *, what: str, max_lines: int, budget_s: float, fix: str,
+               max_line_chars: int = MAX_LINE_CHARS, progress=None):
+    """The lines of ``text`` as ``str.splitlines`` splits them, read within bounds.
 
-    Header lines are skipped; columns may be separated by commas, semicolons, tabs or spaces;
-    decimals may be dots or commas (with ; or tab separators); wavelengths in nm or µm and values
-    as fractions or percent are detected (give ``wavelength_unit`` "nm"/"um" or ``value_unit``
-    "fraction"/"percent" to override); rows are sorted and repeated wavelengths averaged; rows
-    with NaN or a single number are dropped and counted.
+    Yields ``(line number from 1, line without its end)``. The text is split a block at a time, so a
+    file of many lines or one giant line never goes through one long split.
+
+    Parameters
+    ----------
+    what : str  how messages name the file, e.g. "spectrum file"
+    max_lines : int  most lines read; the next one raises
+    budget_s : float  seconds the reading may take (checked every 1024 lines)
+    fix : str  the sentence saying how to make the file fit, ending too-many-lines and too-slow messages
+    max_line_chars : int  longest line accepted (at most 65,000 characters)
+    progress : callable(lines read) or None
+        Called every :data:`PROGRESS_EVERY_LINES` lines; it may raise to stop the reading.
 
     Raises
     ------
     InputError
-        Not text, text in the number columns of the data block, fewer than :data:`MIN_POINTS` rows.
+        More than ``max_lines`` lines, a line longer than ``max_line_chars``, or over ``budget_s``.
     """
-    if isinstance(content, (bytes, bytearray)):
+    if not 0 < max_line_chars < _LINE_BLOCK_CHARS - 2:
+        raise ValueError(f"max_line_chars must be from 1 to {_LINE_BLOCK_CHARS - 3}")
+    deadline = time.monotonic() + budget_s
+    too_many = f"The {what} has more than {max_lines:,} lines; this page reads at most {max_lines:,}. {fix}"
+    if text.count("\n", 0, _COUNT_CHARS) > max_lines:
+        raise InputError(too_many)             # every "\n" ends a line: no need to read them one by one
+    too_long = (f"Line {{:,}} of the {what} is longer than {max_line_chars:,} characters; each line holds one "
+                f"row (a wavelength and a value). Save the {what} as CSV or TXT with one row per line.")
+    n, start, end = 0, 0, len(text)
+    while start < end:
+        block = text[start:start + _LINE_BLOCK_CHARS]
+        parts = block.splitlines(keepends=True)
+        if start + len(block) < end:
+            parts.pop()                        # it may go on in the next block, or be a "\r" before its "\n"
+            if not parts:
+                raise InputError(too_long.format(n + 1))
+        for part in parts:
+            n += 1
+            if n > max_lines:
+                raise InputError(too_many)
+            line = part.rstrip(_LINE_ENDS)
+            if len(line) > max_line_chars:
+                raise InputError(too_long.format(n))
+            if not n % YIELD_EVERY_LINES:
+                time.sleep(0)                  # let the event loop's thread have the interpreter lock
+            if not n & 1023 and time.monotonic() > deadline:
+                raise InputError(f"Reading the {what} took longer than {budget_s:g} s (stopped at line {n:,}). "
+                                 f"{fix}")
+            if progress is not None and not n % PROGRESS_EVERY_LINES:
+                progress(n)
+            yield n, line
+            start += len(part)
+
+
+@dataclass(frozen=True)
+class SpectrumTable:
+    """The numbers of a spectrum file as read, before any unit is applied (see :func:`read_spectrum_table`).
+
+    Attributes
+    ----------
+    rows : (n, 2) array  the first two numbers of each data row, in file order (finite)
+    dropped : int  data rows without two numbers or with NaN
+    """
+
+    rows: np.ndarray
+    dropped: int
+
+
+def read_spectrum_table(content, *, max_bytes: int = MAX_SPECTRUM_BYTES, progress=None) -> SpectrumTable:
+    """Read the two number columns of a spectrometer export (the slow part of :func:`read_spectrum`).
+
+    At most :data:`MAX_SPECTRUM_LINES` lines of at most :data:`MAX_LINE_CHARS` characters are read, within
+    :data:`SPECTRUM_READ_BUDGET_S`; ``progress(lines read)`` is called every
+    :data:`PROGRESS_EVERY_LINES` lines and may raise to stop. The table carries no unit:
+    :func:`read_spectrum` applies them, quickly, as often as the choice changes.
+
+    Raises
+    ------
+    InputError
+        Not text, too large, too many or too long lines, too slow to read, text in the number columns
+        of the data block, fewer than :data:`MIN_POINTS` rows.
+    """
+    if isinstance(content, (bytes, bytearray, memoryview)):
+        content = bytes(content)
         if len(content) > max_bytes:
             raise InputError(f"The spectrum file is larger than {max_bytes / 1e6:g} MB; export just two columns.")
         try:
-            text = bytes(content).decode("utf-8-sig")
+            text = content.decode("utf-8-sig")
         except UnicodeDecodeError:
             try:
-                text = bytes(content).decode("latin-1")
+                text = content.decode("latin-1")
             except UnicodeDecodeError:  # pragma: no cover - latin-1 decodes any byte
                 raise InputError("The spectrum file is not text.") from None
         if "\x00" in text:
             raise InputError("The spectrum file is not text (it contains binary data); export it as CSV or TXT.")
     elif isinstance(content, str):
+        if len(content) > max_bytes:
+            raise InputError(f"The spectrum is longer than {max_bytes / 1e6:g} MB; export just two columns.")
         text = content
     else:
         raise InputError("A spectrum is the text of a CSV or TXT file.")
     rows, dropped, started, bad_line = [], 0, False, None
-    for lineno, line in enumerate(text.splitlines(), 1):
+    lines = text_lines(text, what="spectrum file", max_lines=MAX_SPECTRUM_LINES, budget_s=SPECTRUM_READ_BUDGET_S,
+                       fix="Export every 1 nm, or crop the band to the wavelengths you fit, and upload it again.",
+                       progress=progress)
+    for lineno, line in lines:
         parts = _split(line)
         if parts is None:
             continue
@@ -233,8 +342,35 @@ def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: st
     if len(rows) < MIN_POINTS:
         raise InputError(f"The file has {len(rows)} usable rows of two numbers; a fit needs at least {MIN_POINTS}. "
                          "Export wavelength and reflectance as two columns.")
-    arr = np.array(rows)
-    wl, val = arr[:, 0], arr[:, 1]
+    arr = np.array(rows, dtype=float)
+    arr.flags.writeable = False
+    return SpectrumTable(arr, dropped)
+
+
+def read_spectrum(content, *, wavelength_unit: str | None = None, value_unit: str | None = None,
+                  max_bytes: int = MAX_SPECTRUM_BYTES, progress=None) -> SpectrumData:
+    """Read a spectrometer export: two numeric columns, wavelength and reflectance.
+
+    Header lines are skipped; columns may be separated by commas, semicolons, tabs or spaces;
+    decimals may be dots or commas (with ; or tab separators); wavelengths in nm or µm and values
+    as fractions or percent are detected (give ``wavelength_unit`` "nm"/"um" or ``value_unit``
+    "fraction"/"percent" to override); rows are sorted and repeated wavelengths averaged; rows
+    with NaN or a single number are dropped and counted.
+
+    ``content`` is the file's bytes or text, or a :class:`SpectrumTable` already read by
+    :func:`read_spectrum_table` (then only the units are applied, which is quick). ``progress`` is passed
+    to :func:`read_spectrum_table`.
+
+    Raises
+    ------
+    InputError
+        Not text, text in the number columns of the data block, fewer than :data:`MIN_POINTS` rows,
+        or one of the bounds of :func:`read_spectrum_table`.
+    """
+    table = (content if isinstance(content, SpectrumTable) else
+             read_spectrum_table(content, max_bytes=max_bytes, progress=progress))
+    dropped = table.dropped
+    wl, val = table.rows[:, 0], table.rows[:, 1]
     notes, warnings = [], []
     given_wl = wavelength_unit is not None
     if wavelength_unit is None:

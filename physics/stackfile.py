@@ -33,6 +33,7 @@ from __future__ import annotations
 import json
 import math
 import reprlib
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -43,7 +44,7 @@ from .stack import Layer, Stack
 __all__ = [
     "StackFile", "stack_from_dict", "stack_to_dict", "load_stack_file", "dump_stack_file",
     "load_preset", "list_presets", "FORMAT", "VERSION", "MAX_LAYERS", "MAX_FILE_BYTES",
-    "VIEW_DEFAULTS", "PRESET_DIR",
+    "VIEW_DEFAULTS", "PRESET_DIR", "MAX_TABLE_POINTS", "STACK_READ_BUDGET_S",
 ]
 
 #: Value of the "format" field.
@@ -54,8 +55,16 @@ VERSION = 1
 MAX_LAYERS = 12
 #: Largest layer thickness accepted, nm.
 MAX_THICKNESS_NM = 100_000.0
-#: Largest file accepted, bytes (1 MB), checked before parsing.
+#: Largest file accepted, bytes (1 MB of 10**6 bytes), checked before parsing.
 MAX_FILE_BYTES = 1_000_000
+#: Most entries in one list of a material table or dispersion formula (wavelengths, n, k, B, C): the rows
+#: a stack file may hold per material. Measured optical constants come at 1-10 nm steps, a few hundred
+#: rows over the visible and near infrared; 10,000 is a 0.1 nm step over 1000 nm.
+MAX_TABLE_POINTS = 10_000
+#: Time allowed for checking one stack file and building its materials (s): a file at MAX_FILE_BYTES full
+#: of tables takes about 1 s (measured); the check between materials stops one that a busy server or many
+#: database pages drag on far longer.
+STACK_READ_BUDGET_S = 5.0
 #: Longest name and scenario, characters.
 MAX_NAME_CHARS = 200
 MAX_SCENARIO_CHARS = 1000
@@ -217,7 +226,7 @@ def _material_description(where: str, d: dict) -> dict:
         elif kind == "constant":             # n, k
             out[key] = _number(w, value)
         else:                                # B, C, wavelength_nm, n, k of sellmeier/table
-            out[key] = _number_list(w, value, 1, 10_000)
+            out[key] = _number_list(w, value, 1, MAX_TABLE_POINTS)
     return out
 
 
@@ -276,6 +285,13 @@ def _check_swept(value, n_layers: int) -> int:
     return value
 
 
+def _check_time(deadline: float, where: str) -> None:
+    if time.monotonic() > deadline:
+        raise InputError(f"Checking the stack file took longer than {STACK_READ_BUDGET_S:g} s (stopped at {where}); "
+                         "the server is busy or the file's materials are very large. Use shorter material tables "
+                         "and try again.")
+
+
 # ---------------------------------------------------------------------- public API
 def stack_from_dict(data: dict) -> StackFile:
     """Check a parsed stack file and build its :class:`StackFile`.
@@ -325,8 +341,10 @@ def stack_from_dict(data: dict) -> StackFile:
         _fail("layers", f"has {len(raw_layers)} layers; a stack file holds at most {MAX_LAYERS}. "
                         "Remove layers or merge thin ones.")
     layers = []
+    deadline = time.monotonic() + STACK_READ_BUDGET_S
     for i, raw in enumerate(raw_layers):
         where = f"layers[{i}]"
+        _check_time(deadline, where)
         if not isinstance(raw, dict):
             _fail(where, f"must be an object {{\"material\": ..., \"thickness_nm\": ...}}, "
                          f"got {_got(raw)}.")
@@ -334,7 +352,9 @@ def stack_from_dict(data: dict) -> StackFile:
         thickness = _number(f"{where}.thickness_nm", raw["thickness_nm"], 0.0, MAX_THICKNESS_NM, "nm")
         layers.append(Layer(_material(f"{where}.material", raw["material"]), thickness))
 
+    _check_time(deadline, "ambient")
     ambient = _material("ambient", data["ambient"])
+    _check_time(deadline, "substrate")
     substrate = _material("substrate", data["substrate"])
     d_mm = data.get("substrate_thickness_mm")
     if d_mm is not None:

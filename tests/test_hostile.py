@@ -273,7 +273,8 @@ spectrum_files = st.one_of(_csv_lines(), st.binary(max_size=500), st.builds(_mut
                                             ("\n".join(f"{400 + i},{'1e309' if i == 5 else 0.5}" for i in range(20))).encode(),
                                             ("\n".join(f"{1e300 * (i + 1)},{0.5}" for i in range(20))).encode(),
                                             ("\n".join(f"{1e-300 * (i + 1)},{1e300}" for i in range(20))).encode(),
-                                            ("\n".join(f"{400 + i},{1.7e308}" for i in range(20))).encode()]))
+                                            ("\n".join(f"{400 + i},{1.7e308}" for i in range(20))).encode(),
+                                            b"400.5;0.25;" * 200_000, b"nm,R\n" + b"400,0.1 " * 300_000]))
 
 
 @settings(max_examples=150, **HYP)
@@ -292,7 +293,7 @@ lamp_files = st.one_of(_csv_lines(), st.binary(max_size=400), spectrum_files,
                            [(380, 1), (400, 1), (700, 1), (800, 1), (1e12, 1)],
                            [(380, 1e-320), (400, 1e-320), (700, 1e-320), (800, 1e-320), (900, 1e-320)],
                            [(380, 1.7e308), (400, 1.7e308), (700, 1.7e308), (800, 1.7e308), (900, 1.7e308)],
-                           [(400, 1)] * 10, [(380 + i, -1) for i in range(10)]]]))
+                           [(400, 1)] * 10, [(380 + i, -1) for i in range(10)]]] + [b"500,1\n" * 25_000, b"1;" * 900_000]))
 
 
 @settings(max_examples=120, **HYP)

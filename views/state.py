@@ -19,6 +19,7 @@ from physics import InputError, Layer, Stack, material
 from physics.appearance import (ColorMap, color_map, colour_band_nm, cone_reflectance, interference_order,
                                 order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
 from physics.color import srgb_to_hex, user_spd_on_fine_grid
+from physics.fit import text_lines
 from physics.stackfile import (StackFile, dump_stack_file, load_preset, load_stack_file, stack_from_dict,
                                stack_to_dict)
 
@@ -337,20 +338,35 @@ def parse_material(text: str):
     return spec if isinstance(spec, (dict, str)) else text
 
 
-#: Largest lamp spectrum file accepted (bytes): a 1 nm table with comments is a few kB.
+#: Largest lamp spectrum file accepted (bytes; 1 MB = 10**6 bytes): a 1 nm table with comments is a few kB.
 MAX_SPD_BYTES = 2_000_000
+#: Most lines read from a lamp spectrum file; reading stops at the next one. The page uses a lamp on a 1 nm
+#: grid over 360-830 nm (physics.color.user_spd_on_fine_grid), which a few hundred rows fill; 20,000 lines
+#: is a 0.025 nm step over that band, finer than any spectrometer export (common practice: 0.1-1 nm).
+MAX_SPD_LINES = 20_000
+#: Time allowed for reading one lamp spectrum file (s): MAX_SPD_LINES lines read in about 0.05 s; the
+#: budget stops a read that a busy server or an unusual file drags on.
+SPD_READ_BUDGET_S = 5.0
 
 
-def parse_spd_csv(content: bytes) -> tuple[np.ndarray, np.ndarray]:
-    """A lamp spectrum file: two numeric columns, wavelength (nm) and relative power."""
+def parse_spd_csv(content: bytes, progress=None) -> tuple[np.ndarray, np.ndarray]:
+    """A lamp spectrum file: two numeric columns, wavelength (nm) and relative power.
+
+    At most :data:`MAX_SPD_BYTES` bytes and :data:`MAX_SPD_LINES` lines of at most
+    ``physics.fit.MAX_LINE_CHARS`` characters are read, within :data:`SPD_READ_BUDGET_S`;
+    ``progress(lines read)`` is called now and then and may raise to stop the reading.
+    """
     if len(content) > MAX_SPD_BYTES:
-        raise InputError("The lamp spectrum file is larger than 2 MB; give a CSV of two columns, nm and power.")
+        raise InputError(f"The lamp spectrum file is larger than {MAX_SPD_BYTES / 1e6:g} MB; give a CSV of two "
+                         "columns, nm and power.")
     try:
-        text = content.decode("utf-8-sig")
+        text = bytes(content).decode("utf-8-sig")
     except UnicodeDecodeError:
         raise InputError("The lamp spectrum file is not text; give a CSV of two columns, nm and power.") from None
     rows = []
-    for line in text.splitlines():
+    lines = text_lines(text, what="lamp spectrum file", max_lines=MAX_SPD_LINES, budget_s=SPD_READ_BUDGET_S,
+                       fix="Export it every 1 nm over the visible (360-830 nm) and upload it again.", progress=progress)
+    for _, line in lines:
         parts = [p for p in line.replace(";", ",").replace("\t", ",").replace(" ", ",").split(",") if p]
         if len(parts) < 2:
             continue
