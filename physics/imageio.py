@@ -42,6 +42,7 @@ import re
 import stat
 import sys
 import warnings
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -57,8 +58,13 @@ __all__ = [
 
 #: Most pixels (width x height) accepted; checked from the header before decoding.
 MAX_PIXELS = 50_000_000
-#: Largest file accepted, bytes (200 MiB); checked before the file is read.
-MAX_BYTES = 200 * 2**20
+#: Largest file accepted, bytes (200 MB; 1 MB = 10**6 bytes in every size stated here); checked before the
+#: file is read.
+MAX_BYTES = 200_000_000
+#: Most chunks read from a PNG file. Encoders write image data in chunks of 8-64 kB (libpng's default is
+#: 8 kB; common practice), so a 200 MB photo has about 25,000; the bound keeps the chunk-by-chunk walk
+#: (here and in Pillow) short whatever a hostile file holds.
+MAX_PNG_CHUNKS = 200_000
 #: Smallest width and height accepted, pixels.
 MIN_SIDE = 2
 #: File formats read, as reported in :attr:`Photo.source_format`.
@@ -260,7 +266,7 @@ def _positive_int(name: str, value) -> int:
 
 
 def _mb(n: int) -> str:
-    return f"{n / 2**20:.1f} MiB"
+    return f"{n / 1e6:.1f} MB"
 
 
 def _too_many_bytes(n: int, limit: int) -> str:
@@ -270,30 +276,35 @@ def _too_many_bytes(n: int, limit: int) -> str:
 
 
 def _read_file(source, max_bytes: int) -> bytes:
+    """The bytes of the file at ``source``; messages name the file only, never the folders above it."""
     try:
         path = Path(source)
+        name = repr(path.name or str(source))
         st = path.stat()
     except FileNotFoundError:
-        raise InputError(f"There is no file at {str(source)!r}: check the path and the file name.") from None
+        raise InputError(f"There is no file {name}: check the path and the file name.") from None
     except (OSError, ValueError) as exc:
-        reason = getattr(exc, "strerror", None) or str(exc)
-        raise InputError(f"Cannot read {str(source)!r} ({reason}): check the path and that the "
+        raise InputError(f"Cannot read {name} ({_reason(exc)}): check the path and that the "
                          "file can be read.") from None
     if stat.S_ISDIR(st.st_mode):
-        raise InputError(f"{str(path)!r} is a folder, not a file: choose the photo file inside it.")
+        raise InputError(f"{name} is a folder, not a file: choose the photo file inside it.")
     if not stat.S_ISREG(st.st_mode):
-        raise InputError(f"{str(path)!r} is not a regular file: choose a JPEG, PNG or TIFF photo file.")
+        raise InputError(f"{name} is not a regular file: choose a JPEG, PNG or TIFF photo file.")
     if st.st_size > max_bytes:
         raise InputError(_too_many_bytes(st.st_size, max_bytes))
     try:
         with open(path, "rb") as fh:
             data = fh.read(max_bytes + 1)
     except OSError as exc:
-        raise InputError(f"Cannot read {str(path)!r} ({exc.strerror or exc}): check that the "
-                         "file can be read.") from None
+        raise InputError(f"Cannot read {name} ({_reason(exc)}): check that the file can be read.") from None
     if len(data) > max_bytes:  # the file grew after stat
         raise InputError(_too_many_bytes(len(data), max_bytes))
     return data
+
+
+def _reason(exc: Exception) -> str:
+    """Why a file could not be read, without the path an OSError's text carries."""
+    return getattr(exc, "strerror", None) or (str(exc) if isinstance(exc, ValueError) else type(exc).__name__)
 
 
 def _sniff(data: bytes) -> str | None:
@@ -326,6 +337,8 @@ def _from_bytes(data: bytes, max_pixels: int, max_bytes: int) -> Photo:
     if fmt not in FORMATS:
         raise InputError(f"The file is a {fmt} file; this tool reads JPEG, PNG and TIFF only. "
                          + _EXPORT_HINT)
+    if fmt == "PNG":
+        _check_png_chunks(data)
     with warnings.catch_warnings():
         # The pixel limit is checked here with max_pixels, and a damaged tag or
         # EXIF block that Pillow skips with a warning is either harmless or
@@ -361,6 +374,41 @@ def _from_bytes(data: bytes, max_pixels: int, max_bytes: int) -> Photo:
     return Photo(rgb=rgb, bit_depth=8 if rgb.dtype == np.uint8 else 16,
                  width=rgb.shape[1], height=rgb.shape[0], source_format=fmt,
                  orientation_applied=orientation != 1 or stored != 1)
+
+
+def _check_png_chunks(data: bytes) -> None:
+    """Refuse a PNG whose chunks do not run whole, with matching checksums, to the end marker IEND.
+
+    Pillow takes a PNG cut anywhere after the last compressed block of its image data (in the stream's
+    own checksum, the chunk's CRC or IEND) and never needs IEND; so a file cut short, or damaged, is
+    found here from its chunk structure (W3C PNG specification, sec. 5.3: length, type, data, CRC-32 of type
+    and data) before any pixel is decoded. At most :data:`MAX_PNG_CHUNKS` chunks are walked.
+    """
+    view = memoryview(data)
+    again = "Copy or export the photo again and retry."
+    pos, n = 8, len(data)
+    for _ in range(MAX_PNG_CHUNKS):
+        if pos + 8 > n:
+            raise InputError(f"The PNG file is truncated or damaged: it stops at byte {n:,} without its end "
+                             f"marker (IEND), so part of the image is missing. {again}")
+        length = int.from_bytes(view[pos:pos + 4], "big")
+        kind = bytes(view[pos + 4:pos + 8])
+        name = kind.decode("latin-1") if kind.isalpha() else repr(kind)
+        if length > 2**31 - 1:
+            raise InputError(f"The PNG file is damaged: its chunk at byte {pos:,} gives an impossible length. "
+                             + again)
+        end = pos + 12 + length
+        if end > n:
+            raise InputError(f"The PNG file is truncated or damaged: it stops at byte {n:,}, inside its {name} "
+                             f"chunk, so part of the image is missing. {again}")
+        if zlib.crc32(view[pos + 4:end - 4]) != int.from_bytes(view[end - 4:end], "big"):
+            raise InputError(f"The PNG file is damaged: the checksum of its {name} chunk at byte {pos:,} does "
+                             f"not match its content. {again}")
+        if kind == b"IEND":
+            return
+        pos = end
+    raise InputError(f"The PNG file has more than {MAX_PNG_CHUNKS:,} chunks; image programs write far fewer. "
+                     f"Export the photo again as PNG, JPEG or TIFF and retry.")
 
 
 def _broken(fmt: str, exc: BaseException) -> str:
