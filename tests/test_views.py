@@ -174,6 +174,34 @@ def test_custom_lamp_spectrum():
     assert ex.spd_msg.message.visible and ex.state.illuminant == "custom"
 
 
+def test_a_refused_lamp_or_stack_file_is_named_in_its_message():
+    ex = FilmExplorer()
+    before = ex.state.param.values()
+    ex.spd_in.receive("narrow.csv", b"500,1\n510,1\n520,1\n530,1\n540,1\n", "text/csv")
+    assert "narrow.csv: The lamp spectrum covers 500-540 nm" in ex.spd_msg.message.object
+    ex.spd_in.receive("long.csv", b"500,1\n" * 30_000, "text/csv")
+    assert "long.csv: The lamp spectrum file has more than 20,000 lines" in ex.spd_msg.message.object
+    ex.file_in.receive("bad.json", b"{not json", "application/json")
+    assert "bad.json: The file is not valid JSON" in ex.file_msg.message.object
+    assert ex.state.param.values() == before
+
+
+def test_a_stack_file_the_page_could_not_keep_is_refused_and_changes_nothing():
+    """Materials written out as the page stores them can outgrow the file they came from (here 0.87 MB of
+    tables become 1.1 MB): such a file is refused whole instead of leaving a stack that no longer reads."""
+    rows = 10_000
+    table = {"kind": "table", "wavelength_nm": [300 + 0.07 * i for i in range(rows)], "n": [1.5] * rows}
+    text = json.dumps({"format": "fringegauge-stack", "version": 1, "ambient": "air", "substrate": "Si",
+                       "layers": [{"material": dict(table, name=f"t{k}"), "thickness_nm": 100} for k in range(6)]},
+                      separators=(",", ":")).encode()
+    assert len(text) < 1_000_000
+    ex = FilmExplorer()
+    before = ex.state.param.values()
+    assert not ex.load_stack_upload("tables.json", text)
+    assert "tables.json: The stack in it cannot be kept as the page stores it" in ex.file_msg.message.object
+    assert ex.state.param.values() == before and ex.state.stack.layers
+
+
 def test_viewing_cone_and_brightness_change_the_map():
     ex = FilmExplorer()
     before = ex.map_src.data["image"][0].copy()

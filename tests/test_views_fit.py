@@ -94,6 +94,35 @@ def test_bad_files_show_a_message_and_keep_the_previous_result(section, bad, exp
     assert section.result.thickness_nm == pytest.approx(r.thickness_nm)
 
 
+def test_a_file_is_read_once_and_a_unit_change_only_reinterprets_it(section, monkeypatch):
+    import views.fit as vfit
+
+    reads = []
+    real = vfit.read_spectrum_table
+    monkeypatch.setattr(vfit, "read_spectrum_table", lambda data, **kw: reads.append(len(data)) or real(data, **kw))
+    R = _spectrum(section, 300.0)
+    assert section.load_file("sample", _csv(WL / 1000, 100 * R, fmt="{:.6f},{:.5f}"), "um_percent.csv")
+    assert len(reads) == 1 and section.spectrum[0][0] == pytest.approx(400.0)
+    section.wl_unit.value = "nm"                             # the same numbers read as nm: 0.4-1 nm
+    section.value_unit.value = "fraction"
+    assert len(reads) == 1 and section.spectrum[0][0] == pytest.approx(0.4)
+    assert all(not isinstance(table, (bytes, str)) for _, table in section.files.values())
+
+
+def test_an_oversized_spectrum_says_its_size_in_megabytes(section):
+    assert not section.load_file("sample", b"1" * 20_000_001, "huge.csv")
+    msg = section.file_msg["sample"].message.object
+    assert "huge.csv is 20,000,001 bytes; this server accepts up to 20,000,000 bytes" in msg and "19.1" not in msg
+    assert not section.load_file("sample", b"1" * 25_000_000, "huger.csv")
+    assert "huger.csv is 25 MB; this server accepts up to 20 MB for it." in section.file_msg["sample"].message.object
+
+
+def test_a_spectrum_over_the_line_bound_is_refused_with_how_to_fix_it(section):
+    assert not section.load_file("sample", b"4,1\n" * 300_000, "dense.csv")
+    msg = section.file_msg["sample"].message.object
+    assert "dense.csv: The spectrum file has more than 200,000 lines" in msg and "every 1 nm" in msg
+
+
 def test_bad_fields_show_messages_beside_them_and_keep_the_result(section):
     r = _fit(section, 650.0)
     section.win_hi.input.value = "lots"

@@ -29,8 +29,8 @@ from physics import InputError, search_materials, list_materials
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
-from .uploads import COMPACT, CappedDropper
-from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key, upload_refusal
+from .uploads import COMPACT, CappedDropper, UploadReader
+from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
                     parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES)
@@ -152,7 +152,8 @@ class FilmExplorer:
                                         value=s.preset_name if s.preset_name in dict(presets) else "",
                                         width=300, margin=(2, 5))
         self.file_msg = Field("")
-        self.file_in = CappedDropper(MAX_STACK_FILE_BYTES, self.load_stack_upload, self.file_msg.show_error,
+        self.file_reader = UploadReader(self.file_msg, "stack_file")
+        self.file_in = CappedDropper(MAX_STACK_FILE_BYTES, self.load_stack_upload, self.file_reader.refuse,
                                      what="The stack file", accepted_filetypes=[".json", "application/json"],
                                      **COMPACT,
                                      css_classes=["fg-stack-file"])
@@ -192,7 +193,8 @@ class FilmExplorer:
         self.illuminant = pn.widgets.Select.from_param(s.param.illuminant, label="Illuminant (lamp)", width=140,
                                                        margin=(2, 5))
         self.spd_msg = Field("")
-        self.spd_in = CappedDropper(MAX_SPD_BYTES, self.load_lamp_upload, self.spd_msg.show_error,
+        self.spd_reader = UploadReader(self.spd_msg, "lamp_spectrum")
+        self.spd_in = CappedDropper(MAX_SPD_BYTES, self.load_lamp_upload, self.spd_reader.refuse,
                                     what="The lamp spectrum file",
                                     accepted_filetypes=[".csv", ".txt", "text/csv", "text/plain"],
                                     **COMPACT,
@@ -398,22 +400,27 @@ class FilmExplorer:
     def _on_preset(self, event):
         if self._syncing or not event.new:
             return
+        self.file_reader.cancel()                  # a stack file still being read would replace the preset
         self.file_msg.show_error(None)
         self.state.load_preset(event.new)
         self._sync_widgets()
 
     def load_stack_upload(self, name: str, data: bytes) -> bool:
-        """Open an uploaded stack file; on a bad file say why and keep the current stack."""
-        def load():
-            refusal = upload_refusal(name or "The stack file", len(data), MAX_STACK_FILE_BYTES)
-            if refusal:
-                raise InputError(refusal)
-            sf = load_stack_file(data)
-            self.state.load(sf, name or sf.name)
-        if self._guard(self.file_msg, load):
-            self._sync_widgets()
-            return True
-        return False
+        """Open an uploaded stack file; on a bad file say why and keep the current stack.
+
+        When served, the file is read in a worker thread (:class:`views.uploads.UploadReader`) and this
+        returns True once reading has started; otherwise it returns whether the stack was taken.
+        """
+        before = self._snapshot()
+        shown = name or "The stack file"
+
+        def apply(changes):
+            if self._guard(self.file_msg, partial(_named, shown, self.state.param.update, **changes)):
+                self._sync_widgets()
+                return True
+            return False
+        return self.file_reader.take(shown, data, MAX_STACK_FILE_BYTES,
+                                     lambda data, progress: _stack_changes(data, name, before), apply)
 
     def _on_medium(self, which, event):
         if self._syncing:
@@ -576,13 +583,15 @@ class FilmExplorer:
             self._sync_widgets()
 
     def load_lamp_upload(self, name: str, data: bytes) -> bool:
-        """Take an uploaded lamp spectrum as the 'custom' illuminant; on a bad file say why and keep the lamp."""
-        def load():
-            refusal = upload_refusal(name or "The lamp spectrum file", len(data), MAX_SPD_BYTES)
-            if refusal:
-                raise InputError(refusal)
-            self.state.set_spd(*parse_spd_csv(data))
-        return self._guard(self.spd_msg, load)
+        """Take an uploaded lamp spectrum as the 'custom' illuminant; on a bad file say why and keep the lamp.
+
+        When served, the file is read in a worker thread (:class:`views.uploads.UploadReader`) and this
+        returns True once reading has started; otherwise it returns whether the lamp was taken.
+        """
+        name = name or "The lamp spectrum file"
+        return self.spd_reader.take(name, data, MAX_SPD_BYTES, parse_spd_csv,
+                                    lambda spd: self._guard(self.spd_msg, partial(_named, name, self.state.set_spd,
+                                                                                  *spd)))
 
     def _on_map_tap(self, event):
         if event.x is None or event.y is None:
@@ -851,6 +860,32 @@ class FilmExplorer:
 
 
 # ---------------------------------------------------------------------- helpers
+
+def _named(name: str, fn, *args, **kwargs):
+    """``fn(*args, **kwargs)``, the file's name put before the message of an InputError it raises."""
+    try:
+        return fn(*args, **kwargs)
+    except InputError as exc:
+        raise InputError(f"{name}: {exc}") from None
+
+
+def _stack_changes(data: bytes, name: str, before: ExplorerState) -> dict:
+    """What opening the stack file ``data`` changes in a state that was ``before`` (parameter -> value).
+
+    The slow part of a stack upload, run off the event loop: the file is parsed and checked, loaded
+    into ``before`` (a copy of the page's state) and the stored stack read back once, which leaves it in
+    :mod:`views.state`'s cache; applying the changes on the page then costs almost nothing.
+    """
+    sf = load_stack_file(data)
+    old = before.param.values()
+    before.load(sf, name or sf.name)
+    try:
+        before.stack_file()
+    except InputError as exc:
+        raise InputError(f"The stack in it cannot be kept as the page stores it ({exc}); use shorter material "
+                         "tables.") from None
+    return {k: v for k, v in before.param.values().items() if k != "name" and v != old[k]}
+
 
 def _spectrum_range(s: ExplorerState):
     lo, hi = s.stack.wavelength_range_nm()

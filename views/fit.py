@@ -24,19 +24,20 @@ from bokeh.plotting import figure
 
 from physics import InputError, Stack, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
-from physics.fit import BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, fit_thickness_reporting
+from physics.fit import (BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, MAX_SPECTRUM_BYTES,
+                         fit_thickness_reporting, read_spectrum_table)
 
 from . import workers
-from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
-from .uploads import COMPACT, CappedDropper
+from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
+from .uploads import COMPACT, CappedDropper, UploadReader
 from .explorer import Field, TickBox, _esc, _fmt, _label, field_pair
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 
 log = logging.getLogger("fringegauge")
 
-#: Largest spectrum file accepted through the page (bytes).
-MAX_UPLOAD_BYTES = 20_000_000
+#: Largest spectrum file accepted through the page (bytes; 20 MB of 10**6 bytes), as physics.fit reads it.
+MAX_UPLOAD_BYTES = MAX_SPECTRUM_BYTES
 #: Default windows searched for the unknown layers (nm).
 DEFAULT_WINDOW_NM = (0.0, 3000.0)
 DEFAULT_SECOND_WINDOW_NM = (0.0, 1000.0)
@@ -62,7 +63,7 @@ class SpectrumFitSection:
 
     def __init__(self, explorer):
         self.ex = explorer
-        self.files = {}                # role -> (name, bytes)
+        self.files = {}                # role -> (name, physics.fit.SpectrumTable read from the file)
         self.spectrum = None           # (wavelength_nm, reflectance) in use
         self.import_info = {}          # what the import detected and did
         self.result = None             # physics.fit.FitResult
@@ -76,9 +77,10 @@ class SpectrumFitSection:
     # ------------------------------------------------------------------ widgets
     def _build(self):
         self.file_msg = {role: Field("") for role in FILE_ROLES}
+        self.readers = {role: UploadReader(self.file_msg[role], "spectrum") for role in FILE_ROLES}
         self.file_in = {
             role: CappedDropper(MAX_UPLOAD_BYTES, locked(lambda name, data, role=role: self.load_file(role, data, name)),
-                                locked(self.file_msg[role].show_error), what=f"The {role} spectrum file",
+                                locked(self.readers[role].refuse), what=f"The {role} spectrum file",
                                 accepted_filetypes=[".csv", ".txt", ".tsv", ".dat", "text/csv", "text/plain",
                                                     "text/tab-separated-values"],
                                 **COMPACT,
@@ -230,6 +232,7 @@ class SpectrumFitSection:
         self.files.pop("reference", None)
         self.files.pop("dark", None)
         for role in ("reference", "dark"):
+            self.readers[role].cancel()
             self.file_msg[role].show_error(None)
         self._show_file_controls()
         self._reimport()
@@ -244,19 +247,26 @@ class SpectrumFitSection:
 
     def load_file(self, role: str, data: bytes, name: str = "") -> bool:
         """Take an uploaded file (``role``: sample, reference or dark); on a bad file say why beside it
-        and keep the previous spectrum."""
+        and keep the previous spectrum.
+
+        When served, the file is read in a worker thread (:class:`views.uploads.UploadReader`): this
+        returns True once reading has started, and the outcome shows beside the drop zone on a later tick.
+        Otherwise it returns whether the file was taken.
+        """
         if role not in FILE_ROLES:
             raise ValueError(role)
         name = name or f"{role}.csv"
-        refusal = upload_refusal(name, len(data), MAX_UPLOAD_BYTES, "Export just two columns.")
-        if refusal:
-            self.file_msg[role].show_error(refusal)
-            return False
+        return self.readers[role].take(name, data, MAX_UPLOAD_BYTES,
+                                       lambda data, progress: read_spectrum_table(data, progress=progress),
+                                       partial(self._take_file, role, name), "Export just two columns.")
+
+    def _take_file(self, role: str, name: str, table) -> bool:
+        """Use a spectrum read from a file (a :class:`physics.fit.SpectrumTable`) as ``role``."""
         previous = self.files.get(role)
-        self.files[role] = (name, bytes(data))
+        self.files[role] = (name, table)
         if role != "sample" and "sample" not in self.files:
             try:                                   # check it alone; it is used once a sample arrives
-                read_spectrum(data, **self._units())
+                read_spectrum(table, **self._units())
             except InputError as exc:
                 self._restore(role, previous)
                 self.file_msg[role].show_error(f"{name}: {str(exc)}")
@@ -296,7 +306,8 @@ class SpectrumFitSection:
         except _Stop:
             return False
         for role in FILE_ROLES:
-            self.file_msg[role].show_error(None)
+            if not self.readers[role].reading:     # a file still being read keeps its "Reading …"
+                self.file_msg[role].show_error(None)
         same = (self.spectrum is not None and np.array_equal(self.spectrum[0], wl)
                 and np.array_equal(self.spectrum[1], R) and self._file_names == self._names())
         self.spectrum = (wl, R)

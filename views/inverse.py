@@ -24,22 +24,22 @@ from bokeh.palettes import Viridis256, Magma256
 from bokeh.plotting import figure
 
 from physics import InputError, parse_color, thickness_candidates, thickness_map
-from physics.imageio import box_mean_linear, load_image
+from physics.imageio import MAX_BYTES as MAX_PHOTO_BYTES, box_mean_linear, load_image
 from physics.inverse import AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, ROBUST_PERCENTILES, _lab_from_linear
 
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer, field_pair
 from . import workers
-from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key, upload_refusal
-from .uploads import CappedDropper
+from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
+from .uploads import CappedDropper, UploadReader
 from .state import ANGLE_MAX_DEG, THICKNESS_LIMITS_NM, compute_strip, parse_number
 
 log = logging.getLogger("fringegauge")
 
 #: Longest side of a photo as shown on the page (pixels); the map itself is computed at full size.
 DISPLAY_MAX_SIDE = 900
-#: Largest upload accepted through the page (bytes).
-MAX_UPLOAD_BYTES = 200 * 2**20
+#: Largest photo accepted through the page (bytes; 200 MB of 10**6 bytes), as physics.imageio reads it.
+MAX_UPLOAD_BYTES = MAX_PHOTO_BYTES
 #: Half-size of the square averaged when a point of a photo is picked (pixels).
 PICK_HALF_SIZE = 4
 #: Widest search window the page accepts (nm): the widest that ``physics.inverse`` scans at its full
@@ -114,8 +114,9 @@ class ColourToThickness:
 
         # photo
         self.photo_msg = Field("")
+        self.photo_reader = UploadReader(self.photo_msg, "photo")
         self.dropper = CappedDropper(MAX_UPLOAD_BYTES, locked(lambda name, data: self.load_photo(data, name)),
-                                     locked(self.photo_msg.show_error), what="The photo",
+                                     locked(self.photo_reader.refuse), what="The photo",
                                      accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif", ".tiff",
                                                          ".jpg", ".jpeg", ".png"],
                                      height=110, sizing_mode="stretch_width", margin=(2, 5),
@@ -415,17 +416,18 @@ class ColourToThickness:
 
     # ------------------------------------------------------------------ photo
     def load_photo(self, data: bytes, name: str = "photo") -> bool:
-        """Read an uploaded photo; on a bad file say why and keep the previous photo."""
-        limits = Limits.from_env()
-        refusal = upload_refusal(name, len(data), MAX_UPLOAD_BYTES, limits=limits)
-        if refusal:
-            self.photo_msg.show_error(refusal)
-            return False
-        try:
-            photo = load_image(data, max_pixels=int(limits.max_photo_megapixels * 1e6))
-        except InputError as exc:
-            self.photo_msg.show_error(f"{name}: {str(exc)}")
-            return False
+        """Read an uploaded photo; on a bad file say why and keep the previous photo.
+
+        When served, the photo is decoded in a worker thread (:class:`views.uploads.UploadReader`) and
+        this returns True once decoding has started; otherwise it returns whether the photo was taken.
+        """
+        max_pixels = int(Limits.from_env().max_photo_megapixels * 1e6)
+        return self.photo_reader.take(name, data, MAX_UPLOAD_BYTES, partial(_decode_photo, max_pixels=max_pixels),
+                                      partial(self._show_photo, name))
+
+    def _show_photo(self, name: str, decoded) -> bool:
+        """Put a decoded photo (from :func:`_decode_photo`) on the page, with no box and no map yet."""
+        photo, preview = decoded
         self.photo_msg.show_error(None)
         self.photo, self.photo_name = photo, name
         self.calib_box = self.roi = None
@@ -434,10 +436,7 @@ class ColourToThickness:
         self._clear_map()
         self.progress.visible = self.cancel_map.visible = False
         self.progress_text.object = ""
-        step = max(1, int(np.ceil(max(photo.width, photo.height) / DISPLAY_MAX_SIDE)))
-        small = photo.rgb[::step, ::step]
-        rgb = small.astype(float) / (65535.0 if photo.bit_depth == 16 else 255.0)
-        self.photo_src.data = dict(image=[_rgba(rgb)], x=[0], y=[0], dw=[photo.width], dh=[photo.height])
+        self.photo_src.data = dict(image=[preview], x=[0], y=[0], dw=[photo.width], dh=[photo.height])
         self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo.bit_depth}-bit"
         self._draw_boxes()
         self.run_map.disabled = False
@@ -840,6 +839,15 @@ def _locked(fn):
         doc.add_next_tick_callback(fn)
     else:
         fn()
+
+
+def _decode_photo(data: bytes, progress=None, *, max_pixels: int):
+    """(photo, RGBA preview of at most DISPLAY_MAX_SIDE pixels a side) from a photo file's bytes; the slow
+    part of an upload, run off the event loop. Raises InputError for a file that is not a usable photo."""
+    photo = load_image(data, max_pixels=max_pixels)
+    step = max(1, int(np.ceil(max(photo.width, photo.height) / DISPLAY_MAX_SIDE)))
+    small = photo.rgb[::step, ::step]
+    return photo, _rgba(small.astype(float) / (65535.0 if photo.bit_depth == 16 else 255.0))
 
 
 def _image_ranges():

@@ -7,17 +7,41 @@ counts the chunks as they arrive and drops a file the moment it passes its cap, 
 skips the browser's check still cannot make the server hold more than the cap. Once a file has
 been handed over, the drop zone lets go of its bytes: a page keeps the parsed result, not the
 upload.
+
+Reading a file happens off the event loop: each drop zone's handler gives the bytes to an
+:class:`UploadReader`, which parses them in a worker thread while the message beside the zone says
+"Reading <name> …", then applies the result (or shows why the file was refused) on the page's next
+tick. Every parser bounds its rows and its time, so a worker thread is never held for long.
+
+Sizes: 1 MB is 10**6 bytes (:data:`MB`) in every cap and message here, as the browser's drop zone
+counts them.
 """
 from __future__ import annotations
 
+import html
+import logging
+import threading
+import time
+from functools import partial
 from typing import Callable
 
 import panel as pn
 import param
 
-from .limits import UPLOAD_CHUNK_BYTES, upload_cap_bytes
+from physics import InputError
 
-__all__ = ["CappedDropper", "COMPACT", "browser_size_text"]
+from .limits import (JobCancelled, UPLOAD_CHUNK_BYTES, interactive_executor, logged_job, post_to_page, served,
+                     session_key, upload_cap_bytes)
+
+__all__ = ["CappedDropper", "COMPACT", "MB", "UploadReader", "browser_size_text", "size_text", "too_large"]
+
+log = logging.getLogger("fringegauge")
+
+#: Bytes in the megabyte of every size the page states: 10**6, as the browser's drop zone (FilePond counts
+#: in powers of 1000) and file managers show file sizes.
+MB = 1_000_000
+#: Shortest time between two "Reading <name> … n lines" updates of one drop zone (s): each is a message.
+PROGRESS_EVERY_S = 0.3
 
 #: Keyword arguments for a one-line drop zone in a sidebar (a text file: a stack, a spectrum).
 COMPACT = dict(layout="compact", width=300, height=40, margin=(2, 5), stylesheets=["""
@@ -27,6 +51,27 @@ COMPACT = dict(layout="compact", width=300, height=40, margin=(2, 5), stylesheet
     .filepond--drop-label label { padding: 0.2em 0.5em !important; }
     .filepond--panel-root { background-color: transparent !important; }
 """])
+
+
+def size_text(n_bytes: int) -> str:
+    """A size for a message, in MB of 10**6 bytes with at most one decimal: '20 MB', '1.5 MB', '0.3 MB'."""
+    mb = f"{n_bytes / MB:,.1f}"
+    return (mb[:-2] if mb.endswith(".0") else mb) + " MB"
+
+
+def too_large(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "") -> str | None:
+    """A sentence refusing an upload larger than this server takes for its kind (the smaller of
+    ``kind_cap_bytes`` and ``--max-upload-mb``, :func:`views.limits.upload_cap_bytes`), else None.
+
+    Sizes are in MB of 10**6 bytes; where the file and the cap round to the same text they are given in bytes.
+    """
+    cap = upload_cap_bytes(kind_cap_bytes)
+    if n_bytes <= cap:
+        return None
+    big, most = size_text(n_bytes), size_text(cap)
+    if big == most:
+        big, most = f"{n_bytes:,} bytes", f"{cap:,} bytes"
+    return f"{name} is {big}; this server accepts up to {most} for it." + (f" {advice}" if advice else "")
 
 
 def browser_size_text(cap_bytes: int) -> str:
@@ -78,9 +123,8 @@ class CappedDropper(pn.widgets.FileDropper):
             return self._refuse(name, f"{self._what} arrived out of order; please drop it again.")
         got = self._received.get(name, 0) + len(piece)
         if got > self.cap_bytes:
-            mb = self.cap_bytes / 2**20
-            return self._refuse(name, f"{name} is larger than this server accepts for it ({mb:.1f} MB); "
-                                      "nothing of it was kept.")
+            return self._refuse(name, f"{name} is larger than this server accepts for it "
+                                      f"({size_text(self.cap_bytes)}); nothing of it was kept.")
         self._received[name] = got
         if chunk == total:
             self._received.pop(name, None)
@@ -110,3 +154,135 @@ class CappedDropper(pn.widgets.FileDropper):
         for i in range(total):
             self._process_event(SimpleNamespace(event_name="upload_event", data=dict(
                 name=name, chunk=i + 1, total_chunks=total, data=bytes(data[i * step:(i + 1) * step]), type=mime)))
+
+
+class UploadReader:
+    """Reads the files of one drop zone: in a worker thread when the page is served, at once otherwise.
+
+    ``field`` is the drop zone's message field (``field.message``, the pane beside the zone, and
+    ``field.show_error(text)``). :meth:`take` is the whole path of an upload: a file over its cap is
+    refused at once; otherwise ``parse(data, progress)`` (the bytes to a result; ``progress(lines)`` may be
+    called now and then) runs in a :func:`views.limits.interactive_executor` thread while the pane says
+    "Reading <name> …" and how many lines are read. Then, on the page's next tick
+    (:func:`views.limits.post_to_page`, the document lock held), ``apply(result)`` runs, or the field shows
+    "<name>: <why>" for a file the parser refused (``physics.InputError``). A newer file for the same zone
+    supersedes one still being read: the older reading stops at its next progress call, and its result,
+    should it finish anyway, is dropped. So does a page that has gone. An unexpected error is logged and
+    the page says the file could not be read.
+
+    Outside a server (scripts, tests) ``parse`` and ``apply`` run at once and :meth:`take` returns what
+    ``apply`` returned (False for a refused file); an unexpected error propagates.
+    """
+
+    def __init__(self, field, kind: str = "upload"):
+        self.field = field
+        self.message = field.message
+        self.kind = kind                              # how the server log names these readings
+        self._job = 0
+        self._lock = threading.Lock()
+        self._pending = None                          # name of the file being read (served pages only)
+
+    def take(self, name: str, data: bytes, kind_cap_bytes: int, parse: Callable[[bytes, Callable], object],
+             apply: Callable[[object], object], advice: str = ""):
+        """Read an uploaded file ``data`` named ``name`` of a kind capped at ``kind_cap_bytes`` (see
+        :func:`too_large`; ``advice`` ends its refusal). When served, returns True once reading has started."""
+        refusal = too_large(name, len(data), kind_cap_bytes, advice)
+        if refusal:
+            return self.refuse(refusal)
+        data = bytes(data)
+        return self.read(name, partial(parse, data), apply, partial(self._refused, name), size=len(data))
+
+    def refuse(self, message: str) -> bool:
+        """Say why the newest file was refused (the drop zone's ``on_refused``); one still being read is dropped."""
+        self.cancel()
+        self.field.show_error(message)
+        return False
+
+    def _refused(self, name: str, message: str) -> bool:
+        self.field.show_error(f"{name}: {message}")
+        return False
+
+    @property
+    def reading(self) -> bool:
+        """True while a file handed over is still being read (served pages only)."""
+        return self._pending is not None
+
+    def read(self, name: str, parse: Callable[[Callable[[int], None]], object], apply: Callable[[object], object],
+             fail: Callable[[str], object], size: int = 0):
+        """:meth:`take` without the size check: ``parse(progress)``, then ``apply(result)`` or ``fail(why)``.
+
+        Each reading is logged as one line (:func:`views.limits.logged_job`: kind, ``size``, duration,
+        outcome), never with the file's name or content."""
+        with self._lock:
+            self._job += 1
+            job = self._job
+        doc = pn.state.curdoc
+        session = session_key(self)
+        if not served(doc):
+            self._pending = None
+            try:
+                with logged_job(f"read_{self.kind}", size, session):
+                    result = parse(lambda lines: None)
+            except InputError as exc:
+                fail(str(exc))
+                return False
+            return apply(result)
+        self._pending = name
+        self._show(job, name, 0)
+        last = [time.monotonic()]
+
+        def progress(lines: int):
+            if job != self._job or not served(doc):
+                raise JobCancelled                    # superseded by a newer file, or the page has gone
+            now = time.monotonic()
+            if now - last[0] >= PROGRESS_EVERY_S:
+                last[0] = now
+                post_to_page(doc, partial(self._show, job, name, lines))
+
+        def work():
+            try:
+                with logged_job(f"read_{self.kind}", size, session):
+                    outcome = apply, parse(progress)
+            except JobCancelled:
+                return
+            except InputError as exc:
+                outcome = fail, str(exc)
+            except MemoryError:
+                outcome = fail, ("The server does not have enough memory free to read it now; try again in a "
+                                 "moment, or with a smaller file.")
+            except Exception:  # never lose the page to one bad file
+                log.exception("reading an upload failed")
+                outcome = fail, "It could not be read because of an unexpected error (logged on the server)."
+            post_to_page(doc, partial(self._finish, job, *outcome))
+        interactive_executor().submit(work)
+        return True
+
+    def cancel(self) -> None:
+        """Drop the file being read, if any (something newer replaced what it would change)."""
+        with self._lock:
+            self._job += 1
+        if self._pending is not None:
+            self._pending = None
+            self.message.object = ""
+            self.message.visible = False
+
+    def _show(self, job: int, name: str, lines: int):
+        if job != self._job:
+            return
+        so_far = f" ({lines:,} lines so far)" if lines else ""
+        self.message.object = (f'<div class="fg-upload-reading" role="status" style="font-size:12px;color:#555">'
+                               f"Reading {html.escape(name)} …{so_far}</div>")
+        self.message.visible = True
+
+    def _finish(self, job: int, fn, value):
+        if job != self._job:
+            return                                    # a newer file took this zone meanwhile
+        self._pending = None
+        self.message.object = ""
+        self.message.visible = False
+        try:
+            fn(value)
+        except Exception:  # never lose the page to one bad file
+            log.exception("using an upload failed")
+            self.field.show_error("The file could not be used because of an unexpected error (logged on the "
+                                  "server); the page keeps what it showed.")
