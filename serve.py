@@ -359,8 +359,9 @@ def health_handler(started: float):
     class HealthHandler(tornado.web.RequestHandler):
         """GET /health → {"status", "sessions", "max_sessions", "heavy_jobs", "max_jobs_server", "workers",
         "uptime_s"}; no login needed, no page state. ``heavy_jobs`` is the number of photo maps and fits running
-        now; ``workers`` the state of the processes that run them. HTTP 200 with status "ok" while everything
-        works; HTTP 503 with status "degraded" when photo maps and fits cannot run (the pages still answer)."""
+        now; ``workers`` the state of the processes that run them (``views.workers.status``). Status "ok" while
+        everything works; "degraded" when a worker slot keeps failing to start, with HTTP 503 once no worker can
+        run photo maps and fits at all (the pages still answer), HTTP 200 otherwise."""
 
         def get(self):
             app = self.application  # the BokehTornado application serving the page
@@ -370,10 +371,11 @@ def health_handler(started: float):
                 sessions = None
             from views import workers
             from views.limits import running_jobs
-            worker_state = workers.status() if hasattr(workers, "status") else {"state": "ok"}
+            worker_state = workers.status()
             degraded = worker_state.get("state") == "degraded"
+            cannot_run = degraded and not worker_state.get("alive")
             guard = getattr(app, "fringegauge_sessions", None)
-            self.set_status(503 if degraded else 200)
+            self.set_status(503 if cannot_run else 200)
             self.set_header("Content-Type", "application/json")
             self.set_header("Cache-Control", "no-store")
             self.write(json.dumps({"status": "degraded" if degraded else "ok", "sessions": sessions,

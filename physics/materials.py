@@ -298,8 +298,8 @@ def _load_page(shelf: str, book: str, page: str):
         raise InputError(f"No page {shelf}/{book}/{page} in the bundled refractiveindex.info "
                          f"database ({database_version()})." + (f" Pages of that book: {hint}." if hint
                                                                 else " Use search_materials() to find one.")) from None
-    except Exception as exc:  # a page the package cannot read
-        raise InputError(f"The database page {shelf}/{book}/{page} cannot be read ({exc}); "
+    except Exception as exc:  # a page the package cannot read: its text may name files on the server
+        raise InputError(f"The database page {shelf}/{book}/{page} cannot be read ({type(exc).__name__}); "
                          "choose another page.") from None
 
 

@@ -23,7 +23,7 @@ import time
 import numpy as np
 import pytest
 
-from tests.support.loadclient import PageError, PageSession
+from tests.support.loadclient import CROWD_SERVER_ARGS, PageError, PageSession
 from tests.support.server import served_lab
 from tests.test_faults import _assert_serving
 
@@ -152,7 +152,7 @@ def _photo_png(width=6000, height=4000) -> bytes:
 
 @pytest.fixture(scope="module")
 def lab(tmp_path_factory):
-    with served_lab(tmp_path_factory.mktemp("offloop")) as (base, proc, log_path):
+    with served_lab(tmp_path_factory.mktemp("offloop"), *CROWD_SERVER_ARGS) as (base, proc, log_path):
         yield {"base": base, "port": int(base.rsplit(":", 1)[1]), "proc": proc, "log": log_path}
 
 

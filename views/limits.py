@@ -15,7 +15,7 @@ Where each limit is enforced:
     ``views.inverse`` passes it to ``physics.imageio.load_image``, which checks the header's size
     before decoding pixels.
 ``max_upload_mb`` (``FRINGEGAUGE_MAX_UPLOAD_MB``)
-    Every upload handler calls :func:`upload_refusal` with its own cap (stack file 1 MB, lamp
+    Every upload handler calls :func:`upload_refusal` (through ``views.uploads.UploadReader``) with its own cap (stack file 1 MB, lamp
     spectrum 2 MB, measured spectrum 20 MB, photo 200 MB), so the smaller of the two applies; the
     photo drop zone also checks in the browser. ``serve.py`` sizes the websocket message limit to it.
 ``max_jobs_per_session`` / ``max_jobs_server``
@@ -235,20 +235,36 @@ def check_grid_points(what: str, points: int, limits: Limits | None = None) -> N
                          "or ask whoever runs the server to raise --max-grid-points.")
 
 
+#: Bytes in the megabyte of every size the page states: 10**6, as the browser's drop zone (it counts in
+#: powers of 1000) and file managers show file sizes.
+MB = 1_000_000
+
+
+def size_text(n_bytes: int) -> str:
+    """A size for a message, in MB of 10**6 bytes with at most one decimal: '20 MB', '1.5 MB', '0.3 MB'."""
+    mb = f"{n_bytes / MB:,.1f}"
+    return (mb[:-2] if mb.endswith(".0") else mb) + " MB"
+
+
 def upload_cap_bytes(kind_cap_bytes: int, limits: Limits | None = None) -> int:
     """The largest upload of one kind this server takes: the smaller of the kind's own cap and ``max_upload_mb``."""
     limits = limits or Limits.from_env()
-    return min(int(kind_cap_bytes), int(limits.max_upload_mb * 2**20))
+    return min(int(kind_cap_bytes), int(limits.max_upload_mb * MB))
 
 
 def upload_refusal(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "",
                    limits: Limits | None = None) -> str | None:
-    """A sentence refusing an upload larger than :func:`upload_cap_bytes`, else None."""
+    """A sentence refusing an upload larger than :func:`upload_cap_bytes`, else None.
+
+    Sizes are in MB of 10**6 bytes; where the file and the cap round to the same text they are given in bytes.
+    """
     cap = upload_cap_bytes(kind_cap_bytes, limits)
     if n_bytes <= cap:
         return None
-    return (f"{name} is {n_bytes / 2**20:.1f} MB; this server accepts up to {cap / 2**20:.1f} MB for it."
-            + (f" {advice}" if advice else ""))
+    big, most = size_text(n_bytes), size_text(cap)
+    if big == most:
+        big, most = f"{n_bytes:,} bytes", f"{cap:,} bytes"
+    return f"{name} is {big}; this server accepts up to {most} for it." + (f" {advice}" if advice else "")
 
 
 #: Every upload reaches the server in chunks of this size (see views/uploads.py), so no message is large.

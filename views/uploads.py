@@ -30,16 +30,13 @@ import param
 
 from physics import InputError
 
-from .limits import (JobCancelled, UPLOAD_CHUNK_BYTES, interactive_executor, logged_job, post_to_page, served,
-                     session_key, upload_cap_bytes)
+from .limits import (MB, JobCancelled, UPLOAD_CHUNK_BYTES, interactive_executor, logged_job, post_to_page,  # noqa: F401
+                     served, session_key, size_text, upload_cap_bytes, upload_refusal)
 
 __all__ = ["CappedDropper", "COMPACT", "MB", "UploadReader", "browser_size_text", "size_text", "too_large"]
 
 log = logging.getLogger("fringegauge")
 
-#: Bytes in the megabyte of every size the page states: 10**6, as the browser's drop zone (FilePond counts
-#: in powers of 1000) and file managers show file sizes.
-MB = 1_000_000
 #: Shortest time between two "Reading <name> … n lines" updates of one drop zone (s): each is a message.
 PROGRESS_EVERY_S = 0.3
 
@@ -53,25 +50,8 @@ COMPACT = dict(layout="compact", width=300, height=40, margin=(2, 5), stylesheet
 """])
 
 
-def size_text(n_bytes: int) -> str:
-    """A size for a message, in MB of 10**6 bytes with at most one decimal: '20 MB', '1.5 MB', '0.3 MB'."""
-    mb = f"{n_bytes / MB:,.1f}"
-    return (mb[:-2] if mb.endswith(".0") else mb) + " MB"
-
-
-def too_large(name: str, n_bytes: int, kind_cap_bytes: int, advice: str = "") -> str | None:
-    """A sentence refusing an upload larger than this server takes for its kind (the smaller of
-    ``kind_cap_bytes`` and ``--max-upload-mb``, :func:`views.limits.upload_cap_bytes`), else None.
-
-    Sizes are in MB of 10**6 bytes; where the file and the cap round to the same text they are given in bytes.
-    """
-    cap = upload_cap_bytes(kind_cap_bytes)
-    if n_bytes <= cap:
-        return None
-    big, most = size_text(n_bytes), size_text(cap)
-    if big == most:
-        big, most = f"{n_bytes:,} bytes", f"{cap:,} bytes"
-    return f"{name} is {big}; this server accepts up to {most} for it." + (f" {advice}" if advice else "")
+#: The refusal of an upload over its cap (one sentence, sizes in MB of 10**6 bytes).
+too_large = upload_refusal
 
 
 def browser_size_text(cap_bytes: int) -> str:
