@@ -10,7 +10,7 @@ from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
 from views.library import LibrarySection
 from views.offline import serve_everything_locally
-from views.tabs import BuiltOnFirstOpen
+from views.pagebuild import BuiltOnFirstOpen, spare_explorers
 from views.limits import page_closed, quiet_closed_connections, served
 from views.urlstate import apply_query, state_to_query
 
@@ -37,7 +37,7 @@ def page():
     quiet_closed_connections()                     # a tab closed mid-write is normal, not a traceback
     if served():
         pn.state.on_session_destroyed(page_closed)          # defined outside: this module is gone by then
-    explorer = FilmExplorer()
+    explorer = spare_explorers(FilmExplorer).take() if served() else FilmExplorer()
     args = pn.state.session_args or {}
     if args:
         errors = apply_query(explorer.state, args)

@@ -42,6 +42,7 @@ from panel.io.server import DocHandler as PanelDocHandler
 from panel.io.server import WSHandler as PanelWSHandler
 
 from views.limits import UPLOAD_CHUNK_BYTES, WEBSOCKET_MESSAGE_CAP_BYTES, session_hash
+from views.pagebuild import ensure_spare
 
 __all__ = ["MessageMeter", "GuardedWSHandler", "GuardedDocHandler", "install_handlers",
            "MAX_MESSAGE_BYTES", "MAX_BUFFERS", "COMPLETE_WITHIN_S", "MESSAGES_PER_S", "MESSAGE_BURST"]
@@ -65,6 +66,9 @@ MAX_DOCUMENT_PULLS = 2
 #: Longest a message waits for its address's share of the event loop (s) before the connection is
 #: closed instead (a client that keeps the loop busy this long is not a person at a page).
 MAX_SHARE_WAIT_S = 30.0
+#: Pause between building a page's document and writing the page out (s): both hold the event loop, and
+#: a request that arrived meanwhile (another page's message, /health) is answered in between.
+BETWEEN_BUILD_AND_PAGE_S = 0.05
 #: Longest error text kept in a log line (never a message's content).
 LOG_TEXT_CHARS = 300
 
@@ -152,8 +156,12 @@ class GuardedWSHandler(PanelWSHandler):
         self._meter = MessageMeter()
         self._joined = None                 # session id once counted by the guard
         self._deadline = None
+        self._refused = False               # closed by the server: later frames are dropped unread
 
     def _refuse(self, code: int, reason: str, log_reason: str) -> None:
+        if self._refused:
+            return                                  # said once; what was already on its way is dropped
+        self._refused = True
         _log.warning("websocket closed", extra={"client": self.request.remote_ip, "reason": log_reason,
                                                 **({"session": session_hash(self._joined)} if self._joined else {})})
         self.close(code, reason)
@@ -213,6 +221,8 @@ class GuardedWSHandler(PanelWSHandler):
             self._refuse(1009, f"a message was not completed within {COMPLETE_WITHIN_S:g} s", "incomplete message")
 
     async def on_message(self, fragment) -> None:
+        if self._refused:
+            return None
         started = self._meter.in_message
         problem = self._meter.take(fragment)
         if problem is not None:
@@ -250,6 +260,7 @@ class GuardedWSHandler(PanelWSHandler):
                        extra={"msgtype": str(message.header.get("msgtype"))[:40],
                               "error": f"{type(exc).__name__}: {str(exc)[:LOG_TEXT_CHARS]}",
                               **({"session": session_hash(self._joined)} if self._joined else {})})
+            self._refused = True
             self.close(1011, "the server could not apply a message")
         finally:
             if guard is not None:
@@ -274,6 +285,11 @@ def simple_page(title: str, message: str) -> str:
     return _PAGE_TEMPLATE.format(title=html.escape(title), message=html.escape(message))
 
 
+async def _awaited(result):
+    """The page handler's result: a coroutine, or None when the login check redirected instead."""
+    return await result if result is not None else None
+
+
 class GuardedDocHandler(PanelDocHandler):
     """Panel's page handler that builds a new page only when the server has room for it."""
 
@@ -287,7 +303,7 @@ class GuardedDocHandler(PanelDocHandler):
             return
         guard = _guard(self)
         if guard is None:
-            return await super().get(*args, **kwargs)
+            return await _awaited(super().get(*args, **kwargs))
         reservation = guard.reserve(self.request.remote_ip)
         if not hasattr(reservation, "bind"):          # a Refusal: say so in a page of its own
             self.set_status(reservation.status)
@@ -298,9 +314,12 @@ class GuardedDocHandler(PanelDocHandler):
         self._reservation = reservation
         try:
             async with guard.building():
+                # the page's Python objects are built in a thread while the loop goes on; only attaching
+                # them to the page's document is left for the loop
+                await asyncio.get_running_loop().run_in_executor(None, ensure_spare)
                 t0 = time.thread_time()
                 try:
-                    return await super().get(*args, **kwargs)
+                    return await _awaited(super().get(*args, **kwargs))
                 finally:
                     guard.charge(self.request.remote_ip, time.thread_time() - t0)
         finally:
@@ -311,6 +330,7 @@ class GuardedDocHandler(PanelDocHandler):
         reservation = getattr(self, "_reservation", None)
         if reservation is not None:
             reservation.bind(session.id, _owner(self))
+            await asyncio.sleep(BETWEEN_BUILD_AND_PAGE_S)     # the loop's turn before the page is written out
         return session
 
 

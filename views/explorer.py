@@ -29,6 +29,7 @@ from physics import InputError, search_materials, list_materials
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
+from .pagebuild import in_turns
 from .uploads import COMPACT, CappedDropper, UploadReader
 from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
@@ -812,8 +813,8 @@ class FilmExplorer:
         first opened (``dynamic``), which keeps every message of a slider move small.
         """
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
-        sidebar = pn.Column(
-            pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge</h2>"),
+        heading = pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge</h2>")
+        sidebar_items = [
             pn.Card(pn.pane.Markdown(CAUTIONS, styles={"font-size": "12px"}), title="Cautions", collapsed=True,
                     width=310, margin=(2, 5)),
             section("Stack"),
@@ -833,11 +834,10 @@ class FilmExplorer:
             self.brightness,
             section("Downloads"),
             self.dl_csv, self.dl_map, self.dl_strip,
-            width=330, scroll=True, sizing_mode="stretch_height", margin=(0, 5),
-            styles={"background": "#f6f6f4", "border-right": "1px solid #ddd"},
-        )
-        main = pn.Column(
-            pn.Row(self.status, self.error, margin=0),
+        ]
+        sidebar = pn.Column(heading, width=330, scroll=True, sizing_mode="stretch_height", margin=(0, 5),
+                            styles={"background": "#f6f6f4", "border-right": "1px solid #ddd"})
+        views = [
             pn.Row(self.swatch, pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.pane.HTML("Tap the map to set thickness and angle.", margin=(4, 5, 0, 5),
                          styles={"font-size": "12px", "color": "#555"}),
@@ -845,8 +845,19 @@ class FilmExplorer:
             pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
             pn.pane.Markdown(CAUTIONS.split("**Cautions.** ")[1],
                              styles={"font-size": "11px", "color": "#555"}),
-            sizing_mode="stretch_both", scroll=True, margin=(0, 10),
-        )
+        ]
+        main = pn.Column(pn.Row(self.status, self.error, margin=0), sizing_mode="stretch_both", scroll=True,
+                         margin=(0, 10))
+        if served():
+            # The server builds pages on the event loop that every page shares: the page goes out as a frame,
+            # and its sidebar and its plots follow in turns of their own once the browser has it, so no turn
+            # holds the loop for long (see views/pagebuild.py).
+            sidebar.append(pn.pane.HTML("Opening the page…", margin=(4, 8)))
+            in_turns(lambda: setattr(sidebar, "objects", [heading, *sidebar_items]),
+                     partial(main.extend, views))
+        else:
+            sidebar.extend(sidebar_items)
+            main.extend(views)
         if extra_tabs:
             main = pn.Tabs(("Film explorer", main), *extra_tabs, sizing_mode="stretch_both", dynamic=True)
             titles = ["Film explorer", *(t for t, _ in extra_tabs)]
