@@ -198,11 +198,17 @@ class PageError(RuntimeError):
     """The page did not answer as a browser would expect."""
 
 
+#: The part of the page that arrives last (see views/pagebuild.py): the page is complete once it is there.
+PAGE_COMPLETE = ("HTML", "fg-swatch")
+
+
 class PageSession:
     """One simulated browser tab on ``/app``: a synced table of the document's models."""
 
-    def __init__(self, base_url: str, path: str = "/app"):
+    def __init__(self, base_url: str, path: str = "/app", cookie: str | None = None, source: str | None = None):
+        """``cookie``: a ``Cookie`` header value (a login); ``source``: the loopback address to send from."""
         self.base_url, self.path = base_url.rstrip("/"), path
+        self.cookie, self.source = cookie, source
         self.models: dict[str, dict] = {}          # id -> {"name": type name, "attributes": {...}}
         self.errors: list[str] = []
         self.closed = False
@@ -219,13 +225,15 @@ class PageSession:
     async def open(self, timeout_s: float = 60.0):
         """GET the page, open the websocket, pull the document."""
         client = AsyncHTTPClient()
-        resp = await client.fetch(HTTPRequest(self.base_url + self.path, request_timeout=timeout_s))
+        headers = {"Cookie": self.cookie} if self.cookie else {}
+        resp = await client.fetch(HTTPRequest(self.base_url + self.path, request_timeout=timeout_s, headers=headers,
+                                              network_interface=self.source, follow_redirects=False))
         m = re.search(r'"token"\s*:\s*"([^"]+)"', resp.body.decode("utf-8", "replace"))
         if not m:
             raise PageError("the page carried no session token")
         host = self.base_url.split("://", 1)[1]
-        req = HTTPRequest(f"ws://{host}{self.path}/ws", headers={"Origin": self.base_url},
-                          request_timeout=timeout_s, connect_timeout=timeout_s)
+        req = HTTPRequest(f"ws://{host}{self.path}/ws", headers={"Origin": self.base_url, **headers},
+                          request_timeout=timeout_s, connect_timeout=timeout_s, network_interface=self.source)
         self._conn = await websocket_connect(req, subprotocols=["bokeh", m.group(1)],
                                              max_message_size=MAX_MESSAGE_BYTES)
         self._conn.protocol.set_nodelay(True)  # as browsers do: a message's small frames must not wait for ACKs
@@ -238,8 +246,9 @@ class PageSession:
         await self._send("PULL-DOC-REQ", {})
         doc = await asyncio.wait_for(self._pull, timeout_s)
         self._register(doc)
-        # a browser tells the server its document is rendered
+        # a browser tells the server its document is rendered; the page then sends its sidebar and plots
         await self.send_event("document_ready", None)
+        await self.wait_until(lambda: self.has(*PAGE_COMPLETE), timeout_s)
         return self
 
     async def close(self):
@@ -342,6 +351,14 @@ class PageSession:
             elif ev.get("kind") == "RootAdded":
                 self._register(ev.get("model"))
         self._changed.set()
+
+    def has(self, name_suffix: str, css: str | None = None, **attrs) -> bool:
+        """True when the document holds a model :meth:`find` would return."""
+        try:
+            self.find(name_suffix, css, **attrs)
+        except PageError:
+            return False
+        return True
 
     def find(self, name_suffix: str, css: str | None = None, **attrs) -> str:
         """Id of the one model whose type name ends with *name_suffix*, with css class *css* and *attrs*."""
@@ -557,8 +574,10 @@ class HeavyResult:
 class PhotoMapUser:
     """One session that drops a photo on the colour → thickness tab and makes thickness maps."""
 
-    def __init__(self, base_url: str, png: bytes, name: str = "wedge.png"):
+    def __init__(self, base_url: str, png: bytes, name: str = "wedge.png", cookie: str | None = None,
+                 source: str | None = None):
         self.base_url, self.png, self.name = base_url, png, name
+        self.cookie, self.source = cookie, source
         self.session: PageSession | None = None
         self.open_s = float("nan")
         self.open_error: str | None = None
@@ -568,7 +587,7 @@ class PhotoMapUser:
     async def open(self) -> bool:
         t0 = time.perf_counter()
         try:
-            self.session = s = await PageSession(self.base_url).open()
+            self.session = s = await PageSession(self.base_url, cookie=self.cookie, source=self.source).open()
             self.tabs = s.find("Tabs")
         except Exception as exc:  # noqa: BLE001
             self.open_error = f"open: {type(exc).__name__}: {exc}"
