@@ -5,7 +5,8 @@ until the page is freed). Without limits, a client that only sends ``GET /app`` 
 and the loop. :class:`SessionGuard` decides, before a page is built, whether it may be:
 
 - at most ``max_sessions`` pages in the server and ``max_per_address`` per client address
-  (open and still being built);
+  (open and still being built), of which at most ``max_waiting_per_address`` not yet joined by their
+  browser, and none while the address is over its share of the loop (below);
 - page opens per address come from a bucket of ``burst`` that refills at ``opens_per_minute``;
 - a page whose websocket has not connected ``connect_within_s`` after it was built is freed
   (a browser connects within a second or two of receiving the page);
@@ -57,9 +58,13 @@ class SessionLimits:
     max_sessions: int = 60
     #: pages per client address: a station with several tabs; raise it behind a proxy or a NAT
     max_per_address: int = 12
-    #: page opens per address and minute, after a burst of ``burst``: a reload every 3 s is plenty
-    opens_per_minute: float = 20.0
-    burst: int = 6
+    #: page opens per address and minute, after a burst of ``burst``: a person opens the page a few times
+    #: a shift; each open costs the server about 0.75 s of interpreter time (measured on 2 cores)
+    opens_per_minute: float = 6.0
+    burst: int = 4
+    #: pages of one address built but not yet joined by their browser: a browser joins within seconds, so
+    #: only a client that opens pages and never connects has more (each cost the loop a page build)
+    max_waiting_per_address: int = 3
     #: seconds a built page waits for its browser's websocket before it is freed: a browser connects
     #: within a second or two of receiving the page, a few more while the server builds others' pages
     connect_within_s: float = 15.0
@@ -68,9 +73,10 @@ class SessionLimits:
     #: websockets per client address
     max_connections_per_address: int = 36
     #: seconds of event-loop time per second one address may use once its burst is spent: a person
-    #: dragging a slider uses about 0.1; half the loop leaves the other half to everyone else
-    loop_share: float = 0.5
-    loop_burst_s: float = 5.0
+    #: dragging a slider uses about 0.06 (12 ms a move, five moves a second); opening a tab or reading an
+    #: upload is a burst of under a second
+    loop_share: float = 0.25
+    loop_burst_s: float = 3.0
 
     def __post_init__(self):
         require_positive(self)
@@ -137,6 +143,10 @@ class SessionGuard:
         mine = sum(1 for p in self._pages.values() if p.address == address) + self._pending.get(address, 0)
         return len(self._pages) + sum(self._pending.values()), mine
 
+    def _waiting(self, address: str) -> int:
+        return self._pending.get(address, 0) + sum(1 for p in self._pages.values()
+                                                   if p.address == address and not p.ever_connected)
+
     def _tokens(self, address: str) -> float:
         lim = self.limits
         tokens, at = self._buckets.get(address, (float(lim.burst), self._clock()))
@@ -173,6 +183,13 @@ class SessionGuard:
             refusal = Refusal(503, f"The server is full for this computer: {lim.max_per_address} pages are open "
                                    "from its address, the limit per address. Close tabs of this page you no longer "
                                    "use, or try again in a few minutes.", "full for address")
+        elif self._waiting(address) >= lim.max_waiting_per_address:
+            refusal = Refusal(503, "This computer has pages that have not connected to the server yet; the "
+                                   "server is full for it for a moment. Wait a few seconds and reload.",
+                              "pages waiting for their browser")
+        elif (wait_s := self.loop_wait_s(address)) > 0:
+            refusal = Refusal(503, "This computer has kept the server busy; the server is full for it for a "
+                                   f"moment. Wait {max(1, round(wait_s))} s and reload.", "over its share of the loop")
         elif not self._take_token(address):
             wait_s = max(1, round(60.0 / lim.opens_per_minute))
             refusal = Refusal(503, "This computer has opened the page many times in a short while; the server is "

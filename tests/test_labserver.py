@@ -152,6 +152,28 @@ def test_page_opens_refill_at_their_rate():
     assert hasattr(guard.reserve("b"), "bind")           # another address has its own bucket
 
 
+def test_an_address_whose_pages_never_connect_gets_no_more_for_a_while():
+    clock = Clock()
+    guard = SessionGuard(_limits(max_per_address=10, max_sessions=20, burst=10, max_waiting_per_address=2),
+                         clock=clock)
+    guard.reserve("a").bind("s1", "")
+    guard.reserve("a").bind("s2", "")
+    refused = guard.reserve("a")
+    assert refused.status == 503 and "not connected" in refused.message
+    guard.connect("s1", "a", object())                 # one browser arrives: room for one more
+    assert hasattr(guard.reserve("a"), "bind")
+    assert hasattr(guard.reserve("b"), "bind")
+
+
+def test_an_address_over_its_share_of_the_loop_opens_no_page():
+    guard = SessionGuard(_limits(max_per_address=10, max_sessions=20, burst=10, loop_share=0.5, loop_burst_s=1.0),
+                         clock=Clock())
+    guard.charge("a", 3.0)
+    refused = guard.reserve("a")
+    assert refused.status == 503 and "busy" in refused.message and "Wait 4 s" in refused.message
+    assert hasattr(guard.reserve("b"), "bind")
+
+
 def test_a_released_reservation_without_a_page_gives_its_open_back():
     guard = SessionGuard(_limits(burst=1), clock=Clock())
     guard.reserve("a").release(refund=True)              # e.g. redirected to the login form

@@ -188,6 +188,17 @@ def _worker_main(conn, cancel_word, memory_bytes: int, initializer) -> None:
         if reply[0] == "memory":
             return                                            # a fresh process after running out of memory
         del reply
+        _give_back_memory()
+
+
+def _give_back_memory() -> None:
+    """Hand a finished job's freed memory back to the system (a photo map frees hundreds of MB that glibc
+    would otherwise keep mapped until the process is replaced); does nothing where libc is not glibc."""
+    from .limits import _malloc_trim
+
+    trim = _malloc_trim()
+    if trim is not None:
+        trim(0)
 
 
 def _run_job(data: bytes, conn, cancel_word):
