@@ -29,8 +29,8 @@ from pathlib import Path
 
 import pytest
 
-from tests.support.loadclient import (CROWD_SERVER_ARGS, THINK_S, Crowd, ExplorerUser, fetch_json, log_problems,
-                                      rss_kb, serve, synthetic_wedge_png)
+from tests.support.loadclient import (THINK_S, Crowd, ExplorerUser, fetch_json, log_problems, rss_kb, serve,
+                                      synthetic_wedge_png)
 
 ROOT = Path(__file__).resolve().parents[1]
 #: Longest the scenario may take before the test gives up (s); about a minute on an idle 2-core machine.
@@ -108,7 +108,7 @@ def run(tmp_path_factory):
     workdir = tmp_path_factory.mktemp("load")
     with concurrent.futures.ThreadPoolExecutor(1) as pool:
         photo = pool.submit(synthetic_wedge_png)              # made while the server starts
-        with serve(workdir, "--idle-timeout-s", str(IDLE_TIMEOUT_S), *CROWD_SERVER_ARGS) as server:
+        with serve(workdir, "--idle-timeout-s", str(IDLE_TIMEOUT_S)) as server:
             png_path, out_path = workdir / "wedge.png", workdir / "scenario.pickle"
             png_path.write_bytes(photo.result())
             t0 = time.perf_counter()

@@ -170,8 +170,9 @@ class Server:
         return rss_kb(self.proc.pid)
 
 
-#: Server options for a crowd of simulated users: they all come from 127.0.0.1, where a lab's people come
-#: from their own stations, so the per-address limits are lifted (the limits are tested elsewhere).
+#: Server options for tests that drive many pages from 127.0.0.1 alone (a lab's people come from their own
+#: stations), so the per-address limits are lifted there (the limits are tested elsewhere; a Crowd sends
+#: each user from an address of its own and needs none of this).
 CROWD_SERVER_ARGS = ("--max-sessions-per-address", "100", "--page-opens-per-minute", "1200",
                      "--loop-share-per-address", "1")
 
@@ -458,8 +459,10 @@ class UserResult:
 class ExplorerUser:
     """One session that drags the explorer's thickness slider (every ``angle_every``-th move the angle)."""
 
-    def __init__(self, base_url: str, name: str, seed: int = 0, think_s=THINK_S, angle_every: int = ANGLE_EVERY):
+    def __init__(self, base_url: str, name: str, seed: int = 0, think_s=THINK_S, angle_every: int = ANGLE_EVERY,
+                 source: str | None = None):
         self.base_url, self.name, self.think_s, self.angle_every = base_url, name, think_s, angle_every
+        self.source = source
         self.rng = random.Random(seed)
         self.session: PageSession | None = None
         self.open_s = float("nan")
@@ -468,7 +471,7 @@ class ExplorerUser:
     async def open(self) -> bool:
         t0 = time.perf_counter()
         try:
-            self.session = s = await PageSession(self.base_url).open()
+            self.session = s = await PageSession(self.base_url, source=self.source).open()
             self.thick = s.find("Slider", "fg-thickness-slider")
             self.angle = s.find("Slider", "fg-angle-slider")
             self.swatch = s.find("HTML", "fg-swatch")
@@ -697,6 +700,14 @@ class Phase:
     rss_before_kb: int
     rss_peak_kb: int
     rss_after_kb: int
+    health_s: list = dataclasses.field(default_factory=list)    # every /health answer time during the phase
+    hostile: dict | None = None                                  # what the hostile client did, if one ran
+
+    def health_ms(self) -> tuple[float, float]:
+        """(median, worst) /health answer time during the phase, ms."""
+        if not self.health_s:
+            return float("nan"), float("nan")
+        return 1000 * statistics.median(self.health_s), 1000 * max(self.health_s)
 
     @property
     def latencies_ms(self) -> list:
@@ -747,14 +758,18 @@ class Phase:
 
 
 class Crowd:
-    """Many explorer users (and optionally one photo-map user) on one server, driven from one loop."""
+    """Many explorer users (and optionally one photo-map user) on one server, driven from one loop.
+
+    Each person sends from a loopback address of their own (127.0.1.x; the photo-map user 127.0.2.1),
+    as people at their own stations do, so the server's per-address limits apply as in a lab.
+    """
 
     def __init__(self, base_url: str, server_pid: int, users: int, png: bytes | None = None, seed: int = 1,
                  think_s=THINK_S):
         self.base_url, self.pid = base_url, server_pid
-        self.users = [ExplorerUser(base_url, f"user{i:02d}", seed=seed * 1000 + i, think_s=think_s)
-                      for i in range(users)]
-        self.heavy = PhotoMapUser(base_url, png) if png is not None else None
+        self.users = [ExplorerUser(base_url, f"user{i:02d}", seed=seed * 1000 + i, think_s=think_s,
+                                   source=f"127.0.1.{i + 1}") for i in range(users)]
+        self.heavy = PhotoMapUser(base_url, png, source="127.0.2.1") if png is not None else None
         self.open_wall_s = float("nan")
 
     async def open(self, batch: int = 3, users: int | None = None, heavy: bool = True) -> list[str]:
@@ -778,9 +793,12 @@ class Crowd:
         return errors
 
     async def phase(self, moves: int, users: int | None = None, heavy: bool = False,
-                    think_s=None) -> Phase:
+                    think_s=None, hostile: bool = False) -> Phase:
         """The first *users* users make *moves* moves each, all at once; with *heavy*, the photo-map
-        user makes maps one after another until the last of them has finished."""
+        user makes maps one after another until the last of them has finished; with *hostile*, one
+        misbehaving client (tests/support/hostile.py) works beside them. /health is polled throughout."""
+        from tests.support.hostile import HealthWatch, hostile_mix
+
         people = self.users[:users] if users is not None else self.users
         if think_s is not None:
             for p in people:
@@ -789,19 +807,21 @@ class Crowd:
         loop0, work0 = thread_cpu_s(self.pid)
         client0 = time.process_time()
         busy0, total0 = machine_cpu()
-        with RssSampler(self.pid) as sampler:
+        with RssSampler(self.pid) as sampler, HealthWatch(self.base_url) as health:
             t0 = time.perf_counter()
             stop = asyncio.Event()
             heavy_task = asyncio.ensure_future(self.heavy.work(stop)) if heavy and self.heavy else None
+            hostile_task = asyncio.ensure_future(hostile_mix(self.base_url, stop)) if hostile else None
             results = await asyncio.gather(*(p.moves(moves) for p in people))
             stop.set()
             heavy_result = await heavy_task if heavy_task else None
+            hostile_result = await hostile_task if hostile_task else None
             wall = time.perf_counter() - t0
         loop1, work1 = thread_cpu_s(self.pid)
         busy1, total1 = machine_cpu()
         return Phase(list(results), heavy_result, wall, loop1 - loop0, work1 - work0,
                      time.process_time() - client0, (busy1 - busy0) / max(total1 - total0, 1e-9),
-                     rss0, sampler.peak_kb, rss_kb(self.pid) or 0)
+                     rss0, sampler.peak_kb, rss_kb(self.pid) or 0, list(health.latencies), hostile_result)
 
     async def close(self):
         for u in self.users + ([self.heavy] if self.heavy else []):
