@@ -57,10 +57,28 @@ def lab(tmp_path_factory):
     with served_lab(work, "--basic-auth", str(work / "users.json"), "--cookie-secret-file", str(work / "secret"),
                     "--idle-timeout-s", str(IDLE_S)) as (base, proc, log_path):
         time.sleep(2.0)                                   # workers warm
+        ready = {"base": base, "cookies": {}}
+        asyncio.run(asyncio.wait_for(_a_photo_map(ready, "127.0.0.30"), 180))   # a first map, as any morning's
         start_kb = rss_kb(proc.pid)
+        from tests.support.loadclient import _descendants, _own_rss_kb
+        print("\nat start: " + ", ".join(f"{p}: {(_own_rss_kb(p) or 0) / 1024:.0f} MB"
+                                        for p in [proc.pid, *_descendants(proc.pid)]))
         with HealthWatch(base) as watch, RssSampler(proc.pid, 0.2) as rss:
             yield {"base": base, "proc": proc, "log": log_path, "work": work, "watch": watch, "rss": rss,
-                   "start_kb": start_kb, "cookies": {}}
+                   "start_kb": start_kb, "cookies": ready["cookies"]}
+
+
+@pytest.fixture(autouse=True)
+def _memory_per_attack(request):
+    """Print how much each attack raised the server's and its workers' memory (where a peak comes from)."""
+    if "lab" not in request.fixturenames:
+        yield
+        return
+    lab = request.getfixturevalue("lab")
+    before = rss_kb(lab["proc"].pid) or 0
+    with RssSampler(lab["proc"].pid, 0.1) as sampler:
+        yield
+    print(f"  [{request.node.name}: memory peak +{(sampler.peak_kb - before) / 1024:.0f} MB]")
 
 
 def _cookie(lab, user, source="127.0.0.1"):
@@ -247,14 +265,17 @@ def test_pages_without_a_browser_are_limited_and_freed(lab):
 # ---------------------------------------------------------------------- 2. websocket memory
 def test_websocket_messages_are_bounded_in_bytes_buffers_time_and_rate(lab):
     base = lab["base"]
-    cookie = _cookie(lab, "ben", "127.0.0.11")
     pid = lab["proc"].pid
+    sources = iter(f"127.0.0.{20 + i}" for i in range(5))        # each attack a client of its own
 
     async def page_socket():
+        source = next(sources)
+        cookie = await asyncio.get_running_loop().run_in_executor(None, _cookie, lab, "ben", source)
         reply = await asyncio.get_running_loop().run_in_executor(
-            None, lambda: http(base, "GET", "/app", source="127.0.0.11", cookie=cookie))
+            None, lambda: http(base, "GET", "/app", source=source, cookie=cookie))
         token = reply.token()
-        ws = await ws_connect(base, token, source="127.0.0.11", cookie=cookie)
+        assert token, reply.status
+        ws = await ws_connect(base, token, source=source, cookie=cookie)
         assert await first_message_type(ws) == "ACK"
         return ws
 
@@ -457,6 +478,21 @@ def test_a_library_folder_that_disappears_is_not_recreated(lab):
 
 
 # ---------------------------------------------------------------------- 8. a dead worker
+async def _a_photo_map(lab, source):
+    """Ana opens the colour tab, drops an invented wedge photo and makes a thickness map; its result."""
+    from tests.support.loadclient import HeavyResult, PhotoMapUser, synthetic_wedge_png
+
+    user = PhotoMapUser(lab["base"], synthetic_wedge_png(400, 300), cookie=_cookie(lab, "ana", source), source=source)
+    assert await user.open(), user.open_error
+    try:
+        await user.upload(HeavyResult())
+        r = HeavyResult()
+        await user.make_map(r)
+        return r
+    finally:
+        await user.close()
+
+
 def _worker_pids(pid):
     from tests.test_workers import _worker_pids_under
     return _worker_pids_under(pid)
@@ -480,20 +516,7 @@ def test_a_killed_worker_is_replaced_and_health_says_so(lab):
         time.sleep(0.1)
     assert workers["state"] == "ok" and workers["restarts"] >= 1, workers
     assert first[0] not in _worker_pids(pid) and first[1] in _worker_pids(pid)
-    from tests.support.loadclient import HeavyResult, PhotoMapUser, synthetic_wedge_png
-
-    async def a_map():
-        user = PhotoMapUser(lab["base"], synthetic_wedge_png(400, 300), cookie=_cookie(lab, "ana", "127.0.0.15"),
-                            source="127.0.0.15")
-        assert await user.open(), user.open_error
-        try:
-            await user.upload(HeavyResult())
-            r = HeavyResult()
-            await user.make_map(r)
-            return r
-        finally:
-            await user.close()
-    r = asyncio.run(asyncio.wait_for(a_map(), 180))
+    r = asyncio.run(asyncio.wait_for(_a_photo_map(lab, "127.0.0.15"), 180))
     assert "of the region matched" in r.message, r.message
 
 
@@ -567,7 +590,11 @@ def test_memory_stays_bounded_and_comes_back(lab):
         time.sleep(0.5)
     time.sleep(8)                                         # the server hands freed memory back 5 s after
     back_mb = (rss_kb(lab["proc"].pid) - lab["start_kb"]) / 1024
-    print(f"server + workers RSS: peak +{peak_mb:.0f} MB during the attacks, +{back_mb:.0f} MB once pages were freed")
+    from tests.support.loadclient import _descendants, _own_rss_kb
+    pid = lab["proc"].pid
+    each = ", ".join(f"{p}: {(_own_rss_kb(p) or 0) / 1024:.0f} MB" for p in [pid, *_descendants(pid)])
+    print(f"server + workers RSS: peak +{peak_mb:.0f} MB during the attacks, +{back_mb:.0f} MB once pages were freed "
+          f"(now {each})")
     assert peak_mb < RSS_GROWTH_MAX_MB
     assert back_mb < RSS_RETURN_MB
 
