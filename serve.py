@@ -197,6 +197,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "people share one address)")
     p.add_argument("--page-opens-per-minute", type=_positive_float, default=s.opens_per_minute,
                    help=f"page opens per client address and minute, after a burst of {s.burst}")
+    p.add_argument("--pages-waiting-per-address", type=_int_in(1), default=s.max_waiting_per_address,
+                   help="pages of one client address built but not yet joined by their browser (a browser joins "
+                        "within seconds; a client that opens pages and never connects is held here)")
     p.add_argument("--loop-share-per-address", type=_fraction, default=s.loop_share,
                    help="fraction of the server's event loop (the one thread that applies every page's changes) "
                         "one client address may keep busy once a burst is spent; its further changes then wait "
@@ -316,7 +319,8 @@ def parse_settings(argv=None) -> Settings:
                                        max_per_address=min(args.max_sessions_per_address, args.max_sessions),
                                        opens_per_minute=args.page_opens_per_minute,
                                        max_connections_per_address=3 * args.max_sessions_per_address,
-                                       loop_share=args.loop_share_per_address)
+                                       loop_share=args.loop_share_per_address,
+                                       max_waiting_per_address=args.pages_waiting_per_address)
         tls_cert, tls_key = check_tls_files(args.tls_cert, args.tls_key)
         library = args.library.expanduser().resolve()
         library_notes = prepare_root(library)          # makes it on first start, cleans what a killed save left

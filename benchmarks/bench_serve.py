@@ -72,19 +72,20 @@ async def _bench(server, counts, moves, png, hostile=True):
         t0 = time.perf_counter()
         errors = await crowd.open(users=n, heavy=False)
         opening.append((n, time.perf_counter() - t0, errors))
-        ph = await crowd.phase(moves * 2 if n == 1 else moves, users=n)
+        ph = await crowd.phase(moves * 2 if n == 1 else moves, users=n, watch_health=True)
         ref = ref or ph.median_ms()
         rows.append((f"{n} user" + ("s" if n > 1 else ""), ph))
     if hostile:
         # a longer pair of rows: the hostile client's first burst (what every limit lets through at once)
         # would otherwise be most of a short row
         for label, with_hostile in ((f"{max(counts)} users, long", False), (f"{max(counts)} + hostile", True)):
-            ph = await crowd.phase(moves * HOSTILE_ROW_MOVES_X, users=max(counts), hostile=with_hostile)
+            ph = await crowd.phase(moves * HOSTILE_ROW_MOVES_X, users=max(counts), hostile=with_hostile,
+                                   watch_health=True)
             rows.append((label, ph))
         await _until_pages_freed(server, max(counts))          # the hostile client's pages, before the next row
     if png is not None:
         await crowd.open(heavy=True)
-        ph = await crowd.phase(moves, heavy=True)
+        ph = await crowd.phase(moves, heavy=True, watch_health=True)
         rows.append((f"{max(counts)} + photo", ph))
     await crowd.close()
     return rows, ref, opening

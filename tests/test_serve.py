@@ -23,7 +23,7 @@ OPTIONS = ["--host", "--port", "--allow-origin", "--threads", "--library", "--ba
            "--idle-timeout-s", "--max-grid-points", "--max-photo-megapixels", "--max-upload-mb",
            "--max-jobs-per-session", "--max-jobs-server", "--oauth-provider", "--oauth-redirect-uri", "--tls-cert",
            "--tls-key", "--login-hours", "--max-sessions", "--max-sessions-per-address", "--page-opens-per-minute",
-           "--loop-share-per-address", "--library-key-file"]
+           "--loop-share-per-address", "--pages-waiting-per-address", "--library-key-file"]
 
 
 def run_serve(*args, cwd, env=None, timeout=30):

@@ -174,7 +174,7 @@ class Server:
 #: stations), so the per-address limits are lifted there (the limits are tested elsewhere; a Crowd sends
 #: each user from an address of its own and needs none of this).
 CROWD_SERVER_ARGS = ("--max-sessions-per-address", "100", "--page-opens-per-minute", "1200",
-                     "--loop-share-per-address", "1")
+                     "--pages-waiting-per-address", "100", "--loop-share-per-address", "1")
 
 
 @contextlib.contextmanager
@@ -793,10 +793,11 @@ class Crowd:
         return errors
 
     async def phase(self, moves: int, users: int | None = None, heavy: bool = False,
-                    think_s=None, hostile: bool = False) -> Phase:
+                    think_s=None, hostile: bool = False, watch_health: bool = False) -> Phase:
         """The first *users* users make *moves* moves each, all at once; with *heavy*, the photo-map
         user makes maps one after another until the last of them has finished; with *hostile*, one
-        misbehaving client (tests/support/hostile.py) works beside them. /health is polled throughout."""
+        misbehaving client (tests/support/hostile.py) works beside them; with *watch_health*, /health is
+        polled throughout (from a thread of this process, which then shares its interpreter)."""
         from tests.support.hostile import HealthWatch, hostile_mix
 
         people = self.users[:users] if users is not None else self.users
@@ -807,7 +808,8 @@ class Crowd:
         loop0, work0 = thread_cpu_s(self.pid)
         client0 = time.process_time()
         busy0, total0 = machine_cpu()
-        with RssSampler(self.pid) as sampler, HealthWatch(self.base_url) as health:
+        with RssSampler(self.pid) as sampler, (HealthWatch(self.base_url) if watch_health
+                                                else contextlib.nullcontext()) as health:
             t0 = time.perf_counter()
             stop = asyncio.Event()
             heavy_task = asyncio.ensure_future(self.heavy.work(stop)) if heavy and self.heavy else None
@@ -821,7 +823,8 @@ class Crowd:
         busy1, total1 = machine_cpu()
         return Phase(list(results), heavy_result, wall, loop1 - loop0, work1 - work0,
                      time.process_time() - client0, (busy1 - busy0) / max(total1 - total0, 1e-9),
-                     rss0, sampler.peak_kb, rss_kb(self.pid) or 0, list(health.latencies), hostile_result)
+                     rss0, sampler.peak_kb, rss_kb(self.pid) or 0, list(health.latencies) if health else [],
+                     hostile_result)
 
     async def close(self):
         for u in self.users + ([self.heavy] if self.heavy else []):
