@@ -813,7 +813,7 @@ class FilmExplorer:
         first opened (``dynamic``), which keeps every message of a slider move small.
         """
         section = lambda title: pn.pane.HTML(f"<h3 style='margin:10px 0 2px 5px;font-size:15px'>{title}</h3>")  # noqa: E731
-        heading = pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge</h2>")
+        heading = pn.pane.HTML("<h2 style='margin:4px 5px;font-size:20px'>fringegauge</h2>" + _login_line())
         sidebar_items = [
             pn.Card(pn.pane.Markdown(CAUTIONS, styles={"font-size": "12px"}), title="Cautions", collapsed=True,
                     width=310, margin=(2, 5)),
@@ -871,6 +871,17 @@ class FilmExplorer:
 
 
 # ---------------------------------------------------------------------- helpers
+
+def _login_line() -> str:
+    """Under a login: who is logged in, and a link to log out (which closes this login's pages)."""
+    from .library import auth_mode, login_name
+
+    user = login_name() if served() and auth_mode() != "off" else None
+    if not user:
+        return ""
+    return (f"<div style='margin:0 5px 4px;font-size:12px;color:#555'>Logged in as {_esc(user)} · "
+            "<a href='/logout'>log out</a></div>")
+
 
 def _named(name: str, fn, *args, **kwargs):
     """``fn(*args, **kwargs)``, the file's name put before the message of an InputError it raises."""
