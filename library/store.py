@@ -936,6 +936,9 @@ def _closing_fd(fd):
 # ---------------------------------------------------------------------- the root
 _PREPARED: set = set()
 _PREPARED_GUARD = threading.Lock()
+#: One preparation at a time in this process: two first saves at once would otherwise each see the
+#: other's new marker as a foreign file.
+_PREPARE_ONE_AT_A_TIME = threading.Lock()
 _MARKER_TEXT = (b"This folder is a fringegauge lab library. Keep this file: the server refuses to save when it\n"
                 b"is missing, which is how it tells a deleted folder or an unmounted share from the library.\n")
 
@@ -994,6 +997,13 @@ def prepare_root(root) -> list:
 
 def _prepare(root: Path) -> list:
     """prepare_root's work; raises _PrepareError with a reason that names no path."""
+    with _PREPARE_ONE_AT_A_TIME:
+        if _is_prepared(root):
+            return []
+        return _prepare_now(root)
+
+
+def _prepare_now(root: Path) -> list:
     notes = []
     try:
         if not root.exists():
@@ -1028,7 +1038,8 @@ def _mark_root(root_fd: int) -> list:
                             "remove it and start again.")
     names, _ = _dir_names(root_fd, 1000)
     ours = [n for n in names if n in KINDS]
-    others = [n for n in names if n not in KINDS and not (n.startswith(_TMP_PREFIX) and n.endswith(_TMP_SUFFIX))]
+    others = [n for n in names if n not in KINDS and n != MARKER_NAME   # another process's marker, just written
+              and not (n.startswith(_TMP_PREFIX) and n.endswith(_TMP_SUFFIX))]
     if others and not ours:
         raise _PrepareError(f"holds other files and no {MARKER_NAME} marker, so it is not a lab library (a wrong "
                             "path, or another disk mounted there?). Give an empty folder or an existing library.")
