@@ -148,7 +148,8 @@ def test_colour_map_range_follows_the_groove_density(section):
     ("incidence", "95", "outside"), ("order", "0", "zero order"), ("order", "1.5", "whole number"),
     ("order", "abc", "not a number"), ("band_lo", "800", "band"), ("band_hi", "300", "band"),
     ("duty", "1.5", "outside"), ("blaze", "-1", "outside"), ("focal", "0", "outside"),
-    ("pitch", "", "not a number"),
+    ("pitch", "", "not a number"), ("density", "nan", "not a number"), ("focal", "NaN", "not a number"),
+    ("density", "inf", "not finite"), ("incidence", "-inf", "not finite"),
 ])
 def test_bad_value_shows_message_beside_the_field_and_keeps_the_state(attr, text, words):
     g = GratingSection("optical_disc_track")

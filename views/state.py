@@ -323,7 +323,11 @@ def parse_number(text: str, name: str, lo: float, hi: float, unit: str = "") -> 
         value = float(t.replace(",", "."))
     except ValueError:
         raise InputError(f"{name}: '{text}' is not a number; type a value from {lo:g} to {hi:g}{u}.") from None
-    if not np.isfinite(value) or value < lo or value > hi:
+    if np.isnan(value):
+        raise InputError(f"{name}: '{text}' is not a number; type a value from {lo:g} to {hi:g}{u}.")
+    if not np.isfinite(value):
+        raise InputError(f"{name}: '{text}' is not finite; type a value from {lo:g} to {hi:g}{u}.")
+    if value < lo or value > hi:
         raise InputError(f"{name}: {text} is outside {lo:g} to {hi:g}{u}; type a value in that range.")
     return value
 
