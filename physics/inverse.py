@@ -41,20 +41,25 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from .appearance import color_map, interference_order
+from .colour_words import colour_word
 from .color import (_linear_srgb, _xyz_to_linear_srgb_matrix, delta_e_2000, illuminant_white_xyz, srgb_decode_table,
                     srgb_to_hex, srgb_to_xyz, xyz_to_lab)
 from .errors import InputError, require_finite
 from .stack import Stack, _check_layer_index
 
 __all__ = ["Candidate", "Candidates", "thickness_candidates", "thickness_map", "ThicknessMap", "parse_color",
-           "MATCH_DE_MAX", "AMBIGUOUS_DE"]
+           "MATCH_DE_MAX", "AMBIGUOUS_DE", "READING_ERROR_MAX_DE"]
 
 #: Largest CIEDE2000 difference accepted as a match. Beyond about 5 a difference is obvious
 #: side by side (common practice); 6 leaves room for camera and display error.
 MATCH_DE_MAX = 6.0
 #: Two candidates closer than this in ΔE00 cannot be told apart by colour (about one just-noticeable
-#: difference, common practice).
+#: difference, common practice). It is also the default colour reading error: that of a calibrated
+#: camera or a colorimeter, whose reading is good to about one just-noticeable difference.
 AMBIGUOUS_DE = 1.0
+#: Largest colour reading error accepted (ΔE00): beyond this a colour names hardly more than a hue family
+#: (the broadest colour word is :data:`physics.colour_words.WORD_ERROR_BROAD_DE`).
+READING_ERROR_MAX_DE = 30.0
 #: Thickness step of the colour path (nm): fine enough that the path's ΔE00 steps stay well below 1.
 LUT_STEP_NM = 0.5
 #: Distinct photo colours matched per chunk: progress is reported (and a cancel noticed) between
@@ -265,9 +270,20 @@ class Candidates(list):
     Attributes
     ----------
     acceptable : bool
-        The best match is within :data:`MATCH_DE_MAX`.
+        The best match is within :data:`MATCH_DE_MAX` (or within the reading error, when that is larger).
     ambiguous : bool
-        Another candidate of a different order is within :data:`AMBIGUOUS_DE` of the best.
+        Another candidate of a different order is within the colour reading error (``reading_error_de``,
+        default :data:`AMBIGUOUS_DE`) of the best: colour alone cannot decide between them.
+    possible : list of Candidate
+        Every answer the colour allows, best first: the best, and each candidate of another order within
+        the reading error of it (and acceptable). One entry when the colour decides.
+    reading_error_de : float
+        The colour reading error used (ΔE00); a colour word's own error when a word was given.
+    reading_range_nm : (float, float)
+        Thicknesses of the best's order around it whose colour is within the reading error of the best:
+        how precisely the colour, read with that error, pins the best down.
+    words : list of ColourWord
+        The colour words read (each an approximate colour), empty when every colour was a value.
     message : str
         A sentence for the user saying what the colour tells and what would decide.
     observed_lab : list of (3,) arrays, one per viewing angle.
@@ -280,6 +296,10 @@ class Candidates(list):
 
     acceptable: bool = False
     ambiguous: bool = False
+    possible: list = []
+    reading_error_de: float = AMBIGUOUS_DE
+    reading_range_nm: tuple = (0.0, 0.0)
+    words: list = []
     message: str = ""
     observed_lab: list = []
     window_nm: tuple = (0.0, 0.0)
@@ -289,13 +309,14 @@ class Candidates(list):
 def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), angle_deg=0.0,
                          illuminant="D65", top: int = 5, *, observer="2", polarization="unpolarized",
                          na: float = 0.0, nominal_nm: float | None = None,
-                         tolerance_nm: float | None = None) -> Candidates:
+                         tolerance_nm: float | None = None, reading_error_de: float = AMBIGUOUS_DE) -> Candidates:
     """Rank the thicknesses of one layer whose colour matches an observed colour.
 
     Parameters
     ----------
     color : str, tuple, or a list of them
-        The observed colour (see :func:`parse_color`). A list gives the same spot
+        The observed colour (see :func:`parse_color`), or a plain colour word ("gold", "light blue":
+        :func:`physics.colour_words.colour_word`), read as an approximate colour. A list gives the same spot
         seen at several viewing angles; ``angle_deg`` is then a list of the same length.
     stack : Stack
         The stack as built; the unknown layer's thickness in it is ignored.
@@ -311,11 +332,22 @@ def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1
         Most candidates returned.
     nominal_nm, tolerance_nm : float, optional
         The process target: marks candidates in tolerance and breaks near-ties toward the nominal.
+    reading_error_de : float
+        How far (ΔE00) the observed colour may lie from the true one: a candidate of another order whose
+        ΔE00 is within this of the best's is as possible as the best. The default, :data:`AMBIGUOUS_DE`,
+        suits a calibrated camera; a colour judged by eye or on a display needs about 5 (common practice).
+        A colour word brings its own, larger error, which replaces this. Matches up to this error are
+        accepted when it exceeds :data:`MATCH_DE_MAX`.
 
     Returns
     -------
     Candidates
-        A list of :class:`Candidate`, best first, with ``acceptable``, ``ambiguous`` and ``message``.
+        A list of :class:`Candidate`, best first, with ``acceptable``, ``ambiguous``, ``possible`` and
+        ``message``.
+
+    References
+    ----------
+    CIE 142-2001 (CIEDE2000); the reading errors are common practice, not a standard.
     """
     if not isinstance(stack, Stack):
         raise InputError(f"thickness_candidates needs a Stack; got {type(stack).__name__}.")
@@ -327,6 +359,13 @@ def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1
     if not isinstance(top, (int, np.integer)) or top < 1:
         raise InputError(f"top must be a positive whole number; got {top!r}.")
     lo, hi = _window(thickness_nm, nominal_nm, tolerance_nm)
+    err = float(require_finite("reading_error_de", reading_error_de, minimum=0.0, maximum=READING_ERROR_MAX_DE,
+                               min_inclusive=False))
+    words = [colour_word(c) for c in colors]
+    if any(words):
+        err = max(w.reading_error_de for w in words if w)
+        colors = [w.hex if w else c for w, c in zip(words, colors)]
+    limit = max(MATCH_DE_MAX, err)
     obs = [_observed_lab(c, illuminant, observer) for c in colors]
     observed = [o for o, _ in obs]
     display = [dsp for _, dsp in obs]
@@ -341,17 +380,27 @@ def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1
         result.append(_candidate_at(i, de, path, stack, layer, angles, observed, display, illuminant,
                                     observer, polarization, na, nominal_nm, tolerance_nm))
     result.sort(key=lambda c: c.delta_e)
-    result = _break_ties_by_nominal(result, nominal_nm)
+    result = _break_ties_by_nominal(result, nominal_nm, err, limit)
     best = result[0]
-    others = [c for c in result[1:] if c.order != best.order and abs(c.thickness_nm - best.thickness_nm) > 2 * LUT_STEP_NM]
+    others = [c for c in _distinct(result)[1:]
+              if c.order != best.order and abs(c.thickness_nm - best.thickness_nm) > 2 * LUT_STEP_NM]
     out = Candidates(_distinct(result)[:top])
     out.observed_lab = observed
     out.window_nm = (lo, hi)
     out.scan_step_nm = float(path.thickness_nm[1] - path.thickness_nm[0])
-    out.acceptable = best.delta_e <= MATCH_DE_MAX
+    out.reading_error_de, out.words = err, [w for w in words if w]
+    out.acceptable = best.delta_e <= limit
+    best_de = min(c.delta_e for c in result)
+    rivals = [c for c in others if c.delta_e - best_de < err and c.delta_e <= limit] if out.acceptable else []
+    out.possible = [best, *rivals] if out.acceptable else []
+    out.ambiguous = bool(rivals)
+    out.reading_range_nm = (best.range_nm if err <= AMBIGUOUS_DE
+                            else _reading_range(path, de, best.thickness_nm, best_de + err))
     rival = others[0] if others else None
-    out.ambiguous = bool(out.acceptable and rival is not None and rival.delta_e - best.delta_e < AMBIGUOUS_DE)
-    out.message = _verdict(out, best, rival, lo, hi, nominal_nm, len(colors))
+    out.message = _verdict(out, best, rival, lo, hi, nominal_nm, len(colors), limit)
+    if not out.acceptable and len(colors) > 1:
+        out.message += _conflict(colors, angles, stack, layer, (lo, hi), illuminant, observer, polarization, na,
+                                 err, limit)
     if out.scan_step_nm > LUT_STEP_NM * (1 + 1e-9):
         out.message += (f" The {hi - lo:g} nm window was scanned every {out.scan_step_nm:.2g} nm (a window up to "
                         f"{FULL_STEP_WINDOW_NM:g} nm is scanned every {LUT_STEP_NM:g} nm), so a match between "
@@ -448,35 +497,93 @@ def _distinct(cands):
     return kept
 
 
-def _break_ties_by_nominal(cands, nominal_nm):
+def _break_ties_by_nominal(cands, nominal_nm, reading_error_de=AMBIGUOUS_DE, limit=MATCH_DE_MAX):
+    """Candidates within the reading error of the best (and acceptable) first, nearest the nominal first."""
     if nominal_nm is None or len(cands) < 2:
         return cands
     best = cands[0].delta_e
-    near = [c for c in cands if c.delta_e - best < AMBIGUOUS_DE]
+    near = [c for c in cands if c.delta_e - best < reading_error_de and c.delta_e <= limit]
+    if not near:
+        return cands
     near.sort(key=lambda c: abs(c.thickness_nm - nominal_nm))
     rest = [c for c in cands if c not in near]
     return near + rest
 
 
-def _verdict(out, best, rival, lo, hi, nominal_nm, n_angles) -> str:
+def _reading_range(path: _Path, de: np.ndarray, t_nm: float, threshold: float) -> tuple[float, float]:
+    """Thicknesses of the scanned path around ``t_nm``, in its order, whose ΔE00 stays at most ``threshold``."""
+    i = int(np.argmin(np.abs(path.thickness_nm - t_nm)))
+    j0, j1 = _contiguous((de <= max(threshold, de[i])) & (path.order == path.order[i]), i)
+    return float(path.thickness_nm[j0]), float(path.thickness_nm[j1])
+
+
+def _or_list(items) -> str:
+    return items[0] if len(items) == 1 else ", ".join(items[:-1]) + " or " + items[-1]
+
+
+def _verdict(out, best, rival, lo, hi, nominal_nm, n_angles, limit=MATCH_DE_MAX) -> str:
     if not out.acceptable:
-        return (f"No thickness in {lo:g}-{hi:g} nm matches this colour within ΔE00 {MATCH_DE_MAX:g}: the nearest is "
+        what = "these colours together" if n_angles > 1 else "this colour"
+        return (f"No thickness in {lo:g}-{hi:g} nm matches {what} within ΔE00 {limit:g}: the nearest is "
                 f"{best.thickness_nm:.0f} nm at ΔE00 {best.delta_e:.1f}. Check the stack, the lamp, the viewing "
                 "angle and the calibration, or widen the window; do not take the nearest as the answer.")
-    text = (f"Best match {best.thickness_nm:.0f} nm (order {best.order}, ΔE00 {best.delta_e:.1f}); colour alone "
-            f"places it within {best.range_nm[0]:.0f}-{best.range_nm[1]:.0f} nm.")
-    if out.ambiguous:
-        hint = [] if n_angles > 1 else ["a second viewing angle of the same spot"]
-        if nominal_nm is None:
-            hint.append("a nominal thickness")
-        hint.append("a measured spectrum")
-        text += (f" Colour alone cannot decide between {best.thickness_nm:.0f} nm (order {best.order}) and "
-                 f"{rival.thickness_nm:.0f} nm (order {rival.order}), ΔE00 {best.delta_e:.1f} vs "
-                 f"{rival.delta_e:.1f}: {', '.join(hint[:-1]) + ' or ' + hint[-1] if len(hint) > 1 else hint[0]} "
-                 "would decide.")
-    elif nominal_nm is not None and rival is not None and rival.delta_e - best.delta_e < AMBIGUOUS_DE:
-        text += " A near-equal match of another order was set aside as farther from the nominal thickness."
+    err = out.reading_error_de
+    r0, r1 = out.reading_range_nm
+    if not out.ambiguous:
+        text = (f"Best match {best.thickness_nm:.0f} nm (order {best.order}, ΔE00 {best.delta_e:.1f}); colour alone "
+                f"places it within {r0:.0f}-{r1:.0f} nm")
+        text += (". " if err <= AMBIGUOUS_DE else f" (colour reading error ΔE00 {err:g}). ")
+        text += f"No other order lies within the reading error ΔE00 {err:g} of it."
+        if nominal_nm is not None and rival is not None and abs(rival.delta_e - best.delta_e) < err:
+            text += " A near-equal match of another order was set aside as farther from the nominal thickness."
+        return text
+    alts = " / ".join(f"{c.thickness_nm:.0f}" for c in out.possible[1:])
+    hint = [] if n_angles > 1 else ["tilt the part (a second viewing angle of the same spot)"]
+    if nominal_nm is None:
+        hint.append("give a nominal")
+    hint.append("measure a spectrum")
+    each = ", ".join(f"{c.thickness_nm:.0f} nm (order {c.order}, ΔE00 {c.delta_e:.1f})" for c in out.possible)
+    text = (f"{best.thickness_nm:.0f} nm, or {alts} nm: colour alone cannot decide; {_or_list(hint)}. "
+            f"Within the colour reading error ΔE00 {err:g} of the best match: {each}.")
+    if nominal_nm is not None:
+        text += f" {best.thickness_nm:.0f} nm comes first as the nearest to the nominal {nominal_nm:g} nm."
     return text
+
+
+def _conflict(colors, angles, stack, layer, window, illuminant, observer, polarization, na, err, limit) -> str:
+    """Why several views of one spot match no thickness together: which view conflicts with the first."""
+    def alone(k):
+        return thickness_candidates(colors[k], stack, layer, window, angles[k], illuminant, top=3, observer=observer,
+                                    polarization=polarization, na=na, reading_error_de=err)
+    first = alone(0)
+    if not first.acceptable:
+        return (f" The {angles[0]:g}° colour alone matches nothing within ΔE00 {limit:g} either: check it, the "
+                "stack and the lamp first.")
+    fits = " / ".join(f"{c.thickness_nm:.0f}" for c in first.possible)
+    parts = []
+    for k in range(1, len(colors)):
+        lab_k = _observed_lab(colors[k], illuminant, observer)
+        worst = None
+        for c in first.possible:
+            cm = color_map(stack, layer, [c.thickness_nm], [angles[k]], illuminant=illuminant, observer=observer,
+                           polarization=polarization, na=na)
+            pred = (xyz_to_lab(srgb_to_xyz(cm.rgb[0, 0], illuminant, observer), illuminant, observer)
+                    if lab_k[1] else cm.lab[0, 0])
+            d = float(delta_e_2000(pred, lab_k[0]))
+            if worst is None or d < worst[0]:
+                worst = (d, c.thickness_nm, srgb_to_hex(cm.rgb[0, 0]))
+        if worst[0] <= limit:
+            continue
+        own = alone(k)
+        where = (f"; alone it matches {' / '.join(f'{c.thickness_nm:.0f}' for c in own.possible)} nm"
+                 if own.acceptable else "; alone it matches nothing in the window either")
+        parts.append(f"the {angles[k]:g}° colour matches nothing within ΔE00 {limit:g} of it (at {worst[1]:.0f} nm "
+                     f"it would look {worst[2]}, ΔE00 {worst[0]:.1f} from the one given{where})")
+    if not parts:
+        return (f" Each colour is near a match of {fits} nm, but not all at once within ΔE00 {limit:g}: check the "
+                "tilt angles.")
+    return (f" The {angles[0]:g}° colour matches {fits} nm, but " + "; and ".join(parts)
+            + ". Check the tilt angle and that both colours are of the same spot under the same lamp.")
 
 
 # ---------------------------------------------------------------------- photos
@@ -502,6 +609,10 @@ class ThicknessMap:
         Matched pixels whose fringe order differs from the dominant order of their neighbourhood
         (a window of :data:`CONTINUITY_WINDOW_FRACTION` of the image's larger side): most likely a
         wrong order, flagged for review and kept in the map.
+    undecided : (H, W) bool
+        Matched pixels whose best match of another order (itself acceptable) is within the colour
+        reading error of the chosen one's: colour alone cannot decide their order, which follows
+        their confident neighbours (or the nominal). Counted in ``stats["undecided"]``.
     """
 
     thickness_nm: np.ndarray
@@ -512,6 +623,7 @@ class ThicknessMap:
     stats: dict = field(default_factory=dict)
     message: str = ""
     order_outlier: np.ndarray | None = None
+    undecided: np.ndarray | None = None
 
 
 def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
@@ -547,7 +659,8 @@ def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminan
 def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), reference_box=None,
                   illuminant="D65", *, angle_deg: float = 0.0, observer="2", polarization="unpolarized",
                   na: float = 0.0, reference="substrate", roi=None, nominal_nm: float | None = None,
-                  max_delta_e: float = MATCH_DE_MAX, progress=None) -> ThicknessMap:
+                  max_delta_e: float = MATCH_DE_MAX, progress=None,
+                  reading_error_de: float | None = None) -> ThicknessMap:
     """Thickness of one layer at every pixel of a photo.
 
     Parameters
@@ -568,6 +681,11 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     max_delta_e : float
         Pixels whose best match is worse than this are left empty (NaN), not guessed.
     progress : callable(fraction, text), optional
+    reading_error_de : float, optional
+        Colour reading error (ΔE00), as for :func:`thickness_candidates`: a pixel whose best match of
+        another order is within this of its best match is one whose order colour cannot decide; its
+        order is chosen by continuity (or the nominal) and it is flagged in ``undecided``. Default
+        :data:`CONFIDENT_MARGIN_DE`.
 
     Returns
     -------
@@ -582,6 +700,8 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     _check_layer_index(stack, layer)
     lo, hi = _window(thickness_nm, None, None)
     max_de = float(require_finite("max_delta_e", max_delta_e, minimum=0.0, min_inclusive=False))
+    margin_de = CONFIDENT_MARGIN_DE if reading_error_de is None else float(require_finite(
+        "reading_error_de", reading_error_de, minimum=0.0, maximum=READING_ERROR_MAX_DE, min_inclusive=False))
     H, W = photo.height, photo.width
     x0, y0, x1, y1 = _box(roi, W, H, "roi") if roi is not None else (0, 0, W, H)
     say(0.05, "calibrating")
@@ -600,14 +720,19 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     t1, de1, o1, t2, de2, o2 = (np.concatenate(a) for a in zip(*parts))
     say(0.75, "resolving orders by continuity")
     shape = (y1 - y0, x1 - x0)
-    T, D, O, M = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm)
+    T, D, O, M = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margin_de)
     full = lambda a, fill: _embed(a, (H, W), (x0, y0, x1, y1), fill)  # noqa: E731
     thick = full(T, np.nan)
     outlier = _order_outliers(O, np.isfinite(T))
+    viable2 = (de2 <= max_de)[inverse].reshape(shape)
+    undecided = np.isfinite(T) & viable2 & (M < margin_de)
     stats = _stats(T, outlier)
+    stats["undecided"] = int(np.count_nonzero(undecided))
+    stats["undecided_fraction"] = stats["undecided"] / stats["pixels"] if stats["pixels"] else 0.0
+    stats["reading_error_de"] = margin_de
     say(1.0, "done")
     return ThicknessMap(thick, full(D, np.nan), full(M, np.nan), full(O, 0), gains, stats, _map_message(stats, max_de),
-                        full(outlier, False))
+                        full(outlier, False), full(undecided, False))
 
 
 def _map_message(stats: dict, max_de: float) -> str:
@@ -618,6 +743,10 @@ def _map_message(stats: dict, max_de: float) -> str:
     msg = (f"{stats['valid_fraction']:.0%} of the region matched within ΔE00 {max_de:g}; "
            f"mean {stats['mean_nm']:.1f} nm, range {stats['p_low_nm']:.1f}-{stats['p_high_nm']:.1f} nm "
            f"(percentiles P{p0:g}-P{p1:g}; min-max {stats['min_nm']:.1f}-{stats['max_nm']:.1f} nm).")
+    if stats.get("undecided"):
+        msg += (f" At {stats['undecided']:,} matched pixels ({stats['undecided_fraction']:.1%}) colour alone cannot "
+                f"decide the fringe order (another order within the reading error ΔE00 {stats['reading_error_de']:g}); "
+                "their order follows their neighbours or the nominal.")
     if stats["order_outliers"]:
         msg += (f" {stats['order_outliers']:,} matched pixels ({stats['order_outlier_fraction']:.1%}) take another "
                 "fringe order than their neighbourhood: most likely a wrong order; check them before using "
@@ -723,15 +852,15 @@ def _smooth_reference(T1, confident):
     return np.where(den > 1e-9, num / np.maximum(den, 1e-12), np.nan), step
 
 
-def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm):
+def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margin_de=CONFIDENT_MARGIN_DE):
     """Choose per pixel between the best match and the best of another order.
 
     Per distinct colour: the two candidates and whether the best is confident (its
-    margin over any other order is at least CONFIDENT_MARGIN_DE). Per pixel, only the
-    non-confident ones consult the smoothed reference field of confident neighbours.
+    margin over any other order is at least ``margin_de``, the colour reading error). Per pixel,
+    only the non-confident ones consult the smoothed reference field of confident neighbours.
     """
     margin_u = (de2 - de1).astype(np.float32)
-    confident_u = (de1 <= max_de) & (margin_u >= CONFIDENT_MARGIN_DE)
+    confident_u = (de1 <= max_de) & (margin_u >= margin_de)
     T = t1.astype(np.float32)[inverse].reshape(shape)
     D = de1.astype(np.float32)[inverse].reshape(shape)
     O = o1.astype(np.int16)[inverse].reshape(shape)

@@ -5,6 +5,7 @@ import numpy as np
 import pytest
 
 from physics import InputError, parse_color, thickness_candidates
+from physics.inverse import AMBIGUOUS_DE
 from physics.appearance import colour_band_nm
 from physics.color import spectrum_to_xyz, srgb_to_hex, xyz_to_lab, xyz_to_srgb
 from physics.stackfile import load_preset
@@ -126,3 +127,76 @@ def test_map_statistics_give_a_robust_range_and_flag_stray_orders():
     assert st["uniformity_robust"] < st["uniformity"] and st["order_outliers"] == flagged.sum()
     empty = _stats(np.full((3, 3), np.nan))
     assert empty["pixels"] == 0 and empty["order_outliers"] == 0
+
+
+@pytest.mark.parametrize("colour, error, thicknesses", [
+    # The default oxide stack (thermal_oxide_on_silicon), D65, 2° observer, straight on.
+    ("#937e8d", AMBIGUOUS_DE, [850]), ("#937e8d", 5.0, [850, 666, 593]),
+    ("#4d6caf", AMBIGUOUS_DE, [300]), ("#4d6caf", 4.0, [300, 117]),
+])
+def test_every_order_within_the_reading_error_is_possible(colour, error, thicknesses):
+    c = thickness_candidates(colour, OXIDE, 0, (0, 1000), reading_error_de=error)
+    assert [round(p.thickness_nm) for p in c.possible] == pytest.approx(thicknesses, abs=2)
+    assert c.ambiguous == (len(thicknesses) > 1) and c.reading_error_de == error
+    assert all(p.delta_e - c[0].delta_e < error for p in c.possible)
+    if c.ambiguous:
+        alts = " / ".join(f"{p.thickness_nm:.0f}" for p in c.possible[1:])
+        assert c.message.startswith(f"{c[0].thickness_nm:.0f} nm, or {alts} nm: colour alone cannot decide")
+    else:
+        assert c.message.startswith(f"Best match {thicknesses[0]:.0f} nm")
+
+
+def test_the_default_reading_error_is_the_calibrated_one():
+    assert thickness_candidates("#937e8d", OXIDE).reading_error_de == AMBIGUOUS_DE
+
+
+def test_a_wide_reading_error_widens_the_stated_range():
+    narrow = thickness_candidates(_hex(OXIDE, 100.0), OXIDE, 0, (0, 1000))
+    wide = thickness_candidates(_hex(OXIDE, 100.0), OXIDE, 0, (0, 1000), reading_error_de=5.0)
+    assert narrow.reading_range_nm == narrow[0].range_nm
+    assert wide.reading_range_nm[0] < narrow.reading_range_nm[0] < narrow.reading_range_nm[1] < wide.reading_range_nm[1]
+
+
+@pytest.mark.parametrize("bad", [0.0, -1.0, float("nan"), 1e6])
+def test_bad_reading_errors(bad):
+    with pytest.raises(InputError, match="reading_error_de"):
+        thickness_candidates("#4f719f", OXIDE, reading_error_de=bad)
+
+
+@pytest.mark.parametrize("word", ["gold", "Light-Blue", "violet"])
+def test_a_colour_word_brings_its_own_reading_error(word):
+    from physics.colour_words import colour_word
+    w = colour_word(word)
+    c = thickness_candidates(word, OXIDE, 0, (0, 1000), reading_error_de=AMBIGUOUS_DE)
+    assert c.words == [w] and c.reading_error_de == w.reading_error_de
+    assert c.acceptable and c.possible and all(p.delta_e <= w.reading_error_de for p in c.possible)
+
+
+def test_colour_words_are_known_and_nothing_else_is_guessed():
+    from physics.colour_words import colour_word, colour_words
+    assert colour_word("light  blue") == colour_word("light_blue") == colour_word("LIGHT-BLUE")
+    assert colour_word("bluish") is None and colour_word("x" * 1000) is None and colour_word(None) is None
+    for w in colour_words():
+        kind, rgb = parse_color(w.hex)
+        assert kind == "srgb" and np.allclose(w.rgb, rgb) and w.reading_error_de > AMBIGUOUS_DE
+
+
+def test_a_conflicting_tilted_colour_is_named():
+    c = thickness_candidates(["#937e8d", "#4d6caf"], OXIDE, 0, (0, 1000), angle_deg=[0.0, 40.0])
+    assert not c.acceptable
+    assert "The 0° colour matches 850 nm, but the 40° colour matches nothing within ΔE00 6 of it" in c.message
+    assert "alone it matches" in c.message
+
+
+def test_map_pixels_whose_order_colour_cannot_decide_are_flagged():
+    from physics import thickness_map
+    from physics.appearance import color_map
+    d = np.linspace(0.0, 900.0, 180)               # an invented bevel, 0 → 900 nm
+    img = np.round(np.repeat(color_map(OXIDE, 0, d, [0.0]).rgb[:, 0, :][None], 10, axis=0) * 255).astype(np.uint8)
+    tight = thickness_map(img, OXIDE, 0, (0, 1000), reading_error_de=AMBIGUOUS_DE)
+    loose = thickness_map(img, OXIDE, 0, (0, 1000), reading_error_de=5.0)
+    default = thickness_map(img, OXIDE, 0, (0, 1000))
+    assert loose.undecided.sum() > tight.undecided.sum() and loose.stats["undecided"] == loose.undecided.sum()
+    assert default.stats["reading_error_de"] == pytest.approx(2.0)
+    assert not (loose.undecided & ~np.isfinite(loose.thickness_nm)).any()
+    assert "cannot decide the fringe order" in loose.message

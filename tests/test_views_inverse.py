@@ -39,7 +39,7 @@ def test_typed_colour_gives_ranked_candidates(section):
     assert len(section.cand_src.data["x"]) == len(c)
 
 
-@pytest.mark.parametrize("bad", ["purple", "#12", "400,0,0"])
+@pytest.mark.parametrize("bad", ["purplish", "#12", "400,0,0"])
 def test_bad_colour_is_reported_beside_the_field(section, bad):
     section.colour.input.value = bad
     section._on_find()

@@ -43,7 +43,7 @@ def test_an_upside_down_window_stops_the_search_and_clears_the_result(section):
     assert "Window to (nm)" in section.verdict.object
 
 
-@pytest.mark.parametrize("bad", ["blue", "#12345", ""])
+@pytest.mark.parametrize("bad", ["bluish", "#12345", ""])
 def test_a_refused_colour_clears_the_previous_result(section, bad):
     _good_search(section)
     _set(section, colour=bad)

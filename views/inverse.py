@@ -1,7 +1,10 @@
 """Colour → thickness page section: a typed colour, a picked point of a photo, a whole photo as a map.
 
 Shares the explorer's state: the stack, the unknown layer (the swept layer), the
-viewing angle, the lamp and the observer are the ones set there. Every number
+viewing angle, the lamp, the observer, polarization and cone NA are the ones set there;
+the viewing conditions are shown beside the answer with widgets bound to that same state.
+The colour reading error (how the colour was read: by eye, camera) is this tab's own
+declared state, :class:`ColourReading`. Every number
 comes from ``physics.inverse``; photo maps run in the worker processes (views/workers.py)
 with a progress bar and a Cancel, and a new request supersedes an unfinished one.
 """
@@ -17,6 +20,7 @@ from functools import partial
 
 import numpy as np
 import panel as pn
+import param
 from bokeh.events import SelectionGeometry, Tap
 from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, DataRange1d, HoverTool, LinearColorMapper,
                           Range1d)
@@ -25,10 +29,12 @@ from bokeh.plotting import figure
 
 from physics import InputError, parse_color, thickness_candidates, thickness_map
 from physics.imageio import MAX_BYTES as MAX_PHOTO_BYTES, box_mean_linear, load_image
-from physics.inverse import AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, ROBUST_PERCENTILES, _lab_from_linear
+from physics.colour_words import colour_word, colour_words
+from physics.inverse import (AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, READING_ERROR_MAX_DE, ROBUST_PERCENTILES,
+                             _lab_from_linear)
 
 from . import render
-from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _stack_text, _footer, field_pair
+from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _spec_text, _footer, field_pair
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
 from .uploads import CappedDropper, UploadReader
@@ -58,6 +64,36 @@ LABEL_EDGE_FRACTION = 0.06
 HIST_BINS = 60
 
 
+#: Colour reading errors (ΔE00) by how the colour was read (common practice): a colour judged by eye or
+#: read off a display is good to about 5 (a difference "clearly seen side by side"); a camera without a
+#: colour calibration to about 4; a calibrated camera or a colorimeter to about one just-noticeable
+#: difference, :data:`physics.inverse.AMBIGUOUS_DE`.
+READING_PRESETS = {"by eye / on a display": 5.0, "uncalibrated camera": 4.0, "calibrated camera": AMBIGUOUS_DE}
+#: The preset name for a reading error typed by hand.
+CUSTOM_READING = "custom"
+
+
+class ColourReading(param.Parameterized):
+    """How the colour given on the colour tab was read: its reading error decides which thicknesses are possible."""
+
+    reading = param.Selector(default="by eye / on a display", objects=[*READING_PRESETS, CUSTOM_READING],
+                             doc="How the colour was read; each choice sets its usual reading error (common practice).")
+    reading_error_de = param.Number(default=READING_PRESETS["by eye / on a display"],
+                                    bounds=(0.1, READING_ERROR_MAX_DE),
+                                    doc="Colour reading error, ΔE00: every thickness of another fringe order whose "
+                                        "colour is within this of the best match is a possible answer.")
+
+    @param.depends("reading", watch=True)
+    def _preset(self):
+        if self.reading in READING_PRESETS:
+            self.reading_error_de = READING_PRESETS[self.reading]
+
+    @param.depends("reading_error_de", watch=True)
+    def _custom(self):
+        if READING_PRESETS.get(self.reading) != self.reading_error_de:
+            self.reading = CUSTOM_READING
+
+
 class ColourToThickness:
     """The colour → thickness section for one session, bound to a :class:`views.explorer.FilmExplorer`."""
 
@@ -74,11 +110,12 @@ class ColourToThickness:
         self._runs = 0                          # maps started for the open photo
         self._cancelled_job = None              # the job the user cancelled, until another starts
         self.last_candidates = None
+        self._last_query = None
         self._build()
 
     # ------------------------------------------------------------------ widgets
     def _build(self):
-        self.colour = Field("Observed colour", width=300, placeholder="#4f719f · 79, 113, 159 · lab(52, -3, -27)",
+        self.colour = Field("Observed colour", width=300, placeholder="#4f719f · 79, 113, 159 · lab(52, -3, -27) · gold",
                             css="fg-colour-field")
         self.colour2 = Field("Same spot tilted: colour (optional)", width=190, placeholder="e.g. #6a7fae",
                              css="fg-colour2-field")
@@ -94,8 +131,26 @@ class ColourToThickness:
         self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
         self.find = pn.widgets.Button(label="Find thicknesses", color="primary", width=200, margin=(6, 5),
                                       css_classes=["fg-find"])
-        self.verdict = pn.pane.Alert("Type a colour and press “Find thicknesses”. The stack, unknown layer (the swept "
-                                     "layer), viewing angle, lamp and observer are those of the film explorer.",
+        self.reading = ColourReading()
+        self.reading_select = pn.widgets.Select.from_param(self.reading.param.reading, name="Colour read",
+                                                           width=180, css_classes=["fg-reading"])
+        self.reading_error = pn.widgets.FloatInput.from_param(self.reading.param.reading_error_de,
+                                                              name="Reading error (ΔE00)", step=0.5, width=120,
+                                                              css_classes=["fg-reading-error"])
+        s = self.ex.state
+        # The viewing conditions of the answer: the film explorer's own state, so the two tabs always agree.
+        self.view_angle = pn.widgets.FloatInput.from_param(s.param.angle_deg, name="Viewing angle (°)", step=1.0,
+                                                           width=110, css_classes=["fg-view-angle"])
+        self.view_lamp = pn.widgets.Select.from_param(s.param.illuminant, name="Lamp", width=110,
+                                                      css_classes=["fg-view-lamp"])
+        self.view_observer = pn.widgets.Select.from_param(s.param.observer, name="Observer (°)", width=90,
+                                                          css_classes=["fg-view-observer"])
+        self.view_pol = pn.widgets.Select.from_param(s.param.polarization, name="Polarization", width=110,
+                                                     css_classes=["fg-view-pol"])
+        self.view_na = pn.widgets.FloatInput.from_param(s.param.na, name="Cone NA", step=0.01, width=90,
+                                                        css_classes=["fg-view-na"])
+        self.verdict = pn.pane.Alert("Type a colour and press “Find thicknesses”. The stack and the unknown layer are "
+                                     "the film explorer's (its swept layer); the viewing conditions are set just above.",
                                      alert_type="light", margin=(5, 5), css_classes=["fg-verdict"])
         self.table = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-candidates"])
         self.cand_src = ColumnDataSource(dict(x=[], label=[], align=[]))
@@ -157,7 +212,7 @@ class ColourToThickness:
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
                     **_image_ranges(),
-                    title="Thickness map (grey: no acceptable match; red: stray fringe order)")
+                    title="Thickness map (grey: no match; red: stray order; pale: order not decided by colour)")
         img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
         self.stray_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         tm.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.stray_src)
@@ -195,6 +250,7 @@ class ColourToThickness:
         for group, fields in self._groups().items():
             for f in fields:
                 f.input.param.watch(locked(partial(self._on_field, group)), "value")
+        self.reading.param.watch(locked(self._on_reading), "reading_error_de")
         self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "illuminant",
                                                     "observer", "polarization", "na", "thickness_max_nm"])
 
@@ -243,8 +299,10 @@ class ColourToThickness:
             if not text:
                 return None
             try:
-                parse_color(text)
+                if colour_word(text) is None:
+                    parse_color(text)
             except InputError as exc:
+                exc = f"{exc} Or a colour word: {', '.join(w.word for w in colour_words()[:6])} ..."
                 errors[field] = f"{field.input.name}: {exc}"
                 return None
             return text
@@ -334,11 +392,13 @@ class ColourToThickness:
             cands = thickness_candidates(colours if len(colours) > 1 else colours[0], s.stack, s.swept_layer,
                                          v["window"], angles if len(angles) > 1 else angles[0], s.illuminant_spec(),
                                          top=6, observer=s.observer, polarization=s.polarization, na=s.na,
-                                         nominal_nm=nominal, tolerance_nm=tol)
+                                         nominal_nm=nominal, tolerance_nm=tol,
+                                         reading_error_de=self.reading.reading_error_de)
         except InputError as exc:
             self._refuse(f"Not searched: {exc}")
             return None
         self.last_candidates = cands
+        self._last_query = (colour, lab)
         note = ""
         if nominal is not None and tol is None:
             note = (f" The nominal {nominal:g} nm only breaks near-ties: the in-tolerance check needs both "
@@ -352,10 +412,16 @@ class ColourToThickness:
             kind, verdict = _tolerance_verdict(cands, nominal, tol, kind)
             note = verdict + note
         self.verdict.alert_type = kind
-        self.verdict.object = _esc(cands.message + note) + (" Estimates from colour are not certified metrology."
-                                                            if cands.acceptable else "")
-        from physics import lab_to_xyz, xyz_to_srgb, srgb_to_hex
         s = self.ex.state
+        words = "".join(f" “{w.word}” is a colour word: it is read as the approximate colour {w.hex} with its own "
+                        f"reading error ΔE00 {w.reading_error_de:g}, which replaces the reading-error setting; a word "
+                        "is an approximation, not a measurement." for w in cands.words)
+        head, _, rest = cands.message.partition(": colour alone cannot decide")
+        body = (f"<b>{_esc(head)}: colour alone cannot decide</b>{_esc(rest)}" if rest or cands.ambiguous
+                else _esc(cands.message))
+        self.verdict.object = (body + _esc(note + words) + f" <i>Seen {_esc(_viewing_text(s))}.</i>"
+                               + (" Estimates from colour are not certified metrology." if cands.acceptable else ""))
+        from physics import lab_to_xyz, xyz_to_srgb, srgb_to_hex
         obs_hex = srgb_to_hex(xyz_to_srgb(lab_to_xyz(cands.observed_lab[0], s.illuminant_spec(), s.observer),
                                           s.illuminant_spec(), s.observer))
         rows = "".join(
@@ -363,18 +429,25 @@ class ColourToThickness:
             f"<td>{c.delta_e:.2f}</td><td>{c.order}</td>"
             f"<td><span style='display:inline-block;width:36px;height:18px;background:{obs_hex};border:1px solid #888'></span>"
             f"<span style='display:inline-block;width:36px;height:18px;background:{c.hex};border:1px solid #888'></span></td>"
-            + (f"<td>{'yes' if c.in_tolerance else 'no'}</td>" if c.in_tolerance is not None else "") + "</tr>"
+            + (f"<td>{'yes' if c.in_tolerance else 'no'}</td>" if c.in_tolerance is not None else "")
+            + f"<td>{'possible' if any(c is p for p in cands.possible) else ''}</td></tr>"
             for i, c in enumerate(cands))
         tol_head = "<th>in tol.</th>" if cands and cands[0].in_tolerance is not None else ""
         self.table.object = (
             "<table style='font-size:13px;border-collapse:collapse' cellpadding='3'>"
             "<tr><th>#</th><th>thickness (nm)</th><th>colour-equal range (nm)</th><th>ΔE00</th><th>order</th>"
-            f"<th>observed · predicted</th>{tol_head}</tr>{rows}</table>"
-            f"<div style='font-size:11px;color:#555'>ΔE00 ≤ {AMBIGUOUS_DE:g}: not distinguishable by eye; "
-            f"> {MATCH_DE_MAX:g}: not accepted as a match (common practice).</div>")
+            f"<th>observed · predicted</th>{tol_head}<th>answer</th></tr>{rows}</table>"
+            f"<div style='font-size:11px;color:#555'>possible: within the colour reading error ΔE00 "
+            f"{cands.reading_error_de:g} of the best match; ΔE00 ≤ {AMBIGUOUS_DE:g}: not distinguishable by eye; "
+            f"> {max(MATCH_DE_MAX, cands.reading_error_de):g}: not accepted as a match (common practice).</div>")
         self._refresh_strip()
         x = [c.thickness_nm for c in cands]
         self.cand_src.data = dict(x=x, label=[f"#{i + 1}" for i in range(len(cands))], align=self._label_align(x))
+
+    def _on_reading(self, *_):
+        """The reading error changed: the answer shown is searched again with it (the colour paths are cached)."""
+        if self.last_candidates is not None and self._last_query is not None:
+            self.find_candidates(*self._last_query)
 
     def _label_align(self, x):
         """Text alignment of each strip label: inward near an end of the strip, so no label is cut off."""
@@ -610,7 +683,7 @@ class ColourToThickness:
         args = dict(image=self.photo, stack=s.stack, layer=s.swept_layer, thickness_nm=window,
                     reference_box=self.calib_box, illuminant=s.illuminant_spec(), angle_deg=s.angle_deg,
                     observer=s.observer, polarization=s.polarization, na=s.na, reference=ref, roi=self.roi,
-                    nominal_nm=nominal)
+                    nominal_nm=nominal, reading_error_de=self.reading.reading_error_de)
         self.progress.visible = self.cancel_map.visible = True
         self.progress.value = 0
         self.run_map.disabled = True
@@ -635,9 +708,9 @@ class ColourToThickness:
                         result = thickness_map(progress=channel.report, **args), None
                     except InputError as exc:
                         result = None, str(exc)
-                    self._finish_map(job, s, *result, run_number=run_number)
+                    self._finish_map(job, s, *result, run_number=run_number, window=window)
             except InputError as exc:
-                self._finish_map(job, s, None, str(exc), run_number=run_number)
+                self._finish_map(job, s, None, str(exc), run_number=run_number, window=window)
             except JobCancelled:
                 pass
             return
@@ -660,10 +733,10 @@ class ColourToThickness:
             except Exception:  # never lose the session to one failed computation
                 log.exception("photo thickness map failed")
                 result = None, "The thickness map failed unexpectedly; the server log has the details."
-            post_to_page(doc, partial(self._finish_map, job, s, *result, run_number=run_number))
+            post_to_page(doc, partial(self._finish_map, job, s, *result, run_number=run_number, window=window))
         pn.state.execute(run)
 
-    def _finish_map(self, job, s, result, error, run_number=0):
+    def _finish_map(self, job, s, result, error, run_number=0, window=(0.0, 0.0)):
         if job != self._job:                      # superseded by a newer request, or cancelled
             if job == self._cancelled_job and self._job == job + 1 and result is not None:
                 self.progress_text.object = _esc(
@@ -677,7 +750,7 @@ class ColourToThickness:
             self.map_msg.object = _esc(f"{error} " + self._shown_map_text())
             self.map_msg.alert_type, self.map_msg.visible = "danger", True
             return
-        self.result, self.result_state = result, s
+        self.result, self.result_state, self.result_window = result, s, window
         self.result_label = f"map {run_number} of {self.photo_name}, made {datetime.now():%H:%M:%S}"
         st = result.stats
         self.map_msg.object = (f"<b>{_esc(self.result_label.capitalize())}.</b> " + _esc(result.message)
@@ -692,10 +765,11 @@ class ColourToThickness:
         D = result.delta_e[::step, ::step]
         self.tmap_src.data = dict(image=[T], de=[D], x=[0], y=[0], dw=[W], dh=[H])
         self.cmap_src.data = dict(image=[D], x=[0], y=[0], dw=[W], dh=[H])
-        stray = result.order_outlier
-        self.stray_src.data = (dict(image=[_stray_overlay(stray, step)], x=[0], y=[0], dw=[W], dh=[H])
-                               if stray is not None and st["order_outliers"] else
-                               dict(image=[], x=[], y=[], dw=[], dh=[]))
+        stray, undecided = result.order_outlier, result.undecided
+        marks = [(m, rgba) for m, rgba in ((undecided, UNDECIDED_RGBA), (stray, STRAY_RGBA))
+                 if m is not None and m.any()]
+        self.stray_src.data = (dict(image=[_overlay(marks, step)], x=[0], y=[0], dw=[W], dh=[H]) if marks
+                               else dict(image=[], x=[], y=[], dw=[], dh=[]))
         p0, p1 = ROBUST_PERCENTILES
         if st["pixels"]:
             lo, hi = st["p_low_nm"], max(st["p_high_nm"], st["p_low_nm"] + 1e-6)
@@ -722,6 +796,8 @@ class ColourToThickness:
             ("pixels matched", f"{st['pixels']:,} ({100 * st['valid_fraction']:.1f} % of region)"),
             ("of another order than their neighbourhood",
              f"{st['order_outliers']:,} ({100 * st['order_outlier_fraction']:.1f} % of matched)"),
+            (f"order not decided by colour (reading error ΔE00 {st.get('reading_error_de', 0):g})",
+             f"{st.get('undecided', 0):,} ({100 * st.get('undecided_fraction', 0):.1f} % of matched)"),
             ("calibration gains R, G, B", f"{g[0]:.3f}, {g[1]:.3f}, {g[2]:.3f}"))
         self.stats.object = ("<table style='font-size:13px' cellpadding='2'>"
                              + "".join(f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in rows) + "</table>")
@@ -736,18 +812,22 @@ class ColourToThickness:
         return buf
 
     def _png(self):
+        """The map as a PNG with its colour bar, row 0 (the photo's top row) at the top, as on the page."""
         s = self.result_state
         return io.BytesIO(render.colorbar_png(self.result.thickness_nm, label="thickness (nm)",
-                                              title=f"Thickness of layer {s.swept_layer + 1}: {_stack_text(s)}",
-                                              footer=_footer()))
+                                              title=f"Thickness of layer {s.swept_layer + 1}: "
+                                                    f"{_searched_stack_text(s, self.result_window)}",
+                                              footer=_footer(), origin="upper"))
 
     def _stats_csv(self):
         s, st, g = self.result_state, self.result.stats, self.result.gains
         out = io.StringIO()
         out.write(f"# fringegauge thickness map statistics (computed from colour; not certified metrology)\n"
                   f"# date: {date.today().isoformat()}\n# photo: {getattr(self, 'photo_name', '')}\n"
-                  f"# stack: {_stack_text(s)}; unknown layer {s.swept_layer + 1} (from the top)\n"
-                  f"# illuminant {s.illuminant}, observer {s.observer} deg, angle {s.angle_deg:g} deg\n"
+                  f"# stack: {_searched_stack_text(s, self.result_window)}; unknown layer {s.swept_layer + 1} "
+                  f"(from the top)\n"
+                  f"# illuminant {s.illuminant}, observer {s.observer} deg, angle {s.angle_deg:g} deg, "
+                  f"colour reading error {st.get('reading_error_de', 0):g} dE00\n"
                   f"# calibration box: {self.calib_box}; region: {self.roi}\n"
                   f"# {self.result_label}\n")
         w = csv.writer(out)
@@ -767,12 +847,21 @@ class ColourToThickness:
         typed = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A colour to thickness candidates</h3>"),
             self.colour.view(),
+            pn.Row(self.reading_select, self.reading_error, margin=0),
+            pn.pane.HTML("<div style='font-size:11px;color:#555;margin:-4px 5px 2px'>Reading error, common practice: "
+                         + " · ".join(f"{k} ≈ {v:g}" for k, v in READING_PRESETS.items())
+                         + ". A colour word (gold, violet, light blue …) brings its own, larger error.</div>",
+                         width=TYPED_COLUMN_PX),
             *(field_pair(a, b, width=TYPED_COLUMN_PX) for a, b in ((self.colour2, self.angle2),
                                                                     (self.win_lo, self.win_hi),
                                                                     (self.nominal, self.tolerance))),
             self.find, width=TYPED_COLUMN_PX)
-        results = pn.Column(self.verdict, self.table, pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"),
-                            sizing_mode="stretch_width")
+        seen = pn.Column(
+            _label("Seen under (the film explorer's settings: a change here changes them there, and back)"),
+            pn.Row(self.view_angle, self.view_lamp, self.view_observer, self.view_pol, self.view_na, margin=0),
+            margin=(0, 0, 4, 0), css_classes=["fg-seen"])
+        results = pn.Column(seen, self.verdict, self.table,
+                            pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width")
         photo_controls = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A photo to a thickness map</h3>"),
             _label("Photo (JPEG, PNG or TIFF, 8 or 16 bit)"), self.dropper, self.photo_msg.message,
@@ -788,6 +877,27 @@ class ColourToThickness:
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
+
+
+def _searched_stack_text(s, window) -> str:
+    """The stack with the unknown layer named by the thickness range searched, not by the explorer's
+    thickness: 'air / SiO2 (unknown, searched 0–450 nm) / Si'."""
+    d = json.loads(s.stack_json)
+    parts = [_spec_text(d["ambient"])]
+    for i, layer in enumerate(d["layers"]):
+        name = _spec_text(layer["material"])
+        parts.append(f"{name} (unknown, searched {window[0]:g}–{window[1]:g} nm)" if i == s.swept_layer
+                     else f"{name} {layer['thickness_nm']:g} nm")
+    sub = _spec_text(d["substrate"])
+    if d.get("substrate_thickness_mm"):
+        sub += f" ({d['substrate_thickness_mm']:g} mm plate)"
+    return " / ".join([*parts, sub])
+
+
+def _viewing_text(s) -> str:
+    """The viewing conditions an answer was computed for, as a phrase."""
+    return (f"at {s.angle_deg:g}° from the normal, lamp {s.illuminant}, CIE {s.observer}° observer, {s.polarization}"
+            + (f" light, viewing cone NA {s.na:g}" if s.na else " light"))
 
 
 def _tolerance_verdict(cands, nominal: float, tol: float, kind: str) -> tuple[str, str]:
@@ -809,14 +919,24 @@ def _tolerance_verdict(cands, nominal: float, tol: float, kind: str) -> tuple[st
 STRAY_RGBA = np.array([0xE0, 0x10, 0x10, 0xFF], dtype=np.uint8).view(np.uint32)[0]
 
 
-def _stray_overlay(mask: np.ndarray, step: int) -> np.ndarray:
-    """The stray-order mask at display size (a block is marked if any of its pixels is), as RGBA."""
-    h, w = mask.shape
-    hs, ws = -(-h // step), -(-w // step)
-    padded = np.zeros((hs * step, ws * step), dtype=bool)
-    padded[:h, :w] = mask
-    blocks = padded.reshape(hs, step, ws, step).any(axis=(1, 3))
-    return np.where(blocks, STRAY_RGBA, np.uint32(0)).astype(np.uint32)
+#: Colour of pixels whose fringe order colour alone cannot decide (within the reading error): a
+#: half-transparent white veil, so the thickness under it still shows.
+UNDECIDED_RGBA = np.array([0xFF, 0xFF, 0xFF, 0x99], dtype=np.uint8).view(np.uint32)[0]
+
+
+def _overlay(marks, step: int) -> np.ndarray:
+    """Masks at display size (a block is marked if any of its pixels is) as one RGBA image; later masks of
+    ``marks`` ((mask, packed RGBA), ...) are drawn over earlier ones."""
+    out = None
+    for mask, rgba in marks:
+        h, w = mask.shape
+        hs, ws = -(-h // step), -(-w // step)
+        padded = np.zeros((hs * step, ws * step), dtype=bool)
+        padded[:h, :w] = mask
+        blocks = padded.reshape(hs, step, ws, step).any(axis=(1, 3))
+        out = np.zeros(blocks.shape, dtype=np.uint32) if out is None else out
+        out[blocks] = rgba
+    return out
 
 
 def locked(handler):
