@@ -34,7 +34,7 @@ from .color import spectrum_to_xyz, xyz_to_lab, _linear_srgb, GAMUT_TOLERANCE
 from .errors import InputError, WavelengthRangeError, require_finite
 from .stack import MAX_ANGLE_DEG, Stack, _Optics, sweep, _check_layer_index
 
-__all__ = ["ColorMap", "color_map", "cone_rays", "cone_reflectance", "interference_order",
+__all__ = ["ColorMap", "color_map", "colour_wavelengths_nm", "fringe_path_nm", "colour_map_points", "SAMPLES_PER_FRINGE", "cone_rays", "cone_reflectance", "interference_order",
            "order_thicknesses_nm", "colour_band_nm", "DEFAULT_BAND_NM", "MAX_NA", "point_color",
            "scaled_colors", "PointColor", "BRIGHTNESS"]
 
@@ -51,6 +51,17 @@ MIN_NA = 1e-6
 _GRAZING_DEG = 89.9
 #: Gauss-Legendre points across the cone radius and around half its rim.
 _CONE_RADIAL, _CONE_AZIMUTH = 8, 12
+#: Samples per fringe on a wavenumber-uniform grid: the n-th harmonic of an Airy fringe has amplitude
+#: |r₁r₂|ⁿ and aliases onto the colour integral when n reaches the samples per fringe; at 6 even a
+#: silicon membrane's |r₁r₂| ≈ 0.36 leaves 0.2 % (checked against 0.05 nm integration in tests).
+SAMPLES_PER_FRINGE = 10
+#: Most wavelengths one colour is integrated on: a 100 µm layer of n = 2.5 needs about 4,000; the bound
+#: keeps memory finite for twelve such layers (the colour then tends to, but misses, the incoherent limit).
+MAX_COLOUR_SAMPLES = 20_000
+#: Working-array size (thickness rows × angles × wavelengths) of one piece of an adaptive colour map.
+_MAP_PIECE_POINTS = 1 << 22
+#: Ratio between successive sample counts of an adaptive colour map's thickness groups.
+_GROUP_RATIO = 2 ** 0.5
 #: Step of the incidence-angle grid on which a cone-averaged map is interpolated.
 _CONE_GRID_STEP_DEG = 0.5
 
@@ -71,6 +82,102 @@ def colour_band_nm(stack: Stack, step_nm: float = 5.0) -> np.ndarray:
             "at least 420-680 nm. Choose material pages that cover the visible.")
     start = np.ceil(lo / step_nm) * step_nm
     return np.arange(start, hi + 1e-9, step_nm)
+
+
+#: Round-trip amplitude below which a layer's fringes no longer show in a colour: light that comes back
+#: through it carries its fringes with this weight (e^-9 ≈ 1.2e-4, below a thousandth of a colour step).
+_FRINGE_ATTENUATION = 9.0
+
+
+def _fringe_paths(stack: Stack, wl: np.ndarray, layer: int | None = None, thickness_nm=None) -> np.ndarray:
+    """Round-trip group path (nm) through the coherent layers at each wavelength; (T, W) with a swept layer.
+
+    A layer of thickness d and group index n_g = d(nσ)/dσ (σ = 1/λ) makes fringes spaced
+    Δσ = 1/(2 n_g d) in wavenumber (Δλ ≈ λ²/(2 n_g d) at normal incidence, the densest case); paths of
+    all layers add, since their beats are fringes too. Where a layer's round trip attenuates the light
+    by more than e^-9 (4π k d/λ > 9) its fringes are gone and its path is not counted.
+
+    References
+    ----------
+    M. Born and E. Wolf, Principles of Optics, 7th ed., sec. 7.5 (fringes of equal inclination).
+    """
+    sigma = 1.0 / wl
+    total = np.zeros(wl.shape)
+    swept = None
+    for i, l in enumerate(stack.layers):
+        nk = l.material.nk(wl)
+        ng = np.maximum(np.gradient(nk.real * sigma, sigma), nk.real) if wl.size > 2 else nk.real
+        if i == layer:
+            swept = (ng, nk.imag)
+            continue
+        seen = 4 * np.pi * nk.imag * l.thickness_nm * sigma <= _FRINGE_ATTENUATION
+        total += 2.0 * ng * l.thickness_nm * seen
+    if swept is None:
+        return total
+    d = np.atleast_1d(np.asarray(thickness_nm, dtype=float))[:, None]
+    ng, k = swept
+    seen = 4 * np.pi * k[None, :] * d * sigma[None, :] <= _FRINGE_ATTENUATION
+    return total[None, :] + 2.0 * ng[None, :] * d * seen
+
+
+def fringe_path_nm(stack: Stack, wavelength_nm=None) -> float:
+    """Largest round-trip group path (nm) of the stack's coherent layers over the colour band: its fringes
+    are spaced 1/path in wavenumber. See :func:`_fringe_paths`."""
+    wl = colour_band_nm(stack) if wavelength_nm is None else np.asarray(wavelength_nm, dtype=float)
+    return float(np.max(_fringe_paths(stack, wl))) if wl.size else 0.0
+
+
+def _sample_count(path_nm, lo: float, hi: float) -> np.ndarray:
+    """Wavenumber-uniform samples over lo-hi nm for SAMPLES_PER_FRINGE per fringe of ``path_nm``."""
+    fringes = np.asarray(path_nm, dtype=float) * (1.0 / lo - 1.0 / hi)
+    return np.minimum(np.ceil(fringes * SAMPLES_PER_FRINGE).astype(int) + 1, MAX_COLOUR_SAMPLES)
+
+
+def _base_suffices(path_nm, base: np.ndarray) -> np.ndarray:
+    """Whether the base grid's step at its blue end gives SAMPLES_PER_FRINGE per fringe of ``path_nm``."""
+    step_sigma = 1.0 / base[0] - 1.0 / base[1]
+    return np.asarray(path_nm, dtype=float) * step_sigma * SAMPLES_PER_FRINGE <= 1.0
+
+
+def _wavenumber_grid(lo: float, hi: float, n: int) -> np.ndarray:
+    return np.sort(1.0 / np.linspace(1.0 / lo, 1.0 / hi, max(int(n), 2)))
+
+
+def colour_wavelengths_nm(stack: Stack, step_nm: float = 5.0) -> np.ndarray:
+    """Wavelengths (nm) fine enough for the colour of ``stack``: :func:`colour_band_nm` while its step
+    resolves the fringes, else a grid uniform in wavenumber with SAMPLES_PER_FRINGE per fringe (and at
+    least as many points as the base grid), so the colour of a thick layer converges to the average
+    over its fringes instead of aliasing.
+    """
+    base = colour_band_nm(stack, step_nm)
+    path = fringe_path_nm(stack, base)
+    if base.size < 2 or _base_suffices(path, base):
+        return base
+    return _wavenumber_grid(base[0], base[-1], max(int(_sample_count(path, base[0], base[-1])), base.size))
+
+
+def colour_map_points(stack: Stack, layer: int, thickness_nm, n_angle: int) -> int:
+    """Grid points (thickness × angle × wavelength) an adaptive :func:`color_map` evaluates."""
+    base = colour_band_nm(stack)
+    return n_angle * int(sum(w.size * rows.size for rows, w in _thickness_groups(stack, layer, thickness_nm, base)))
+
+
+def _thickness_groups(stack: Stack, layer: int, thickness_nm, base: np.ndarray):
+    """[(row indices, wavelengths)] covering every thickness: the base grid where it suffices, else
+    wavenumber grids whose sizes step by _GROUP_RATIO (rows of similar thickness share one grid)."""
+    d = np.atleast_1d(np.asarray(thickness_nm, dtype=float))
+    path = _fringe_paths(stack, base, layer, d).max(axis=1)
+    ok = _base_suffices(path, base) if base.size >= 2 else np.ones(d.size, bool)
+    if ok.all():
+        return [(np.arange(d.size), base)]
+    groups = [(np.flatnonzero(ok), base)] if ok.any() else []
+    need = np.maximum(_sample_count(path, base[0], base[-1]), base.size)
+    level = np.ceil(np.log(need / base.size) / np.log(_GROUP_RATIO) - 1e-9).astype(int)
+    for k in np.unique(level[~ok]):
+        rows = np.flatnonzero(~ok & (level == k))
+        n = min(max(int(np.ceil(base.size * _GROUP_RATIO ** k)), int(need[rows].max())), MAX_COLOUR_SAMPLES)
+        groups.append((rows, _wavenumber_grid(base[0], base[-1], n)))
+    return groups
 
 
 def cone_rays(view_deg, na: float, ambient_n: float = 1.0):
@@ -217,7 +324,11 @@ def color_map(stack: Stack, layer: int, thickness_nm, angle_deg, wavelength_nm=N
     angle_deg : array_like (A,)
         Viewing angles, degrees, 0 <= angle < 90.
     wavelength_nm : array_like (W,), optional
-        Default :func:`colour_band_nm` (380-780 nm at 5 nm, cut to the materials' data).
+        Default: adaptive. Thicknesses whose fringes the :func:`colour_band_nm` grid (380-780 nm at
+        5 nm, cut to the materials' data) resolves use it; thicker ones are integrated on wavenumber
+        grids with :data:`SAMPLES_PER_FRINGE` samples per fringe (see :func:`fringe_path_nm`), so the
+        colour converges toward the fringe-averaged (incoherent) limit instead of aliasing. The map's
+        ``wavelength_nm`` is then the base grid.
     illuminant, observer : see :func:`physics.spectrum_to_xyz`.
     polarization : {"s", "p", "unpolarized"}
     na : float
@@ -229,21 +340,35 @@ def color_map(stack: Stack, layer: int, thickness_nm, angle_deg, wavelength_nm=N
     -------
     ColorMap
     """
-    wl = colour_band_nm(stack) if wavelength_nm is None else np.asarray(wavelength_nm, dtype=float)
     ang = np.atleast_1d(require_finite("angle_deg", angle_deg, minimum=0.0, maximum=MAX_ANGLE_DEG,
                                        max_inclusive=False, unit="deg")).ravel()
     d = np.atleast_1d(np.asarray(thickness_nm, dtype=float)).ravel()
+    if wavelength_nm is None:
+        wl = colour_band_nm(stack)
+        groups = _thickness_groups(stack, layer, d, wl)
+    else:
+        wl = np.asarray(wavelength_nm, dtype=float)
+        groups = [(np.arange(d.size), wl)]
+    xyz = np.empty((d.size, ang.size, 3))
+    for rows, wl_g in groups:
+        piece = max(1, _MAP_PIECE_POINTS // max(1, ang.size * wl_g.size))
+        for start in range(0, rows.size, piece):
+            r = rows[start:start + piece]
+            R = _map_reflectance(stack, layer, d[r], ang, wl_g, polarization, na)
+            xyz[r] = spectrum_to_xyz(R, wl_g, illuminant, observer)
+    scale = _scale_for(xyz, brightness)
+    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
+    return ColorMap(d, ang, wl, xyz, lab, rgb, oog, scale)
+
+
+def _map_reflectance(stack, layer, d, ang, wl, polarization, na):
+    """R (T, A, W) of the swept layer over thickness × viewing angle, averaged over the cone when na > 0."""
     if na and na > 0:
         n0 = float(stack.ambient.nk(wl).real.min())
         grid, M = _cone_matrix(ang, na, n0)
         R_grid = sweep(stack, layer, d, grid, wl, polarization)          # (T, G, W)
-        R = np.einsum("ag,tgw->taw", M, R_grid)
-    else:
-        R = sweep(stack, layer, d, ang, wl, polarization)                # (T, A, W)
-    xyz = spectrum_to_xyz(R, wl, illuminant, observer)
-    scale = _scale_for(xyz, brightness)
-    rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
-    return ColorMap(d, ang, wl, xyz, lab, rgb, oog, scale)
+        return np.einsum("ag,tgw->taw", M, R_grid)
+    return sweep(stack, layer, d, ang, wl, polarization)                 # (T, A, W)
 
 
 @dataclass(frozen=True)

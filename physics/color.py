@@ -8,7 +8,9 @@ XYZ = Σ R(λᵢ) wᵢ reduces to a (n_wavelength, 3) weight matrix computed onc
 cached, so millions of spectra cost one matrix product. The weights integrate
 illuminant × colour-matching function on colour-science's 1 nm table against the
 piecewise-linear interpolant of the samples (each sample's "hat" function), so a
-coarse grid (5, 10, 20 nm) keeps most of the accuracy of a 1 nm one; beyond the
+coarse grid (5, 10, 20 nm) keeps most of the accuracy of a 1 nm one, and a grid
+finer than 1 nm (the fringes of a thick layer) is integrated on the union of both
+grids rather than read at whole nanometres; beyond the
 sampled band the end values are held constant; the weights are normalised so that
 a perfect reflector has Y = 1.
 
@@ -130,24 +132,34 @@ def user_spd_on_fine_grid(wavelength_nm, values) -> np.ndarray:
     return out
 
 
-def _hat_matrix(wavelength_nm: np.ndarray) -> np.ndarray:
-    """(n_samples, 471) weights of each sample's linear-interpolation hat on the 1 nm grid.
+def _sample_weights(wavelength_nm: np.ndarray, table: np.ndarray) -> np.ndarray:
+    """(n_samples, 3) integrals of each sample's linear-interpolation hat times ``table`` (471, 3).
 
-    Beyond the sampled band the end values are held constant (as colour-science
-    extends a spectral distribution), so a perfect reflector sampled on 380-780 nm
-    has exactly the illuminant's white.
+    ``table`` is illuminant × colour-matching function on the 1 nm grid, taken as piecewise linear.
+    Both are evaluated on the union of that grid and the samples and summed with each point's share
+    of the union grid (its half-distance to each neighbour; a 1 nm point keeps weight 1), so a coarse
+    grid (5 nm) integrates as before and a grid finer than 1 nm (a thick layer's fringes) is not
+    reduced to its values at whole nanometres. Beyond the sampled band the end values are held
+    constant (as colour-science extends a spectral distribution), so a perfect reflector sampled on
+    380-780 nm has exactly the illuminant's white.
     """
     fine = np.arange(360, 831, dtype=float)
     n = wavelength_nm.size
-    H = np.zeros((n, fine.size))
     if n == 1:
-        H[0, np.argmin(np.abs(fine - wavelength_nm[0]))] = 1.0
-        return H
-    for i in range(n):
-        y = np.zeros(n)
-        y[i] = 1.0
-        H[i] = np.interp(fine, wavelength_nm, y)      # end samples held constant beyond the grid
-    return H
+        W = np.zeros((1, 3))
+        W[0] = table[np.argmin(np.abs(fine - wavelength_nm[0]))]
+        return W
+    G = np.union1d(fine, wavelength_nm)
+    S = np.stack([np.interp(G, fine, table[:, k]) for k in range(3)], axis=1)
+    share = np.empty(G.size)
+    share[1:-1] = 0.5 * (G[2:] - G[:-2])
+    share[0], share[-1] = G[1] - G[0], G[-1] - G[-2]
+    j = np.clip(np.searchsorted(wavelength_nm, G, side="right") - 1, 0, n - 2)
+    f = np.clip((G - wavelength_nm[j]) / (wavelength_nm[j + 1] - wavelength_nm[j]), 0.0, 1.0)
+    W = np.zeros((n, 3))
+    np.add.at(W, j, ((1.0 - f) * share)[:, None] * S)
+    np.add.at(W, j + 1, (f * share)[:, None] * S)
+    return W
 
 
 @functools.lru_cache(maxsize=64)
@@ -155,7 +167,7 @@ def _weights_cached(wl_bytes: bytes, illum_key: str, observer: str, spd_bytes: b
     wl = np.frombuffer(wl_bytes)
     spd = np.frombuffer(spd_bytes)
     SxCMF = spd[:, None] * _cmfs(observer)                          # (471, 3)
-    W = _hat_matrix(wl) @ SxCMF                                     # (n, 3)
+    W = _sample_weights(wl, SxCMF)                                  # (n, 3)
     norm = W[:, 1].sum()
     if norm <= 0:
         raise InputError("The illuminant has no power where the samples lie; widen the wavelength range.")

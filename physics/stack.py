@@ -58,6 +58,9 @@ AMBIENT_K_MAX = 1e-6
 _BRANCH_EPS = 100 * np.finfo(float).eps
 #: Elements per chunk of a sweep: keeps the working arrays in cache and memory bounded.
 _SWEEP_CHUNK = 1 << 17
+#: Thicknesses a uniform sweep carries its phase recurrence across before re-evaluating the exponential
+#: (each step adds at most an ulp or two; 64 steps stay far below what a colour can show).
+_RESYNC_ROWS = 64
 #: Relative tolerance for treating a thickness grid as uniform (phase recurrence instead of exp).
 _UNIFORM_RTOL = 1e-9
 
@@ -390,8 +393,11 @@ def sweep(st: Stack, layer: int = 0, thickness_nm=None, angle_deg=0.0, wavelengt
     if fast:
         for c in coeffs:
             _expand_for_real_path(c)
+    x = None
     for start in range(0, d.size, step):
-        x = _round_trip_phase(k2, d[start:start + step], x_step)   # e^{2iδ}, shared by s and p
+        # on a uniform grid a chunk continues from the last one's phase, re-evaluated every _RESYNC_ROWS rows
+        carry = x[-1] if x is not None and uniform and start % _RESYNC_ROWS >= step else None
+        x = _round_trip_phase(k2, d[start:start + step], x_step, carry)   # e^{2iδ}, shared by s and p
         if fast:
             out[start:start + step] = _reflectance_real_path(x, coeffs, weight)
             continue
@@ -458,17 +464,18 @@ def _reflectance_real_path(x, coeffs, weight):
     return acc
 
 
-def _round_trip_phase(k2, d, x_step):
+def _round_trip_phase(k2, d, x_step, carry=None):
     """exp(i·k2·d) for a run of thicknesses, (len(d), A, W).
 
     On a uniform grid the factor for each next thickness is one complex product
-    with exp(i·k2·Δd) (the exponential is re-evaluated at every chunk start, so the
-    rounding error stays below ~20 ulp); otherwise one exponential per point.
+    with exp(i·k2·Δd), continuing from ``carry`` (the previous thickness's factor) when
+    given; the exponential is re-evaluated at least every _RESYNC_ROWS thicknesses, so
+    the rounding error stays below ~_RESYNC_ROWS ulp. Otherwise one exponential per point.
     """
     if x_step is None:
         return np.exp(1j * k2 * d[:, None, None])
     x = np.empty((d.size,) + k2.shape, dtype=complex)
-    x[0] = np.exp(1j * k2 * d[0])
+    x[0] = np.exp(1j * k2 * d[0]) if carry is None else carry * x_step
     x[1:] = x_step
     np.cumprod(x, axis=0, out=x)
     return x

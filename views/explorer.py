@@ -224,9 +224,11 @@ class FilmExplorer:
 
     def _build_plots(self):
         tools = "pan,wheel_zoom,box_zoom,reset,save"
-        self.spec_src = ColumnDataSource(dict(wl=[], R=[], Rs=[], Rp=[], T=[]))
+        self.spec_src = ColumnDataSource(dict(wl=[], R=[], Rs=[], Rp=[], T=[], R_low=[], R_high=[]))
         p = figure(height=250, sizing_mode="stretch_width", tools=tools, title="Spectrum at the current point",
                    x_axis_label="wavelength (nm)", y_axis_label="reflectance, transmittance (%)")
+        self.band_R = p.varea("wl", "R_low", "R_high", source=self.spec_src, fill_color="#1b1b1b", fill_alpha=0.15,
+                              legend_label="R fringe range", visible=False)
         self.line_R = p.line("wl", "R", source=self.spec_src, line_width=2.5, color="#1b1b1b", legend_label="R")
         self.line_Rs = p.line("wl", "Rs", source=self.spec_src, line_width=1.2, color="#1f6fb4", line_dash="dashed",
                               legend_label="R s")
@@ -741,12 +743,20 @@ class FilmExplorer:
         if "point" in result:
             self._point = pt = result["point"]
             T = pt.T * 100 if pt.T is not None else np.full_like(pt.R, np.nan)
-            self.spec_src.data = dict(wl=pt.wavelength_nm, R=pt.R * 100, Rs=pt.Rs * 100, Rp=pt.Rp * 100, T=T)
+            averaged = pt.R_low is not None
+            low = pt.R_low * 100 if averaged else np.full_like(pt.R, np.nan)
+            high = pt.R_high * 100 if averaged else np.full_like(pt.R, np.nan)
+            self.spec_src.data = dict(wl=pt.wavelength_nm, R=pt.R * 100, Rs=pt.Rs * 100, Rp=pt.Rp * 100, T=T,
+                                      R_low=low, R_high=high)
             self.line_T.visible = pt.T is not None
             self.line_Rs.visible = self.line_Rp.visible = s.polarization == "unpolarized"
+            self.band_R.visible = averaged
             self.spec_fig.title.text = ((f"Spectrum of the bare substrate at {s.angle_deg:.1f}°" if result.get("bare")
                                          else f"Spectrum at {s.thickness_nm:.1f} nm, {s.angle_deg:.1f}°")
-                                        + (f", cone NA {s.na:g}" if s.na else ""))
+                                        + (f", cone NA {s.na:g}" if s.na else "")
+                                        + (f" — fringes every {pt.fringe_spacing_nm:.2g} nm at 550 nm, finer than the "
+                                           f"plot: curves are {SPECTRUM_STEP_NM:g} nm averages, grey band = fringe range"
+                                           if averaged else ""))
             self.swatch.object = _swatch_html(pt, s, bare=bool(result.get("bare")))
             self.vspan.location = s.thickness_nm
             self.hspan.location = s.angle_deg
@@ -776,6 +786,9 @@ class FilmExplorer:
             f"# colour: illuminant {s.illuminant}, observer {s.observer} deg: sRGB {pt.hex}, "
             f"L*a*b* {pt.lab[0]:.2f} {pt.lab[1]:.2f} {pt.lab[2]:.2f}",
         ]
+        if pt.R_low is not None:
+            lines.append(f"# fringes every {pt.fringe_spacing_nm:.3g} nm at 550 nm are finer than the 1 nm rows: each "
+                         "row is the average over 1 nm centred on its wavelength")
         if pt.T is None:
             lines.append("# T_percent is empty: the substrate absorbs, so no light comes through the stack")
         lines.append("wavelength_nm,R_percent,R_s_percent,R_p_percent,T_percent")

@@ -16,7 +16,7 @@ import numpy as np
 import param
 
 from physics import InputError, Layer, Stack, material
-from physics.appearance import (ColorMap, color_map, colour_band_nm, cone_reflectance, interference_order,
+from physics.appearance import (ColorMap, color_map, colour_band_nm, colour_map_points, colour_wavelengths_nm, fringe_path_nm, cone_reflectance, interference_order,
                                 order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
 from physics.color import srgb_to_hex, user_spd_on_fine_grid
 from physics.fit import text_lines
@@ -196,7 +196,13 @@ def _compact(d: dict) -> str:
 # ---------------------------------------------------------------------- computations
 @dataclass(frozen=True)
 class PointResult:
-    """What the page shows for the current thickness and angle."""
+    """What the page shows for the current thickness and angle.
+
+    When the fringes are finer than the spectrum's step (a thick layer), ``R``, ``Rs``, ``Rp`` and ``T``
+    are averages over each step (centred on ``wavelength_nm``), ``R_low``/``R_high`` the range of R
+    inside it, and ``fringe_spacing_nm`` the fringe spacing at 550 nm; otherwise they are samples and
+    ``R_low`` is None.
+    """
 
     wavelength_nm: np.ndarray
     R: np.ndarray
@@ -210,6 +216,9 @@ class PointResult:
     out_of_gamut: bool
     order: int
     opd_waves: float
+    R_low: np.ndarray | None = None
+    R_high: np.ndarray | None = None
+    fringe_spacing_nm: float = float("inf")
 
 
 def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMap:
@@ -224,12 +233,14 @@ def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMa
         raise InputError("Add a layer to see how its colour changes with thickness.")
     d, a = s.thickness_grid(), s.angle_grid()
     if max_grid_points is not None:
-        wl = colour_band_nm(stack)
-        nd, na = map_grid_counts(d.size, a.size, wl.size, max_grid_points)
-        if nd * na * wl.size > max_grid_points:
-            raise InputError(f"Even a {nd} x {na} colour map needs {nd * na * wl.size:,} grid points; this "
-                             f"server allows {int(max_grid_points):,}. Ask whoever runs it to raise --max-grid-points.")
+        # thick layers are integrated on finer wavelength grids: count the points the map really needs
+        per_cell = colour_map_points(stack, s.swept_layer, d, 1) / d.size
+        nd, na = map_grid_counts(d.size, a.size, per_cell, max_grid_points)
         d = np.linspace(0.0, s.thickness_max_nm, nd)
+        points = colour_map_points(stack, s.swept_layer, d, na)
+        if points > max_grid_points:
+            raise InputError(f"Even a {nd} x {na} colour map needs {points:,} grid points; this "
+                             f"server allows {int(max_grid_points):,}. Ask whoever runs it to raise --max-grid-points.")
         a = np.linspace(0.0, ANGLE_MAX_DEG, na)
     return color_map(stack, s.swept_layer, d, a,
                      illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.polarization,
@@ -241,7 +252,8 @@ MIN_MAP_POINTS = 16
 
 
 def map_grid_counts(n_thickness: int, n_angle: int, n_wavelength: int, max_grid_points: int) -> tuple:
-    """(thickness, angle) counts, shrunk by one common factor so the map fits ``max_grid_points``."""
+    """(thickness, angle) counts, shrunk by one common factor so the map fits ``max_grid_points``
+    (``n_wavelength`` may be a mean over the rows: thick rows are integrated on finer grids)."""
     total = n_thickness * n_angle * n_wavelength
     if total <= max_grid_points:
         return n_thickness, n_angle
@@ -249,26 +261,65 @@ def map_grid_counts(n_thickness: int, n_angle: int, n_wavelength: int, max_grid_
     return max(MIN_MAP_POINTS, int(n_thickness * f)), max(MIN_MAP_POINTS, int(n_angle * f))
 
 
+#: Samples per fringe a plotted spectrum needs to show its fringes (fewer and they alias into false shapes).
+SPECTRUM_SAMPLES_PER_FRINGE = 4
+#: Most sub-samples per plotted step when the fringes are finer than the step (bounds the work per move).
+MAX_SUBSAMPLES = 64
+#: Reference wavelength at which the fringe spacing is quoted, nm (near the eye's peak sensitivity).
+SPACING_WAVELENGTH_NM = 550.0
+
+
+def _spectrum_grid(stack: Stack, wl: np.ndarray):
+    """(sub-samples per step m, fringe spacing at 550 nm): m = 1 while the step resolves the fringes."""
+    path = fringe_path_nm(stack, wl) if wl.size > 2 else 0.0
+    spacing = SPACING_WAVELENGTH_NM ** 2 / path if path > 0 else float("inf")
+    if wl.size < 2 or path <= 0:
+        return 1, spacing
+    step = float(np.max(np.diff(wl)))
+    fringe_blue = wl[0] ** 2 / path
+    m = int(np.ceil(step * SPECTRUM_SAMPLES_PER_FRINGE / fringe_blue))
+    return (1 if m <= 1 else min(m, MAX_SUBSAMPLES)), spacing
+
+
 def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=None) -> PointResult:
-    """Spectrum and colour at the current thickness and angle (``scale``: the map's brightness factor)."""
+    """Spectrum and colour at the current thickness and angle (``scale``: the map's brightness factor).
+
+    The colour is integrated on :func:`physics.appearance.colour_wavelengths_nm` (fine enough for a
+    thick layer's fringes). The spectrum is sampled at ``spectrum_wavelength_nm``, or averaged over
+    each of its steps when the fringes are finer than the step (see :class:`PointResult`).
+    """
     stack = s.stack
-    wl_colour = colour_band_nm(stack)
-    wl = wl_colour if spectrum_wavelength_nm is None else spectrum_wavelength_nm
-    Rs = cone_reflectance(stack, wl, s.angle_deg, s.na, "s")
-    Rp = cone_reflectance(stack, wl, s.angle_deg, s.na, "p")
+    wl_colour = colour_wavelengths_nm(stack)
+    wl = colour_band_nm(stack) if spectrum_wavelength_nm is None else np.asarray(spectrum_wavelength_nm, float)
+    m, spacing = _spectrum_grid(stack, wl)
+    if m > 1:
+        step = float(np.max(np.diff(wl)))
+        sub = wl[:, None] + step * ((np.arange(m) + 0.5) / m - 0.5)[None, :]
+        sub = np.clip(sub, wl[0], wl[-1]).ravel()
+    else:
+        sub = wl
+    Rs = cone_reflectance(stack, sub, s.angle_deg, s.na, "s")
+    Rp = cone_reflectance(stack, sub, s.angle_deg, s.na, "p")
     R = {"s": Rs, "p": Rp}.get(s.polarization, 0.5 * (Rs + Rp))
     transmits = (stack.substrate_thickness_mm is not None
                  or bool(np.all(stack.substrate.nk(wl).imag < TRANSPARENT_SUBSTRATE_K)))
-    T = cone_reflectance(stack, wl, s.angle_deg, s.na, s.polarization, "transmittance") if transmits else None
-    Rc = R if spectrum_wavelength_nm is None else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization)
+    T = cone_reflectance(stack, sub, s.angle_deg, s.na, s.polarization, "transmittance") if transmits else None
+    same = spectrum_wavelength_nm is None and m == 1 and wl_colour.size == wl.size
+    Rc = R if same else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization)
     pc = point_color(Rc, wl_colour, illuminant=s.illuminant_spec(), observer=s.observer, scale=scale)
+    low = high = None
+    if m > 1:
+        per_step = lambda a: a.reshape(wl.size, m)           # noqa: E731
+        low, high = per_step(R).min(axis=1), per_step(R).max(axis=1)
+        R, Rs, Rp = (per_step(a).mean(axis=1) for a in (R, Rs, Rp))
+        T = per_step(T).mean(axis=1) if T is not None else None
 
     if stack.layers:
         opd = float(interference_order(stack, s.swept_layer, s.thickness_nm, s.angle_deg))
     else:
         opd = 0.0
     return PointResult(wl, R, Rs, Rp, T, pc.rgb, srgb_to_hex(pc.rgb), pc.lab, pc.xy, pc.out_of_gamut,
-                       int(np.floor(opd)) + 1, opd)
+                       int(np.floor(opd)) + 1, opd, low, high, spacing)
 
 
 @dataclass(frozen=True)
