@@ -34,7 +34,8 @@ from .uploads import COMPACT, CappedDropper, UploadReader
 from .limits import Limits, interactive_executor, logged_job, post_to_page, served, session_key
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
-                    parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES)
+                    parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES, BRIGHTNESS_REFERENCES,
+                    brightness_scale, rescaled_map, rescaled_strip)
 
 #: Slider read-outs as the typed fields write numbers: no trailing zeros (numbro format: 101.5, 100).
 SLIDER_FORMAT = "0.[00]"
@@ -208,6 +209,13 @@ class FilmExplorer:
         self.brightness = pn.widgets.RadioButtonGroup(label="Brightness", options={"absolute": "absolute",
                                                       "brightest = white": "normalized"}, value=s.brightness,
                                                       margin=(2, 5))
+        self.bright_ref = pn.widgets.Select(label="White is the brightest colour of", width=300, margin=(2, 5),
+                                            options={v: k for k, v in BRIGHTNESS_REFERENCES.items()},
+                                            value=s.brightness_reference)
+        self.norm_lo = Field("… from thickness (nm)", width=140)
+        self.norm_hi = Field("to (nm)", width=140)
+        self.bright_note = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#555"},
+                                        css_classes=["fg-bright-note"])
         self.dl_csv = pn.widgets.FileDownload(callback=self._spectrum_csv, filename="spectrum.csv",
                                               label="Spectrum (.csv)", width=300, margin=(2, 5),
                                               css_classes=["fg-dl-csv"])
@@ -305,6 +313,10 @@ class FilmExplorer:
         self.observer.param.watch(lambda e: setattr(s, "observer", e.new), "value")
         self.na_slider.param.watch(lambda e: setattr(s, "na", round(float(e.new), 3)), "value")
         self.brightness.param.watch(lambda e: setattr(s, "brightness", e.new), "value")
+        self.bright_ref.param.watch(lambda e: None if self._syncing else setattr(s, "brightness_reference", e.new),
+                                    "value")
+        self.norm_lo.input.param.watch(partial(self._on_norm_range, "normalize_min_nm", self.norm_lo), "value")
+        self.norm_hi.input.param.watch(partial(self._on_norm_range, "normalize_max_nm", self.norm_hi), "value")
         s.param.watch(self._on_state, list(s.param))
         self._sync_widgets()
 
@@ -332,8 +344,32 @@ class FilmExplorer:
             self.observer.value = s.observer
             self.na_slider.value = s.na
             self.brightness.value = s.brightness
+            self._show_brightness()
         finally:
             self._syncing = False
+
+    def _show_brightness(self):
+        """The normalizing choices only while "brightest = white" is on, and a line saying what is white."""
+        s = self.state
+        was, self._syncing = self._syncing, True
+        try:
+            normalized = s.brightness == "normalized"
+            self.bright_ref.value = s.brightness_reference
+            self.bright_ref.visible = normalized
+            strip = normalized and s.brightness_reference == "strip"
+            for f in (self.norm_lo, self.norm_hi):
+                f.input.visible = strip
+            self.norm_lo.set_text(_fmt(s.normalize_min_nm, 2))
+            self.norm_hi.set_text(_fmt(min(s.normalize_max_nm, s.thickness_max_nm), 2))
+            self.bright_note.object = f"Brightness: {_esc(s.brightness_text())}."
+        finally:
+            self._syncing = was
+
+    def _on_norm_range(self, name, field, event):
+        if self._syncing:
+            return
+        self._guard(field, lambda: setattr(self.state, name, parse_number(event.new, "Normalizing range",
+                                                                          *THICKNESS_LIMITS_NM, "nm")))
 
     def _show_stack_name(self):
         """The preset list names a preset only while it is what is shown (not a link, a file, a library
@@ -485,7 +521,7 @@ class FilmExplorer:
     def _on_add_layer(self, _event=None):
         layers = self.state.layer_rows()
         layers.append({"material": "SiO2", "thickness_nm": 100.0})
-        if self._guard(self.file_msg, lambda: self.state.set_stack(layers=layers, swept_layer=len(layers) - 1)):
+        if self._guard(self.file_msg, lambda: self.state.set_stack(layers=layers)):      # the swept layer stays
             self._sync_widgets()
 
     def _on_db_search(self, event):
@@ -614,8 +650,11 @@ class FilmExplorer:
         if names & {"stack_json", "swept_layer", "thickness_max_nm", "polarization", "illuminant", "spd_json",
                     "observer", "na", "brightness"}:
             kinds |= {"map", "strip"}
-        if "angle_deg" in names:
+        if names & {"angle_deg", "brightness_reference", "normalize_min_nm", "normalize_max_nm"}:
             kinds.add("strip")
+        if names & {"angle_deg", "brightness", "brightness_reference", "normalize_min_nm", "normalize_max_nm",
+                    "thickness_max_nm"}:
+            self._show_brightness()
         self.refresh(kinds)
 
     # ------------------------------------------------------------------ computing
@@ -631,7 +670,8 @@ class FilmExplorer:
                 while self._dirty:
                     with self._lock:
                         todo, self._dirty = self._dirty, set()
-                    self._apply(self._compute(self._snapshot(), todo, self._scale, session_key(self)))
+                    self._apply(self._compute(self._snapshot(), todo, self._scale, session_key(self),
+                                              (self._map, self._strip)))
             finally:
                 self._running = False
             return
@@ -652,7 +692,7 @@ class FilmExplorer:
                         return
                 snap = self._snapshot()
                 result = await loop.run_in_executor(interactive_executor(), self._compute, snap, todo, self._scale,
-                                                    session)
+                                                    session, (self._map, self._strip))
                 post_to_page(doc, partial(self._apply, result))
         except Exception:  # never lose the session to one failed computation
             log.exception("film explorer computation failed")
@@ -663,20 +703,29 @@ class FilmExplorer:
         return ExplorerState(**{k: v for k, v in self.state.param.values().items() if k != "name"})
 
     @staticmethod
-    def _compute(s: ExplorerState, kinds, scale, session: str = ""):
+    def _compute(s: ExplorerState, kinds, scale, session: str = "", current=(None, None)):
+        """Results for ``kinds``; ``current`` = (map, strip) on the page, recoloured when the brightness
+        factor changes (with "brightest = white" on the strip, a new angle rescales the map)."""
         out = {"kinds": kinds, "state": s, "error": None}
         try:
             if not s.stack.layers:               # the bare substrate: a colour and a spectrum, nothing to sweep
                 out.update(bare=True, scale=1.0,
                            point=compute_point(s, 1.0, np.arange(*_spectrum_range(s), SPECTRUM_STEP_NM)))
                 return out
+            cm, strip = current
             if "map" in kinds:
                 with logged_job("colour_map", MAP_THICKNESS_POINTS * MAP_ANGLE_POINTS, session):
-                    out["map"] = compute_map(s, Limits.from_env().max_grid_points)
-                scale = out["map"].scale
+                    cm = compute_map(s, Limits.from_env().max_grid_points)
+            if "strip" in kinds or strip is None or strip.xyz is None:
+                strip = compute_strip(s, 1.0)
+                kinds = set(kinds) | {"strip"}
+            new_scale = brightness_scale(s, cm, strip)
+            if cm is not None and ("map" in kinds or cm.scale != new_scale):
+                out["map"] = rescaled_map(s, cm, new_scale)
+            if "strip" in kinds or new_scale != scale:
+                out["strip"] = rescaled_strip(s, strip, new_scale)
+            scale = new_scale
             out["scale"] = scale
-            if "strip" in kinds:
-                out["strip"] = compute_strip(s, scale)
             if "point" in kinds:
                 out["point"] = compute_point(s, scale, np.arange(*_spectrum_range(s), SPECTRUM_STEP_NM))
         except InputError as exc:
@@ -729,7 +778,7 @@ class FilmExplorer:
             self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer + 1} and viewing angle — "
                                        f"{s.illuminant}, {s.observer}° observer, {s.polarization}"
                                        + (f", cone NA {s.na:g}" if s.na else "")
-                                       + (", brightest = white" if s.brightness == "normalized" else ""))
+                                       + (f" — {s.brightness_text()}" if s.brightness == "normalized" else ""))
         if "strip" in result:
             self._strip = st = result["strip"]
             d = st.thickness_nm
@@ -844,7 +893,8 @@ class FilmExplorer:
             self.angle_slider, self.angle.view(), _label("Polarization"), self.polarization,
             self.illuminant, _label("Lamp spectrum (CSV: nm, power) → illuminant 'custom'"), self.spd_in,
             self.spd_msg.message, _label("Observer"), self.observer, self.na_slider, _label("Brightness"),
-            self.brightness,
+            self.brightness, self.bright_ref, field_pair(self.norm_lo, self.norm_hi, message_width=290),
+            self.bright_note,
             section("Downloads"),
             self.dl_csv, self.dl_map, self.dl_strip,
         ]
@@ -967,7 +1017,7 @@ def _stack_text(s: ExplorerState, swept_range: bool = False) -> str:
 
 def _light_text(s: ExplorerState) -> str:
     return (f"illuminant {s.illuminant}, CIE {s.observer}° observer, {s.polarization}"
-            + (f", cone NA {s.na:g}" if s.na else "") + (", brightest = white" if s.brightness == "normalized" else ""))
+            + (f", cone NA {s.na:g}" if s.na else "") + (f", {s.brightness_text()}" if s.brightness == "normalized" else ""))
 
 
 def _footer() -> str:
@@ -985,8 +1035,11 @@ DARK_SWATCH_L = 10.0
 
 
 def _dark_hint(pt, s: ExplorerState) -> str:
-    if pt.lab[0] >= DARK_SWATCH_L or s.brightness == "normalized":
+    if pt.lab[0] >= DARK_SWATCH_L:
         return ""
+    if s.brightness == "normalized":
+        return ("<div style='color:#555;font-size:12px'>Still dark: brighter colours lie in the reference; narrow "
+                "the thickness range under Brightness to a few % around this thickness to see its hue.</div>")
     return ("<div style='color:#555;font-size:12px'>Little light comes back (an anti-reflection stack?): choose "
             "“brightest = white” under Brightness to see its hue.</div>")
 
@@ -1018,5 +1071,6 @@ sRGB <span class="fg-hex">{pt.hex}</span><br>
 L*a*b* {L:.1f}, {a:.1f}, {b:.1f}<br>
 xy {pt.xy[0]:.4f}, {pt.xy[1]:.4f}<br>
 {gamut}
-{_dark_hint(pt, s)}<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer. Not certified metrology.</div>
+{_dark_hint(pt, s)}<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer; {_esc(s.brightness_text())}.
+Not certified metrology.</div>
 </div>"""

@@ -7,6 +7,7 @@ The state holds only valid values; a rejected input leaves it as it was.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import json
 import re
@@ -40,6 +41,10 @@ ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom"]
 DEFAULT_PRESET = "thermal_oxide_on_silicon"
 
 
+#: What "brightest = white" is measured on, with the words the page uses.
+BRIGHTNESS_REFERENCES = {"strip": "the strip at the current angle", "map": "the whole map"}
+
+
 #: Added to the name of a loaded stack once its layers, ambient or substrate are changed.
 EDITED_MARK = " (edited)"
 
@@ -59,7 +64,15 @@ class ExplorerState(param.Parameterized):
     observer = param.Selector(default="2", objects=["2", "10"], doc="CIE 1931 2° or CIE 1964 10° observer.")
     na = param.Number(default=0.0, bounds=(0.0, MAX_NA), doc="Numerical aperture of the viewing cone (0 = one direction).")
     brightness = param.Selector(default="absolute", objects=["absolute", "normalized"],
-                                doc="Absolute reflectance, or scaled so the brightest colour on the map is white.")
+                                doc="Absolute reflectance, or scaled so the brightest colour of a reference is white.")
+    brightness_reference = param.Selector(default="strip", objects=list(BRIGHTNESS_REFERENCES),
+                                          doc="With brightness 'normalized': 'strip' makes white the brightest colour "
+                                              "along the current angle's strip inside the normalizing thickness range; "
+                                              "'map' the brightest of the whole map.")
+    normalize_min_nm = param.Number(default=0.0, bounds=THICKNESS_LIMITS_NM,
+                                    doc="Start of the thickness range whose brightest colour is white ('strip'), nm.")
+    normalize_max_nm = param.Number(default=THICKNESS_LIMITS_NM[1], bounds=THICKNESS_LIMITS_NM,
+                                    doc="End of that range, nm (the strip ends at the map's end).")
     preset_name = param.String(default="", doc="Name of the loaded preset or file, marked once the stack is "
                                                "edited (a preset's name only while it is what is shown).")
 
@@ -182,6 +195,22 @@ class ExplorerState(param.Parameterized):
         """Everything the colour map depends on (the current thickness and angle do not)."""
         return (self.stack_json, self.swept_layer, self.thickness_max_nm, self.polarization, self.illuminant,
                 self.spd_json if self.illuminant == "custom" else "", self.observer, self.na, self.brightness)
+
+    def normalize_range_nm(self) -> tuple[float, float]:
+        """The thickness range (nm) whose brightest strip colour is white, cut to the map's range."""
+        lo = min(self.normalize_min_nm, self.normalize_max_nm)
+        hi = max(self.normalize_min_nm, self.normalize_max_nm)
+        return min(lo, self.thickness_max_nm), min(hi, self.thickness_max_nm)
+
+    def brightness_text(self) -> str:
+        """What the colours' brightness is relative to, in the page's words."""
+        if self.brightness == "absolute":
+            return "absolute reflectance (a perfect mirror is white)"
+        if self.brightness_reference == "map":
+            return "brightest colour of the whole map = white"
+        lo, hi = self.normalize_range_nm()
+        span = "" if (lo, hi) == (0.0, self.thickness_max_nm) else f", {lo:g}–{hi:g} nm"
+        return f"brightest colour along the {self.angle_deg:.1f}° strip{span} = white"
 
 
 @functools.lru_cache(maxsize=64)
@@ -328,6 +357,7 @@ class StripResult:
     rgb: np.ndarray            # (n, 3)
     lab: np.ndarray            # (n, 3)
     order_marks: np.ndarray    # thicknesses where a new fringe order starts
+    xyz: np.ndarray | None = None   # (n, 3) before brightness scaling
 
 
 def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
@@ -342,7 +372,41 @@ def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
                    polarization=s.polarization, na=s.na)
     rgb, lab, _ = scaled_colors(cm.xyz[:, 0, :], ill, s.observer, scale)
     marks = order_thicknesses_nm(stack, s.swept_layer, s.angle_deg, s.thickness_max_nm)
-    return StripResult(d, rgb, lab, marks)
+    return StripResult(d, rgb, lab, marks, cm.xyz[:, 0, :])
+
+
+def brightness_scale(s: ExplorerState, cm: ColorMap | None, strip: StripResult | None) -> float:
+    """The factor on every colour's XYZ: 1 (absolute), or 1/Y of the brightest colour of the reference
+    (:attr:`ExplorerState.brightness_reference`): the map, or the strip inside the normalizing range
+    (the strip point nearest the range when none lies in it)."""
+    if s.brightness == "absolute":
+        return 1.0
+    if s.brightness_reference == "map" or strip is None or strip.xyz is None:
+        if cm is None:
+            return 1.0
+        ymax = float(cm.xyz[..., 1].max()) if cm.xyz.size else 0.0
+        return 1.0 / ymax if ymax > 0 else 1.0
+    lo, hi = s.normalize_range_nm()
+    d = strip.thickness_nm
+    inside = (d >= lo) & (d <= hi)
+    if not inside.any():
+        inside = np.abs(d - 0.5 * (lo + hi)) == np.abs(d - 0.5 * (lo + hi)).min()
+    ymax = float(strip.xyz[inside, 1].max())
+    return 1.0 / ymax if ymax > 0 else 1.0
+
+
+def rescaled_map(s: ExplorerState, cm: ColorMap, scale: float) -> ColorMap:
+    """``cm`` with its colours at brightness ``scale`` (no optics recomputed)."""
+    if scale == cm.scale:
+        return cm
+    rgb, lab, oog = scaled_colors(cm.xyz, s.illuminant_spec(), s.observer, scale)
+    return dataclasses.replace(cm, rgb=rgb, lab=lab, out_of_gamut=oog, scale=scale)
+
+
+def rescaled_strip(s: ExplorerState, strip: StripResult, scale: float) -> StripResult:
+    """``strip`` with its colours at brightness ``scale``."""
+    rgb, lab, _ = scaled_colors(strip.xyz, s.illuminant_spec(), s.observer, scale)
+    return dataclasses.replace(strip, rgb=rgb, lab=lab)
 
 
 #: Digits, then groups of exactly three digits after a comma or a space (a thousands separator), and
