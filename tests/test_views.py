@@ -133,7 +133,7 @@ def test_save_and_load_round_trip():
 def test_layer_editing():
     ex = FilmExplorer()
     ex._on_add_layer()
-    assert len(ex.state.layer_rows()) == 2 and ex.state.swept_layer == 1
+    assert len(ex.state.layer_rows()) == 2 and ex.state.swept_layer == 0        # the swept layer stays
     ex._on_layer_action(1, "dup")
     assert len(ex.state.layer_rows()) == 3
     ex._on_layer_action(2, "up")
