@@ -211,7 +211,7 @@ class ColourToThickness:
         self.tmap_src = ColumnDataSource(dict(image=[], de=[], x=[], y=[], dw=[], dh=[]))
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
-                    **_image_ranges(),
+                    css_classes=["fg-tmap"], **_image_ranges(),
                     title="Thickness map (grey: no match; red: stray order; pale: order not decided by colour)")
         img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
         self.stray_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
