@@ -30,13 +30,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .color import spectrum_to_xyz, xyz_to_lab, _linear_srgb, GAMUT_TOLERANCE
+from .color import (spectrum_to_xyz, xyz_to_lab, _linear_srgb, GAMUT_TOLERANCE, delta_e_2000,
+                    luminous_reflectance)
 from .errors import InputError, WavelengthRangeError, require_finite
-from .stack import MAX_ANGLE_DEG, Stack, _Optics, sweep, _check_layer_index
+from .stack import MAX_ANGLE_DEG, Layer, Stack, _Optics, sweep, _check_layer_index
 
 __all__ = ["ColorMap", "color_map", "colour_wavelengths_nm", "fringe_path_nm", "colour_map_points", "SAMPLES_PER_FRINGE", "cone_rays", "cone_reflectance", "interference_order",
            "order_thicknesses_nm", "colour_band_nm", "DEFAULT_BAND_NM", "MAX_NA", "point_color",
-           "scaled_colors", "PointColor", "BRIGHTNESS"]
+           "scaled_colors", "PointColor", "BRIGHTNESS", "band_average", "scaled_stack", "tolerance_run",
+           "ToleranceResult", "MAX_TOLERANCE_TRIALS", "MAX_TOLERANCE_PCT"]
 
 #: The colour band used by default: CIE tables are significant from 380 to 780 nm.
 DEFAULT_BAND_NM = (380.0, 780.0)
@@ -409,3 +411,96 @@ def order_thicknesses_nm(stack: Stack, layer: int, angle_deg: float, thickness_m
     per_wave = 1.0 / float(interference_order(stack, layer, 1.0, angle_deg, wavelength_nm))
     m = np.arange(1, int(thickness_max_nm / per_wave) + 1)
     return m * per_wave
+
+
+
+def scaled_stack(stack: Stack, factors) -> Stack:
+    """A copy of ``stack`` with each layer's thickness times its factor (one factor, or one per layer)."""
+    f = np.broadcast_to(np.asarray(factors, dtype=float), (len(stack.layers),))
+    if np.any(~np.isfinite(f)) or np.any(f < 0):
+        raise InputError("Thickness factors must be finite and >= 0.")
+    layers = [Layer(l.material, l.thickness_nm * float(k)) for l, k in zip(stack.layers, f)]
+    return Stack(layers, stack.substrate, stack.ambient, stack.substrate_thickness_mm)
+
+
+def band_average(stack: Stack, band_nm, angle_deg: float = 0.0, na: float = 0.0,
+                 polarization: str = "unpolarized") -> tuple[float, float]:
+    """Mean reflectance and transmittance (fractions) over a wavelength band, each wavelength weighted equally.
+
+    Sampled every 1 nm, or finer where the stack's fringes need it (SAMPLES_PER_FRINGE per fringe),
+    averaged by the trapezoid rule.
+
+    Parameters
+    ----------
+    band_nm : (lo, hi) in nm, lo < hi, inside the materials' data.
+    """
+    lo, hi = (float(x) for x in band_nm)
+    if not (np.isfinite(lo) and np.isfinite(hi)) or hi <= lo:
+        raise InputError(f"A band is two wavelengths lo < hi in nm; got {lo:g}-{hi:g}.")
+    data_lo, data_hi = stack.wavelength_range_nm()
+    if lo < data_lo or hi > data_hi:
+        raise WavelengthRangeError(f"The band {lo:g}-{hi:g} nm leaves the materials' data ({data_lo:g}-"
+                                   f"{data_hi:g} nm); choose a band inside it.")
+    wl = np.linspace(lo, hi, 64)
+    path = float(np.max(_fringe_paths(stack, wl)))
+    step = min(1.0, lo * lo / path / SAMPLES_PER_FRINGE) if path > 0 else 1.0
+    n = int(min(max(np.ceil((hi - lo) / step) + 1, 2), MAX_COLOUR_SAMPLES))
+    wl = np.linspace(lo, hi, n)
+    R = cone_reflectance(stack, wl, angle_deg, na, polarization)
+    T = cone_reflectance(stack, wl, angle_deg, na, polarization, "transmittance")
+    return (float(np.trapezoid(R, wl) / (hi - lo)), float(np.trapezoid(T, wl) / (hi - lo)))
+
+
+#: Most trials of a tolerance run (bounds its time: about a millisecond each for a thin stack).
+MAX_TOLERANCE_TRIALS = 2000
+#: Largest thickness tolerance accepted, ± % of each layer.
+MAX_TOLERANCE_PCT = 50.0
+
+
+@dataclass(frozen=True)
+class ToleranceResult:
+    """Colours of a stack whose layer thicknesses each vary at random within ± ``tolerance_pct``.
+
+    Arrays run over trials: ``factors`` (N, layers), ``lab`` and ``rgb`` (N, 3), ``delta_e`` (N,) CIEDE2000
+    from the nominal colour, ``luminous`` (N,) luminous reflectance (D65, V(λ)) as fractions.
+    """
+
+    tolerance_pct: float
+    seed: int
+    factors: np.ndarray
+    lab: np.ndarray
+    rgb: np.ndarray
+    delta_e: np.ndarray
+    luminous: np.ndarray
+    nominal_lab: np.ndarray
+    nominal_luminous: float
+
+
+def tolerance_run(stack: Stack, tolerance_pct: float, trials: int = 200, seed: int = 1, *, angle_deg: float = 0.0,
+                  na: float = 0.0, polarization: str = "unpolarized", illuminant="D65", observer="2",
+                  scale: float = 1.0) -> ToleranceResult:
+    """Monte-Carlo tolerance run: every layer's thickness times 1 + u·tolerance/100, u uniform in [-1, 1],
+    drawn independently per layer and trial from a generator seeded with ``seed`` (the same run every time).
+
+    ``scale`` is the brightness factor of the colours (as on the page); ΔE00 is taken at that brightness.
+
+    References
+    ----------
+    CIE 142-2001 (CIEDE2000); ISO 13666:2019 (luminous reflectance).
+    """
+    tol = float(require_finite("tolerance_pct", tolerance_pct, minimum=0.0, maximum=MAX_TOLERANCE_PCT, unit="%"))
+    if not isinstance(trials, (int, np.integer)) or not 1 <= trials <= MAX_TOLERANCE_TRIALS:
+        raise InputError(f"trials is a whole number from 1 to {MAX_TOLERANCE_TRIALS}; got {trials!r}.")
+    if not stack.layers:
+        raise InputError("The stack has no layers to vary; add a layer first.")
+    rng = np.random.default_rng(int(seed))
+    factors = 1.0 + tol / 100.0 * rng.uniform(-1.0, 1.0, (int(trials), len(stack.layers)))
+    wl = colour_wavelengths_nm(scaled_stack(stack, 1.0 + tol / 100.0))
+    R0 = cone_reflectance(stack, wl, angle_deg, na, polarization)
+    R = np.stack([cone_reflectance(scaled_stack(stack, f), wl, angle_deg, na, polarization) for f in factors])
+    xyz0 = spectrum_to_xyz(R0, wl, illuminant, observer)
+    xyz = spectrum_to_xyz(R, wl, illuminant, observer)
+    _, lab0, _ = scaled_colors(xyz0, illuminant, observer, scale)
+    rgb, lab, _ = scaled_colors(xyz, illuminant, observer, scale)
+    return ToleranceResult(tol, int(seed), factors, lab, rgb, delta_e_2000(lab, lab0[None, :]),
+                           luminous_reflectance(R, wl), lab0, float(luminous_reflectance(R0, wl)))

@@ -43,7 +43,7 @@ with warnings.catch_warnings():
 __all__ = [
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "srgb_out_of_gamut", "delta_e_2000",
     "illuminant_white_xyz", "spectra_to_srgb", "srgb_to_hex", "ILLUMINANTS", "OBSERVERS",
-    "color_weights", "srgb_to_xyz", "lab_to_xyz",
+    "color_weights", "srgb_to_xyz", "lab_to_xyz", "luminous_reflectance", "luminous_weights",
 ]
 
 #: Illuminant names accepted (aliases map to colour-science's keys).
@@ -146,17 +146,15 @@ def _sample_weights(wavelength_nm: np.ndarray, table: np.ndarray) -> np.ndarray:
     fine = np.arange(360, 831, dtype=float)
     n = wavelength_nm.size
     if n == 1:
-        W = np.zeros((1, 3))
-        W[0] = table[np.argmin(np.abs(fine - wavelength_nm[0]))]
-        return W
+        return table[np.argmin(np.abs(fine - wavelength_nm[0]))][None, :].astype(float)
     G = np.union1d(fine, wavelength_nm)
-    S = np.stack([np.interp(G, fine, table[:, k]) for k in range(3)], axis=1)
+    S = np.stack([np.interp(G, fine, table[:, k]) for k in range(table.shape[1])], axis=1)
     share = np.empty(G.size)
     share[1:-1] = 0.5 * (G[2:] - G[:-2])
     share[0], share[-1] = G[1] - G[0], G[-1] - G[-2]
     j = np.clip(np.searchsorted(wavelength_nm, G, side="right") - 1, 0, n - 2)
     f = np.clip((G - wavelength_nm[j]) / (wavelength_nm[j + 1] - wavelength_nm[j]), 0.0, 1.0)
-    W = np.zeros((n, 3))
+    W = np.zeros((n, table.shape[1]))
     np.add.at(W, j, ((1.0 - f) * share)[:, None] * S)
     np.add.at(W, j + 1, (f * share)[:, None] * S)
     return W
@@ -382,6 +380,49 @@ def delta_e_2000(lab1, lab2) -> np.ndarray:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return np.asarray(colour.difference.delta_E_CIE2000(a, b), dtype=float)
+
+
+#: The photopic luminous efficiency function V(λ) used for luminous reflectance (colour-science's table).
+PHOTOPIC_LEF = "CIE 1924 Photopic Standard Observer"
+
+
+@functools.lru_cache(maxsize=32)
+def _luminous_cached(wl_bytes: bytes, illum_key: str, spd_bytes: bytes) -> np.ndarray:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        V = reshape_sd(colour.colorimetry.SDS_LEFS_PHOTOPIC[PHOTOPIC_LEF], _FINE).values
+    w = _sample_weights(np.frombuffer(wl_bytes), (np.frombuffer(spd_bytes) * np.asarray(V, float))[:, None])[:, 0]
+    w = w / w.sum()
+    w.setflags(write=False)
+    return w
+
+
+def luminous_weights(wavelength_nm, illuminant="D65") -> np.ndarray:
+    """(n_wavelength,) weights that turn a sampled R (or T) into its luminous value (weights sum to 1)."""
+    wl = require_finite("wavelength_nm", wavelength_nm, unit="nm").ravel()
+    color_weights(wl, illuminant)                   # the same checks of the grid and the lamp
+    key, spd = _illuminant_values(illuminant)
+    return _luminous_cached(wl.tobytes(), key, spd.tobytes())
+
+
+def luminous_reflectance(R, wavelength_nm, illuminant="D65") -> np.ndarray:
+    """Luminous reflectance (or transmittance) ρ_v = ∫ R S V dλ / ∫ S V dλ, as a fraction; shape R.shape[:-1].
+
+    With ``illuminant="D65"`` this is the luminous reflectance of spectacle-lens coatings: V(λ) is the
+    CIE 1924 photopic luminous efficiency, S the CIE D65 spectrum (both from colour-science), over the
+    samples' band with the end values held beyond it.
+
+    References
+    ----------
+    ISO 13666:2019, Ophthalmic optics — Vocabulary (luminous reflectance, weighting V(λ)·S_D65(λ));
+    CIE 015:2018 (V(λ), D65).
+    """
+    w = luminous_weights(wavelength_nm, illuminant)
+    R = np.asarray(R, dtype=float)
+    if R.shape[-1:] != w.shape:
+        raise InputError(f"The spectra's last axis has {R.shape[-1] if R.ndim else 0} values but there are "
+                         f"{w.size} wavelengths; they must match.")
+    return R @ w
 
 
 @functools.lru_cache(maxsize=2)

@@ -26,6 +26,7 @@ from bokeh.events import Tap
 from bokeh.plotting import figure
 
 from physics import InputError, search_materials, list_materials
+from physics.color import srgb_to_hex
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
@@ -35,7 +36,7 @@ from .limits import Limits, interactive_executor, logged_job, post_to_page, serv
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
                     parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES, BRIGHTNESS_REFERENCES,
-                    brightness_scale, rescaled_map, rescaled_strip)
+                    brightness_scale, rescaled_map, rescaled_strip, compute_tolerance, SPECTRUM_VIEWS)
 
 #: Slider read-outs as the typed fields write numbers: no trailing zeros (numbro format: 101.5, 100).
 SLIDER_FORMAT = "0.[00]"
@@ -45,6 +46,15 @@ log = logging.getLogger("fringegauge")
 SLIDER_DIGITS = 6
 #: Wavelength step of the plotted spectrum (nm); the CSV download uses 1 nm.
 SPECTRUM_STEP_NM = 2.0
+#: Lowest reflectance on the log view (%): a perfect AR zero would otherwise have no place on a log axis.
+LOG_FLOOR_PCT = 1e-4
+#: The zoomed view's top is the highest R times this (room above the curve), and at least MIN_ZOOM_PCT.
+ZOOM_HEADROOM = 1.15
+MIN_ZOOM_PCT = 0.01
+#: The band the zoomed view fits its range to (nm): the visible, where a coating's residual matters.
+ZOOM_BAND_NM = (380.0, 780.0)
+#: Trials' colours shown as small swatches beside a tolerance run's figures.
+TOLERANCE_SWATCHES = 24
 
 CAUTIONS = (
     "**Cautions.** Computed colours are estimates, not certified metrology: confirm thickness "
@@ -216,6 +226,17 @@ class FilmExplorer:
         self.norm_hi = Field("to (nm)", width=140)
         self.bright_note = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#555"},
                                         css_classes=["fg-bright-note"])
+        self.stack_scale = Field("Whole-stack thickness error (%)", width=200, css="fg-stack-scale")
+        self.band_lo = Field("Band mean from (nm)", width=140)
+        self.band_hi = Field("to (nm)", width=140)
+        self.tol_pct = Field("Tolerance ± % per layer", width=140)
+        self.tol_trials = Field("Trials", width=140)
+        self.tol_run = pn.widgets.Button(label="Run tolerance", color="default", width=140, margin=(4, 5),
+                                         css_classes=["fg-tol-run"])
+        self.tol_out = pn.pane.HTML("", margin=(4, 5), css_classes=["fg-tolerance"], sizing_mode="stretch_width")
+        self.spec_view = pn.widgets.RadioButtonGroup(options={v: k for k, v in SPECTRUM_VIEWS.items()},
+                                                     value=s.spectrum_view, margin=(2, 5), color="default")
+        self.readouts = pn.pane.HTML("", margin=(2, 5), css_classes=["fg-readouts"], sizing_mode="stretch_width")
         self.dl_csv = pn.widgets.FileDownload(callback=self._spectrum_csv, filename="spectrum.csv",
                                               label="Spectrum (.csv)", width=300, margin=(2, 5),
                                               css_classes=["fg-dl-csv"])
@@ -234,7 +255,8 @@ class FilmExplorer:
         tools = "pan,wheel_zoom,box_zoom,reset,save"
         self.spec_src = ColumnDataSource(dict(wl=[], R=[], Rs=[], Rp=[], T=[], R_low=[], R_high=[]))
         p = figure(height=250, sizing_mode="stretch_width", tools=tools, title="Spectrum at the current point",
-                   x_axis_label="wavelength (nm)", y_axis_label="reflectance, transmittance (%)")
+                   x_axis_label="wavelength (nm)", y_axis_label="reflectance, transmittance (%)",
+                   x_range=Range1d(380, 780), y_range=Range1d(0, 100))
         self.band_R = p.varea("wl", "R_low", "R_high", source=self.spec_src, fill_color="#1b1b1b", fill_alpha=0.15,
                               legend_label="R fringe range", visible=False)
         self.line_R = p.line("wl", "R", source=self.spec_src, line_width=2.5, color="#1b1b1b", legend_label="R")
@@ -254,6 +276,20 @@ class FilmExplorer:
                               tooltips=[("λ", "@wl{0} nm"), ("R", "@R{0.00} %"), ("R s", "@Rs{0.00} %"),
                                         ("R p", "@Rp{0.00} %"), ("T", "@T{0.00} %")]))
         self.spec_fig = p
+        lg = figure(height=250, sizing_mode="stretch_width", tools=tools, title="Reflectance, log scale",
+                    x_axis_label="wavelength (nm)", y_axis_label="reflectance (%)", y_axis_type="log",
+                    x_range=p.x_range, y_range=Range1d(LOG_FLOOR_PCT, 100), visible=False)
+        self.log_src = ColumnDataSource(dict(wl=[], R=[], Rs=[], Rp=[]))
+        lg.line("wl", "R", source=self.log_src, line_width=2.5, color="#1b1b1b", legend_label="R")
+        self.log_Rs = lg.line("wl", "Rs", source=self.log_src, line_width=1.2, color="#1f6fb4", line_dash="dashed",
+                              legend_label="R s")
+        self.log_Rp = lg.line("wl", "Rp", source=self.log_src, line_width=1.2, color="#c0392b", line_dash="dotted",
+                              legend_label="R p")
+        lg.legend.location = "bottom_right"
+        lg.legend.click_policy = "hide"
+        lg.legend.label_text_font_size = "11px"
+        lg.add_tools(HoverTool(mode="vline", renderers=lg.renderers[:1], tooltips=[("λ", "@wl{0} nm"), ("R", "@R{0.000} %")]))
+        self.log_fig = lg
 
         self.map_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], x=[], y=[], dw=[], dh=[]))
         m = figure(height=330, sizing_mode="stretch_width", tools=tools, title="Colour vs thickness and viewing angle",
@@ -313,6 +349,16 @@ class FilmExplorer:
         self.observer.param.watch(lambda e: setattr(s, "observer", e.new), "value")
         self.na_slider.param.watch(lambda e: setattr(s, "na", round(float(e.new), 3)), "value")
         self.brightness.param.watch(lambda e: setattr(s, "brightness", e.new), "value")
+        self.spec_view.param.watch(lambda e: None if self._syncing else setattr(s, "spectrum_view", e.new), "value")
+        self.stack_scale.input.param.watch(partial(self._on_number, "thickness_scale_pct", self.stack_scale,
+                                                   "Whole-stack thickness error", "%"), "value")
+        self.band_lo.input.param.watch(partial(self._on_number, "band_min_nm", self.band_lo, "Band start", "nm"), "value")
+        self.band_hi.input.param.watch(partial(self._on_number, "band_max_nm", self.band_hi, "Band end", "nm"), "value")
+        self.tol_pct.input.param.watch(partial(self._on_number, "tolerance_pct", self.tol_pct, "Tolerance", "%"),
+                                       "value")
+        self.tol_trials.input.param.watch(partial(self._on_number, "tolerance_trials", self.tol_trials, "Trials", ""),
+                                          "value")
+        self.tol_run.on_click(self.run_tolerance)
         self.bright_ref.param.watch(lambda e: None if self._syncing else setattr(s, "brightness_reference", e.new),
                                     "value")
         self.norm_lo.input.param.watch(partial(self._on_norm_range, "normalize_min_nm", self.norm_lo), "value")
@@ -345,6 +391,12 @@ class FilmExplorer:
             self.na_slider.value = s.na
             self.brightness.value = s.brightness
             self._show_brightness()
+            self.spec_view.value = s.spectrum_view
+            self.stack_scale.set_text(_fmt(s.thickness_scale_pct, 2))
+            self.band_lo.set_text(_fmt(s.band_min_nm, 1))
+            self.band_hi.set_text(_fmt(s.band_max_nm, 1))
+            self.tol_pct.set_text(_fmt(s.tolerance_pct, 2))
+            self.tol_trials.set_text(str(s.tolerance_trials))
         finally:
             self._syncing = False
 
@@ -364,6 +416,55 @@ class FilmExplorer:
             self.bright_note.object = f"Brightness: {_esc(s.brightness_text())}."
         finally:
             self._syncing = was
+
+    def _on_number(self, name, field, label, unit, event):
+        """A typed number for state parameter ``name``, checked against its declared bounds."""
+        if self._syncing:
+            return
+        lo, hi = self.state.param[name].bounds
+
+        def apply():
+            value = parse_number(event.new, label, lo, hi, unit)
+            if isinstance(self.state.param[name], param.Integer):
+                if value != int(value):
+                    raise InputError(f"{label}: type a whole number from {lo:g} to {hi:g}.")
+                value = int(value)
+            setattr(self.state, name, value)
+        self._guard(field, apply)
+
+    # ------------------------------------------------------------------ tolerance run
+    def run_tolerance(self, _event=None):
+        """Run the tolerance Monte-Carlo on the stack as shown; off the event loop when served."""
+        snap, scale = self._snapshot(), self._scale
+        if not served():
+            self._show_tolerance(snap, *self._tolerance(snap, scale))
+            return
+        self.tol_run.disabled = True
+        self.tol_out.object = "<i>running the tolerance trials…</i>"
+        doc = pn.state.curdoc
+
+        async def job():
+            loop = asyncio.get_running_loop()
+            try:
+                out = await loop.run_in_executor(interactive_executor(), self._tolerance, snap, scale)
+            except Exception:                          # never lose the session to one failed run
+                log.exception("tolerance run failed")
+                out = (None, "The tolerance run failed because of an unexpected error (logged on the server).")
+            post_to_page(doc, partial(self._show_tolerance, snap, *out))
+        pn.state.execute(job)
+
+    @staticmethod
+    def _tolerance(snap, scale):
+        try:
+            return compute_tolerance(snap, scale), ""
+        except InputError as exc:
+            return None, str(exc)
+
+    def _show_tolerance(self, snap, result, error=""):
+        self.tol_run.disabled = False
+        self._tolerance_for = snap.param.values()
+        self.tol_out.object = (f'<div class="fg-error" role="alert">{_esc(error)}</div>' if error
+                               else _tolerance_html(result, snap))
 
     def _on_norm_range(self, name, field, event):
         if self._syncing:
@@ -655,6 +756,11 @@ class FilmExplorer:
         if names & {"angle_deg", "brightness", "brightness_reference", "normalize_min_nm", "normalize_max_nm",
                     "thickness_max_nm"}:
             self._show_brightness()
+        if names & {"stack_json", "swept_layer", "thickness_scale_pct"}:
+            kinds |= {"map", "strip"}
+        if getattr(self, "_tolerance_for", None) and self.tol_out.object and "fg-tol-stale" not in self.tol_out.object:
+            self.tol_out.object += ("<div class='fg-tol-stale' style='color:#8a5a00;font-size:12px'>The view has "
+                                    "changed since this run: run it again.</div>")
         self.refresh(kinds)
 
     # ------------------------------------------------------------------ computing
@@ -800,6 +906,8 @@ class FilmExplorer:
             self.line_T.visible = pt.T is not None
             self.line_Rs.visible = self.line_Rp.visible = s.polarization == "unpolarized"
             self.band_R.visible = averaged
+            self._show_spectrum_view(pt, s)
+            self.readouts.object = _readouts_html(pt, s)
             self.spec_fig.title.text = ((f"Spectrum of the bare substrate at {s.angle_deg:.1f}°" if result.get("bare")
                                          else f"Spectrum at {s.thickness_nm:.1f} nm, {s.angle_deg:.1f}°")
                                         + (f", cone NA {s.na:g}" if s.na else "")
@@ -810,6 +918,34 @@ class FilmExplorer:
             self.vspan.location = s.thickness_nm
             self.hspan.location = s.angle_deg
             self.strip_mark.location = s.thickness_nm
+
+    def _show_spectrum_view(self, pt, s: ExplorerState):
+        """Linear 0-100 % (R and T), R alone on a range fitted to it, or R on a log axis."""
+        view = s.spectrum_view
+        self.spec_fig.visible = view != "log"
+        self.log_fig.visible = view == "log"
+        lo, hi = float(pt.wavelength_nm[0]), float(pt.wavelength_nm[-1])
+        if hi > lo:
+            self.spec_fig.x_range.update(start=lo, end=hi)
+        top = pt.R_high if pt.R_low is not None else pt.R
+        if view == "zoom":
+            self.line_T.visible = False
+            visible = (pt.wavelength_nm >= ZOOM_BAND_NM[0]) & (pt.wavelength_nm <= ZOOM_BAND_NM[1])
+            seen = top[visible] if visible.any() else top
+            peak = float(np.nanmax(seen)) * 100 if seen.size else 1.0
+            self.spec_fig.y_range.update(start=0.0, end=max(peak * ZOOM_HEADROOM, MIN_ZOOM_PCT))
+            self.spec_fig.yaxis.axis_label = f"reflectance (%), fitted to {ZOOM_BAND_NM[0]:g}–{ZOOM_BAND_NM[1]:g} nm"
+        else:
+            self.spec_fig.y_range.update(start=0.0, end=100.0)
+            self.spec_fig.yaxis.axis_label = "reflectance, transmittance (%)"
+        if view == "log":
+            floor = lambda a: np.maximum(a * 100, LOG_FLOOR_PCT)      # noqa: E731
+            self.log_src.data = dict(wl=pt.wavelength_nm, R=floor(pt.R), Rs=floor(pt.Rs), Rp=floor(pt.Rp))
+            self.log_Rs.visible = self.log_Rp.visible = s.polarization == "unpolarized"
+            vals = floor(pt.R)
+            self.log_fig.y_range.update(start=max(float(vals.min()) / 2, LOG_FLOOR_PCT),
+                                        end=min(float(vals.max()) * 2, 100.0) if vals.size else 100.0)
+            self.log_fig.title.text = self.spec_fig.title.text + " — log scale"
 
     def _clear_map_and_strip(self):
         """Nothing to sweep: the map and strip show nothing rather than the last stack's colours."""
@@ -838,6 +974,11 @@ class FilmExplorer:
         if pt.R_low is not None:
             lines.append(f"# fringes every {pt.fringe_spacing_nm:.3g} nm at 550 nm are finer than the 1 nm rows: each "
                          "row is the average over 1 nm centred on its wavelength")
+        lines.append(f"# luminous R (ISO 13666, D65 x V): {pt.luminous_R * 100:.4g} %; luminous T: "
+                     f"{pt.luminous_T * 100:.4g} %; mean over {s.band_min_nm:g}-{s.band_max_nm:g} nm: R "
+                     f"{pt.band_R * 100:.4g} %, T {pt.band_T * 100:.4g} %")
+        if s.thickness_scale_pct:
+            lines.append(f"# every layer at {s.thickness_factor * 100:g} % of its nominal thickness")
         if pt.T is None:
             lines.append("# T_percent is empty: the substrate absorbs, so no light comes through the stack")
         lines.append("wavelength_nm,R_percent,R_s_percent,R_p_percent,T_percent")
@@ -895,13 +1036,21 @@ class FilmExplorer:
             self.spd_msg.message, _label("Observer"), self.observer, self.na_slider, _label("Brightness"),
             self.brightness, self.bright_ref, field_pair(self.norm_lo, self.norm_hi, message_width=290),
             self.bright_note,
+            section("Coating checks"),
+            self.stack_scale.view(), field_pair(self.band_lo, self.band_hi, message_width=290),
+            field_pair(self.tol_pct, self.tol_trials, message_width=290), self.tol_run,
             section("Downloads"),
             self.dl_csv, self.dl_map, self.dl_strip,
         ]
         sidebar = pn.Column(heading, width=330, scroll=True, sizing_mode="stretch_height", margin=(0, 5),
                             styles={"background": "#f6f6f4", "border-right": "1px solid #ddd"})
         views = [
-            pn.Row(self.swatch, pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
+            pn.Row(self.swatch, pn.Column(pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"),
+                                          pn.pane.Bokeh(self.log_fig, sizing_mode="stretch_width"),
+                                          pn.Row(self.spec_view, self.readouts, margin=0, sizing_mode="stretch_width"),
+                                          sizing_mode="stretch_width", margin=0),
+                   sizing_mode="stretch_width"),
+            self.tol_out,
             pn.pane.HTML("Tap the map to set thickness and angle.", margin=(4, 5, 0, 5),
                          styles={"font-size": "12px", "color": "#555"}),
             pn.pane.Bokeh(self.map_fig, sizing_mode="stretch_width"),
@@ -1074,3 +1223,33 @@ xy {pt.xy[0]:.4f}, {pt.xy[1]:.4f}<br>
 {_dark_hint(pt, s)}<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer; {_esc(s.brightness_text())}.
 Not certified metrology.</div>
 </div>"""
+
+
+def _pct(x: float, digits: int = 3) -> str:
+    return "—" if not np.isfinite(x) else f"{x * 100:.{digits}g} %"
+
+
+def _readouts_html(pt, s: ExplorerState) -> str:
+    """Luminous R and T (ISO 13666: D65 × V(λ)) and the band means, on one line under the spectrum."""
+    band = (f"mean over {s.band_min_nm:g}–{s.band_max_nm:g} nm: R {_pct(pt.band_R)}, T {_pct(pt.band_T)}"
+            if not pt.band_error else f"band mean: {_esc(pt.band_error)}")
+    scale = (f" · whole stack at {s.thickness_factor * 100:g} % of nominal thickness"
+             if s.thickness_scale_pct else "")
+    return (f"<div class='fg-swatch-values' style='font-size:12px'>luminous R {_pct(pt.luminous_R)}, "
+            f"luminous T {_pct(pt.luminous_T)} (ISO 13666: D65 × V(λ)) · {band}{scale}</div>")
+
+
+def _tolerance_html(r, s: ExplorerState) -> str:
+    """A tolerance run's spread: ΔE00 from nominal and luminous reflectance, and some trials' colours."""
+    de, lum = r.delta_e, r.luminous
+    p95 = float(np.percentile(de, 95))
+    boxes = "".join(f"<span title='ΔE00 {d:.2f}' style='display:inline-block;width:16px;height:16px;margin:1px;"
+                    f"border:1px solid #888;background:{srgb_to_hex(c)}'></span>"
+                    for c, d in zip(r.rgb[:TOLERANCE_SWATCHES], de[:TOLERANCE_SWATCHES]))
+    return (f"<div class='fg-swatch-values' style='font-size:12px'><b>Tolerance run</b>: {de.size} stacks, each "
+            f"layer's thickness uniform within ±{r.tolerance_pct:g} % (seed {r.seed}), {s.angle_deg:.1f}°, "
+            f"{s.illuminant}.<br>ΔE00 from nominal: median {np.median(de):.2f}, 95 % of trials below {p95:.2f}, "
+            f"largest {de.max():.2f}<br>luminous R: nominal {_pct(r.nominal_luminous)}, range "
+            f"{_pct(float(lum.min()))} – {_pct(float(lum.max()))}, standard deviation {_pct(float(lum.std()), 2)}"
+            f"<br>{boxes}<br><span style='color:#666'>Colours at the page's brightness; a model of random "
+            "thickness errors, not a yield prediction.</span></div>")

@@ -17,6 +17,8 @@ import numpy as np
 import param
 
 from physics import InputError, Layer, Stack, material
+from physics.appearance import (MAX_TOLERANCE_PCT, ToleranceResult, band_average, scaled_stack, tolerance_run)
+from physics.color import luminous_reflectance
 from physics.appearance import (ColorMap, color_map, colour_band_nm, colour_map_points, colour_wavelengths_nm, fringe_path_nm, cone_reflectance, interference_order,
                                 order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
 from physics.color import srgb_to_hex, user_spd_on_fine_grid
@@ -40,6 +42,17 @@ STRIP_POINTS = 600
 ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom"]
 DEFAULT_PRESET = "thermal_oxide_on_silicon"
 
+
+#: Largest whole-stack thickness error on the page, ± % (a deposition-rate error of a few % is common).
+MAX_STACK_SCALE_PCT = 50.0
+#: Default band of the band-average read-out, nm: where the eye is sensitive enough for a visible coating.
+DEFAULT_BAND_NM = (420.0, 680.0)
+#: Most trials of a tolerance run from the page (about 3 s for a 12-layer stack) and its fixed seed.
+MAX_PAGE_TRIALS = 1000
+TOLERANCE_SEED = 20261203
+
+#: The spectrum plot's views and the words the page gives them.
+SPECTRUM_VIEWS = {"linear": "R and T, 0–100 %", "zoom": "R only, zoomed", "log": "R, log scale"}
 
 #: What "brightest = white" is measured on, with the words the page uses.
 BRIGHTNESS_REFERENCES = {"strip": "the strip at the current angle", "map": "the whole map"}
@@ -73,6 +86,20 @@ class ExplorerState(param.Parameterized):
                                     doc="Start of the thickness range whose brightest colour is white ('strip'), nm.")
     normalize_max_nm = param.Number(default=THICKNESS_LIMITS_NM[1], bounds=THICKNESS_LIMITS_NM,
                                     doc="End of that range, nm (the strip ends at the map's end).")
+    thickness_scale_pct = param.Number(default=0.0, bounds=(-MAX_STACK_SCALE_PCT, MAX_STACK_SCALE_PCT),
+                                       doc="Whole-stack thickness error, % applied to every layer (a deposition-rate "
+                                           "error); the map's thickness axis stays the nominal thickness.")
+    band_min_nm = param.Number(default=DEFAULT_BAND_NM[0], bounds=(200.0, 3000.0),
+                               doc="Start of the band whose mean R and T are read out, nm.")
+    band_max_nm = param.Number(default=DEFAULT_BAND_NM[1], bounds=(200.0, 3000.0),
+                               doc="End of that band, nm.")
+    spectrum_view = param.Selector(default="linear", objects=list(SPECTRUM_VIEWS),
+                                   doc="Spectrum plot: R and T on 0-100 %, R alone scaled to its values, or R on a "
+                                       "log scale.")
+    tolerance_pct = param.Number(default=2.0, bounds=(0.0, MAX_TOLERANCE_PCT),
+                                 doc="Tolerance run: each layer's thickness varies at random within ± this %.")
+    tolerance_trials = param.Integer(default=200, bounds=(10, MAX_PAGE_TRIALS),
+                                     doc="Tolerance run: number of random stacks (seeded: the same every run).")
     preset_name = param.String(default="", doc="Name of the loaded preset or file, marked once the stack is "
                                                "edited (a preset's name only while it is what is shown).")
 
@@ -83,12 +110,25 @@ class ExplorerState(param.Parameterized):
 
     @property
     def stack(self) -> Stack:
+        """The stack as built: the swept layer at the current thickness, every layer times the
+        whole-stack thickness factor."""
+        nominal = self.nominal_stack
+        return nominal if self.thickness_factor == 1.0 else scaled_stack(nominal, self.thickness_factor)
+
+    @property
+    def nominal_stack(self) -> Stack:
+        """The stack without the whole-stack thickness error (what a stack file saves)."""
         sf = self.stack_file()
         layers = list(sf.stack.layers)
         if layers:
             j = min(self.swept_layer, len(layers) - 1)
             layers[j] = Layer(layers[j].material, self.thickness_nm)
         return Stack(layers, sf.stack.substrate, sf.stack.ambient, sf.stack.substrate_thickness_mm)
+
+    @property
+    def thickness_factor(self) -> float:
+        """1 + the whole-stack thickness error."""
+        return 1.0 + self.thickness_scale_pct / 100.0
 
     def layer_rows(self) -> list[dict]:
         """The editor rows: [{"material": spec, "thickness_nm": float}, ...] top to bottom.
@@ -153,7 +193,7 @@ class ExplorerState(param.Parameterized):
     def file_text(self) -> str:
         """The stack with its current thickness and view, as the text of a stack file."""
         sf = self.stack_file()
-        return dump_stack_file(self.stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
+        return dump_stack_file(self.nominal_stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
                                view={"angle_deg": self.angle_deg, "polarization": self.polarization,
                                      "illuminant": self.illuminant if self.illuminant != "custom" else "D65",
                                      "observer": self.observer, "na": self.na,
@@ -194,7 +234,8 @@ class ExplorerState(param.Parameterized):
     def map_key(self) -> tuple:
         """Everything the colour map depends on (the current thickness and angle do not)."""
         return (self.stack_json, self.swept_layer, self.thickness_max_nm, self.polarization, self.illuminant,
-                self.spd_json if self.illuminant == "custom" else "", self.observer, self.na, self.brightness)
+                self.spd_json if self.illuminant == "custom" else "", self.observer, self.na, self.brightness,
+                self.thickness_scale_pct)
 
     def normalize_range_nm(self) -> tuple[float, float]:
         """The thickness range (nm) whose brightest strip colour is white, cut to the map's range."""
@@ -248,6 +289,11 @@ class PointResult:
     R_low: np.ndarray | None = None
     R_high: np.ndarray | None = None
     fringe_spacing_nm: float = float("inf")
+    luminous_R: float = float("nan")          # ISO 13666 luminous reflectance (D65, V(λ)), fraction
+    luminous_T: float = float("nan")          # the same weighting of T; NaN when nothing comes through
+    band_R: float = float("nan")              # mean R over the read-out band, fraction
+    band_T: float = float("nan")
+    band_error: str = ""                      # why the band read-out is missing
 
 
 def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMap:
@@ -271,9 +317,11 @@ def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMa
             raise InputError(f"Even a {nd} x {na} colour map needs {points:,} grid points; this "
                              f"server allows {int(max_grid_points):,}. Ask whoever runs it to raise --max-grid-points.")
         a = np.linspace(0.0, ANGLE_MAX_DEG, na)
-    return color_map(stack, s.swept_layer, d, a,
-                     illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.polarization,
-                     na=s.na, brightness=s.brightness)
+    f = s.thickness_factor
+    cm = color_map(stack, s.swept_layer, d * f, a,
+                   illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.polarization,
+                   na=s.na, brightness=s.brightness)
+    return cm if f == 1.0 else dataclasses.replace(cm, thickness_nm=d)     # the axis stays nominal
 
 
 #: Fewest thickness or angle samples a coarsened colour map keeps.
@@ -336,6 +384,17 @@ def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=N
     same = spectrum_wavelength_nm is None and m == 1 and wl_colour.size == wl.size
     Rc = R if same else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization)
     pc = point_color(Rc, wl_colour, illuminant=s.illuminant_spec(), observer=s.observer, scale=scale)
+    lum_R = float(luminous_reflectance(Rc, wl_colour))
+    lum_T = (float(luminous_reflectance(cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization,
+                                                         "transmittance"), wl_colour)) if transmits else float("nan"))
+    band_error = ""
+    try:
+        band_R, band_T = band_average(stack, (s.band_min_nm, s.band_max_nm), s.angle_deg, s.na, s.polarization)
+    except InputError as exc:
+        band_R = band_T = float("nan")
+        band_error = str(exc)
+    if not transmits:
+        band_T = float("nan")
     low = high = None
     if m > 1:
         per_step = lambda a: a.reshape(wl.size, m)           # noqa: E731
@@ -344,11 +403,18 @@ def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=N
         T = per_step(T).mean(axis=1) if T is not None else None
 
     if stack.layers:
-        opd = float(interference_order(stack, s.swept_layer, s.thickness_nm, s.angle_deg))
+        opd = float(interference_order(stack, s.swept_layer, stack.layers[s.swept_layer].thickness_nm, s.angle_deg))
     else:
         opd = 0.0
     return PointResult(wl, R, Rs, Rp, T, pc.rgb, srgb_to_hex(pc.rgb), pc.lab, pc.xy, pc.out_of_gamut,
-                       int(np.floor(opd)) + 1, opd, low, high, spacing)
+                       int(np.floor(opd)) + 1, opd, low, high, spacing, lum_R, lum_T, band_R, band_T, band_error)
+
+
+def compute_tolerance(s: ExplorerState, scale: float = 1.0) -> ToleranceResult:
+    """The tolerance run of the stack as shown (current thickness, whole-stack factor, angle, cone, lamp)."""
+    return tolerance_run(s.stack, s.tolerance_pct, s.tolerance_trials, TOLERANCE_SEED, angle_deg=s.angle_deg,
+                         na=s.na, polarization=s.polarization, illuminant=s.illuminant_spec(), observer=s.observer,
+                         scale=scale)
 
 
 @dataclass(frozen=True)
@@ -368,10 +434,11 @@ def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
     stack = s.stack
     d = np.linspace(0.0, s.thickness_max_nm, STRIP_POINTS)
     ill = s.illuminant_spec()
-    cm = color_map(stack, s.swept_layer, d, [s.angle_deg], illuminant=ill, observer=s.observer,
+    f = s.thickness_factor
+    cm = color_map(stack, s.swept_layer, d * f, [s.angle_deg], illuminant=ill, observer=s.observer,
                    polarization=s.polarization, na=s.na)
     rgb, lab, _ = scaled_colors(cm.xyz[:, 0, :], ill, s.observer, scale)
-    marks = order_thicknesses_nm(stack, s.swept_layer, s.angle_deg, s.thickness_max_nm)
+    marks = order_thicknesses_nm(stack, s.swept_layer, s.angle_deg, s.thickness_max_nm * f) / f
     return StripResult(d, rgb, lab, marks, cm.xyz[:, 0, :])
 
 
