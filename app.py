@@ -4,7 +4,7 @@ from functools import partial
 
 import panel as pn
 
-from views.explorer import FilmExplorer
+from views.explorer import FilmExplorer, _esc
 from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.inverse import ColourToThickness, locked
@@ -12,7 +12,7 @@ from views.library import LibrarySection
 from views.offline import serve_everything_locally
 from views.pagebuild import BuiltOnFirstOpen, spare_explorers
 from views.limits import page_closed, quiet_closed_connections, served
-from views.urlstate import apply_query, state_to_query
+from views.urlstate import PageLink
 
 serve_everything_locally()                        # a lab intranet often has no way out
 pn.extension("filedropper", design="native", notifications=False)
@@ -38,20 +38,44 @@ def page():
     if served():
         pn.state.on_session_destroyed(page_closed)          # defined outside: this module is gone by then
     explorer = spare_explorers(FilmExplorer).take() if served() else FilmExplorer()
+    pending, follow = [], []
+
+    def built(title, make):
+        """Build a tab's section; from then on the page address follows its settings too."""
+        def build():
+            section = make()
+            for fn in follow:
+                fn(title, section)
+            return section
+        return BuiltOnFirstOpen(build)
+
+    def colour_section():
+        inverse = ColourToThickness(explorer)
+        inverse.set_shown(False)
+        return inverse
+
+    tabs = {"Colour → thickness": built("Colour → thickness", colour_section),
+            "Spectrum → thickness": built("Spectrum → thickness", lambda: SpectrumFitSection(explorer)),
+            "Gratings": built("Gratings", GratingSection)}
+    library = LibrarySection(explorer, tabs["Colour → thickness"], tabs["Gratings"])
+    layout = explorer.panel(extra_tabs=[*((title, tab.holder) for title, tab in tabs.items()),
+                                        ("Lab library", library.panel())],
+                            without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, tabs, library)))
+    switcher = layout[1]
+    link = PageLink(explorer, tabs, switcher, ["Film explorer", *tabs, "Lab library"])
+    note = pn.pane.Alert("", alert_type="warning", visible=False, margin=(2, 10), css_classes=["fg-link-note"])
     args = pn.state.session_args or {}
     if args:
-        errors = apply_query(explorer.state, args)
-        explorer._sync_widgets()
+        errors = link.apply_link_state(args)
         if errors:
-            explorer.file_msg.show_error(" ".join(errors))
+            note.object = "Opening this link: " + " ".join(_esc(e) for e in errors)
+            note.visible = True
     if pn.state.location is not None:
         location = pn.state.location
 
-        pending = []
-
         def write_address(*_):
             pending.clear()
-            location.search = state_to_query(explorer.state)
+            location.search = link.query()
 
         def address_soon(*_):
             """Write the address once a drag pauses, not on every slider step (each write is a message)."""
@@ -61,19 +85,13 @@ def page():
             elif not pending:
                 pending.append(doc.add_timeout_callback(write_address, ADDRESS_DELAY_MS))
         explorer.state.param.watch(address_soon, list(explorer.state.param))
+        switcher.param.watch(address_soon, "active")
+        follow.append(lambda title, section: link.follow(title, section, address_soon))
+        for title, tab in tabs.items():
+            if tab.built:                              # built by the link itself
+                link.follow(title, tab.section, address_soon)
         pn.state.onload(write_address)
-    def colour_section():
-        inverse = ColourToThickness(explorer)
-        inverse.set_shown(False)
-        return inverse
-
-    tabs = {"Colour → thickness": BuiltOnFirstOpen(colour_section),
-            "Spectrum → thickness": BuiltOnFirstOpen(lambda: SpectrumFitSection(explorer)),
-            "Gratings": BuiltOnFirstOpen(GratingSection)}
-    library = LibrarySection(explorer, tabs["Colour → thickness"], tabs["Gratings"])
-    return explorer.panel(extra_tabs=[*((title, tab.holder) for title, tab in tabs.items()),
-                                      ("Lab library", library.panel())],
-                          without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, tabs, library)))
+    return pn.Column(note, layout, sizing_mode="stretch_both", margin=0)
 
 
 page().servable(title="fringegauge")

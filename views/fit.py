@@ -33,6 +33,7 @@ from .uploads import COMPACT, CappedDropper, UploadReader
 from .explorer import Field, TickBox, _esc, _fmt, _label, field_pair
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
+from .urlstate import widget_fields
 
 log = logging.getLogger("fringegauge")
 
@@ -52,6 +53,21 @@ SPECTRUM_CHANGED = "The spectrum changed: press “Fit thickness”."
 PAIR_MESSAGE_WIDTH = 320
 #: Residual axis units: the first whose values reach 0.1 is used (percent, then parts per million, billion).
 RESIDUAL_UNITS = (("%", 1e-2), ("ppm", 1e-6), ("ppb", 1e-9))
+
+#: The settings a share link carries: (link key, label, attribute, kind[, number bounds]).
+LINK_FIELDS = (("s_ref", "Reference", "ref_mode", "choice"),
+               ("s_refval", "Reference reflectance", "ref_value", "text", (0.0, 1.0)),
+               ("s_wlunit", "Wavelength unit", "wl_unit", "choice"),
+               ("s_unit", "Reflectance as", "value_unit", "choice"),
+               ("s_from", "Window from", "win_lo", "text"),
+               ("s_to", "Window to", "win_hi", "text"),
+               ("s_second", "Second unknown layer", "second", "choice"),
+               ("s_from2", "Second window from", "win2_lo", "text"),
+               ("s_to2", "Second window to", "win2_hi", "text"),
+               ("s_scale", "Free scale", "free_scale", "tick"),
+               ("s_offset", "Free offset", "free_offset", "tick"),
+               ("s_wlfrom", "Use wavelengths from", "wl_lo", "text"),
+               ("s_wlto", "Use wavelengths to", "wl_hi", "text"))
 
 
 class _Stop(Exception):
@@ -198,6 +214,11 @@ class SpectrumFitSection:
         self.fit_button.on_click(locked(lambda *_: self.run_fit()))
         self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "polarization"])
         self._sync_layers()
+
+    # ------------------------------------------------------------------ link
+    def link_fields(self):
+        """The settings a share link carries (never the uploaded spectra), in the order they are applied."""
+        return widget_fields(self, LINK_FIELDS)
 
     # ------------------------------------------------------------------ explorer state
     def _sync_layers(self):

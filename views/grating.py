@@ -97,6 +97,30 @@ FAN_HEIGHT_PX = {"reflection": 300, "transmission": 430}
 NO_PRESET = "(choose a preset)"
 
 
+#: Link keys of the numeric fields, in the order of ``GratingSection._fields``.
+LINK_NUMBER_KEYS = ("g_lpmm", "g_blaze", "g_duty", "g_alpha", "g_from", "g_to", "g_src_from", "g_src_to", "g_focal",
+                    "g_width", "g_det", "g_pitch")
+#: Link keys of the choices: (key, settings key, label, allowed values).
+LINK_CHOICES = (("g_kind", "kind", "Reflection or transmission", ("reflection", "transmission")),
+                ("g_groove", "groove", "Grooves", ("lamellar", "blazed")),
+                ("g_lamp", "illuminant", "Lamp", ILLUMINANT_CHOICES),
+                ("g_bright", "brightness", "Brightness", tuple(BRIGHTNESS_CHOICES.values())))
+
+
+def _link_order(text: str) -> int:
+    """The order of interest from a link's text (a nonzero whole number from -100 to 100)."""
+    value = parse_number(text, "Order", -100, 100)
+    if value != int(value) or value == 0:
+        raise InputError("Order: give a nonzero whole number such as 1 or -1.")
+    return int(value)
+
+
+def _link_choice(text: str, allowed) -> str:
+    if text not in allowed:
+        raise InputError(f"give one of {', '.join(allowed)}")
+    return text
+
+
 # ---------------------------------------------------------------------- settings
 @dataclass(frozen=True)
 class GratingSettings:
@@ -437,6 +461,7 @@ class GratingSection:
         self.plan = None
         self.generation = 0
         self.timings_ms = {}
+        self.on_change = []             # callables run after the settings change (the page address follows)
         stem = preset or DEFAULT_PRESET
         self.settings = GratingSettings.from_file(load_grating_preset(stem))
         self._origin = (stem, self.settings)
@@ -645,6 +670,8 @@ class GratingSection:
         self.brightness.param.watch(partial(self._on_choice, "brightness"), "value")
         self.n_slits.param.watch(lambda e: _locked(self._draw_line_shape), "value")
         self.scale.param.watch(lambda e: _locked(self._draw_line_shape), "value")
+        self.n_slits.param.watch(self._changed, "value")
+        self.scale.param.watch(self._changed, "value")
 
     def _sync_fields(self):
         """Show the settings in the widgets (after a preset) without firing their handlers."""
@@ -717,7 +744,12 @@ class GratingSection:
         self.settings = new
         _locked(partial(self._apply, new, results))
         _locked(self._show_origin)
+        self._changed()
         return True
+
+    def _changed(self, *_):
+        for fn in self.on_change:
+            fn()
 
     def _on_number(self, field, key, name, lo, hi, unit, event):
         if self._syncing:
@@ -802,6 +834,80 @@ class GratingSection:
         if self._syncing or not event.new:
             return
         self.load_preset(event.new)
+
+    # ------------------------------------------------------------------ link
+    def _link_spec(self) -> dict:
+        """Link key → (settings key, label, check): ``check(text)`` gives the value or raises InputError."""
+        spec = {}
+        for (field, key, label, lo, hi, *unit), short in zip(self._fields(), LINK_NUMBER_KEYS):
+            spec[short] = (key, label, partial(parse_number, name=label, lo=lo, hi=hi, unit=unit[0] if unit else ""))
+        spec["g_m"] = ("order", "Order of interest", _link_order)
+        for short, key, label, allowed in LINK_CHOICES:
+            spec[short] = (key, label, partial(_link_choice, allowed=allowed))
+        return spec
+
+    def link_keys(self) -> set[str]:
+        return set(self._link_spec()) | {"g_preset", "g_name", "g_n", "g_scale"}
+
+    def link_state(self) -> dict[str, str]:
+        """{link key: text} of the settings, the preset or grating they came from, and the line-shape view."""
+        s, (stem, origin) = self.settings, self._origin
+        out = {"g_preset": stem} if stem else {"g_name": origin.name[:200]}
+        for short, (key, *_rest) in self._link_spec().items():
+            v = getattr(s, key)
+            out[short] = f"{v:.10g}" if isinstance(v, float) else str(v)
+        out["g_n"], out["g_scale"] = str(self.n_slits.value), str(self.scale.value)
+        return out
+
+    def apply_link_state(self, items: dict) -> list[str]:
+        """Show the settings a link carries; a sentence per field not applied (the others are applied)."""
+        errors = []
+        said = lambda key, label, why: errors.append(  # noqa: E731
+            f"Link field '{key}' ({label}) was not applied: {why}".rstrip(".") + ".")
+        stems = dict(list_grating_presets())
+        base, origin = self.settings, None
+        if "g_preset" in items:
+            if items["g_preset"] in stems:
+                base = GratingSettings.from_file(load_grating_preset(items["g_preset"]), self.settings)
+                origin = (items["g_preset"], base)
+            else:
+                said("g_preset", "Preset grating", f"give one of {', '.join(stems)}")
+        changes = {}
+        for short, (key, label, check) in self._link_spec().items():
+            if short in items:
+                try:
+                    changes[key] = check(str(items[short])[:200])
+                except InputError as exc:
+                    said(short, label, str(exc))
+        for lo_key, hi_key, what in (("band_lo_nm", "band_hi_nm", "band"), ("source_lo_nm", "source_hi_nm",
+                                                                           "source band")):
+            lo, hi = (changes.get(k, getattr(base, k)) for k in (lo_key, hi_key))
+            if not lo < hi and (lo_key in changes or hi_key in changes):
+                changes.pop(lo_key, None), changes.pop(hi_key, None)
+                errors.append(f"The link's {what} ({lo:g} to {hi:g} nm) does not run from a short to a long "
+                              "wavelength; it was not applied.")
+        new = replace(base, **changes)
+        try:                                  # one draw of the final settings (each draw is a message)
+            self._compute(new)
+        except InputError as exc:
+            errors.append(f"The link's grating settings were not applied: {exc}")
+            new = base
+        if origin is None and "g_name" in items:
+            name = "".join(c for c in str(items["g_name"]) if c.isprintable())[:200].strip()
+            origin = (None, replace(new, name=name or "grating from a link", scenario=""))
+        if new != self.settings and not self._take(None, new):
+            origin = None
+        if origin is not None:
+            self._origin = origin
+        for short, widget, label in (("g_n", self.n_slits, "Grooves lit"), ("g_scale", self.scale, "Scale")):
+            if short in items:
+                match = next((v for v in widget.options.values() if str(v) == items[short]), None)
+                if match is None:
+                    said(short, label, f"give one of {', '.join(str(v) for v in widget.options.values())}")
+                else:
+                    widget.value = match
+        self._sync_fields()
+        return errors
 
     def file_text(self, name: str | None = None) -> str:
         """The current grating as the text of a grating file (``name`` replaces its name). A grating changed
