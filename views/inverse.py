@@ -37,6 +37,7 @@ from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _spec_text, _footer, field_pair
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
+from .photo_reading import PhotoReading
 from .uploads import CappedDropper, UploadReader
 from .state import ANGLE_MAX_DEG, THICKNESS_LIMITS_NM, compute_strip, parse_number
 
@@ -177,7 +178,9 @@ class ColourToThickness:
                                      height=110, sizing_mode="stretch_width", margin=(2, 5),
                                      css_classes=["fg-photo-drop"])
         self.mode = pn.widgets.RadioButtonGroup(options={"calibration box": "calib", "region of interest": "roi",
-                                                         "pick a point": "pick"}, value="calib", margin=(2, 5))
+                                                         "pick a point": "pick", "profile line": "line",
+                                                         "wafer circle": "wafer"}, value="calib", margin=(2, 5),
+                                                css_classes=["fg-photo-mode"])
         self.reference = pn.widgets.RadioButtonGroup(options={"bare substrate": "substrate", "grey card": "grey"},
                                                      value="substrate", margin=(2, 5))
         self.grey = Field("Grey card reflectance (0-1)", width=160)
@@ -194,7 +197,8 @@ class ColourToThickness:
         self.box_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[], color=[], name=[]))
         pf = figure(height=420, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
                     **_image_ranges(),
-                    title="Photo: drag to draw the selected box; in 'pick' mode tap a point or drag a rectangle")
+                    title="Photo: drag to draw the selected box; 'pick': tap a point or drag a rectangle; "
+                          "'profile line': tap both ends; 'wafer circle': drag a box around the wafer")
         pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
         pf.rect(x="x", y="y", width="w", height="h", fill_alpha=0.0, line_color="color", line_width=2,
                 source=self.box_src, legend_field="name")
@@ -220,6 +224,12 @@ class ColourToThickness:
                                                           ("ΔE00", "@de{0.0}")]))
         tm.add_layout(ColorBar(color_mapper=self.tmapper, title="nm", width=12), "right")
         self.tmap_fig = tm
+        self.mark_src = ColumnDataSource(dict(x=[], y=[], label=[]))
+        pf.scatter(x="x", y="y", source=self.mark_src, marker="cross", size=18, line_width=3, color="#ff00ff")
+        pf.text(x="x", y="y", text="label", source=self.mark_src, x_offset=10, y_offset=-8, text_font_size="12px",
+                text_color="black", background_fill_color="white", background_fill_alpha=0.85)
+        self.pick_info = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-pick-info"], styles={"font-size": "13px"})
+        self.tools = PhotoReading(self)
         self.cmap_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         self.cmapper = LinearColorMapper(palette=Magma256[::-1], low=0, high=MATCH_DE_MAX, nan_color="#d9d9d9")
         cf = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
@@ -511,6 +521,9 @@ class ColourToThickness:
         self.progress_text.object = ""
         self.photo_src.data = dict(image=[preview], x=[0], y=[0], dw=[photo.width], dh=[photo.height])
         self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo.bit_depth}-bit"
+        self.mark_src.data = dict(x=[], y=[], label=[])
+        self.pick_info.object = ""
+        self.tools.clear()
         self._draw_boxes()
         self.run_map.disabled = False
         return True
@@ -522,6 +535,8 @@ class ColourToThickness:
         box = (min(g["x0"], g["x1"]), min(g["y0"], g["y1"]), max(g["x0"], g["x1"]), max(g["y0"], g["y1"]))
         if self.mode.value == "pick":
             self.pick_box(box)
+        elif self.mode.value == "wafer":
+            self.tools.set_circle(box)
         else:
             self.set_box(self.mode.value, box)
 
@@ -608,9 +623,12 @@ class ColourToThickness:
                                   s.illuminant_spec(), s.observer, s.polarization, s.na)
 
     def _on_pick(self, event):
-        if self.photo is None or self.mode.value != "pick" or event.x is None:
+        if self.photo is None or event.x is None:
             return
-        self.pick(event.x, event.y)
+        if self.mode.value == "pick":
+            self.pick(event.x, event.y)
+        elif self.mode.value == "line":
+            self.tools.tap(event.x, event.y)
 
     def pick(self, x, y):
         """Candidates for the mean colour (linear light) of a small square around a photo point."""
@@ -630,7 +648,27 @@ class ColourToThickness:
             return None
         s = self.ex.state
         lab = _lab_from_linear(lin, s.illuminant_spec(), s.observer)
-        return self.find_candidates(None, lab=lab)
+        cands = self.find_candidates(None, lab=lab)
+        self._mark_pick(box, cands)
+        return cands
+
+    def _mark_pick(self, box, cands):
+        """A marker at the picked point and its answer beside the photo."""
+        x0, y0, x1, y1 = box
+        cx, cy = 0.5 * (x0 + x1), 0.5 * (y0 + y1)
+        if cands is None:
+            self.mark_src.data = dict(x=[], y=[], label=[])
+            self.pick_info.object = ""
+            return
+        if not cands.acceptable:
+            label, text = "no match", "no acceptable match (see the answer above)"
+        else:
+            label = " / ".join(f"{c.thickness_nm:.0f}" for c in cands.possible) + " nm"
+            text = (f"<b>{label}</b>" + (": colour alone cannot decide between these" if cands.ambiguous
+                                         else f" (order {cands[0].order}, ΔE00 {cands[0].delta_e:.1f})"))
+        self.mark_src.data = dict(x=[cx], y=[cy], label=[label + ("?" if cands.ambiguous else "")])
+        self.pick_info.object = (f"Picked ({cx:.0f}, {cy:.0f}) px, mean of {x1 - x0} × {y1 - y0} px: {text}; "
+                                 f"reading error ΔE00 {cands.reading_error_de:g}.")
 
     def _on_run_map(self, *_):
         self.start_map()
@@ -662,6 +700,7 @@ class ColourToThickness:
         self.map_msg.visible = False
         for w in (self.dl_npy, self.dl_png, self.dl_csv):
             w.disabled = True
+        self.tools.refresh()
 
     def start_map(self, sync=False):
         """Compute the thickness map of the photo (off the event loop when served)."""
@@ -803,6 +842,7 @@ class ColourToThickness:
                              + "".join(f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in rows) + "</table>")
         for w in (self.dl_npy, self.dl_png, self.dl_csv):
             w.disabled = False
+        self.tools.refresh()
 
     # ------------------------------------------------------------------ downloads
     def _npy(self):
@@ -839,6 +879,11 @@ class ColourToThickness:
                     f"{st['uniformity']:.5f}", f"{st['valid_fraction']:.5f}", st["pixels"],
                     f"{g[0]:.5f}", f"{g[1]:.5f}", f"{g[2]:.5f}", f"{st['median_nm']:.3f}", f"{st['p_low_nm']:.3f}",
                     f"{st['p_high_nm']:.3f}", f"{st['uniformity_robust']:.5f}", st["order_outliers"]])
+        if self.tools.sites is not None:
+            ws = self.tools.settings
+            out.write(f"# {ws.pattern} sites inside a {ws.edge_exclusion_mm:g} mm edge exclusion, mm from the wafer "
+                      "centre (x right, y up)\n")
+            w.writerows(self.tools.csv_rows())
         out.seek(0)
         return out
 
@@ -865,17 +910,21 @@ class ColourToThickness:
         photo_controls = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A photo to a thickness map</h3>"),
             _label("Photo (JPEG, PNG or TIFF, 8 or 16 bit)"), self.dropper, self.photo_msg.message,
-            _label("Dragging on the photo sets"), self.mode, _label("The calibration box shows"), self.reference,
-            self.grey.view(), self.box_info, self.run_map, self.progress, self.cancel_map, self.progress_text,
+            _label("Dragging or tapping on the photo sets"), self.mode, _label("The calibration box shows"),
+            self.reference, self.grey.view(), self.box_info, _label("The wafer (for sites and its usable area)"),
+            self.tools.controls(), self.run_map, self.progress, self.cancel_map, self.progress_text,
             self.dl_npy, self.dl_png, self.dl_csv, width=340)
         return pn.Column(
             pn.Row(typed, results, sizing_mode="stretch_width"),
             _rule(),
-            pn.Row(photo_controls, pn.Column(self.map_msg, pn.pane.Bokeh(self.photo_fig, sizing_mode="stretch_width"),
+            pn.Row(photo_controls, pn.Column(self.map_msg, self.pick_info,
+                                             pn.pane.Bokeh(self.photo_fig, sizing_mode="stretch_width"),
                                              sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.tmap_fig, sizing_mode="stretch_width"),
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
+            pn.Row(pn.pane.Bokeh(self.tools.prof_fig, sizing_mode="stretch_width"), self.tools.site_table,
+                   sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
 
 
