@@ -418,3 +418,23 @@ def test_the_spectrum_section_reads_served_uploads_off_the_loop(monkeypatch):
     assert section.spectrum[0].size == 300 and not section.file_msg["sample"].message.visible
     name, table = section.files["sample"]
     assert name == "wafer.csv" and not isinstance(table, (bytes, str))    # the page keeps numbers, not the upload
+
+
+def test_a_file_of_another_kind_is_refused_by_extension_and_replaces_the_old_message():
+    """The zone names the file kinds it takes by extension (never a blank MIME list) and its message
+    replaces the one of the file before."""
+    from views.explorer import FilmExplorer
+
+    ex = FilmExplorer()
+    ex.file_msg.show_error("an older message about another file")
+    assert ex.file_in.extensions == (".json",) and ex.file_in.accepted_filetypes == []
+    ex.file_in.receive("measurements/run 7.csv", b"wavelength,R\n500,0.3\n")
+    text = ex.file_msg.message.object
+    assert "run 7.csv was not read" in text and "must be a .json file" in text and "older message" not in text
+    assert "measurements" not in text and "application/json" not in text
+    r = Recorder()
+    d = r.dropper(accepted_filetypes=[".csv", ".txt", "text/csv"])
+    d.receive("photo.PNG", b"x" * 10)
+    d.receive("spectrum.TXT", b"1,2\n")
+    assert r.refusals == ["photo.PNG was not read: the test file must be a .csv or .txt file."]
+    assert [n for n, _ in r.files] == ["spectrum.TXT"]

@@ -404,3 +404,14 @@ def test_cancel_drops_the_running_fit(section):
     assert section.run_fit(sync=True)
     assert section.result is None and "cancelled" in section.status.object
     assert not section.fit_button.disabled and not section.progress.visible
+
+
+def test_the_scan_plot_and_its_file_say_what_their_axes_say(section):
+    """Title, axis and download name the same quantity: the rms residual at each trial thickness."""
+    fig = section.scan_fig
+    assert fig.title.text.startswith("rms residual against trial thickness")
+    assert fig.yaxis[0].axis_label.startswith("rms residual") and "trial thickness" in fig.xaxis[0].axis_label
+    assert section.dl_scan.filename == "rms_residual_vs_trial_thickness.csv"
+    _fit(section, 650.0)
+    assert fig.title.text.startswith("rms residual against trial thickness of layer 1")
+    assert "goodness" not in (fig.title.text + section.dl_scan.label).lower()

@@ -51,6 +51,8 @@ FILE_ROLES = ("sample", "reference", "dark")
 SPECTRUM_CHANGED = "The spectrum changed: press “Fit thickness”."
 #: Width of the message under a pair of fields (px): the controls column is 340 px wide.
 PAIR_MESSAGE_WIDTH = 320
+#: Title of the scan plot: the same words as its axes (the spectrum's rms residual at each trial thickness).
+SCAN_TITLE = "rms residual against trial thickness of the unknown layer (triangles: refined minima)"
 #: Residual axis units: the first whose values reach 0.1 is used (percent, then parts per million, billion).
 RESIDUAL_UNITS = (("%", 1e-2), ("ppm", 1e-6), ("ppb", 1e-9))
 
@@ -173,8 +175,8 @@ class SpectrumFitSection:
         self.scan_src = ColumnDataSource(dict(d=[], rms=[]))
         self.minima_src = ColumnDataSource(dict(d=[], rms=[], label=[]))
         g = figure(height=220, sizing_mode="stretch_width", tools=tools,
-                   title="Goodness of fit against the unknown thickness (triangles: refined minima)",
-                   x_axis_label="thickness of the unknown layer (nm)", y_axis_label="rms residual (%)",
+                   title=SCAN_TITLE,
+                   x_axis_label="trial thickness of the unknown layer (nm)", y_axis_label="rms residual (%)",
                    y_axis_type="log", y_range=Range1d(1e-3, 100.0))   # set from the curve when a fit is drawn
         g.line("d", "rms", source=self.scan_src, color="#333", line_width=1.2)
         mk = g.scatter("d", "rms", source=self.minima_src, marker="inverted_triangle", size=11, color="#c0392b")
@@ -189,8 +191,8 @@ class SpectrumFitSection:
         self.dl_csv = pn.widgets.FileDownload(callback=self._curves_csv, filename="spectrum_fit.csv",
                                               label="Measured, model and residual (.csv)", width=300,
                                               disabled=True, margin=(2, 5))
-        self.dl_scan = pn.widgets.FileDownload(callback=self._scan_csv, filename="goodness_of_fit.csv",
-                                               label="Goodness-of-fit curve (.csv)", width=300, disabled=True,
+        self.dl_scan = pn.widgets.FileDownload(callback=self._scan_csv, filename="rms_residual_vs_trial_thickness.csv",
+                                               label="rms residual against trial thickness (.csv)", width=300, disabled=True,
                                                margin=(2, 5))
         self.dl_json = pn.widgets.FileDownload(callback=self._summary_json, filename="fit_summary.json",
                                                label="Summary (.json)", width=300, disabled=True, margin=(2, 5))
@@ -375,7 +377,7 @@ class SpectrumFitSection:
         self.scan_src.data = dict(d=[], rms=[])
         self.minima_src.data = dict(d=[], rms=[], label=[])
         self.best_span.visible = False
-        self.scan_fig.title.text = "Goodness of fit against the unknown thickness (triangles: refined minima)"
+        self.scan_fig.title.text = SCAN_TITLE
 
     def _no_spectrum(self, why: str):
         """The files in hand give no reflectance (raw counts without a reference): nothing to fit or show."""
@@ -752,7 +754,7 @@ class SpectrumFitSection:
         self.scan_fig.y_range.start, self.scan_fig.y_range.end = lo / 2.0, hi * 4.0   # room for the labels above
         self.best_span.location = r.thickness_nm
         self.best_span.visible = True
-        self.scan_fig.title.text = (f"Goodness of fit against the thickness of layer {a['layer'] + 1}"
+        self.scan_fig.title.text = (f"rms residual against trial thickness of layer {a['layer'] + 1}"
                                     + (" (minimised over the second layer)" if r.second_thickness_nm is not None else "")
                                     + "; triangles: refined minima")
 

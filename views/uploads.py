@@ -78,6 +78,10 @@ class CappedDropper(pn.widgets.FileDropper):
         params.setdefault("chunk_size", UPLOAD_CHUNK_BYTES)
         params.setdefault("multiple", False)
         params.setdefault("previews", [])
+        # The file kinds are checked here, by extension, with a sentence beside the zone: the browser's own
+        # check words a refusal from MIME types ("Expects  or application/json") and leaves the message of
+        # the previous file standing beneath it.
+        self.extensions = tuple(t.lower() for t in params.pop("accepted_filetypes", []) if t.startswith("."))
         super().__init__(cap_bytes=cap, max_file_size=browser_size_text(cap), **params)
         self._on_file, self._on_refused, self._what = on_file, on_refused, what
         self._received: dict[str, int] = {}
@@ -97,6 +101,8 @@ class CappedDropper(pn.widgets.FileDropper):
             self._file_buffer.clear()                 # one file at a time: a new file drops an unfinished one
             self._received.clear()
             self._dropped = None
+            if self.extensions and not name.lower().endswith(self.extensions):
+                return self._refuse(name, self.kind_refusal(name))
         elif name == self._dropped:
             return None                               # the rest of a file already refused: said once
         elif name not in self._file_buffer or len(self._file_buffer[name]) != chunk - 1:
@@ -109,6 +115,13 @@ class CappedDropper(pn.widgets.FileDropper):
         if chunk == total:
             self._received.pop(name, None)
         return super()._process_event(event)
+
+    def kind_refusal(self, name: str) -> str:
+        """Why a file of another kind is refused, naming the extensions this zone takes."""
+        kinds = [e for e in self.extensions]
+        listed = kinds[0] if len(kinds) == 1 else ", ".join(kinds[:-1]) + " or " + kinds[-1]
+        base = name.replace("\\", "/").rsplit("/", 1)[-1][:100]
+        return f"{base} was not read: {self._what[0].lower() + self._what[1:]} must be a {listed} file."
 
     def _refuse(self, name, message: str):
         self._file_buffer.clear()
