@@ -44,12 +44,36 @@ __all__ = [
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "srgb_out_of_gamut", "delta_e_2000",
     "illuminant_white_xyz", "spectra_to_srgb", "srgb_to_hex", "ILLUMINANTS", "OBSERVERS",
     "color_weights", "srgb_to_xyz", "lab_to_xyz", "luminous_reflectance", "luminous_weights",
+    "planck_spd", "lamp_label", "LED_ILLUMINANTS", "LAMP_DESCRIPTIONS", "YELLOW_ROOM", "yellow_filter_transmittance",
 ]
 
+#: White-LED illuminants of CIE 015:2018 in colour-science's table: B phosphor-converted blue, BH blue
+#: and red hybrid, RGB three-colour mixing, V violet-pumped phosphor (kinds recalled from CIE 015:2018).
+LED_ILLUMINANTS = ("LED-B1", "LED-B2", "LED-B3", "LED-B4", "LED-B5", "LED-BH1", "LED-RGB1", "LED-V1", "LED-V2")
+#: The lithography-area "yellow light": a cool-white fluorescent (CIE F2) behind a filter that passes
+#: nothing below about 500 nm, where photoresists are sensitive (common practice). The filter is our own
+#: approximation, a logistic edge at YELLOW_EDGE_NM of width YELLOW_EDGE_WIDTH_NM, not a product's data.
+YELLOW_ROOM = "YELLOW"
+YELLOW_EDGE_NM = 500.0
+YELLOW_EDGE_WIDTH_NM = 6.0
 #: Illuminant names accepted (aliases map to colour-science's keys).
 ILLUMINANTS = {"D65": "D65", "D50": "D50", "A": "A", "F2": "FL2", "F11": "FL11",
                "FL2": "FL2", "FL11": "FL11", "D55": "D55", "D75": "D75", "E": "E",
-               "F7": "FL7", "FL7": "FL7", "LED-B3": "LED-B3"}
+               "F7": "FL7", "FL7": "FL7", YELLOW_ROOM: YELLOW_ROOM}
+ILLUMINANTS.update({k: k for k in LED_ILLUMINANTS if k in colour.SDS_ILLUMINANTS})
+#: Words beside the CIE codes (kinds of lamp as CIE 015:2018 describes them, recalled from memory).
+LAMP_DESCRIPTIONS = {
+    "D65": "daylight, 6500 K", "D50": "daylight, 5000 K (graphic arts)", "D55": "daylight, 5500 K",
+    "D75": "north-sky daylight, 7500 K", "A": "incandescent (tungsten), 2856 K", "E": "equal energy",
+    "F2": "cool-white fluorescent", "F7": "broadband daylight fluorescent", "F11": "tri-band fluorescent",
+    "LED-B1": "white LED, phosphor", "LED-B2": "white LED, phosphor", "LED-B3": "white LED, phosphor",
+    "LED-B4": "white LED, phosphor", "LED-B5": "white LED, phosphor", "LED-BH1": "white LED, hybrid",
+    "LED-RGB1": "white LED, red-green-blue", "LED-V1": "white LED, violet-pumped",
+    "LED-V2": "white LED, violet-pumped",
+    YELLOW_ROOM: "yellow room (lithography): F2 cut below 500 nm, an approximation",
+}
+#: Colour temperatures a Planck radiator (a halogen lamp) may be given, K.
+PLANCK_CCT_LIMITS_K = (1000.0, 10000.0)
 #: Observer names accepted → colour-science's CMF tables.
 OBSERVERS = {"2": "CIE 1931 2 Degree Standard Observer", "10": "CIE 1964 10 Degree Standard Observer"}
 OBSERVERS.update({v: v for v in list(OBSERVERS.values())})
@@ -99,8 +123,45 @@ def _illuminant_values(illuminant) -> tuple[str, np.ndarray]:
 
 @functools.lru_cache(maxsize=32)
 def _named_spd(name: str) -> np.ndarray:
+    if name == YELLOW_ROOM:
+        fine = np.arange(360, 831, dtype=float)
+        return _named_spd("FL2") * yellow_filter_transmittance(fine)
     sd = reshape_sd(colour.SDS_ILLUMINANTS[name], _FINE)           # colour's own extension, as its sd_to_XYZ does
     return np.asarray(sd.values, dtype=float)
+
+
+def yellow_filter_transmittance(wavelength_nm) -> np.ndarray:
+    """The yellow-light filter assumed for lithography areas: 1/(1 + exp(−(λ − 500 nm)/6 nm)).
+
+    An approximation of the long-pass sleeves used over fluorescent tubes (common practice), not the data
+    of a product: it passes under 0.2 % below 460 nm and over 99 % above 530 nm.
+    """
+    wl = np.asarray(wavelength_nm, dtype=float)
+    return 1.0 / (1.0 + np.exp(-(wl - YELLOW_EDGE_NM) / YELLOW_EDGE_WIDTH_NM))
+
+
+def planck_spd(cct_k: float) -> tuple[np.ndarray, np.ndarray]:
+    """A Planck radiator (a halogen lamp) at ``cct_k`` kelvin: (wavelength_nm 360-830 every 1 nm, relative power).
+
+    References
+    ----------
+    CIE 015:2018, sec. 11.1 (Planck's law, c₂ = 1.4388e-2 m·K); via colour-science ``planck_law``.
+    """
+    t = float(require_finite("colour temperature", cct_k, minimum=PLANCK_CCT_LIMITS_K[0],
+                             maximum=PLANCK_CCT_LIMITS_K[1], unit="K"))
+    wl = np.arange(360, 831, dtype=float)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        v = np.asarray(colour.colorimetry.planck_law(wl * 1e-9, t), dtype=float)
+    return wl, v / v.max()
+
+
+def lamp_label(code: str) -> str:
+    """'F11 tri-band fluorescent': the code people share, with the kind of lamp beside it."""
+    desc = LAMP_DESCRIPTIONS.get(code)
+    if code == YELLOW_ROOM:
+        return desc[0].upper() + desc[1:]
+    return f"{code} {desc}" if desc else code
 
 
 def user_spd_on_fine_grid(wavelength_nm, values) -> np.ndarray:

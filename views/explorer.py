@@ -26,7 +26,7 @@ from bokeh.events import Tap
 from bokeh.plotting import figure
 
 from physics import InputError, search_materials, list_materials
-from physics.color import srgb_to_hex
+from physics.color import lamp_label, srgb_to_hex
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
 from . import render
@@ -36,7 +36,8 @@ from .limits import Limits, interactive_executor, logged_job, post_to_page, serv
 from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_LAYERS, THICKNESS_LIMITS_NM,
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
                     parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES, BRIGHTNESS_REFERENCES,
-                    brightness_scale, rescaled_map, rescaled_strip, compute_tolerance, SPECTRUM_VIEWS)
+                    brightness_scale, rescaled_map, rescaled_strip, compute_tolerance, SPECTRUM_VIEWS,
+                    ILLUMINANT_CHOICES, HALOGEN)
 
 #: Slider read-outs as the typed fields write numbers: no trailing zeros (numbro format: 101.5, 100).
 SLIDER_FORMAT = "0.[00]"
@@ -202,8 +203,11 @@ class FilmExplorer:
         self.angle = Field("Angle (°)", width=140, css="fg-angle-field")
         self.polarization = pn.widgets.RadioButtonGroup.from_param(s.param.polarization, label="Polarization",
                                                                    color="default", margin=(2, 5))
-        self.illuminant = pn.widgets.Select.from_param(s.param.illuminant, label="Illuminant (lamp)", width=140,
-                                                       margin=(2, 5))
+        self.illuminant = pn.widgets.Select(label="Illuminant (lamp)", width=300, margin=(2, 5),
+                                            options={_lamp_option(c): c for c in sorted(ILLUMINANT_CHOICES,
+                                                                                          key=lambda c: c == "custom")},
+                                            value=s.illuminant, css_classes=["fg-lamp"])
+        self.lamp_k = Field("Halogen colour temperature (K)", width=200, css="fg-lamp-k")
         self.spd_msg = Field("")
         self.spd_reader = UploadReader(self.spd_msg, "lamp_spectrum")
         self.spd_in = CappedDropper(MAX_SPD_BYTES, self.load_lamp_upload, self.spd_reader.refuse,
@@ -347,6 +351,9 @@ class FilmExplorer:
         self.angle_slider.param.watch(self._on_angle_slider, "value")
         self.angle.input.param.watch(self._on_angle_text, "value")
         self.observer.param.watch(lambda e: setattr(s, "observer", e.new), "value")
+        self.illuminant.param.watch(lambda e: None if self._syncing else setattr(s, "illuminant", e.new), "value")
+        self.lamp_k.input.param.watch(partial(self._on_number, "lamp_cct_k", self.lamp_k, "Colour temperature", "K"),
+                                      "value")
         self.na_slider.param.watch(lambda e: setattr(s, "na", round(float(e.new), 3)), "value")
         self.brightness.param.watch(lambda e: setattr(s, "brightness", e.new), "value")
         self.spec_view.param.watch(lambda e: None if self._syncing else setattr(s, "spectrum_view", e.new), "value")
@@ -388,6 +395,9 @@ class FilmExplorer:
             self.angle_slider.value = s.angle_deg
             self.angle.set_text(_fmt(s.angle_deg, 2))
             self.observer.value = s.observer
+            self.illuminant.value = s.illuminant
+            self.lamp_k.set_text(_fmt(s.lamp_cct_k, 0))
+            self.lamp_k.input.visible = s.illuminant == HALOGEN
             self.na_slider.value = s.na
             self.brightness.value = s.brightness
             self._show_brightness()
@@ -756,7 +766,14 @@ class FilmExplorer:
         if names & {"angle_deg", "brightness", "brightness_reference", "normalize_min_nm", "normalize_max_nm",
                     "thickness_max_nm"}:
             self._show_brightness()
-        if names & {"stack_json", "swept_layer", "thickness_scale_pct"}:
+        if "illuminant" in names:
+            self._syncing, was = True, self._syncing
+            try:
+                self.illuminant.value = self.state.illuminant
+                self.lamp_k.input.visible = self.state.illuminant == HALOGEN
+            finally:
+                self._syncing = was
+        if names & {"stack_json", "swept_layer", "thickness_scale_pct", "lamp_cct_k"}:
             kinds |= {"map", "strip"}
         if getattr(self, "_tolerance_for", None) and self.tol_out.object and "fg-tol-stale" not in self.tol_out.object:
             self.tol_out.object += ("<div class='fg-tol-stale' style='color:#8a5a00;font-size:12px'>The view has "
@@ -882,7 +899,7 @@ class FilmExplorer:
             self.map_fig.x_range.update(start=d0, end=d1)
             self.map_fig.y_range.update(start=a0, end=a1)
             self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer + 1} and viewing angle — "
-                                       f"{s.illuminant}, {s.observer}° observer, {s.polarization}"
+                                       f"{s.lamp_text()}, {s.observer}° observer, {s.polarization}"
                                        + (f", cone NA {s.na:g}" if s.na else "")
                                        + (f" — {s.brightness_text()}" if s.brightness == "normalized" else ""))
         if "strip" in result:
@@ -968,7 +985,7 @@ class FilmExplorer:
             f"# stack (top to bottom): {_stack_text(s)}",
             f"# swept layer {s.swept_layer + 1} (from the top) thickness_nm: {s.thickness_nm:g}; angle_deg: {s.angle_deg:g}; "
             f"cone NA: {s.na:g}; polarization: {s.polarization}",
-            f"# colour: illuminant {s.illuminant}, observer {s.observer} deg: sRGB {pt.hex}, "
+            f"# colour: illuminant {s.lamp_text()}, observer {s.observer} deg: sRGB {pt.hex}, "
             f"L*a*b* {pt.lab[0]:.2f} {pt.lab[1]:.2f} {pt.lab[2]:.2f}",
         ]
         if pt.R_low is not None:
@@ -1032,7 +1049,7 @@ class FilmExplorer:
             self.swept, self.thickness_slider, pn.Row(self.thickness.view(), self.tmax.view(), margin=0),
             section("Viewing and light"),
             self.angle_slider, self.angle.view(), _label("Polarization"), self.polarization,
-            self.illuminant, _label("Lamp spectrum (CSV: nm, power) → illuminant 'custom'"), self.spd_in,
+            self.illuminant, self.lamp_k.view(), _label("Lamp spectrum (CSV: nm, power) → illuminant 'custom'"), self.spd_in,
             self.spd_msg.message, _label("Observer"), self.observer, self.na_slider, _label("Brightness"),
             self.brightness, self.bright_ref, field_pair(self.norm_lo, self.norm_hi, message_width=290),
             self.bright_note,
@@ -1165,7 +1182,7 @@ def _stack_text(s: ExplorerState, swept_range: bool = False) -> str:
 
 
 def _light_text(s: ExplorerState) -> str:
-    return (f"illuminant {s.illuminant}, CIE {s.observer}° observer, {s.polarization}"
+    return (f"illuminant {s.lamp_text()}, CIE {s.observer}° observer, {s.polarization}"
             + (f", cone NA {s.na:g}" if s.na else "") + (f", {s.brightness_text()}" if s.brightness == "normalized" else ""))
 
 
@@ -1220,7 +1237,7 @@ sRGB <span class="fg-hex">{pt.hex}</span><br>
 L*a*b* {L:.1f}, {a:.1f}, {b:.1f}<br>
 xy {pt.xy[0]:.4f}, {pt.xy[1]:.4f}<br>
 {gamut}
-{_dark_hint(pt, s)}<div style="color:#666;font-size:11px">{s.illuminant}, {s.observer}° observer; {_esc(s.brightness_text())}.
+{_dark_hint(pt, s)}<div style="color:#666;font-size:11px">{_esc(s.lamp_text())}, {s.observer}° observer; {_esc(s.brightness_text())}.
 Not certified metrology.</div>
 </div>"""
 
@@ -1248,8 +1265,17 @@ def _tolerance_html(r, s: ExplorerState) -> str:
                     for c, d in zip(r.rgb[:TOLERANCE_SWATCHES], de[:TOLERANCE_SWATCHES]))
     return (f"<div class='fg-swatch-values' style='font-size:12px'><b>Tolerance run</b>: {de.size} stacks, each "
             f"layer's thickness uniform within ±{r.tolerance_pct:g} % (seed {r.seed}), {s.angle_deg:.1f}°, "
-            f"{s.illuminant}.<br>ΔE00 from nominal: median {np.median(de):.2f}, 95 % of trials below {p95:.2f}, "
+            f"{_esc(s.lamp_text())}.<br>ΔE00 from nominal: median {np.median(de):.2f}, 95 % of trials below {p95:.2f}, "
             f"largest {de.max():.2f}<br>luminous R: nominal {_pct(r.nominal_luminous)}, range "
             f"{_pct(float(lum.min()))} – {_pct(float(lum.max()))}, standard deviation {_pct(float(lum.std()), 2)}"
             f"<br>{boxes}<br><span style='color:#666'>Colours at the page's brightness; a model of random "
             "thickness errors, not a yield prediction.</span></div>")
+
+
+def _lamp_option(code: str) -> str:
+    """The lamp list's words for a state code."""
+    if code == HALOGEN:
+        return "halogen (Planck radiator, choose K)"
+    if code == "custom":
+        return "custom (upload a lamp spectrum)"
+    return lamp_label(code)

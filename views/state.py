@@ -21,7 +21,8 @@ from physics.appearance import (MAX_TOLERANCE_PCT, ToleranceResult, band_average
 from physics.color import luminous_reflectance
 from physics.appearance import (ColorMap, color_map, colour_band_nm, colour_map_points, colour_wavelengths_nm, fringe_path_nm, cone_reflectance, interference_order,
                                 order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
-from physics.color import srgb_to_hex, user_spd_on_fine_grid
+from physics.color import (ILLUMINANTS, LED_ILLUMINANTS, PLANCK_CCT_LIMITS_K, YELLOW_ROOM, lamp_label, planck_spd,
+                           srgb_to_hex, user_spd_on_fine_grid)
 from physics.fit import text_lines
 from physics.stackfile import (StackFile, dump_stack_file, load_preset, load_stack_file, stack_from_dict,
                                stack_to_dict)
@@ -39,7 +40,13 @@ MAX_LAYERS = 12
 TRANSPARENT_SUBSTRATE_K = 0.01
 #: Points along the reference strip.
 STRIP_POINTS = 600
-ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom"]
+#: Lamps on the page: the CIE codes old links carry first, then more daylights, fluorescents, white LEDs,
+#: the lithography yellow light, a halogen (Planck radiator) at a chosen temperature, and an uploaded lamp.
+HALOGEN = "halogen"
+ILLUMINANT_CHOICES = ["D65", "D50", "A", "F2", "F11", "custom", "D55", "D75", "F7",
+                      *[k for k in LED_ILLUMINANTS if k in ILLUMINANTS], YELLOW_ROOM, HALOGEN]
+#: Colour temperature of the halogen lamp by default, K (a 12 V projector or work lamp runs near 3000 K).
+DEFAULT_HALOGEN_K = 3000.0
 DEFAULT_PRESET = "thermal_oxide_on_silicon"
 
 
@@ -73,6 +80,8 @@ class ExplorerState(param.Parameterized):
     angle_deg = param.Number(default=0.0, bounds=(0.0, ANGLE_MAX_DEG), doc="Viewing angle from the normal, degrees.")
     polarization = param.Selector(default="unpolarized", objects=["unpolarized", "s", "p"])
     illuminant = param.Selector(default="D65", objects=ILLUMINANT_CHOICES)
+    lamp_cct_k = param.Number(default=DEFAULT_HALOGEN_K, bounds=PLANCK_CCT_LIMITS_K,
+                              doc="Colour temperature of the halogen lamp (a Planck radiator), K.")
     spd_json = param.String(default="", doc="A custom lamp spectrum [[nm...], [values...]] (illuminant 'custom').")
     observer = param.Selector(default="2", objects=["2", "10"], doc="CIE 1931 2° or CIE 1964 10° observer.")
     na = param.Number(default=0.0, bounds=(0.0, MAX_NA), doc="Numerical aperture of the viewing cone (0 = one direction).")
@@ -195,19 +204,30 @@ class ExplorerState(param.Parameterized):
         sf = self.stack_file()
         return dump_stack_file(self.nominal_stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
                                view={"angle_deg": self.angle_deg, "polarization": self.polarization,
-                                     "illuminant": self.illuminant if self.illuminant != "custom" else "D65",
+                                     "illuminant": self.illuminant if self.illuminant not in ("custom", HALOGEN)
+                                     else "D65",
                                      "observer": self.observer, "na": self.na,
                                      "thickness_max_nm": self.thickness_max_nm})
 
     # ------------------------------------------------------------------ light
     def illuminant_spec(self):
         """What physics.color takes: a name, or the custom SPD as (wavelengths, values)."""
+        if self.illuminant == HALOGEN:
+            return planck_spd(self.lamp_cct_k)
         if self.illuminant != "custom":
             return self.illuminant
         if not self.spd_json:
             raise InputError("Illuminant 'custom' needs a lamp spectrum: upload a CSV of wavelength (nm), value.")
         wl, v = json.loads(self.spd_json)
         return (np.asarray(wl, dtype=float), np.asarray(v, dtype=float))
+
+    def lamp_text(self) -> str:
+        """The lamp in words: 'F11 tri-band fluorescent', 'halogen 3000 K', 'custom (uploaded)'."""
+        if self.illuminant == HALOGEN:
+            return f"halogen {self.lamp_cct_k:.0f} K"
+        if self.illuminant == "custom":
+            return "custom lamp (uploaded)"
+        return lamp_label(self.illuminant)
 
     def set_spd(self, wavelength_nm, values) -> None:
         """Store a custom lamp spectrum after validating it; selects illuminant 'custom'."""
@@ -235,7 +255,7 @@ class ExplorerState(param.Parameterized):
         """Everything the colour map depends on (the current thickness and angle do not)."""
         return (self.stack_json, self.swept_layer, self.thickness_max_nm, self.polarization, self.illuminant,
                 self.spd_json if self.illuminant == "custom" else "", self.observer, self.na, self.brightness,
-                self.thickness_scale_pct)
+                self.thickness_scale_pct, self.lamp_cct_k if self.illuminant == HALOGEN else 0.0)
 
     def normalize_range_nm(self) -> tuple[float, float]:
         """The thickness range (nm) whose brightest strip colour is white, cut to the map's range."""
