@@ -20,7 +20,6 @@ from functools import partial
 
 import numpy as np
 import panel as pn
-import param
 from bokeh.events import SelectionGeometry, Tap
 from bokeh.models import (BoxSelectTool, ColorBar, ColumnDataSource, DataRange1d, HoverTool, LinearColorMapper,
                           Range1d)
@@ -30,13 +29,14 @@ from bokeh.plotting import figure
 from physics import InputError, parse_color, thickness_candidates, thickness_map
 from physics.imageio import MAX_BYTES as MAX_PHOTO_BYTES, box_mean_linear, load_image
 from physics.colour_words import colour_word, colour_words
-from physics.inverse import (AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, READING_ERROR_MAX_DE, ROBUST_PERCENTILES,
-                             _lab_from_linear)
+from physics.inverse import AMBIGUOUS_DE, FULL_STEP_WINDOW_NM, MATCH_DE_MAX, ROBUST_PERCENTILES, _lab_from_linear
 
 from . import render
-from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _spec_text, _footer, field_pair
+from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _footer, field_pair
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
+from .colour_answer import (CUSTOM_READING, READING_PRESETS, ColourReading, _searched_stack_text,  # noqa: F401
+                            _tolerance_verdict, _viewing_text)
 from .photo_reading import PhotoReading
 from .uploads import CappedDropper, UploadReader
 from .state import ANGLE_MAX_DEG, THICKNESS_LIMITS_NM, compute_strip, parse_number
@@ -65,36 +65,6 @@ LABEL_EDGE_FRACTION = 0.06
 HIST_BINS = 60
 
 
-#: Colour reading errors (ΔE00) by how the colour was read (common practice): a colour judged by eye or
-#: read off a display is good to about 5 (a difference "clearly seen side by side"); a camera without a
-#: colour calibration to about 4; a calibrated camera or a colorimeter to about one just-noticeable
-#: difference, :data:`physics.inverse.AMBIGUOUS_DE`.
-READING_PRESETS = {"by eye / on a display": 5.0, "uncalibrated camera": 4.0, "calibrated camera": AMBIGUOUS_DE}
-#: The preset name for a reading error typed by hand.
-CUSTOM_READING = "custom"
-
-
-class ColourReading(param.Parameterized):
-    """How the colour given on the colour tab was read: its reading error decides which thicknesses are possible."""
-
-    reading = param.Selector(default="by eye / on a display", objects=[*READING_PRESETS, CUSTOM_READING],
-                             doc="How the colour was read; each choice sets its usual reading error (common practice).")
-    reading_error_de = param.Number(default=READING_PRESETS["by eye / on a display"],
-                                    bounds=(0.1, READING_ERROR_MAX_DE),
-                                    doc="Colour reading error, ΔE00: every thickness of another fringe order whose "
-                                        "colour is within this of the best match is a possible answer.")
-
-    @param.depends("reading", watch=True)
-    def _preset(self):
-        if self.reading in READING_PRESETS:
-            self.reading_error_de = READING_PRESETS[self.reading]
-
-    @param.depends("reading_error_de", watch=True)
-    def _custom(self):
-        if READING_PRESETS.get(self.reading) != self.reading_error_de:
-            self.reading = CUSTOM_READING
-
-
 class ColourToThickness:
     """The colour → thickness section for one session, bound to a :class:`views.explorer.FilmExplorer`."""
 
@@ -116,7 +86,8 @@ class ColourToThickness:
 
     # ------------------------------------------------------------------ widgets
     def _build(self):
-        self.colour = Field("Observed colour", width=300, placeholder="#4f719f · 79, 113, 159 · lab(52, -3, -27) · gold",
+        self.colour = Field("Observed colour", width=300,
+                            placeholder="#4f719f · 79, 113, 159 · lab(52, -3, -27) · gold",
                             css="fg-colour-field")
         self.colour2 = Field("Same spot tilted: colour (optional)", width=190, placeholder="e.g. #6a7fae",
                              css="fg-colour2-field")
@@ -150,8 +121,9 @@ class ColourToThickness:
                                                      css_classes=["fg-view-pol"])
         self.view_na = pn.widgets.FloatInput.from_param(s.param.na, name="Cone NA", step=0.01, width=90,
                                                         css_classes=["fg-view-na"])
-        self.verdict = pn.pane.Alert("Type a colour and press “Find thicknesses”. The stack and the unknown layer are "
-                                     "the film explorer's (its swept layer); the viewing conditions are set just above.",
+        self.verdict = pn.pane.Alert("Type a colour and press “Find thicknesses”. The stack and the unknown layer "
+                                     "are the film explorer's (its swept layer); the viewing conditions are set just "
+                                     "above.",
                                      alert_type="light", margin=(5, 5), css_classes=["fg-verdict"])
         self.table = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-candidates"])
         self.cand_src = ColumnDataSource(dict(x=[], label=[], align=[]))
@@ -927,40 +899,6 @@ class ColourToThickness:
                    sizing_mode="stretch_width"),
             sizing_mode="stretch_width", scroll=True)
 
-
-def _searched_stack_text(s, window) -> str:
-    """The stack with the unknown layer named by the thickness range searched, not by the explorer's
-    thickness: 'air / SiO2 (unknown, searched 0–450 nm) / Si'."""
-    d = json.loads(s.stack_json)
-    parts = [_spec_text(d["ambient"])]
-    for i, layer in enumerate(d["layers"]):
-        name = _spec_text(layer["material"])
-        parts.append(f"{name} (unknown, searched {window[0]:g}–{window[1]:g} nm)" if i == s.swept_layer
-                     else f"{name} {layer['thickness_nm']:g} nm")
-    sub = _spec_text(d["substrate"])
-    if d.get("substrate_thickness_mm"):
-        sub += f" ({d['substrate_thickness_mm']:g} mm plate)"
-    return " / ".join([*parts, sub])
-
-
-def _viewing_text(s) -> str:
-    """The viewing conditions an answer was computed for, as a phrase."""
-    return (f"at {s.angle_deg:g}° from the normal, lamp {s.illuminant}, CIE {s.observer}° observer, {s.polarization}"
-            + (f" light, viewing cone NA {s.na:g}" if s.na else " light"))
-
-
-def _tolerance_verdict(cands, nominal: float, tol: float, kind: str) -> tuple[str, str]:
-    """The in-tolerance reading of a search that has a nominal and a tolerance: (alert kind, sentence)."""
-    span = f"{nominal:g} ± {tol:g} nm"
-    best = cands[0]
-    if best.in_tolerance:
-        return kind, f" The best match is within {span}."
-    inside = [(i, c) for i, c in enumerate(cands) if c.in_tolerance and c.delta_e <= MATCH_DE_MAX]
-    if not inside:
-        return "danger", f" Out of tolerance: no acceptable match lies within {span}."
-    i, c = inside[0]
-    return "warning", (f" The best match is outside {span}, but #{i + 1} ({c.thickness_nm:.0f} nm, ΔE00 "
-                       f"{c.delta_e:.1f}) is inside it: colour alone cannot tell which.")
 
 
 #: Colour of pixels whose fringe order differs from their neighbourhood, drawn over the thickness map
