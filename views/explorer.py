@@ -37,7 +37,7 @@ from .state import (ANGLE_MAX_DEG, MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, MAX_L
                     ExplorerState, compute_map, compute_point, compute_strip, default_state, parse_material,
                     parse_number, parse_spd_csv, EDITED_MARK, MAX_SPD_BYTES, BRIGHTNESS_REFERENCES,
                     brightness_scale, rescaled_map, rescaled_strip, compute_tolerance, SPECTRUM_VIEWS,
-                    ILLUMINANT_CHOICES, HALOGEN)
+                    ILLUMINANT_CHOICES, HALOGEN, compute_chart_steps)
 
 #: Slider read-outs as the typed fields write numbers: no trailing zeros (numbro format: 101.5, 100).
 SLIDER_FORMAT = "0.[00]"
@@ -1018,10 +1018,16 @@ class FilmExplorer:
         st = compute_strip(s, self._scale)
         marks = [(float(st.thickness_nm[0]), "order 1")] + [(float(x), f"order {i + 2}")
                                                              for i, x in enumerate(st.order_marks)]
+        steps = compute_chart_steps(s, self._scale)
         png = render.strip_png(st.rgb, st.thickness_nm, title=f"Reference colours: {_stack_text(s, swept_range=True)}",
                                subtitle=(f"layer {s.swept_layer + 1} swept; viewing angle {s.angle_deg:g}°; "
                                          "marks: start of each fringe order at 550 nm; " + _light_text(s)),
-                               order_marks=marks, footer=_footer())
+                               order_marks=marks, footer=_footer(),
+                               steps=[(t, h, tuple(l)) for t, h, l in zip(steps.thickness_nm, steps.hex, steps.lab)],
+                               steps_caption=(f"Chart steps: one every {steps.step_nm:g} nm of layer "
+                                              f"{s.swept_layer + 1}, with their sRGB hex and CIELAB (L*, a*, b*) under "
+                                              f"{s.lamp_text()}, CIE {s.observer}° observer; the printed colour "
+                                              "depends on the printer and paper"))
         return io.BytesIO(png)
 
     # ------------------------------------------------------------------ layout

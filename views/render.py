@@ -58,6 +58,8 @@ _STRIP_WIDTH = 2000  # strip chart image width, px (A4 landscape at 190 dpi is ~
 _STRIP_MARGIN = 70   # left and right margin of the strip rows, px
 _STRIP_HEIGHT = 128  # height of one colour strip, px
 _STRIP_ROW_NM = 400.0  # a strip longer than this per row is split (at most 3 rows)
+_STEP_W, _STEP_H = 168, 112   # one chart step's patch (its thickness, hex and L*a*b* printed on it), px
+_STEP_GAP = 8                 # space between patches, px
 
 
 # --------------------------------------------------------------------------------------------
@@ -649,6 +651,9 @@ class _StripPlan:
     note_lines: list
     foot_lines: list
     foot_y: int
+    steps_y: int = 0             # top of the chart steps' patches
+    steps_per_row: int = 1
+    steps_caption: list = ()
 
 
 def _stagger(items, font, x_min, x_max, gap=10):
@@ -669,10 +674,11 @@ def _stagger(items, font, x_min, x_max, gap=10):
 
 def _strip_fonts():
     return dict(title=_font(40, bold=True), sub=_font(26), tick=_font(22), mark=_font(22),
-                cand=_font(22, bold=True), foot=_font(20), caption=_font(22))
+                cand=_font(22, bold=True), foot=_font(20), caption=_font(22), step=_font(18))
 
 
-def _plan_strip(t: np.ndarray, title, subtitle, order_marks, candidates, footer) -> _StripPlan:
+def _plan_strip(t: np.ndarray, title, subtitle, order_marks, candidates, footer, steps=(),
+                steps_caption="") -> _StripPlan:
     f = _strip_fonts()
     t_lo, t_hi = float(t[0]), float(t[-1])
     span = t_hi - t_lo
@@ -747,16 +753,42 @@ def _plan_strip(t: np.ndarray, title, subtitle, order_marks, candidates, footer)
         parts = ", ".join(f"{s or kind} at {v:g} nm" for kind, v, s in outside)
         note_lines = _wrap(f"Not on this chart ({t_lo:g}-{t_hi:g} nm): {parts}.", f["foot"], text_w)
         y += _block_height(note_lines, f["foot"]) + 10
+    steps_y, per_row, cap_lines = 0, 1, []
+    if steps:
+        cap_lines = _wrap(steps_caption, f["sub"], text_w) if steps_caption else []
+        y += _block_height(cap_lines, f["sub"]) + 10 if cap_lines else 0
+        steps_y = y
+        per_row = max(1, (_STRIP_WIDTH - 2 * _PAD + _STEP_GAP) // (_STEP_W + _STEP_GAP))
+        n_step_rows = math.ceil(len(steps) / per_row)
+        y += n_step_rows * (_STEP_H + _STEP_GAP) + 16
     foot_lines = _wrap(footer, f["foot"], text_w) if footer else []
     foot_y = y
     y += _block_height(foot_lines, f["foot"]) + _PAD
     layout = StripLayout(_STRIP_WIDTH, int(y), ppn, tuple(rows))
     return _StripPlan(layout, header, major, minor, marks_rows, cands_rows, mark_top, cand_top,
-                      outside, caption_y, note_lines, foot_lines, foot_y)
+                      outside, caption_y, note_lines, foot_lines, foot_y, steps_y, per_row, cap_lines)
 
 
 def _ruler_steps():
     return [1.0, 2.0, 5.0, 10.0, 20.0, 50.0, 100.0, 200.0, 500.0, 1000.0, 2000.0, 5000.0, 10000.0]
+
+
+def _check_steps(steps) -> list:
+    """Chart steps as [(thickness_nm, '#rrggbb', (L*, a*, b*))], each checked."""
+    out = []
+    for i, step in enumerate(steps or ()):
+        try:
+            t, hex_, lab = step
+            t, lab = float(t), tuple(float(v) for v in lab)
+        except (TypeError, ValueError):
+            raise InputError(f"steps[{i}] must be (thickness_nm, '#rrggbb', (L*, a*, b*)); got {step!r}.") from None
+        if len(lab) != 3 or not all(math.isfinite(v) for v in (t, *lab)):
+            raise InputError(f"steps[{i}]: the thickness and L*a*b* must be 3 finite numbers.")
+        if not (isinstance(hex_, str) and len(hex_) == 7 and hex_[0] == "#"
+                and all(c in "0123456789abcdefABCDEF" for c in hex_[1:])):
+            raise InputError(f"steps[{i}]: the colour must be '#rrggbb'; got {hex_!r}.")
+        out.append((t, hex_.lower(), lab))
+    return out
 
 
 def _check_strip_args(thickness_nm, title, subtitle, order_marks, candidates, footer, n=None):
@@ -781,7 +813,7 @@ def _check_strip_args(thickness_nm, title, subtitle, order_marks, candidates, fo
 
 
 def strip_layout(thickness_nm, *, title, subtitle="", order_marks=(), candidates=(),
-                 footer="") -> StripLayout:
+                 footer="", steps=(), steps_caption="") -> StripLayout:
     """Pixel geometry of the strip chart :func:`strip_png` draws for the same arguments.
 
     Parameters are those of :func:`strip_png` without ``rgb``.
@@ -792,11 +824,11 @@ def strip_layout(thickness_nm, *, title, subtitle="", order_marks=(), candidates
         Image size, scale and the rows' thickness ranges and pixel boxes.
     """
     args = _check_strip_args(thickness_nm, title, subtitle, order_marks, candidates, footer)
-    return _plan_strip(*args).layout
+    return _plan_strip(*args, _check_steps(steps), _text_arg("steps_caption", steps_caption)).layout
 
 
 def strip_png(rgb, thickness_nm, *, title, subtitle="", order_marks=(), candidates=(),
-              footer="") -> bytes:
+              footer="", steps=(), steps_caption="") -> bytes:
     """Draw a reference colour chart along thickness, for printing, as a PNG.
 
     The image is 2000 px wide (A4 landscape at 190 dpi). A range longer than 400 nm is split
@@ -824,6 +856,11 @@ def strip_png(rgb, thickness_nm, *, title, subtitle="", order_marks=(), candidat
         label below it.
     footer : str
         Note printed at the bottom, e.g. that the colours are computed.
+    steps : iterable of (float, str, (float, float, float))
+        Chart steps (thickness_nm, '#rrggbb', (L*, a*, b*)) printed as patches under the strip,
+        each with its thickness, hex and L*a*b* written on it.
+    steps_caption : str
+        Line above the patches, e.g. the step (thickness per step) and the lamp.
 
     Marks and candidates outside the chart's range are listed in a line above the footer.
 
@@ -846,7 +883,9 @@ def strip_png(rgb, thickness_nm, *, title, subtitle="", order_marks=(), candidat
     _require_finite_colours("rgb", arr)
     t, title, subtitle, order_marks, candidates, footer = _check_strip_args(
         thickness_nm, title, subtitle, order_marks, candidates, footer, n=arr.shape[0])
-    plan = _plan_strip(t, title, subtitle, order_marks, candidates, footer)
+    steps = _check_steps(steps)
+    plan = _plan_strip(t, title, subtitle, order_marks, candidates, footer, steps,
+                       _text_arg("steps_caption", steps_caption))
     lay, f = plan.layout, _strip_fonts()
     cv = _Canvas(lay.width, lay.height)
 
@@ -904,9 +943,31 @@ def strip_png(rgb, thickness_nm, *, title, subtitle="", order_marks=(), candidat
             fill=FOOTER_INK)
     if plan.note_lines:
         cv.text_block(_PAD, plan.caption_y + _lh(f["caption"]) + 18, plan.note_lines, f["foot"])
+    if steps:
+        _draw_steps(cv, plan, steps, f)
     if plan.foot_lines:
         cv.text_block(_PAD, plan.foot_y, plan.foot_lines, f["foot"], fill=FOOTER_INK)
     return _png(cv.img, title=title, dpi=190)
+
+
+#: Above this L* a patch's writing is black, below it white (L* = 50 is the middle grey of CIELAB).
+_STEP_INK_L = 50.0
+
+
+def _draw_steps(cv: "_Canvas", plan: _StripPlan, steps, f) -> None:
+    """The chart steps as patches, each with its thickness, hex and L*a*b* written on it."""
+    if plan.steps_caption:
+        top = plan.steps_y - _block_height(list(plan.steps_caption), f["sub"]) - 10
+        cv.text_block(_PAD, top, list(plan.steps_caption), f["sub"])
+    for k, (t, hex_, (L, a, b)) in enumerate(steps):
+        r, c = divmod(k, plan.steps_per_row)
+        x = _PAD + c * (_STEP_W + _STEP_GAP)
+        y = plan.steps_y + r * (_STEP_H + _STEP_GAP)
+        fill = tuple(int(hex_[i:i + 2], 16) for i in (1, 3, 5))
+        cv.draw.rectangle((x, y, x + _STEP_W - 1, y + _STEP_H - 1), fill=fill, outline=BLACK, width=1)
+        ink = BLACK if L > _STEP_INK_L else (255, 255, 255)
+        lines = [f"{t:g} nm", hex_, f"L*{L:.0f} a*{a:.0f} b*{b:.0f}"]
+        cv.text_block(x + 8, y + 10, lines, f["step"], fill=ink, gap=8)
 
 
 # --------------------------------------------------------------------------------------------

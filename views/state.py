@@ -462,6 +462,35 @@ def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
     return StripResult(d, rgb, lab, marks, cm.xyz[:, 0, :])
 
 
+#: Most chart steps printed with their hex and L*a*b* (a page of patches under the strip).
+MAX_CHART_STEPS = 44
+#: Round thickness steps a chart may use, nm.
+_CHART_STEPS_NM = (1, 2, 5, 10, 20, 25, 50, 100, 200, 250, 500, 1000, 2000, 2500, 5000, 10000)
+
+
+@dataclass(frozen=True)
+class ChartSteps:
+    """The printed chart's steps: thickness (n,) nm every ``step_nm``, display sRGB and CIELAB (n, 3), hexes."""
+
+    step_nm: float
+    thickness_nm: np.ndarray
+    rgb: np.ndarray
+    lab: np.ndarray
+    hex: tuple
+
+
+def compute_chart_steps(s: ExplorerState, scale: float = 1.0) -> ChartSteps:
+    """Colours at round thickness steps over the map's range (at most MAX_CHART_STEPS + 1), at the current angle."""
+    step = next((x for x in _CHART_STEPS_NM if s.thickness_max_nm / x <= MAX_CHART_STEPS), _CHART_STEPS_NM[-1])
+    d = np.arange(0.0, s.thickness_max_nm + 1e-9, float(step))
+    ill = s.illuminant_spec()
+    f = s.thickness_factor
+    cm = color_map(s.stack, s.swept_layer, d * f, [s.angle_deg], illuminant=ill, observer=s.observer,
+                   polarization=s.polarization, na=s.na)
+    rgb, lab, _ = scaled_colors(cm.xyz[:, 0, :], ill, s.observer, scale)
+    return ChartSteps(float(step), d, rgb, lab, tuple(srgb_to_hex(c) for c in rgb))
+
+
 def brightness_scale(s: ExplorerState, cm: ColorMap | None, strip: StripResult | None) -> float:
     """The factor on every colour's XYZ: 1 (absolute), or 1/Y of the brightest colour of the reference
     (:attr:`ExplorerState.brightness_reference`): the map, or the strip inside the normalizing range
