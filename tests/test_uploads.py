@@ -438,3 +438,18 @@ def test_a_file_of_another_kind_is_refused_by_extension_and_replaces_the_old_mes
     d.receive("spectrum.TXT", b"1,2\n")
     assert r.refusals == ["photo.PNG was not read: the test file must be a .csv or .txt file."]
     assert [n for n, _ in r.files] == ["spectrum.TXT"]
+
+
+def test_an_unknown_material_in_a_stack_file_points_to_the_page_s_search_box():
+    """The page never tells a browser user to call a Python function; the API message still may."""
+    from physics import material
+    from views.explorer import FilmExplorer
+
+    with pytest.raises(InputError, match=r"search_materials\(\)"):
+        material("unobtainium")
+    ex = FilmExplorer()
+    stack = json.loads(stackfile.PRESET_DIR.joinpath("thermal_oxide_on_silicon.json").read_text())
+    stack["layers"][0]["material"] = "unobtainium"
+    ex.file_in.receive("odd.json", json.dumps(stack).encode())
+    text = ex.file_msg.message.object
+    assert "Unknown material" in text and "Find a material" in text and "search_materials" not in text

@@ -40,6 +40,7 @@ import panel as pn
 from library.store import (NOUNS, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
                            validate_calibration)
 from physics import InputError
+from physics.materials import page_wording
 from physics.stackfile import load_stack_file
 
 from .explorer import Field, _esc
@@ -400,7 +401,7 @@ class LibrarySection:
         except (InputError, OSError) as exc:
             if self._gone(e, exc):
                 return False
-            self._say(f"Could not load {_esc(e.name)} v{e.version}: {_esc(error_text(exc))}", "danger")
+            self._say(f"Could not load {_esc(e.name)} v{e.version}: {_esc(page_wording(error_text(exc)))}", "danger")
             return False
         self._say(f"Loaded {_esc(e.name)} v{e.version} (saved by {_esc(e.saved_by)}) into {where}.", "success")
         return True
