@@ -149,10 +149,11 @@ class ColourToThickness:
                                                          ".jpg", ".jpeg", ".png"],
                                      height=110, sizing_mode="stretch_width", margin=(2, 5),
                                      css_classes=["fg-photo-drop"])
-        self.mode = pn.widgets.RadioButtonGroup(options={"calibration box": "calib", "region of interest": "roi",
-                                                         "pick a point": "pick", "profile line": "line",
-                                                         "wafer circle": "wafer"}, value="calib", margin=(2, 5),
-                                                css_classes=["fg-photo-mode"])
+        self.mode = pn.widgets.RadioBoxGroup(options={"calibration box": "calib", "region of interest": "roi",
+                                                      "pick a point": "pick", "profile line": "line",
+                                                      "wafer circle": "wafer"}, value="calib", inline=True,
+                                             width=330, margin=(2, 5), css_classes=["fg-photo-mode"],
+                                             stylesheets=[".bk-input-group { flex-wrap: wrap; gap: 2px 10px; }"])
         self.reference = pn.widgets.RadioButtonGroup(options={"bare substrate": "substrate", "grey card": "grey"},
                                                      value="substrate", margin=(2, 5))
         self.grey = Field("Grey card reflectance (0-1)", width=160)
@@ -168,7 +169,7 @@ class ColourToThickness:
         self.photo_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         self.box_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[], color=[], name=[]))
         pf = figure(height=420, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
-                    **_image_ranges(),
+                    css_classes=["fg-photo-fig"], **_image_ranges(),
                     title="Photo: drag to draw the selected box; 'pick': tap a point or drag a rectangle; "
                           "'profile line': tap both ends; 'wafer circle': drag a box around the wafer")
         pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
@@ -188,7 +189,7 @@ class ColourToThickness:
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
         tm = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
                     css_classes=["fg-tmap"], **_image_ranges(),
-                    title="Thickness map (grey: no match; red: stray order; pale: order not decided by colour)")
+                    title="Thickness (grey: no match · red: stray order · pale: order undecided by colour)")
         img = tm.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.tmap_src, color_mapper=self.tmapper)
         self.stray_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         tm.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.stray_src)

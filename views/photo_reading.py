@@ -26,6 +26,8 @@ DEFAULT_EDGE_EXCLUSION_MM = 3.0
 DEFAULT_DIAMETER_MM = 150.0
 #: Colours of what is drawn over the photo and the map: the line, the wafer's edge, its usable edge, sites.
 LINE_COLOUR, WAFER_COLOUR, USABLE_COLOUR, SITE_COLOUR = "#ff7f0e", "#ffffff", "#ffd700", "#000000"
+#: Width of the site table beside the profile (px): room for a summary and four columns.
+SITE_TABLE_PX = 460
 
 
 class WaferSettings(param.Parameterized):
@@ -62,7 +64,7 @@ class PhotoReading:
         self.pattern = pn.widgets.Select.from_param(st.param.pattern, name="Sites", width=150,
                                                     css_classes=["fg-wafer-pattern"])
         self.info = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"}, css_classes=["fg-wafer-info"])
-        self.site_table = pn.pane.HTML("", margin=(5, 5), css_classes=["fg-sites"])
+        self.site_table = pn.pane.HTML("", margin=(5, 5), width=SITE_TABLE_PX, css_classes=["fg-sites"])
         self.line_src = ColumnDataSource(dict(x=[], y=[]))
         self.ends_src = ColumnDataSource(dict(x=[], y=[], label=[]))
         self.circle_src = ColumnDataSource(dict(x=[], y=[], d=[], color=[], dash=[]))
@@ -188,7 +190,7 @@ class PhotoReading:
             return
         st = s.stats
         area = self.area_stats()
-        rows = "".join(f"<tr><td>{i + 1}</td><td>{x:.1f}</td><td>{y:.1f}</td><td><b>"
+        rows = "".join(f"<tr><td>{i + 1}</td><td>{_mm(x)}</td><td>{_mm(y)}</td><td><b>"
                        + (f"{t:.1f}" if np.isfinite(t) else "not measured") + "</b></td></tr>"
                        for i, (x, y, t) in enumerate(zip(s.x_mm, s.y_mm, s.thickness_nm)))
         summary = (f"{s.pattern} sites ({st['measured']} measured) inside {self.settings.edge_exclusion_mm:g} mm edge "
@@ -213,10 +215,15 @@ class PhotoReading:
         if s is None:
             return []
         return [["site", "x_mm", "y_mm", "thickness_nm"]] + [
-            [i + 1, f"{x:.3f}", f"{y:.3f}", f"{t:.3f}" if np.isfinite(t) else ""]
+            [i + 1, _mm(x, 3), _mm(y, 3), f"{t:.3f}" if np.isfinite(t) else ""]
             for i, (x, y, t) in enumerate(zip(s.x_mm, s.y_mm, s.thickness_nm))]
 
     def controls(self):
         """The wafer settings, for the photo's column."""
         return pn.Column(pn.Row(self.diameter, self.pixel, margin=0), pn.Row(self.exclusion, self.pattern, margin=0),
                          self.info, margin=0)
+
+
+def _mm(v: float, digits: int = 1) -> str:
+    """A site coordinate in mm, with no "-0.0" for a coordinate on an axis."""
+    return f"{round(float(v), digits) + 0.0:.{digits}f}"
