@@ -423,7 +423,7 @@ class FilmExplorer:
                 f.input.visible = strip
             self.norm_lo.set_text(_fmt(s.normalize_min_nm, 2))
             self.norm_hi.set_text(_fmt(min(s.normalize_max_nm, s.thickness_max_nm), 2))
-            self.bright_note.object = f"Brightness: {_esc(s.brightness_text())}."
+            self.bright_note.object = f"<span class='fg-bright-text'>Brightness: {_esc(s.brightness_text())}.</span>"
         finally:
             self._syncing = was
 
@@ -1258,7 +1258,7 @@ def _readouts_html(pt, s: ExplorerState) -> str:
             if not pt.band_error else f"band mean: {_esc(pt.band_error)}")
     scale = (f" · whole stack at {s.thickness_factor * 100:g} % of nominal thickness"
              if s.thickness_scale_pct else "")
-    return (f"<div class='fg-swatch-values' style='font-size:12px'>luminous R {_pct(pt.luminous_R)}, "
+    return (f"<div class='fg-swatch-values fg-readout-text' style='font-size:12px'>luminous R {_pct(pt.luminous_R)}, "
             f"luminous T {_pct(pt.luminous_T)} (ISO 13666: D65 × V(λ)) · {band}{scale}</div>")
 
 

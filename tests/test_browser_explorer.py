@@ -1,0 +1,52 @@
+"""The film explorer in a real browser: its figures' ranges, the coating read-outs and the brightness line."""
+
+import time
+
+import pytest
+from playwright.sync_api import sync_playwright
+
+from tests.support.server import CHROMIUM, CHROMIUM_ARGS, DEEP_TEXT_JS, served_app
+
+pytestmark = pytest.mark.browser
+
+#: Bokeh's console warning when a figure's range has no start or end (a DataRange1d with no data).
+RANGE_WARNING = "could not set initial ranges"
+#: The explorer's figures, by the start of their titles.
+EXPLORER_TITLES = ("Spectrum", "Reflectance, log scale", "Colour vs thickness", "Reference strip")
+#: Seconds the page gets to settle after it has drawn its swatch (its figures arrive in turns).
+SETTLE_S = 4
+
+FIGURE_RANGES_JS = """() => { const out = [];
+  for (const doc of Bokeh.documents) for (const m of doc._all_models.values())
+    if (m.x_range !== undefined && m.renderers !== undefined && m.title)
+      out.push([m.title.text || '', m.x_range.start, m.x_range.end, m.y_range.start, m.y_range.end]);
+  return out; }"""
+
+
+@pytest.fixture(scope="module")
+def page(tmp_path_factory):
+    library = tmp_path_factory.mktemp("lab-library")
+    with served_app(env={"FRINGEGAUGE_LIBRARY": str(library)}) as (url, _log):
+        with sync_playwright() as p:
+            b = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+            pg = b.new_page(viewport={"width": 1366, "height": 768})
+            pg.messages = []
+            pg.on("console", lambda m: pg.messages.append(m.text))
+            pg.goto(url)
+            pg.wait_for_selector(".fg-swatch [data-hex]", timeout=90_000)
+            time.sleep(SETTLE_S)
+            yield pg
+            b.close()
+
+
+def test_the_explorer_figures_have_ranges_from_the_start(page):
+    assert not [m for m in page.messages if RANGE_WARNING in m]
+    figures = [f for f in page.evaluate(FIGURE_RANGES_JS) if f[0].startswith(EXPLORER_TITLES)]
+    assert len(figures) == len(EXPLORER_TITLES)
+    for title, *ends in figures:
+        assert all(isinstance(v, (int, float)) and v == v for v in ends), (title, ends)
+
+
+def test_coating_read_outs_and_the_brightness_line_are_on_the_page(page):
+    assert "luminous R" in (page.evaluate(DEEP_TEXT_JS, ".fg-readout-text") or "")
+    assert "Brightness: absolute" in (page.evaluate(DEEP_TEXT_JS, ".fg-bright-text") or "")
