@@ -51,7 +51,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 from labserver.login import DEFAULT_LOGIN_HOURS, read_password_file  # noqa: E402
-from library.store import DEFAULT_KEY_FILE, KEY_FILE_ENV, load_or_create_key, prepare_root  # noqa: E402
+from library.store import DEFAULT_KEY_FILE, DEFAULT_ROOT, KEY_FILE_ENV, load_or_create_key, prepare_root  # noqa: E402
 from labserver.sessions import SessionLimits  # noqa: E402
 from views.limits import THREADS_ENV, WEBSOCKET_MESSAGE_CAP_BYTES, Limits  # noqa: E402
 
@@ -160,7 +160,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "plus localhost:PORT on loopback or this machine's names on 0.0.0.0")
     p.add_argument("--threads", type=_int_in(1, 64), default=2,
                    help="worker threads shared by all pages for quick work (spectra, strips, film and grating maps); photo maps and fits get their own --max-jobs-server threads")
-    p.add_argument("--library", type=Path, default=Path("lab-library"),
+    p.add_argument("--library", type=Path, default=DEFAULT_ROOT,
                    help="folder for the shared library (created if missing; relative to the current directory)")
     p.add_argument("--library-key-file", metavar="KEY_FILE", type=Path,
                    help=f"file holding the key that signs the library's metadata, made at first start (mode 0600); "

@@ -122,7 +122,7 @@ __all__ = [
     "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "LibraryKeyError", "ItemMissing",
     "sanitize_name", "validate_calibration", "prepare_root", "load_or_create_key", "key_file_path",
     "sign_library", "meta_mac", "saver_text", "error_text",
-    "KINDS", "NOUNS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS", "MAX_META_BYTES", "MAX_SCAN_ENTRIES",
+    "KINDS", "NOUNS", "DEFAULT_ROOT", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS", "MAX_META_BYTES", "MAX_SCAN_ENTRIES",
     "KEY_FILE_ENV", "MARKER_NAME",
 ]
 
@@ -150,6 +150,9 @@ MAX_SCAN_ENTRIES = 4000
 KEY_FILE_ENV = "FRINGEGAUGE_LIBRARY_KEY_FILE"
 #: The key file used when KEY_FILE_ENV is not set, under the home folder of the server's account.
 DEFAULT_KEY_FILE = Path(".config", "fringegauge", "library.key")
+#: The library folder when none is given (``serve.py --library`` and a page served without it, as by
+#: ``panel serve app.py``), relative to the folder the server starts in; created on the first save.
+DEFAULT_ROOT = Path("lab-library")
 #: Bytes of random key.
 KEY_BYTES = 32
 #: The file in the root that marks it as a lab library (see prepare_root).

@@ -3,6 +3,7 @@
 import errno
 import io
 import os
+from pathlib import Path
 from types import SimpleNamespace
 
 import numpy as np
@@ -160,12 +161,28 @@ def test_archive_hides_a_version_and_keeps_its_file(lib):
     assert kept
 
 
-def test_without_a_library_folder_the_tab_says_how_to_set_one(monkeypatch):
+def test_without_a_library_folder_the_tab_uses_serve_py_s_default_and_says_so(tmp_path, monkeypatch):
+    """`panel serve app.py` sets no folder: the tab keeps the library in ./lab-library, made on the first save."""
+    from library.store import DEFAULT_ROOT
+    from serve import build_parser
+
     monkeypatch.delenv(LIBRARY_ENV, raising=False)
-    ex = FilmExplorer()
-    a = LibrarySection(ex)
-    assert a.lib is None and "serve.py --library" in a.message.object
-    assert not a.save_current()
+    monkeypatch.chdir(tmp_path)
+    a = LibrarySection(FilmExplorer())
+    assert a.default_folder and a.lib.root == (tmp_path / "lab-library").absolute()
+    assert build_parser().parse_args([]).library == DEFAULT_ROOT == Path("lab-library")   # serve.py's default
+    intro = a.panel()[0].object
+    assert "started without a library folder" in intro and "lab-library" in intro and str(tmp_path) not in intro
+    assert not (tmp_path / "lab-library").exists() and not a.message.visible
+    assert _save(a, "stacks", "Oxide", "ak")
+    assert (tmp_path / "lab-library" / "stacks").is_dir()
+
+
+def test_a_section_given_no_library_says_how_to_set_one():
+    a = LibrarySection(FilmExplorer(), library=None)
+    a.lib = None
+    a._reread()
+    assert "serve.py --library" in a.message.object and not a.save_current()
 
 
 def test_library_from_the_environment(tmp_path, monkeypatch):

@@ -1,7 +1,8 @@
 """The lab library tab: browse, load and save the stacks, gratings and calibrations the lab shares.
 
 Every item lives in the server's library folder (:mod:`library.store`, set by ``serve.py
---library``, read here from ``FRINGEGAUGE_LIBRARY``). Saving never overwrites: a name that
+--library``, read here from ``FRINGEGAUGE_LIBRARY``; a page served without one, as by ``panel
+serve app.py``, uses serve.py's default folder ``lab-library`` and says so). Saving never overwrites: a name that
 exists (in any mix of upper and lower case) is saved as its next version and the user is told
 which name it joined. A file that fails validation is listed under "Skipped files" with the
 reason and never loaded. When the server writes nothing (no library folder set, or the folder is
@@ -37,7 +38,7 @@ from functools import partial
 
 import panel as pn
 
-from library.store import (NOUNS, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
+from library.store import (DEFAULT_ROOT, NOUNS, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
                            validate_calibration)
 from physics import InputError
 from physics.materials import page_wording
@@ -93,10 +94,15 @@ def login_name() -> str | None:
     return str(user) if user else None
 
 
-def library_from_env() -> Library | None:
-    """The library named by ``FRINGEGAUGE_LIBRARY``, or None when it is not set."""
-    root = os.environ.get(LIBRARY_ENV, "").strip()
-    return Library(root) if root else None
+def library_from_env() -> Library:
+    """The library named by ``FRINGEGAUGE_LIBRARY``, else the default folder :data:`library.store.DEFAULT_ROOT`
+    in the folder the server started in (``panel serve app.py`` sets no folder), as ``serve.py`` uses."""
+    return Library(library_folder_set() or DEFAULT_ROOT)
+
+
+def library_folder_set() -> str:
+    """The folder ``FRINGEGAUGE_LIBRARY`` names ("" when the page was served without one)."""
+    return os.environ.get(LIBRARY_ENV, "").strip()
 
 
 def library_title(name: str, version: int) -> str:
@@ -132,6 +138,8 @@ class LibrarySection:
     def __init__(self, explorer, inverse=None, grating=None, library: Library | None = None):
         self.ex, self.inverse, self.grating = explorer, inverse, grating
         self.lib = library if library is not None else library_from_env()
+        #: True when the page was served without a library folder and uses the default one.
+        self.default_folder = library is None and not library_folder_set()
         self.entries: list = []
         self.skipped = 0                 # files of the kind that failed the checks (listed under the buttons)
         self._marker = None              # the folder's change marker when the list was last read
@@ -538,7 +546,11 @@ class LibrarySection:
             "<div style='font-size:13px;max-width:900px'>The lab library is a folder on this server that "
             "everyone using the page shares. Saving never replaces anyone's work: a name that is already "
             "taken (in any mix of upper and lower case) is saved as its next version, and you are told. "
-            "Archived versions are kept in the folder, not deleted.</div>", margin=(5, 5))
+            "Archived versions are kept in the folder, not deleted."
+            + (f" This server was started without a library folder, so it keeps the library in the folder "
+               f"<code>{_esc(str(DEFAULT_ROOT))}</code> beside where it was started (made on the first save), as "
+               "<code>python serve.py</code> does; <code>python serve.py --library FOLDER</code> chooses another."
+               if self.default_folder else "") + "</div>", margin=(5, 5), css_classes=["fg-lib-intro"])
         browse = pn.Column(_heading("Saved in the lab library (newest first)"), self.kind, self.listing,
                            self.detail, pn.Row(self.load_button, self.refresh_button, self.archive_button),
                            self.confirm_row, self.problems, width=600, margin=(0, 20, 0, 0))
