@@ -21,7 +21,7 @@ import numpy as np
 import panel as pn
 import param
 from panel.io import hold
-from bokeh.models import ColumnDataSource, HoverTool, Range1d, Span, TapTool
+from bokeh.models import ColumnDataSource, HoverTool, NumeralTickFormatter, Range1d, Span, TapTool
 from bokeh.events import Tap
 from bokeh.plotting import figure
 
@@ -54,6 +54,11 @@ ZOOM_HEADROOM = 1.15
 MIN_ZOOM_PCT = 0.01
 #: The band the zoomed view fits its range to (nm): the visible, where a coating's residual matters.
 ZOOM_BAND_NM = (380.0, 780.0)
+#: Most fringe-order marks drawn on the strip; beyond this they would cover it.
+MAX_ORDER_MARKS = 40
+STRIP_TITLE = "Reference strip at the current angle (dashed: start of each fringe order at 550 nm)"
+#: Thickness axes read 1,000 and 20,000 nm rather than 2.000e+4 (numbro format).
+THICKNESS_TICKS = "0,0.[0]"
 #: Trials' colours shown as small swatches beside a tolerance run's figures.
 TOLERANCE_SWATCHES = 24
 
@@ -262,7 +267,7 @@ class FilmExplorer:
                    x_axis_label="wavelength (nm)", y_axis_label="reflectance, transmittance (%)",
                    x_range=Range1d(380, 780), y_range=Range1d(0, 100))
         self.band_R = p.varea("wl", "R_low", "R_high", source=self.spec_src, fill_color="#1b1b1b", fill_alpha=0.15,
-                              legend_label="R fringe range", visible=False)
+                              visible=False)             # the title explains it when it shows
         self.line_R = p.line("wl", "R", source=self.spec_src, line_width=2.5, color="#1b1b1b", legend_label="R")
         self.line_Rs = p.line("wl", "Rs", source=self.spec_src, line_width=1.2, color="#1f6fb4", line_dash="dashed",
                               legend_label="R s")
@@ -309,11 +314,12 @@ class FilmExplorer:
         m.x_range = Range1d(0, 1000)
         m.y_range = Range1d(0, ANGLE_MAX_DEG)
         m.on_event(Tap, self._on_map_tap)
+        m.xaxis.formatter = NumeralTickFormatter(format=THICKNESS_TICKS)
         self.map_fig = m
 
         self.strip_src = ColumnDataSource(dict(image=[], L=[], a=[], b=[], x=[], y=[], dw=[], dh=[]))
         st = figure(height=150, sizing_mode="stretch_width", tools="xpan,xwheel_zoom,reset,save",
-                    title="Reference strip at the current angle (dashed: start of each fringe order at 550 nm)",
+                    title=STRIP_TITLE,
                     x_axis_label="thickness (nm)", y_range=Range1d(0, 1))
         sim = st.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.strip_src)
         st.add_tools(HoverTool(renderers=[sim], tooltips=[("thickness", "$x{0.0} nm"),
@@ -330,6 +336,7 @@ class FilmExplorer:
         st.text(x="x", y=0.98, text="label", source=self.order_src, text_font_size="10px", text_color="white",
                 text_baseline="top", x_offset=3)
         st.x_range = Range1d(0, 1000)
+        st.xaxis.formatter = NumeralTickFormatter(format=THICKNESS_TICKS)
         self.strip_fig = st
 
     # ------------------------------------------------------------------ wiring
@@ -909,8 +916,13 @@ class FilmExplorer:
             self.strip_src.data = dict(image=[_rgba(st.rgb[None, :, :])], L=[st.lab[None, :, 0]],
                                        a=[st.lab[None, :, 1]], b=[st.lab[None, :, 2]], x=[d[0] - dd / 2], y=[0],
                                        dw=[d[-1] - d[0] + dd], dh=[1])
-            self.order_src.data = dict(x=[float(d[0])] + list(st.order_marks),
-                                       label=[f"order {i + 1}" for i in range(len(st.order_marks) + 1)])
+            dense = len(st.order_marks) > MAX_ORDER_MARKS
+            self.order_src.data = (dict(x=[], label=[]) if dense else
+                                   dict(x=[float(d[0])] + list(st.order_marks),
+                                        label=[f"order {i + 1}" for i in range(len(st.order_marks) + 1)]))
+            self.strip_fig.title.text = (STRIP_TITLE if not dense else
+                                         f"Reference strip at the current angle ({len(st.order_marks) + 1} fringe "
+                                         "orders: too many to mark)")
             self.strip_fig.x_range.update(start=d[0], end=d[-1])
         if "point" in result:
             self._point = pt = result["point"]
@@ -928,9 +940,8 @@ class FilmExplorer:
             self.spec_fig.title.text = ((f"Spectrum of the bare substrate at {s.angle_deg:.1f}°" if result.get("bare")
                                          else f"Spectrum at {s.thickness_nm:.1f} nm, {s.angle_deg:.1f}°")
                                         + (f", cone NA {s.na:g}" if s.na else "")
-                                        + (f" — fringes every {pt.fringe_spacing_nm:.2g} nm at 550 nm, finer than the "
-                                           f"plot: curves are {SPECTRUM_STEP_NM:g} nm averages, grey band = fringe range"
-                                           if averaged else ""))
+                                        + (f" — fringes {pt.fringe_spacing_nm:.2g} nm apart at 550 nm: "
+                                           f"{SPECTRUM_STEP_NM:g} nm averages, grey = fringe range" if averaged else ""))
             self.swatch.object = _swatch_html(pt, s, bare=bool(result.get("bare")))
             self.vspan.location = s.thickness_nm
             self.hspan.location = s.angle_deg
