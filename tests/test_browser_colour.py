@@ -50,7 +50,14 @@ def test_a_colour_several_orders_share_is_said_plainly_and_not_green(page):
     assert "850 nm, or 666 / 593 nm: colour alone cannot decide" in text, text
     classes = verdict.get_attribute("class") or ""
     assert "alert-warning" in classes and "alert-success" not in classes
-    assert page.locator(".fg-view-angle input").first.is_visible()      # the angle the answer used, beside it
+    angle = page.locator(".fg-view-angle input").first
+    assert angle.is_visible()                          # the angle the answer used, beside it
+    angle.fill("41.5")
+    angle.press("Enter")                               # answered again once the field rests
+    verdict.filter(has_text="at 41.5° from the normal").wait_for(timeout=30_000)
+    angle.fill("0")
+    angle.press("Enter")
+    verdict.filter(has_text="at 0° from the normal").wait_for(timeout=30_000)
     assert page.errors == []
 
 

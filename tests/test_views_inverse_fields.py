@@ -225,5 +225,6 @@ def test_the_verdict_reads_the_tolerance_and_a_changed_view_clears_the_search(se
     section._on_find()
     assert "600 ± 10 nm" in section.verdict.object and section.verdict.alert_type in ("warning", "danger")
     assert "The best match is within" not in section.verdict.object
+    section.set_shown(False)
     ex.state.angle_deg = 30.0                                     # the explorer's view changed: not this search
     assert section.last_candidates is None and "changed since this search" in section.verdict.object

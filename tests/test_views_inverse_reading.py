@@ -67,8 +67,19 @@ def test_the_viewing_conditions_sit_beside_the_answer_and_are_the_explorers(sect
     assert ex.state.angle_deg == 0.0
     c = _find(section, "#937e8d")
     assert round(c[0].thickness_nm) == 850 and "at 0° from the normal, lamp D65, CIE 2° observer" in section.verdict.object
+    section.view_angle.value = 41.5                    # changed beside the answer: answered again at once
+    assert round(section.last_candidates[0].thickness_nm) != 850 and "at 41.5° from" in section.verdict.object
     section.view_lamp.value = "A"
-    assert ex.state.illuminant == "A"
+    assert ex.state.illuminant == "A" and "lamp A" in section.verdict.object
+
+
+def test_a_picked_point_is_not_answered_again_under_new_conditions(section):
+    from tests.test_views_inverse import _wedge_png
+    data, _ = _wedge_png()
+    section.load_photo(data, "wedge.png")
+    assert section.pick(100, 30) is not None
+    section.view_angle.value = 20.0                    # its colour was read under the old lamp and angle
+    assert section.last_candidates is None and "changed since this search" in section.verdict.object
 
 
 def test_a_colour_word_is_an_approximation_with_its_own_error(section):

@@ -63,6 +63,8 @@ WRAP_CSS = ".fg-error { white-space: normal; overflow-wrap: anywhere; }"
 LABEL_EDGE_FRACTION = 0.06
 #: Bins of the thickness histogram over the map's robust range.
 HIST_BINS = 60
+#: Rest (ms) of the viewing conditions or reading error before the answer shown is searched again.
+ANSWER_AGAIN_MS = 400
 
 
 class ColourToThickness:
@@ -82,6 +84,8 @@ class ColourToThickness:
         self._cancelled_job = None              # the job the user cancelled, until another starts
         self.last_candidates = None
         self._last_query = None
+        self._again_token = 0
+        self._again_query = None                # a query waiting to be answered again (served pages)
         self._build()
 
     # ------------------------------------------------------------------ widgets
@@ -357,6 +361,7 @@ class ColourToThickness:
         result is cleared and None is returned.
         """
         s = self.ex.state
+        self._again_query = None
         groups = {"tilt", "window", "target"} | ({"colour"} if lab is None else set())
         try:
             v = self._check(groups)
@@ -381,7 +386,7 @@ class ColourToThickness:
             self._refuse(f"Not searched: {exc}")
             return None
         self.last_candidates = cands
-        self._last_query = (colour, lab)
+        self._last_query, self._again_query = (colour, lab), None
         note = ""
         if nominal is not None and tol is None:
             note = (f" The nominal {nominal:g} nm only breaks near-ties: the in-tolerance check needs both "
@@ -429,8 +434,26 @@ class ColourToThickness:
 
     def _on_reading(self, *_):
         """The reading error changed: the answer shown is searched again with it (the colour paths are cached)."""
-        if self.last_candidates is not None and self._last_query is not None:
-            self.find_candidates(*self._last_query)
+        if (self.last_candidates is not None or self._again_query is not None) and self._last_query is not None:
+            self._answer_again()
+
+    def _answer_again(self):
+        """Search the last query again under the new settings: at once outside a server; when served, once the
+        settings have rested for :data:`ANSWER_AGAIN_MS` (a dragged slider asks for one search, not hundreds)."""
+        query = self._again_query or self._last_query
+        doc = pn.state.curdoc
+        if not served(doc):
+            self.find_candidates(*query)
+            return
+        self._refuse("The settings changed: answering again …", alert_type="light")
+        self._again_query = query
+        self._again_token += 1
+        token = self._again_token
+
+        def run():
+            if token == self._again_token and self._again_query is query:
+                self.find_candidates(*query)
+        doc.add_timeout_callback(run, ANSWER_AGAIN_MS)
 
     def _label_align(self, x):
         """Text alignment of each strip label: inward near an end of the strip, so no label is cut off."""
@@ -455,9 +478,15 @@ class ColourToThickness:
     def _on_state(self, *events):
         if any(e.name == "thickness_max_nm" for e in events):
             self.win_hi.set_text(_fmt(self.ex.state.thickness_max_nm, 1))
-        if self.last_candidates is not None and any(e.name != "thickness_max_nm" for e in events):
-            self._refuse("The stack, unknown layer, angle, lamp or observer changed since this search: press "
-                         "“Find thicknesses” again.", alert_type="light")
+        waiting = self._again_query is not None
+        if (self.last_candidates is not None or waiting) and any(e.name != "thickness_max_nm" for e in events):
+            typed = self._last_query is not None and self._last_query[1] is None
+            if self.shown and typed:            # changed beside the answer (or with the tab open): answer again
+                self._answer_again()
+            else:                               # a picked point's colour was read under the old conditions
+                self._again_query = None
+                self._refuse("The stack, unknown layer, angle, lamp or observer changed since this search: press "
+                             "“Find thicknesses” again.", alert_type="light")
         if self.shown:
             self._refresh_strip()
         else:                                   # drawn when the tab is opened, not on every slider move
