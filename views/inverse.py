@@ -174,8 +174,7 @@ class ColourToThickness:
         self.box_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[], color=[], name=[]))
         pf = figure(height=420, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset",
                     css_classes=["fg-photo-fig"], **_image_ranges(),
-                    title="Photo: drag to draw the selected box; 'pick': tap a point or drag a rectangle; "
-                          "'profile line': tap both ends; 'wafer circle': drag a box around the wafer")
+                    title="Photo: drag a box or tap, as the mode on the left says")
         pf.image_rgba(image="image", x="x", y="y", dw="dw", dh="dh", source=self.photo_src)
         pf.rect(x="x", y="y", width="w", height="h", fill_alpha=0.0, line_color="color", line_width=2,
                 source=self.box_src, legend_field="name")
@@ -412,8 +411,9 @@ class ColourToThickness:
         from physics import lab_to_xyz, xyz_to_srgb, srgb_to_hex
         obs_hex = srgb_to_hex(xyz_to_srgb(lab_to_xyz(cands.observed_lab[0], s.illuminant_spec(), s.observer),
                                           s.illuminant_spec(), s.observer))
+        accepted = max(MATCH_DE_MAX, cands.reading_error_de)
         rows = "".join(
-            f"<tr style='{'' if c.delta_e <= MATCH_DE_MAX else 'color:#999'}'><td>{i + 1}</td><td><b>{c.thickness_nm:.1f}</b></td><td>{c.range_nm[0]:.0f}–{c.range_nm[1]:.0f}</td>"
+            f"<tr style='{'' if c.delta_e <= accepted else 'color:#999'}'><td>{i + 1}</td><td><b>{c.thickness_nm:.1f}</b></td><td>{c.range_nm[0]:.0f}–{c.range_nm[1]:.0f}</td>"
             f"<td>{c.delta_e:.2f}</td><td>{c.order}</td>"
             f"<td><span style='display:inline-block;width:36px;height:18px;background:{obs_hex};border:1px solid #888'></span>"
             f"<span style='display:inline-block;width:36px;height:18px;background:{c.hex};border:1px solid #888'></span></td>"
@@ -427,7 +427,7 @@ class ColourToThickness:
             f"<th>observed · predicted</th>{tol_head}<th>answer</th></tr>{rows}</table>"
             f"<div style='font-size:11px;color:#555'>possible: within the colour reading error ΔE00 "
             f"{cands.reading_error_de:g} of the best match; ΔE00 ≤ {AMBIGUOUS_DE:g}: not distinguishable by eye; "
-            f"> {max(MATCH_DE_MAX, cands.reading_error_de):g}: not accepted as a match (common practice).</div>")
+            f"> {accepted:g}: not accepted as a match (common practice).</div>")
         self._refresh_strip()
         x = [c.thickness_nm for c in cands]
         self.cand_src.data = dict(x=x, label=[f"#{i + 1}" for i in range(len(cands))], align=self._label_align(x))
