@@ -18,8 +18,13 @@ per linear channel so that the box shows its computed colour; this corrects
 white balance and exposure together (a von Kries-type correction in the
 camera's linear RGB, taken as sRGB primaries).
 
+Reading error: an observed colour is only as good as the way it was read (an eye, a display, a
+camera, a colorimeter). Every candidate of another order whose ΔE00 is within that reading error
+of the best match's is as possible an answer as the best, and the verdict lists them all; a
+plain colour word ("gold") is read as an approximate colour with its own, large reading error.
+
 Order ambiguity in a map is resolved by continuity: pixels whose best match is
-clearly better than the best match of any other order set a smoothed reference
+better than the best match of any other order by at least the reading error set a smoothed reference
 thickness field, and every other pixel takes the candidate nearest to it (or to
 the nominal thickness, when given).
 
