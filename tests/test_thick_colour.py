@@ -106,3 +106,29 @@ def test_the_spectrum_of_a_thick_layer_is_a_step_average_with_its_fringe_range()
     thin = ExplorerState(**{k: v for k, v in s.param.values().items() if k != "name"})
     thin.thickness_nm = 100.0
     assert compute_point(thin, 1.0, wl).R_low is None
+
+
+def test_line_lamps_get_more_samples_per_fringe_than_smooth_ones():
+    from physics.appearance import SAMPLES_PER_FRINGE, SMOOTH_SAMPLES_PER_FRINGE, samples_per_fringe
+    for lamp in ("F2", "F11", "YELLOW"):
+        assert samples_per_fringe(lamp) == SAMPLES_PER_FRINGE
+    for lamp in ("D65", "A", "LED-B3"):
+        assert samples_per_fringe(lamp) == SMOOTH_SAMPLES_PER_FRINGE
+    assert samples_per_fringe(None) == SAMPLES_PER_FRINGE
+
+
+@pytest.mark.parametrize("d", [10_000, 100_000])
+def test_thick_layer_colour_under_a_white_led(d):
+    stack = CASES["free-standing oxide"](d)
+    cm = color_map(stack, 0, [d], [0.0], illuminant="LED-B3")
+    assert float(delta_e_2000(cm.lab[0, 0], brute_force_lab(stack, "LED-B3"))) < MAX_DELTA_E
+
+
+def test_the_page_map_of_a_thick_range_stays_within_its_point_budget():
+    from physics.appearance import colour_map_points
+    from views.state import MAP_POINT_BUDGET, compute_map
+    s = default_state()
+    s.param.update(thickness_max_nm=100_000.0, thickness_nm=50_000.0)
+    cm = compute_map(s, 10 ** 9)
+    assert colour_map_points(s.stack, 0, cm.thickness_nm, cm.angle_deg.size, "D65") <= MAP_POINT_BUDGET
+    assert cm.thickness_nm.size >= 100 and cm.angle_deg.size >= 30

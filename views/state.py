@@ -328,11 +328,13 @@ def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMa
         raise InputError("Add a layer to see how its colour changes with thickness.")
     d, a = s.thickness_grid(), s.angle_grid()
     if max_grid_points is not None:
+        max_grid_points = min(max_grid_points, MAP_POINT_BUDGET)
         # thick layers are integrated on finer wavelength grids: count the points the map really needs
-        per_cell = colour_map_points(stack, s.swept_layer, d, 1) / d.size
+        ill = s.illuminant_spec()
+        per_cell = colour_map_points(stack, s.swept_layer, d * s.thickness_factor, 1, ill) / d.size
         nd, na = map_grid_counts(d.size, a.size, per_cell, max_grid_points)
         d = np.linspace(0.0, s.thickness_max_nm, nd)
-        points = colour_map_points(stack, s.swept_layer, d, na)
+        points = colour_map_points(stack, s.swept_layer, d * s.thickness_factor, na, ill)
         if points > max_grid_points:
             raise InputError(f"Even a {nd} x {na} colour map needs {points:,} grid points; this "
                              f"server allows {int(max_grid_points):,}. Ask whoever runs it to raise --max-grid-points.")
@@ -344,6 +346,10 @@ def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMa
     return cm if f == 1.0 else dataclasses.replace(cm, thickness_nm=d)     # the axis stays nominal
 
 
+#: Most grid points (thickness × angle × wavelength) of the page's colour map, whatever the server allows: a
+#: thick layer's map is integrated on fine wavelength grids, and beyond this the map is made coarser so it
+#: comes back within about a second on a shared 2-core machine (a 1 µm map needs 3 million).
+MAP_POINT_BUDGET = 8_000_000
 #: Fewest thickness or angle samples a coarsened colour map keeps.
 MIN_MAP_POINTS = 16
 
@@ -386,7 +392,7 @@ def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=N
     each of its steps when the fringes are finer than the step (see :class:`PointResult`).
     """
     stack = s.stack
-    wl_colour = colour_wavelengths_nm(stack)
+    wl_colour = colour_wavelengths_nm(stack, illuminant=s.illuminant_spec())
     wl = colour_band_nm(stack) if spectrum_wavelength_nm is None else np.asarray(spectrum_wavelength_nm, float)
     m, spacing = _spectrum_grid(stack, wl)
     if m > 1:
