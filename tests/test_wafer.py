@@ -73,3 +73,16 @@ def test_a_line_profile_follows_the_map_from_start_to_end():
         line_profile(T, (0, 0), (500, 0))
     with pytest.raises(InputError, match="shorter"):
         line_profile(T, (3, 3), (3.2, 3))
+
+
+def test_area_statistics_read_the_usable_area_and_thin_out_a_large_one(monkeypatch):
+    from physics import wafer
+    T, centre, r_px, _ = _radial_map()
+    full = wafer.area_statistics(T, centre, r_px, 10)
+    mask = wafer_mask(T.shape, centre, r_px, 10)
+    assert full["stride"] == 1 and full["pixels"] == mask.sum()
+    assert full["mean_nm"] == pytest.approx(np.nanmean(T[mask]))
+    monkeypatch.setattr(wafer, "AREA_MAX_PIXELS", 5_000)
+    thin = wafer.area_statistics(T, centre, r_px, 10)
+    assert thin["stride"] > 1 and thin["pixels"] <= 5_000
+    assert thin["mean_nm"] == pytest.approx(full["mean_nm"], abs=0.5)

@@ -15,8 +15,7 @@ from bokeh.models import ColumnDataSource
 from bokeh.plotting import figure
 
 from physics import InputError
-from physics.inverse import _stats
-from physics.wafer import SITE_HALF_SIZE_PX, SITE_PATTERNS, line_profile, wafer_mask, wafer_sites
+from physics.wafer import SITE_HALF_SIZE_PX, SITE_PATTERNS, area_statistics, line_profile, wafer_sites
 
 from .explorer import _esc
 
@@ -148,10 +147,9 @@ class PhotoReading:
         """Statistics of the map over the wafer's usable area, or None without a circle and a map."""
         if self.sites is None:
             return None
-        T = self.sec.result.thickness_nm
         cx, cy, r = self.circle
-        mask = wafer_mask(T.shape, (cx, cy), r, self.settings.edge_exclusion_mm / self.sites.mm_per_px)
-        return _stats(T[mask])
+        return area_statistics(self.sec.result.thickness_nm, (cx, cy), r,
+                               self.settings.edge_exclusion_mm / self.sites.mm_per_px)
 
     def _draw(self):
         line = self.line or ((self.line_start,) if self.line_start else ())
@@ -199,7 +197,8 @@ class PhotoReading:
                    f"{100 * st['uniformity']:.2f} %.")
         if area is not None and area["pixels"]:
             summary += (f" Whole usable area: mean {area['mean_nm']:.1f} nm, range P1–P99 {area['p_low_nm']:.1f}–"
-                        f"{area['p_high_nm']:.1f} nm, {area['valid_fraction']:.0%} of it matched.")
+                        f"{area['p_high_nm']:.1f} nm, {area['valid_fraction']:.0%} of it matched"
+                        + (f" (read on a grid of one pixel in {area['stride']} each way)." if area["stride"] > 1 else "."))
         self.site_table.object = (
             f"<div style='font-size:13px'>{_esc(summary)}</div>"
             "<table style='font-size:12px' cellpadding='2'><tr><th>site</th><th>x (mm)</th><th>y (mm, up)</th>"
