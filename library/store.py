@@ -120,9 +120,9 @@ except ImportError:                     # pragma: no cover - Windows
 
 __all__ = [
     "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "LibraryKeyError", "ItemMissing",
-    "sanitize_name", "validate_calibration", "prepare_root", "load_or_create_key", "key_file_path",
+    "sanitize_name", "clean_note", "validate_calibration", "prepare_root", "load_or_create_key", "key_file_path",
     "sign_library", "meta_mac", "saver_text", "error_text",
-    "KINDS", "NOUNS", "DEFAULT_ROOT", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS", "MAX_META_BYTES", "MAX_SCAN_ENTRIES",
+    "KINDS", "NOUNS", "DEFAULT_ROOT", "MAX_NOTE_CHARS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS", "MAX_META_BYTES", "MAX_SCAN_ENTRIES",
     "KEY_FILE_ENV", "MARKER_NAME",
 ]
 
@@ -138,6 +138,8 @@ MAX_NAME_CHARS = 80
 MAX_NAME_BYTES = 160
 #: Longest user name kept in the metadata, characters.
 MAX_USER_CHARS = 100
+#: Longest note saved with an item (characters): a few sentences on why it was saved and what it is for.
+MAX_NOTE_CHARS = 500
 #: Largest sidecar read, bytes. A sidecar the server writes is under 2 KB (a name of at most 160 bytes,
 #: a user of at most 100 characters, fixed fields); anything larger was not written by it, and the cap
 #: bounds what a listing reads for each file.
@@ -266,6 +268,7 @@ class Entry:
     file_name: str
     sha256: str
     user_verified: bool = False
+    note: str = ""                   #: the saver's note, signed with the rest of the metadata
 
     @property
     def saved_by(self) -> str:
@@ -398,6 +401,19 @@ def _clean_user(user) -> str:
         raise InputError(f"The user saving to the library must be given as text; got {type(user).__name__}.")
     user = "".join(ch for ch in user if ch.isprintable()).strip()
     return user[:MAX_USER_CHARS] or "unknown"
+
+
+def clean_note(note) -> str:
+    """A note to save with an item: printable text (line breaks become spaces), at most MAX_NOTE_CHARS.
+
+    Raises InputError for a note that is not text or is too long (it is never cut silently)."""
+    if not isinstance(note, str):
+        raise InputError(f"A note is text; got {type(note).__name__}.")
+    note = " ".join("".join(ch if ch.isprintable() else " " for ch in note).split())
+    if len(note) > MAX_NOTE_CHARS:
+        raise InputError(f"The note is {len(note):,} characters; a note holds at most {MAX_NOTE_CHARS}. "
+                         "Shorten it.")
+    return note
 
 
 # ---------------------------------------------------------------------- calibrations
@@ -734,14 +750,18 @@ def meta_mac(key: bytes, meta: dict) -> str:
     signed = {"kind": meta["kind"], "name": meta["name"], "version": meta["file_version"], "user": meta["user"],
               "user_verified": meta["user_verified"], "saved_at": meta["saved_at"], "size": meta["size"],
               "sha256": meta["sha256"]}
+    if "note" in meta:                                 # signed when present; sidecars without one verify as before
+        signed["note"] = meta["note"]
     text = json.dumps(signed, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
     return hmac.new(key, _MAC_CONTEXT + text.encode("ascii"), hashlib.sha256).hexdigest()
 
 
 def _meta_bytes(key: bytes, kind: str, name: str, version: int, user: str, verified: bool, saved_at: str,
-                size: int, sha256: str) -> bytes:
+                size: int, sha256: str, note: str = "") -> bytes:
     meta = {"format": META_FORMAT, "version": META_VERSION, "kind": kind, "name": name, "file_version": version,
             "user": user, "user_verified": bool(verified), "saved_at": saved_at, "size": size, "sha256": sha256}
+    if note:
+        meta["note"] = note
     meta["hmac"] = meta_mac(key, meta)
     return (json.dumps(meta, indent=2, ensure_ascii=False) + "\n").encode("utf-8")
 
@@ -769,7 +789,9 @@ def _verify_meta(meta: dict, key: bytes):
         return ("its metadata has no signature from this server (saved by an older version of fringegauge, "
                 f"or made by hand), so it is not offered for loading; {_SIGN_HINT}.")
     forged = "its metadata was not written by this server (hand-made or edited metadata); it is not offered for loading."
-    if set(meta) != _META_FIELDS or type(meta.get("user_verified")) is not bool or not isinstance(meta["hmac"], str):
+    if (set(meta) - {"note"} != _META_FIELDS or type(meta.get("user_verified")) is not bool
+            or not isinstance(meta["hmac"], str)
+            or not (isinstance(meta.get("note", ""), str) and len(meta.get("note", "")) <= MAX_NOTE_CHARS)):
         return forged
     if not hmac.compare_digest(meta["hmac"], meta_mac(key, meta)):
         return forged
@@ -1181,11 +1203,13 @@ class Library:
             yield fd
 
     # ------------------------------------------------------------ saving
-    def save(self, kind: str, name: str, content: str, *, user: str, user_verified: bool = False) -> SaveResult:
+    def save(self, kind: str, name: str, content: str, *, user: str, user_verified: bool = False,
+             note: str = "") -> SaveResult:
         """Save ``content`` under ``name``; never overwrites (a taken name gets the next version).
 
         ``user`` is recorded as the saver; ``user_verified`` says whether a per-user login vouches for it
-        (the caller knows: the page passes True only for a login the server checks per user).
+        (the caller knows: the page passes True only for a login the server checks per user). ``note`` (at
+        most :data:`MAX_NOTE_CHARS` characters, see :func:`clean_note`) is kept in the signed metadata.
 
         Raises
         ------
@@ -1201,6 +1225,7 @@ class Library:
         self._kind_dir(kind)
         name = sanitize_name(name)
         user = _clean_user(user)
+        note = clean_note(note)
         if not isinstance(content, str):
             raise InputError(f"Library content is text; got {type(content).__name__}.")
         if len(content) > MAX_CONTENT_BYTES:
@@ -1218,7 +1243,7 @@ class Library:
         key = self.signing_key()
         try:
             with self._writable_root("saved") as root_fd:
-                return self._save_locked(kind, root_fd, name, data, user, bool(user_verified), key)
+                return self._save_locked(kind, root_fd, name, data, user, bool(user_verified), key, note)
         except LibraryWriteError:
             raise
         except OSError as exc:
@@ -1242,7 +1267,7 @@ class Library:
                 f"{advice[0].upper()}{advice[1:]}") from None
 
     def _save_locked(self, kind, root_fd: int, name: str, data: bytes, user: str, verified: bool,
-                     key: bytes) -> SaveResult:
+                     key: bytes, note: str = "") -> SaveResult:
         typed = name
         with _closing_fd(self._kind_fd_for_writing(root_fd, kind, "saved")) as fd, \
                 _folder_lock(fd, self._lock_key(kind), kind, "saved"):
@@ -1257,7 +1282,7 @@ class Library:
                 raise LibraryWriteError(f"{target} appeared while saving; save again. {_WRITE_ADVICE}")
             previous = self._latest_meta(fd, name, key) if taken else None
             meta_bytes = _meta_bytes(key, kind, name, version, user, verified, _now_iso(), len(data),
-                                     hashlib.sha256(data).hexdigest())
+                                     hashlib.sha256(data).hexdigest(), note)
             _atomic_write(fd, target, data)
             try:
                 _atomic_write(fd, meta_name, meta_bytes)
@@ -1444,7 +1469,8 @@ class Library:
         if st.st_size != meta["size"]:
             raise InputError(changed)
         entry = Entry(name=name, version=version, user=meta["user"], saved_at=meta["saved_at"], size=meta["size"],
-                      file_name=fn, sha256=meta["sha256"], user_verified=meta["user_verified"])
+                      file_name=fn, sha256=meta["sha256"], user_verified=meta["user_verified"],
+                      note=meta.get("note", ""))
         cache_key = (kind, fn, st.st_dev, st.st_ino, st.st_mtime_ns, st.st_ctime_ns, st.st_size, meta["sha256"])
         if use_cache:
             with self._cache_guard:
@@ -1782,6 +1808,7 @@ def _sign_one(kind: str, fd: int, fn: str, parsed, key: bytes, dry_run: bool):
         return f"it is not a valid {NOUNS[kind]} file: {exc}"
     if not dry_run:
         user = _clean_user(meta["user"])
+        note = meta.get("note", "") if isinstance(meta.get("note", ""), str) else ""
         _atomic_write(fd, fn + _META_SUFFIX, _meta_bytes(key, kind, name, version, user, False, meta["saved_at"],
-                                                         meta["size"], meta["sha256"]))
+                                                         meta["size"], meta["sha256"], note[:MAX_NOTE_CHARS]))
     return "signed"

@@ -630,3 +630,26 @@ def test_missing_items_raise_item_missing(lib):
                  lambda: lib.archive("stacks", "A", 1), lambda: lib.load("stacks", "Never saved")):
         with pytest.raises(store.ItemMissing):
             call()
+
+
+# ---------------------------------------------------------------------- notes
+def test_a_note_is_kept_in_the_signed_metadata_and_listed(lib):
+    text = _preset(STACK_PRESETS[0])
+    lib.save("stacks", "Gate oxide", text, user="ak", note="Line 3 monitor,\nafter the furnace service")
+    lib.save("stacks", "Gate oxide", text, user="bz")
+    entries = sorted(lib.list("stacks"), key=lambda e: e.version)
+    assert [e.note for e in entries] == ["Line 3 monitor, after the furnace service", ""]
+    meta_path = lib.root / "stacks" / (entries[0].file_name + ".meta.json")
+    meta = json.loads(meta_path.read_text())
+    assert meta["note"] == entries[0].note
+    meta["note"] = "edited by hand"                       # the note is signed: an edited one is not trusted
+    meta_path.write_text(json.dumps(meta))
+    assert [e.version for e in lib.list("stacks")] == [2]
+    assert "not written by this server" in str(lib.list_with_problems("stacks")[1][0])
+
+
+def test_a_note_over_its_bound_is_refused_not_cut(lib):
+    with pytest.raises(InputError, match=f"at most {store.MAX_NOTE_CHARS}"):
+        lib.save("stacks", "Gate oxide", _preset(STACK_PRESETS[0]), user="ak", note="x" * (store.MAX_NOTE_CHARS + 1))
+    assert lib.list("stacks") == []
+    assert store.clean_note("  two\twords\x00 ") == "two words"

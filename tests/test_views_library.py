@@ -497,3 +497,35 @@ def test_the_tab_shows_no_server_path(lib, monkeypatch):
     monkeypatch.setattr(lib, "load", lambda *args: (_ for _ in ()).throw(OSError(errno.EIO, "I/O error", secret)))
     assert not a.load_selected()
     assert "I/O error" in a.message.object and secret not in a.message.object
+
+
+# ---------------------------------------------------------------------- notes, search, two versions
+def test_notes_show_in_the_list_and_the_search_finds_name_saver_or_note(lib):
+    a = _page(lib)
+    a.note.set_text("after the furnace service on line 3")
+    assert _save(a, "stacks", "Gate oxide", "ak")
+    a.note.set_text("")
+    assert _save(a, "stacks", "Field oxide", "bz")
+    assert any("furnace" in label for label in a.listing.options)
+    a.select_file(next(e.file_name for e in a.entries if e.name == "Gate oxide"))
+    assert "Note: after the furnace service on line 3" in a.detail.object
+    for query, names in (("furnace", {"Gate oxide"}), ("BZ", {"Field oxide"}), ("oxide", {"Gate oxide", "Field oxide"}),
+                         ("line 3 ak", {"Gate oxide"}), ("nothing like it", set())):
+        a.search.value_input = query
+        assert {e.name for e in a.entries} == names, query
+    a.search.value_input = ""
+    a.note.set_text("x" * 501)
+    assert not _save(a, "stacks", "Gate oxide", "ak") and "at most 500" in a.note.message.object
+
+
+def test_two_versions_side_by_side_mark_what_changed(lib):
+    a = _page(lib)
+    assert _save(a, "stacks", "Gate oxide", "ak")
+    a.ex.state.thickness_nm = 123.0
+    assert _save(a, "stacks", "Gate oxide", "bz")
+    assert a.selected().version == 2 and a.compare_with.value is not None and not a.compare_button.disabled
+    assert a.compare_selected()
+    html = a.diff.object
+    assert "version 1 (left) and version 2 (right)" in html and "<table" in html and "23" in html
+    assert "diff_chg" in html or "diff_add" in html
+    assert _save(a, "stacks", "Other", "ak") and a.compare_button.disabled     # one version: nothing to compare

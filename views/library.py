@@ -30,6 +30,7 @@ Messages on the page name items and files inside the library, never the server's
 
 from __future__ import annotations
 
+import difflib
 import os
 import time
 import uuid
@@ -38,7 +39,7 @@ from functools import partial
 
 import panel as pn
 
-from library.store import (DEFAULT_ROOT, NOUNS, ItemMissing, Library, LibraryKeyError, LibraryWriteError, error_text,
+from library.store import (DEFAULT_ROOT, MAX_NOTE_CHARS, NOUNS, ItemMissing, clean_note, Library, LibraryKeyError, LibraryWriteError, error_text,
                            validate_calibration)
 from physics import InputError
 from physics.materials import page_wording
@@ -63,6 +64,13 @@ MAX_LISTED = 500
 WATCH_PERIOD_MS = 3000
 #: How long an archive question stays answerable (ms); after that a second click is needed again.
 CONFIRM_MS = 8000
+#: Characters of a note shown in the list (the whole note is shown under it when the item is selected).
+NOTE_IN_LIST_CHARS = 40
+#: Most lines compared in the two-version view: the stacks, gratings and calibrations saved here are tens
+#: of lines; a longer file would make the comparison slow and the page long.
+MAX_DIFF_LINES = 3000
+#: Lines of context kept around each change in the two-version view.
+DIFF_CONTEXT_LINES = 3
 
 _SOURCE = {"stacks": "the Film explorer's stack (with its thickness and view)",
            "gratings": "the Gratings tab's grating and spectrometer",
@@ -72,6 +80,12 @@ _SOURCE = {"stacks": "the Film explorer's stack (with its thickness and view)",
 _CSS = """
 .fg-lib-heading { font-size: 14px; font-weight: 600; color: #333; margin: 0; line-height: 1.3; }
 .fg-lib-confirm { font-size: 13px; line-height: 1.35; }
+table.diff { font: 12px monospace; border-collapse: collapse; }
+table.diff td { padding: 0 4px; white-space: pre-wrap; vertical-align: top; }
+table.diff th.diff_header { background: #eee; font-weight: 600; }
+table.diff td.diff_header { color: #888; text-align: right; }
+table.diff td.diff_next { display: none; }
+.diff_add { background: #d9f2d9; } .diff_chg { background: #fff0b3; } .diff_sub { background: #f7d4d4; }
 """
 
 
@@ -157,6 +171,15 @@ class LibrarySection:
         self.listing = pn.widgets.MultiSelect(options={}, value=[], size=14, width=560, margin=(2, 5),
                                               css_classes=["fg-lib-list"])
         self.detail = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"}, css_classes=["fg-lib-detail"])
+        self.search = pn.widgets.TextInput(label="Search the list (name, saver or note)", width=560, margin=(2, 5),
+                                           placeholder="e.g. gate oxide, ak, line 3", css_classes=["fg-lib-search"])
+        self.compare_with = pn.widgets.Select(label="Compare with version", options={}, width=170, margin=(2, 5),
+                                              css_classes=["fg-lib-compare-with"])
+        self.compare_button = pn.widgets.Button(label="Show both side by side", color="light", width=190,
+                                                margin=(20, 5, 2, 5))
+        self.diff = pn.pane.HTML("", margin=(4, 5), sizing_mode="stretch_width", stylesheets=[_CSS],
+                                 css_classes=["fg-lib-diff"])
+        self.all_entries: list = []      # every listed entry of the kind; ``entries`` are those the search keeps
         self.load_button = pn.widgets.Button(label="Load into the page", color="primary", width=170, margin=(6, 5))
         self.refresh_button = pn.widgets.Button(label="Refresh list", color="light", width=120, margin=(6, 5))
         self.archive_button = pn.widgets.Button(label="Archive this version…", color="light", width=170,
@@ -169,6 +192,8 @@ class LibrarySection:
                                   margin=0, css_classes=["fg-lib-confirm-row"])
         self.name = Field("Name to save under", width=300)
         self.user = Field("Your name or initials (saved with the item)", width=300)
+        self.note = Field(f"Note (optional, at most {MAX_NOTE_CHARS} characters)", width=300,
+                          placeholder="what it is for, what changed", css="fg-lib-note")
         self.source = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"})
         self.save_button = pn.widgets.Button(label="Save to the lab library", color="primary", width=200,
                                              margin=(6, 5))
@@ -195,6 +220,9 @@ class LibrarySection:
         self.confirm_button.on_click(locked(lambda e: self.confirm_archive()))
         self.keep_button.on_click(locked(lambda e: self.keep()))
         self.save_button.on_click(locked(lambda e: self.save_current()))
+        self.search.param.watch(locked(lambda e: self._set_listing(self.all_entries, self._selected_file())),
+                                "value_input")
+        self.compare_button.on_click(locked(lambda e: self.compare_selected()))
         self._reread()
 
     def verified_logins(self) -> bool:
@@ -283,11 +311,15 @@ class LibrarySection:
         return chosen is not None and keep is None and select == "keep"
 
     def _set_listing(self, entries, keep) -> None:
-        """Show ``entries``; select the one whose file is ``keep`` (None: nothing selected)."""
-        self.entries = list(entries)
-        self.listing.options = {f"{e.name}  ·  v{e.version}  ·  {e.saved_by}  ·  {_when(e.saved_at)}": e.file_name
-                                for e in self.entries}
+        """Show those of ``entries`` the search keeps; select the one whose file is ``keep`` (None: nothing)."""
+        self.all_entries = list(entries)
+        self.entries = [e for e in self.all_entries if matches(e, self.search.value_input or "")]
+        self.listing.options = {_list_label(e): e.file_name for e in self.entries}
         self.select_file(keep)
+
+    def _selected_file(self):
+        e = self.selected()
+        return e.file_name if e is not None else None
 
     def select_file(self, file_name: str | None) -> None:
         """Select the listed entry stored in ``file_name`` (None, or a file not listed: nothing)."""
@@ -310,15 +342,18 @@ class LibrarySection:
         self.load_button.disabled = e is None
         self.archive_button.disabled = e is None or self._pending is not None
         if e is None:
+            self._show_versions(None)
             noun = NOUNS[self.kind.value]
             self.detail.object = ("" if self.lib is None else f"No {noun} saved yet." if not self.entries
                                   else f"Nothing is selected: choose a {noun} in the list to load or archive it.")
             return
         who = ("" if e.user_verified else
                " — a name typed when saving, not checked by a login, so anyone could have typed it")
+        note = f"<br>Note: {_esc(e.note)}" if e.note else ""
         self.detail.object = (f"<div class='fg-lib-entry'><b>{_esc(e.name)}</b>, version {e.version}: saved by "
                               f"{_esc(e.saved_by)}{who} on {_esc(_when(e.saved_at))} (UTC), {e.size:,} bytes, file "
-                              f"<code>{_esc(e.file_name)}</code></div>")
+                              f"<code>{_esc(e.file_name)}</code>{note}</div>")
+        self._show_versions(e)
 
     def _kind_changed(self) -> None:
         self._withdraw()
@@ -444,12 +479,19 @@ class LibrarySection:
             self._say(f"Not saved: type {' and '.join(missing)}.", "warning")
             return False
         try:
+            note = clean_note(self.note.input.value)
+        except InputError as exc:
+            self.note.show_error(str(exc))
+            self._say(f"Not saved: {_esc(str(exc))}", "warning")
+            return False
+        self.note.show_error(None)
+        try:
             content = self._current_text(kind, name)
         except InputError as exc:
             self._say(f"Nothing to save: {_esc(str(exc))}", "warning")
             return False
         try:
-            result = self.lib.save(kind, name, content, user=user, user_verified=verified)
+            result = self.lib.save(kind, name, content, user=user, user_verified=verified, note=note)
         except (LibraryWriteError, LibraryKeyError) as exc:
             self._say(f"Not saved: {_esc(error_text(exc))}", "danger")
             return False
@@ -525,6 +567,40 @@ class LibrarySection:
         self.confirm_row.visible = False
         self.archive_button.disabled = self.selected() is None
 
+    # ------------------------------------------------------------------ two versions side by side
+    def _versions_of(self, e) -> list:
+        """The listed versions of ``e``'s item (every case form of its name is one item), newest first."""
+        return [x for x in self.all_entries if x.name.lower() == e.name.lower()]
+
+    def _show_versions(self, e) -> None:
+        """Offer the selected item's other versions to compare with (the one before it first)."""
+        others = [] if e is None else [x for x in self._versions_of(e) if x.version != e.version]
+        self.compare_with.options = {f"version {x.version} ({_when(x.saved_at)})": x.file_name for x in others}
+        older = [x for x in others if x.version < e.version] if e is not None else []
+        self.compare_with.value = (older[0] if older else others[0]).file_name if others else None
+        self.compare_with.disabled = self.compare_button.disabled = not others
+        self.diff.object = ""
+
+    def compare_selected(self) -> bool:
+        """Show the selected version and the one chosen beside it, line by line (changes marked)."""
+        e = self.selected()
+        other = next((x for x in self.all_entries if x.file_name == self.compare_with.value), None)
+        if self.lib is None or e is None or other is None:
+            self._say("Nothing to compare: choose an item that has more than one version, then a version to "
+                      "compare it with.", "warning")
+            return False
+        old, new = sorted((other, e), key=lambda x: x.version)
+        try:
+            texts = [self.lib.load(self.kind.value, x.name, x.version) for x in (old, new)]
+        except (InputError, OSError) as exc:
+            if self._gone(e, exc):
+                return False
+            self._say(f"Could not compare: {_esc(page_wording(error_text(exc)))}", "danger")
+            return False
+        self.diff.object = version_diff_html(old, new, *texts)
+        self.message.visible = False
+        return True
+
     def _current_text(self, kind: str, name: str) -> str:
         if kind == "stacks":
             return self.ex.state.file_text()
@@ -551,15 +627,44 @@ class LibrarySection:
                f"<code>{_esc(str(DEFAULT_ROOT))}</code> beside where it was started (made on the first save), as "
                "<code>python serve.py</code> does; <code>python serve.py --library FOLDER</code> chooses another."
                if self.default_folder else "") + "</div>", margin=(5, 5), css_classes=["fg-lib-intro"])
-        browse = pn.Column(_heading("Saved in the lab library (newest first)"), self.kind, self.listing,
+        browse = pn.Column(_heading("Saved in the lab library (newest first)"), self.kind, self.search, self.listing,
                            self.detail, pn.Row(self.load_button, self.refresh_button, self.archive_button),
+                           pn.Row(self.compare_with, self.compare_button, margin=0),
                            self.confirm_row, self.problems, width=600, margin=(0, 20, 0, 0))
         save = pn.Column(_heading("Save what this page shows"), self.source, self.name.view(), self.user.view(),
-                         self.save_button, width=340)
+                         self.note.view(), self.save_button, width=340)
         body = pn.Row(browse, save, name=self.body_name)
-        return pn.Column(intro, self.message, body, sizing_mode="stretch_width", scroll=True)
+        return pn.Column(intro, self.message, body, self.diff, sizing_mode="stretch_width", scroll=True)
 
 
 def _when(iso: str) -> str:
     """'2026-12-02T07:10:03+00:00' → '2026-12-02 07:10'."""
     return iso.replace("T", " ")[:16] if isinstance(iso, str) else "?"
+
+
+def matches(entry, query: str) -> bool:
+    """True when every word of ``query`` occurs (in any case) in the entry's name, saver or note."""
+    hay = f"{entry.name} {entry.saved_by} {entry.note}".lower()
+    return all(word in hay for word in query.lower().split())
+
+
+def _list_label(e) -> str:
+    note = e.note if len(e.note) <= NOTE_IN_LIST_CHARS else e.note[:NOTE_IN_LIST_CHARS - 1].rstrip() + "…"
+    return (f"{e.name}  ·  v{e.version}  ·  {e.saved_by}  ·  {_when(e.saved_at)}"
+            + (f"  ·  {note}" if note else ""))
+
+
+def version_diff_html(old, new, old_text: str, new_text: str) -> str:
+    """Two versions of one item side by side (:class:`difflib.HtmlDiff`, which escapes the text), only the
+    changed lines with :data:`DIFF_CONTEXT_LINES` around them; a sentence when they are the same or too long."""
+    a, b = old_text.splitlines(), new_text.splitlines()
+    head = f"<b>{_esc(old.name)}</b>: version {old.version} (left) and version {new.version} (right)"
+    if a == b:
+        return f"<div>{head} hold the same text.</div>"
+    if max(len(a), len(b)) > MAX_DIFF_LINES:
+        return (f"<div>{head}: too long to compare here (more than {MAX_DIFF_LINES:,} lines); load each and "
+                "compare the downloads.</div>")
+    table = difflib.HtmlDiff(wrapcolumn=70).make_table(a, b, f"version {old.version}", f"version {new.version}",
+                                                       context=True, numlines=DIFF_CONTEXT_LINES)
+    return (f"<div style='margin-bottom:4px'>{head}; changed lines are marked (green added, yellow changed, "
+            f"red removed).</div>{table}")
