@@ -66,7 +66,8 @@ def test_the_viewing_conditions_sit_beside_the_answer_and_are_the_explorers(sect
     section.view_angle.value = 0.0                     # set back from the colour tab
     assert ex.state.angle_deg == 0.0
     c = _find(section, "#937e8d")
-    assert round(c[0].thickness_nm) == 850 and "at 0° from the normal, lamp D65, CIE 2° observer" in section.verdict.object
+    assert round(c[0].thickness_nm) == 850
+    assert "at 0° from the normal, lamp D65, CIE 2° observer" in section.verdict.object
     section.view_angle.value = 41.5                    # changed beside the answer: answered again at once
     assert round(section.last_candidates[0].thickness_nm) != 850 and "at 41.5° from" in section.verdict.object
     section.view_lamp.value = "A"

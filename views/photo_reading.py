@@ -198,7 +198,8 @@ class PhotoReading:
         if area is not None and area["pixels"]:
             summary += (f" Whole usable area: mean {area['mean_nm']:.1f} nm, range P1–P99 {area['p_low_nm']:.1f}–"
                         f"{area['p_high_nm']:.1f} nm, {area['valid_fraction']:.0%} of it matched"
-                        + (f" (read on a grid of one pixel in {area['stride']} each way)." if area["stride"] > 1 else "."))
+                        + (f" (read on a grid of one pixel in {area['stride']} each way)." if area["stride"] > 1
+                           else "."))
         self.site_table.object = (
             f"<div style='font-size:13px'>{_esc(summary)}</div>"
             "<table style='font-size:12px' cellpadding='2'><tr><th>site</th><th>x (mm)</th><th>y (mm, up)</th>"
