@@ -52,8 +52,6 @@ LOG_FLOOR_PCT = 1e-4
 #: The zoomed view's top is the highest R times this (room above the curve), and at least MIN_ZOOM_PCT.
 ZOOM_HEADROOM = 1.15
 MIN_ZOOM_PCT = 0.01
-#: The band the zoomed view fits its range to (nm): the visible, where a coating's residual matters.
-ZOOM_BAND_NM = (380.0, 780.0)
 #: Most fringe-order marks drawn on the strip; beyond this they would cover it.
 MAX_ORDER_MARKS = 40
 STRIP_TITLE = "Reference strip at the current angle (dashed: start of each fringe order at 550 nm)"
@@ -906,7 +904,7 @@ class FilmExplorer:
             self.map_fig.x_range.update(start=d0, end=d1)
             self.map_fig.y_range.update(start=a0, end=a1)
             self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer + 1} and viewing angle — "
-                                       f"{s.lamp_text()}, {s.observer}° observer, {s.polarization}"
+                                       f"{s.lamp_short()}, {s.observer}° observer, {s.polarization}"
                                        + (f", cone NA {s.na:g}" if s.na else "")
                                        + (f" — {s.brightness_text()}" if s.brightness == "normalized" else ""))
         if "strip" in result:
@@ -958,11 +956,12 @@ class FilmExplorer:
         top = pt.R_high if pt.R_low is not None else pt.R
         if view == "zoom":
             self.line_T.visible = False
-            visible = (pt.wavelength_nm >= ZOOM_BAND_NM[0]) & (pt.wavelength_nm <= ZOOM_BAND_NM[1])
+            band = (min(s.band_min_nm, s.band_max_nm), max(s.band_min_nm, s.band_max_nm))
+            visible = (pt.wavelength_nm >= band[0]) & (pt.wavelength_nm <= band[1])
             seen = top[visible] if visible.any() else top
             peak = float(np.nanmax(seen)) * 100 if seen.size else 1.0
             self.spec_fig.y_range.update(start=0.0, end=max(peak * ZOOM_HEADROOM, MIN_ZOOM_PCT))
-            self.spec_fig.yaxis.axis_label = f"reflectance (%), fitted to {ZOOM_BAND_NM[0]:g}–{ZOOM_BAND_NM[1]:g} nm"
+            self.spec_fig.yaxis.axis_label = f"R (%), fitted to {band[0]:g}–{band[1]:g} nm"
         else:
             self.spec_fig.y_range.update(start=0.0, end=100.0)
             self.spec_fig.yaxis.axis_label = "reflectance, transmittance (%)"

@@ -229,6 +229,12 @@ class ExplorerState(param.Parameterized):
             return "custom lamp (uploaded)"
         return lamp_label(self.illuminant)
 
+    def lamp_short(self) -> str:
+        """The lamp as a code for titles: 'F11', 'halogen 3000 K', 'custom lamp'."""
+        if self.illuminant == HALOGEN:
+            return f"halogen {self.lamp_cct_k:.0f} K"
+        return "custom lamp" if self.illuminant == "custom" else self.illuminant
+
     def set_spd(self, wavelength_nm, values) -> None:
         """Store a custom lamp spectrum after validating it; selects illuminant 'custom'."""
         user_spd_on_fine_grid(wavelength_nm, values)          # raises InputError if unusable
@@ -268,10 +274,10 @@ class ExplorerState(param.Parameterized):
         if self.brightness == "absolute":
             return "absolute reflectance (a perfect mirror is white)"
         if self.brightness_reference == "map":
-            return "brightest colour of the whole map = white"
+            return "white = brightest of the whole map"
         lo, hi = self.normalize_range_nm()
         span = "" if (lo, hi) == (0.0, self.thickness_max_nm) else f", {lo:g}–{hi:g} nm"
-        return f"brightest colour along the {self.angle_deg:.1f}° strip{span} = white"
+        return f"white = brightest along the {self.angle_deg:.1f}° strip{span}"
 
 
 @functools.lru_cache(maxsize=64)
