@@ -485,7 +485,9 @@ class ToleranceResult:
     """Colours of a stack whose layer thicknesses each vary at random within ± ``tolerance_pct``.
 
     Arrays run over trials: ``factors`` (N, layers), ``lab`` and ``rgb`` (N, 3), ``delta_e`` (N,) CIEDE2000
-    from the nominal colour, ``luminous`` (N,) luminous reflectance (D65, V(λ)) as fractions.
+    from the nominal colour, ``luminous`` (N,) luminous reflectance (D65, V(λ)) as fractions;
+    ``lab_absolute`` (N, 3) CIELAB at absolute brightness (a perfect mirror is white), the scale on which
+    a coating's reflex colour (a*, b*) is specified.
     """
 
     tolerance_pct: float
@@ -497,6 +499,7 @@ class ToleranceResult:
     luminous: np.ndarray
     nominal_lab: np.ndarray
     nominal_luminous: float
+    lab_absolute: np.ndarray | None = None
 
 
 def tolerance_run(stack: Stack, tolerance_pct: float, trials: int = 200, seed: int = 1, *, angle_deg: float = 0.0,
@@ -526,4 +529,5 @@ def tolerance_run(stack: Stack, tolerance_pct: float, trials: int = 200, seed: i
     _, lab0, _ = scaled_colors(xyz0, illuminant, observer, scale)
     rgb, lab, _ = scaled_colors(xyz, illuminant, observer, scale)
     return ToleranceResult(tol, int(seed), factors, lab, rgb, delta_e_2000(lab, lab0[None, :]),
-                           luminous_reflectance(R, wl), lab0, float(luminous_reflectance(R0, wl)))
+                           luminous_reflectance(R, wl), lab0, float(luminous_reflectance(R0, wl)),
+                           xyz_to_lab(xyz, illuminant, observer))

@@ -110,6 +110,9 @@ def test_tolerance_run_is_seeded_and_bounded(ar):
     a = tolerance_run(ar.state.stack, 3.0, 50, seed=7)
     b = tolerance_run(ar.state.stack, 3.0, 50, seed=7)
     assert np.array_equal(a.delta_e, b.delta_e) and np.all(np.abs(a.factors - 1) <= 0.03)
+    assert np.allclose(a.lab_absolute, a.lab)                  # at brightness 1 both are the same colours
+    brighter = tolerance_run(ar.state.stack, 3.0, 50, seed=7, scale=10.0)
+    assert np.allclose(brighter.lab_absolute, a.lab) and brighter.lab[0, 0] > a.lab[0, 0]
     assert tolerance_run(ar.state.stack, 0.0, 5).delta_e.max() == pytest.approx(0.0, abs=1e-9)
     with pytest.raises(InputError):
         tolerance_run(ar.state.stack, 3.0, MAX_TOLERANCE_TRIALS + 1)
@@ -117,5 +120,6 @@ def test_tolerance_run_is_seeded_and_bounded(ar):
     ar.tol_trials.input.value = "40"
     ar.run_tolerance()
     assert "40 stacks" in ar.tol_out.object and "ΔE00 from nominal" in ar.tol_out.object
+    assert "a* " in ar.tol_out.object and "b* " in ar.tol_out.object
     ar.angle_slider.value = 10.0
     assert "run it again" in ar.tol_out.object

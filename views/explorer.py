@@ -1274,7 +1274,7 @@ def _readouts_html(pt, s: ExplorerState) -> str:
 
 def _tolerance_html(r, s: ExplorerState) -> str:
     """A tolerance run's spread: ΔE00 from nominal and luminous reflectance, and some trials' colours."""
-    de, lum = r.delta_e, r.luminous
+    de, lum, ab = r.delta_e, r.luminous, r.lab_absolute[:, 1:]
     p95 = float(np.percentile(de, 95))
     boxes = "".join(f"<span title='ΔE00 {d:.2f}' style='display:inline-block;width:16px;height:16px;margin:1px;"
                     f"border:1px solid #888;background:{srgb_to_hex(c)}'></span>"
@@ -1284,6 +1284,8 @@ def _tolerance_html(r, s: ExplorerState) -> str:
             f"{_esc(s.lamp_text())}.<br>ΔE00 from nominal: median {np.median(de):.2f}, 95 % of trials below {p95:.2f}, "
             f"largest {de.max():.2f}<br>luminous R: nominal {_pct(r.nominal_luminous)}, range "
             f"{_pct(float(lum.min()))} – {_pct(float(lum.max()))}, standard deviation {_pct(float(lum.std()), 2)}"
+            f"<br>reflex colour at absolute brightness: a* {ab[:, 0].min():.1f} to {ab[:, 0].max():.1f}, "
+            f"b* {ab[:, 1].min():.1f} to {ab[:, 1].max():.1f}"
             f"<br>{boxes}<br><span style='color:#666'>Colours at the page's brightness; a model of random "
             "thickness errors, not a yield prediction.</span></div>")
 
