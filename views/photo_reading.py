@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 import panel as pn
 import param
-from bokeh.models import ColumnDataSource
+from bokeh.models import ColumnDataSource, Range1d
 from bokeh.plotting import figure
 
 from physics import InputError
@@ -79,7 +79,7 @@ class PhotoReading:
         pf = figure(height=250, sizing_mode="stretch_width", tools="pan,wheel_zoom,reset,save",
                     title="Thickness along the line (tap its two ends on the photo in 'profile line' mode)",
                     x_axis_label="distance along the line (px)", y_axis_label="thickness (nm)",
-                    css_classes=["fg-profile"])
+                    x_range=Range1d(0, 1), y_range=Range1d(0, 1), css_classes=["fg-profile"])
         pf.line(x="d", y="t", source=self.prof_src, line_color="#3b6fa0", line_width=2)
         self.prof_fig = pf
         from .inverse import locked             # the section's module, loaded by now
@@ -170,6 +170,12 @@ class PhotoReading:
                               if s is not None else dict(x=[], y=[], label=[]))
         p = self.profile
         self.prof_src.data = dict(d=p.distance, t=p.thickness_nm) if p is not None else dict(d=[], t=[])
+        if p is not None:
+            t = p.thickness_nm[np.isfinite(p.thickness_nm)]
+            lo, hi = (float(t.min()), float(t.max())) if t.size else (0.0, 1.0)
+            pad = max(0.05 * (hi - lo), 1.0)
+            self.prof_fig.x_range.update(start=0.0, end=max(float(p.distance[-1]), 1e-9))
+            self.prof_fig.y_range.update(start=lo - pad, end=hi + pad)
         self.prof_fig.xaxis.axis_label = f"distance along the line ({p.unit if p is not None else 'px'})"
 
     def _tables(self, notes):
