@@ -40,7 +40,7 @@ __all__ = [
     "angular_dispersion_deg_per_nm", "linear_dispersion_mm_per_nm", "reciprocal_linear_dispersion_nm_per_mm",
     "resolving_power", "resolvable_difference_nm", "free_spectral_range_nm", "free_spectral_range_exact_nm",
     "order_overlaps", "order_sorting_filter_nm", "littrow_angle_deg", "blaze_wavelength_nm",
-    "blaze_wavelength_at_deviation_nm", "rayleigh_wavelength_nm", "n_slit_intensity", "groove_efficiency",
+    "blaze_wavelength_at_deviation_nm", "plan_spectrometer_report", "PlanRejection", "rayleigh_wavelength_nm", "n_slit_intensity", "groove_efficiency",
     "grating_spectrum", "grating_color", "grating_color_map", "plan_spectrometer", "SpectrometerDesign",
     "display_srgb", "spectral_line_srgb",
 ]
@@ -624,11 +624,21 @@ class SpectrometerDesign:
     resolution_nm: float
     free_spectral_range_nm: float
     note: str
+    filter_edges_nm: tuple = ()     #: long-pass edges of the stepped order-sorting filter the band needs (nm)
+
+
+@dataclass(frozen=True)
+class PlanRejection:
+    """A groove density and order the planner left out, and why (a sentence)."""
+
+    lines_per_mm: float
+    order: int
+    reason: str
 
 
 def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_um, *, deviation_deg=30.0,
                       densities=(150, 300, 600, 900, 1200, 1800, 2400, 3600), orders=(1, 2, 3),
-                      min_fill=0.3) -> list[SpectrometerDesign]:
+                      min_fill=0.3, source_band_nm=None) -> list[SpectrometerDesign]:
     """Propose groove densities and orders that fit a band on a detector without order overlap.
 
     Geometry: a fixed angle ``deviation_deg`` between incident and diffracted beams at the band
@@ -636,11 +646,30 @@ def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_
     centre; the spread on the detector is f·(β(long) − β(short)) (flat detector, small angles);
     resolution is :data:`PIXELS_PER_RESOLUTION_ELEMENT` pixels of the reciprocal linear dispersion.
 
+    ``source_band_nm`` (nm, optional): what the source emits. Without it a band wider than one free
+    spectral range is left out; with it such a band is kept when a stepped long-pass order-sorting
+    filter (:func:`order_sorting_filter_nm`) clears it, its edges given in ``filter_edges_nm``, and
+    left out when lower orders bring longer light onto it that no long-pass filter removes.
+
     Returns
     -------
     list of SpectrometerDesign, best resolution first; designs that overflow the detector, overlap
-    orders, or fill less than ``min_fill`` of it are left out.
+    orders, or fill less than ``min_fill`` of it are left out (:func:`plan_spectrometer_report` says why).
+
+    References
+    ----------
+    Palmer & Loewen, Diffraction Grating Handbook, sec. 2.7 (order sorting) and ch. 6 (mounts).
     """
+    return plan_spectrometer_report(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_um,
+                                    deviation_deg=deviation_deg, densities=densities, orders=orders,
+                                    min_fill=min_fill, source_band_nm=source_band_nm)[0]
+
+
+def plan_spectrometer_report(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_um, *, deviation_deg=30.0,
+                             densities=(150, 300, 600, 900, 1200, 1800, 2400, 3600), orders=(1, 2, 3),
+                             min_fill=0.3, source_band_nm=None):
+    """(designs, rejections): :func:`plan_spectrometer`'s designs, and a :class:`PlanRejection` for every
+    density and order it left out, in the order tried."""
     lo, hi = _band(band_nm)
     f = float(require_finite("focal_length_mm", focal_length_mm, minimum=0.0, min_inclusive=False, unit="mm"))
     L = float(require_finite("detector_length_mm", detector_length_mm, minimum=0.0, min_inclusive=False, unit="mm"))
@@ -648,26 +677,45 @@ def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_
     dv = float(require_finite("deviation_deg", deviation_deg, minimum=0.0, maximum=120.0, unit="deg"))
     dens = [float(g) for g in np.atleast_1d(_density(densities)).ravel()]
     ords = [int(m) for m in np.atleast_1d(_order(orders, nonzero=True, what="a spectrometer design")).ravel()]
+    source = _band(source_band_nm, "source_band_nm") if source_band_nm is not None else None
     centre = 0.5 * (lo + hi)
-    out = []
+    out, dropped = [], []
     for g in dens:
         d = 1e6 / g
         for m in ords:
-            if hi > lo * (abs(m) + 1) / abs(m):
-                continue                                                # wider than one free spectral range
+            def drop(reason):
+                dropped.append(PlanRejection(g, m, reason))
+            edges = ()
+            if hi > lo * (abs(m) + 1) / abs(m):                        # wider than one free spectral range
+                if source is None:
+                    drop(f"the band is wider than one free spectral range in order {m} ({lo:g}–{lo * (abs(m) + 1) / abs(m):.0f} nm)")
+                    continue
+                sorting = order_sorting_filter_nm((lo, hi), m, source)
+                if sorting["longer_orders"]:
+                    drop(f"lower orders bring longer light (from {sorting['longer_from_nm']:.0f} nm) onto the band, "
+                         "which no long-pass filter removes")
+                    continue
+                edges = tuple(float(e) for e in sorting["edges_nm"])
             # grating rotation θ with α = θ + D/2, β = θ − D/2: m λc = 2 d sin θ cos(D/2)
             s = m * centre / (2 * d * np.cos(np.radians(dv) / 2))
             if abs(s) >= 1:
+                drop(f"the centre wavelength cannot reach the {dv:g}° deviation (grooves too dense for order {m})")
                 continue
             theta = np.degrees(np.arcsin(s))
             alpha = theta + dv / 2
             if abs(alpha) >= 89:
+                drop(f"it needs a grazing incidence ({alpha:.0f}°)")
                 continue
             b = [diffraction_angle_deg(w, g, m, alpha) for w in (lo, hi)]
             if any(np.isnan(b)):
+                drop("part of the band does not propagate (evanescent) in this order")
                 continue
             spread = f * np.radians(abs(b[1] - b[0]))
-            if spread > L or spread < min_fill * L:
+            if spread > L:
+                drop(f"the band spreads over {spread:.1f} mm, more than the {L:g} mm detector")
+                continue
+            if spread < min_fill * L:
+                drop(f"the band fills only {100 * spread / L:.0f} % of the detector (less than {100 * min_fill:.0f} %)")
                 continue
             rld = reciprocal_linear_dispersion_nm_per_mm(centre, g, f, m, alpha)
             nm_px = rld * p
@@ -675,6 +723,8 @@ def plan_spectrometer(band_nm, focal_length_mm, detector_length_mm, pixel_pitch_
                                           float(spread / L), float(nm_px), float(nm_px * PIXELS_PER_RESOLUTION_ELEMENT),
                                           float(lo / abs(m)),
                                           f"{g:g} lines/mm, order {m}: {lo:g}-{hi:g} nm spans {spread:.1f} of "
-                                          f"{L:g} mm; {nm_px:.3f} nm/pixel"))
+                                          f"{L:g} mm; {nm_px:.3f} nm/pixel"
+                                          + (f"; stepped order-sorting filter, edges {_join_nm(edges)} nm" if edges else ""),
+                                          edges))
     out.sort(key=lambda x: x.resolution_nm)
-    return out
+    return out, dropped

@@ -919,3 +919,23 @@ def test_no_filter_note_quotes_the_longest_higher_order_wavelength():
     # band 400-800 nm in order 1: order 2 brings 200-400 nm onto it; a source from 500 nm emits none of it
     r = G.order_sorting_filter_nm((400.0, 800.0), 1, source_band_nm=(500.0, 600.0))
     assert r["edges_nm"] == [] and "shorter than 400 nm" in r["note"]
+
+
+def test_plan_report_accounts_for_every_density_and_order_tried():
+    """Every (density, order) tried is either a design or a rejection with its reason; a band wider than one
+    free spectral range is kept only with a source to sort orders for (Palmer & Loewen, Diffraction
+    Grating Handbook, sec. 2.7)."""
+    dens, ords = (150, 300, 600, 1200, 2400), (1, 2, 3)
+    for band, source in (((400.0, 700.0), None), ((400.0, 1000.0), None), ((400.0, 1000.0), (200.0, 1100.0))):
+        designs, rejected = G.plan_spectrometer_report(band, 75.0, 28.7, 14.0, densities=dens, orders=ords,
+                                                       source_band_nm=source)
+        tried = {(d.lines_per_mm, d.order) for d in designs} | {(r.lines_per_mm, r.order) for r in rejected}
+        assert tried == {(float(g), m) for g in dens for m in ords} and len(designs) + len(rejected) == 15
+        assert designs == G.plan_spectrometer(band, 75.0, 28.7, 14.0, densities=dens, orders=ords,
+                                               source_band_nm=source)
+        for d in designs:
+            wide = band[1] > band[0] * (d.order + 1) / d.order
+            assert bool(d.filter_edges_nm) == wide
+            if wide:
+                assert d.filter_edges_nm == tuple(G.order_sorting_filter_nm(band, d.order, source)["edges_nm"])
+    assert not G.plan_spectrometer((400.0, 1000.0), 75.0, 28.7, 14.0)

@@ -386,3 +386,64 @@ def test_grooves_too_fine_for_the_band_leave_only_the_zero_order(section):
     assert section.fan_label_src.data["order"] == [0]
     assert "Only the zero order propagates" in section.fan_caption.object
     assert "evanescent" in section.readout_html.object
+
+
+# ---------------------------------------------------------------------- laser, deviation, wide bands, missing orders
+def test_a_laser_line_source_shows_its_caution_and_every_beam_it_sends():
+    g = GratingSection()
+    assert not g.laser_caution.visible
+    g.source.value = "laser"
+    g.laser.input.value = "532"
+    s = g.settings
+    assert s.source == "laser" and s.laser_nm == 532.0 and g.laser_caution.visible
+    assert "laser-safety rules" in g.laser_caution.object and "zero order" in g.laser_caution.object
+    html = g.overlap_html.object
+    assert "532 nm laser line" in html and "Beams leaving the grating" in html
+    for m in gr.propagating_orders(532.0, s.lines_per_mm, s.incidence_deg):
+        beta = gr.diffraction_angle_deg(532.0, s.lines_per_mm, m, s.incidence_deg)
+        assert f"{float(beta):.2f}°".replace("-0.00", "0.00") in html
+    lo, hi = s.source_band
+    assert lo < 532.0 < hi and hi - lo < 0.1
+
+
+def test_one_deviation_setting_drives_the_planner_and_the_blaze_read_out():
+    g = GratingSection()
+    assert g.settings.deviation_deg == 30.0 and g.deviation.input.value == "30"
+    g.deviation.input.value = "40"
+    s = g.settings
+    designs = gr.plan_spectrometer(s.band, s.focal_length_mm, s.detector_length_mm, s.pixel_pitch_um, deviation_deg=40.0)
+    assert g.plan == designs
+    expected = gr.blaze_wavelength_at_deviation_nm(s.blaze_angle_deg, s.lines_per_mm, 1, 40.0)
+    assert g.readouts["blaze_at_deviation_nm"] == pytest.approx(expected)
+    assert "planner's 40° deviation" in g.readout_html.object and "40° between incident" in g.plan_html.object
+    g.deviation.input.value = "150"
+    assert g.settings.deviation_deg == 40.0 and "outside 0 to 120" in g.deviation.message.object
+
+
+def test_the_planner_takes_a_broadband_band_with_a_stepped_filter_and_says_why_others_dropped():
+    g = GratingSection()
+    g.band_hi.input.value = "1000"                             # 400-1000 nm: wider than one free spectral range
+    s = g.settings
+    designs, rejected = gr.plan_spectrometer_report(s.band, s.focal_length_mm, s.detector_length_mm,
+                                                    s.pixel_pitch_um, source_band_nm=s.source_band)
+    assert designs and all(d.filter_edges_nm for d in designs) and g.plan == designs
+    flt = gr.order_sorting_filter_nm(s.band, 1, s.source_band)
+    assert designs[0].filter_edges_nm == tuple(flt["edges_nm"])
+    assert "stepped, edges" in g.plan_html.object and "dropped out" in g.plan_html.object
+    for r in rejected:
+        assert f"{r.lines_per_mm:g} lines/mm, order {r.order:+d}" in g.plan_html.object and r.reason
+    assert gr.plan_spectrometer(s.band, s.focal_length_mm, s.detector_length_mm, s.pixel_pitch_um) == []
+
+
+def test_a_lamellar_grating_at_half_duty_marks_its_missing_even_orders():
+    g = GratingSection()
+    g.groove.value = "lamellar"
+    g.density.input.value = "300"                               # many orders propagate
+    s = g.settings
+    assert s.duty_cycle == 0.5
+    missing = g.readouts["missing_orders"]
+    props = [m for m in gr.propagating_orders(s.band_lo_nm, s.lines_per_mm, s.incidence_deg) if m]
+    assert missing and missing == [m for m in props if m % 2 == 0 and abs(m) <= 12]
+    assert "every even order" in g.readout_html.object
+    g.duty.input.value = "0.3"
+    assert "every even order" not in g.readout_html.object

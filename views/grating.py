@@ -95,16 +95,34 @@ FAN_WIDTH_PX = 420
 FAN_HEIGHT_PX = {"reflection": 300, "transmission": 430}
 #: Shown in the preset selector when the settings are not those of a shipped preset.
 NO_PRESET = "(choose a preset)"
+#: Angle between incident and diffracted beams the planner assumes by default (degrees): a common
+#: compact mount (common practice). The read-outs' blaze wavelength "at the deviation" uses the same setting.
+DEFAULT_DEVIATION_DEG = 30.0
+#: Deviation angles the planner accepts (degrees), as physics.grating.plan_spectrometer does.
+DEVIATION_LIMITS_DEG = (0.0, 120.0)
+#: Half-width given to a laser line when other orders are checked for overlap (nm): a single-mode gas or
+#: diode laser line is far narrower (common practice: well under 0.01 nm); the half-width only makes the
+#: line a band the overlap and filter calculations take, and is far below any band position shown.
+LASER_LINE_HALF_WIDTH_NM = 0.005
+#: The laser line offered first (nm): the helium-neon red line, 632.8 nm (recalled from memory).
+DEFAULT_LASER_NM = 632.8
+#: The source choices: a broadband lamp over a band, or one laser line.
+SOURCE_CHOICES = {"broadband lamp (band)": "band", "laser line": "laser"}
+LASER_CAUTION = ("**Laser source.** Every order a grating sends, the zero order included, carries part of the "
+                 "beam, and each can injure the eye or skin; a grating turns one beam into several going in "
+                 "directions you may not expect. Block unused orders with beam dumps, wear eyewear rated for the "
+                 "wavelength and power, and follow your site's laser-safety rules and your laser safety officer.")
 
 
 #: Link keys of the numeric fields, in the order of ``GratingSection._fields``.
 LINK_NUMBER_KEYS = ("g_lpmm", "g_blaze", "g_duty", "g_alpha", "g_from", "g_to", "g_src_from", "g_src_to", "g_focal",
-                    "g_width", "g_det", "g_pitch")
+                    "g_width", "g_det", "g_pitch", "g_laser", "g_dev")
 #: Link keys of the choices: (key, settings key, label, allowed values).
 LINK_CHOICES = (("g_kind", "kind", "Reflection or transmission", ("reflection", "transmission")),
                 ("g_groove", "groove", "Grooves", ("lamellar", "blazed")),
                 ("g_lamp", "illuminant", "Lamp", ILLUMINANT_CHOICES),
-                ("g_bright", "brightness", "Brightness", tuple(BRIGHTNESS_CHOICES.values())))
+                ("g_bright", "brightness", "Brightness", tuple(BRIGHTNESS_CHOICES.values())),
+                ("g_source", "source", "Source", tuple(SOURCE_CHOICES.values())))
 
 
 def _link_order(text: str) -> int:
@@ -145,6 +163,9 @@ class GratingSettings:
     brightness: str = "common"
     source_lo_nm: float = DEFAULT_SOURCE_BAND_NM[0]
     source_hi_nm: float = DEFAULT_SOURCE_BAND_NM[1]
+    source: str = "band"                       # "band" (a lamp over source_lo–hi) or "laser" (one line)
+    laser_nm: float = DEFAULT_LASER_NM
+    deviation_deg: float = DEFAULT_DEVIATION_DEG
 
     @classmethod
     def from_file(cls, gf: GratingFile, previous: "GratingSettings | None" = None) -> "GratingSettings":
@@ -158,7 +179,8 @@ class GratingSettings:
                    band_hi_nm=gf.band_nm[1], focal_length_mm=gf.focal_length_mm,
                    illuminated_width_mm=gf.illuminated_width_mm, detector_length_mm=gf.detector_length_mm,
                    pixel_pitch_um=gf.pixel_pitch_um, order=prev.order, illuminant=prev.illuminant,
-                   brightness=prev.brightness, source_lo_nm=prev.source_lo_nm, source_hi_nm=prev.source_hi_nm)
+                   brightness=prev.brightness, source_lo_nm=prev.source_lo_nm, source_hi_nm=prev.source_hi_nm,
+                   source=prev.source, laser_nm=prev.laser_nm, deviation_deg=prev.deviation_deg)
 
     def to_file(self) -> GratingFile:
         """The grating file of these settings (order, lamp, brightness and source band are view choices,
@@ -176,7 +198,10 @@ class GratingSettings:
 
     @property
     def source_band(self) -> tuple[float, float]:
-        """Wavelengths the source is taken to emit (nm), for the order overlaps and the filter."""
+        """Wavelengths the source is taken to emit (nm), for the order overlaps and the filter: the lamp's band,
+        or the laser line widened by :data:`LASER_LINE_HALF_WIDTH_NM` each side."""
+        if self.source == "laser":
+            return (self.laser_nm - LASER_LINE_HALF_WIDTH_NM, self.laser_nm + LASER_LINE_HALF_WIDTH_NM)
         return (self.source_lo_nm, self.source_hi_nm)
 
     def grating_fields(self) -> tuple:
@@ -313,15 +338,25 @@ def compute_readouts(s: GratingSettings) -> dict:
     )
     if s.groove == "blazed":
         out["blaze_nm"] = gr.blaze_wavelength_nm(s.blaze_angle_deg, g, m) if m > 0 else None
-        bc = out["beta_centre_deg"]
-        if s.kind == "reflection" and m > 0 and np.isfinite(bc):
-            out["deviation_deg"] = abs(a - bc)
+        if s.kind == "reflection" and m > 0:
+            out["deviation_deg"] = s.deviation_deg           # the planner's mount: one setting for both
             out["blaze_at_deviation_nm"] = gr.blaze_wavelength_at_deviation_nm(s.blaze_angle_deg, g, m,
-                                                                               out["deviation_deg"])
+                                                                               s.deviation_deg)
     for k in fan_orders(s):
         if k != 0 and abs(k) <= MAX_FAN_ORDER:
             out["rayleigh_nm"][k] = gr.rayleigh_wavelength_nm(g, k, a)
+    out["missing_orders"] = missing_orders(s)
     return out
+
+
+def missing_orders(s: GratingSettings) -> list[int]:
+    """Propagating nonzero orders (up to MAX_FAN_ORDER) whose lamellar groove envelope is zero: m·duty a whole
+    number, so at a 50 % duty cycle every even order (the same at every wavelength)."""
+    if s.groove != "lamellar":
+        return []
+    return [k for k in fan_orders(s) if k != 0 and abs(k) <= MAX_FAN_ORDER
+            and float(np.asarray(gr.groove_efficiency(s.centre_nm, s.lines_per_mm, k, **s.groove_kw())))
+            < MISSING_EFFICIENCY]
 
 
 def compute_overlaps(s: GratingSettings) -> dict:
@@ -405,8 +440,19 @@ def compute_colour_map(s: GratingSettings) -> dict:
                                 **s.groove_kw())
 
 
-def compute_plan(s: GratingSettings) -> list:
-    return gr.plan_spectrometer(s.band, s.focal_length_mm, s.detector_length_mm, s.pixel_pitch_um)
+def compute_plan(s: GratingSettings) -> dict:
+    """The planner's designs for the band (``designs``) and why each other density and order dropped out
+    (``rejected``), at the set deviation, order-sorting wide bands for the set source."""
+    designs, rejected = gr.plan_spectrometer_report(s.band, s.focal_length_mm, s.detector_length_mm,
+                                                    s.pixel_pitch_um, deviation_deg=s.deviation_deg,
+                                                    source_band_nm=s.source_band)
+    return dict(designs=designs, rejected=rejected)
+
+
+def compute_laser_orders(s: GratingSettings) -> list:
+    """Where a laser line leaves the grating: (order, β in degrees) of every order it propagates in."""
+    return [(m, float(gr.diffraction_angle_deg(s.laser_nm, s.lines_per_mm, m, s.incidence_deg)))
+            for m in gr.propagating_orders(s.laser_nm, s.lines_per_mm, s.incidence_deg)]
 
 
 # ---------------------------------------------------------------------- text helpers
@@ -459,6 +505,7 @@ class GratingSection:
         self.overlaps = None
         self.line_shape = None
         self.plan = None
+        self.plan_rejected = []
         self.generation = 0
         self.timings_ms = {}
         self.on_change = []             # callables run after the settings change (the page address follows)
@@ -494,6 +541,13 @@ class GratingSection:
         self.band_hi = Field("to (nm)", width=145, css="fg-grating-band-hi")
         self.source_lo = Field("Source emits from (nm)", width=145, css="fg-grating-source-lo")
         self.source_hi = Field("to (nm)", width=145, css="fg-grating-source-hi")
+        self.source = pn.widgets.RadioButtonGroup(options=SOURCE_CHOICES, value="band", margin=(2, 5))
+        self.laser = Field("Laser line (nm)", width=145, css="fg-grating-laser")
+        self.deviation = Field("Deviation (°, α to β)", width=145, css="fg-grating-deviation")
+        self.laser_caution = pn.pane.HTML(
+            f"<div role='note' style='background:#fde2e2;border:1px solid #d9534f;border-radius:4px;padding:5px 8px;"
+            f"font-size:12px;color:#5c1010'>{_markdown_bold(LASER_CAUTION)}</div>",
+            margin=(5, 5), sizing_mode="stretch_width", visible=False, css_classes=["fg-grating-laser-caution"])
         self.focal = Field("Focal length (mm)", width=145)
         self.width = Field("Illuminated width (mm)", width=145)
         self.det_len = Field("Detector length (mm)", width=145)
@@ -559,6 +613,8 @@ class GratingSection:
             (self.width, "illuminated_width_mm", "Illuminated width", *L["illuminated_width_mm"]),
             (self.det_len, "detector_length_mm", "Detector length", *L["detector_length_mm"]),
             (self.pitch, "pixel_pitch_um", "Pixel pitch", *L["pixel_pitch_um"]),
+            (self.laser, "laser_nm", "Laser line", *L["band_nm"]),
+            (self.deviation, "deviation_deg", "Deviation", *DEVIATION_LIMITS_DEG, "°"),
         ]
 
     def _pairs(self):
@@ -668,6 +724,7 @@ class GratingSection:
         self.groove.param.watch(partial(self._on_choice, "groove"), "value")
         self.illuminant.param.watch(partial(self._on_choice, "illuminant"), "value")
         self.brightness.param.watch(partial(self._on_choice, "brightness"), "value")
+        self.source.param.watch(partial(self._on_choice, "source"), "value")
         self.n_slits.param.watch(lambda e: _locked(self._draw_line_shape), "value")
         self.scale.param.watch(lambda e: _locked(self._draw_line_shape), "value")
         self.n_slits.param.watch(self._changed, "value")
@@ -687,10 +744,17 @@ class GratingSection:
             self.groove.value = s.groove
             self.illuminant.value = s.illuminant
             self.brightness.value = s.brightness
+            self.source.value = s.source
             self._show_groove_fields()
         finally:
             self._syncing = False
         self._show_origin()
+
+    def _show_source_fields(self):
+        """The laser line's field and caution for a laser source, the band's fields for a lamp."""
+        laser = self.shown.source == "laser"
+        self.laser.input.visible = self.laser_caution.visible = laser
+        self.source_lo.input.visible = self.source_hi.input.visible = not laser
 
     def _show_groove_fields(self):
         """Show the field the grooves use; the hidden one goes back to its value in use, without a message,
@@ -955,8 +1019,10 @@ class GratingSection:
         """Show computed results (changes Bokeh models: runs with the document lock when served)."""
         t0 = time.perf_counter()
         self.shown = s
+        self._show_source_fields()
         self.fan, self.readouts, self.overlaps = results["fan"], results["readouts"], results["overlaps"]
-        self.strip, self.plan = results["strip"], results["plan"]
+        self.strip, self.plan = results["strip"], results["plan"]["designs"]
+        self.plan_rejected = results["plan"]["rejected"]
         self._draw_fan()
         self._draw_readouts()
         self._draw_overlaps()
@@ -1078,12 +1144,16 @@ class GratingSection:
             rows.append((f"blaze wavelength, Littrow{facet}",
                          f"{r['blaze_nm']:.1f} nm" if r["blaze_nm"] is not None else "— (blazed for m > 0)"))
             if r["blaze_at_deviation_nm"] is not None:
-                rows.append((f"blaze wavelength at this {r['deviation_deg']:.1f}° deviation",
+                rows.append((f"blaze wavelength at the planner's {r['deviation_deg']:g}° deviation",
                              f"{r['blaze_at_deviation_nm']:.1f} nm"))
         ray = "<br>".join(f"{_order_text(k)}: {v:.1f} nm" + (" <span style='color:#b00020'>in band</span>"
                                                             if s.band_lo_nm <= v <= s.band_hi_nm else "")
                           for k, v in sorted(r["rayleigh_nm"].items()))
         rows.append(("Rayleigh anomalies (order goes grazing)", ray or "—"))
+        if r["missing_orders"]:
+            half = " (50 % duty cycle: every even order)" if abs(s.duty_cycle - 0.5) < 1e-9 else ""
+            rows.append(("missing orders (the grooves send no light)",
+                         ", ".join(_order_text(k) for k in r["missing_orders"]) + half))
         warn = ""
         if not (np.isfinite(r["beta_lo_deg"]) and np.isfinite(r["beta_hi_deg"])):
             bad = r["status_lo"] if not np.isfinite(r["beta_lo_deg"]) else r["status_hi"]
@@ -1098,23 +1168,31 @@ class GratingSection:
     def _draw_overlaps(self):
         s, o = self.shown, self.overlaps
         mt = _order_text(s.order)
-        src = f"source taken to emit {s.source_lo_nm:g}–{s.source_hi_nm:g} nm"
+        laser = s.source == "laser"
+        src = (f"a {s.laser_nm:g} nm laser line" if laser else
+               f"source taken to emit {s.source_lo_nm:g}–{s.source_hi_nm:g} nm")
+        beams = ""
+        if laser:
+            where = [(_order_text(m), _deg(b)) for m, b in compute_laser_orders(s)]
+            beams = ("<div style='font-size:13px;margin:2px 0'><b>Beams leaving the grating</b> (every one carries "
+                     f"laser light; block those you do not use):</div>"
+                     + _table(["order", "β"], where, css="fg-laser-orders"))
         if o["error"]:
             self.overlap_html.object = (f"<h4 style='margin:4px 0'>Order overlap (order {mt})</h4>"
-                                        f"<div style='color:#b00020;font-size:13px'>{_esc(o['error'])}</div>")
+                                        f"<div style='color:#b00020;font-size:13px'>{_esc(o['error'])}</div>{beams}")
             return
         rows = [(_order_text(r["order"]), f"{r['lo_nm']:.0f}–{r['hi_nm']:.0f}",
                  f"{r['at_band_nm'][0]:.0f}–{r['at_band_nm'][1]:.0f}") for r in o["rows"]]
         table = (_table(["other order", "its wavelengths (nm)", f"land where order {mt} has (nm)"], rows)
                  if rows else "<div style='font-size:13px'>No other order of the same sign lands on the band.</div>")
         flt = o["filter"]
-        cover = ("" if s.source_lo_nm <= s.band_lo_nm and s.band_hi_nm <= s.source_hi_nm else
+        cover = ("" if laser or (s.source_lo_nm <= s.band_lo_nm and s.band_hi_nm <= s.source_hi_nm) else
                  "<div style='font-size:12px;color:#8a5a00'>The source band "
                  f"({s.source_lo_nm:g}–{s.source_hi_nm:g} nm) "
                  f"does not cover all of the band ({s.band_lo_nm:g}–{s.band_hi_nm:g} nm); set it under Light.</div>")
         self.overlap_html.object = (
             f"<h4 style='margin:4px 0'>Order overlap on the band in order {mt} ({src})</h4>{cover}{table}"
-            f"<div style='font-size:13px;margin-top:4px'><b>Order-sorting filter:</b> {_esc(flt['note'])}</div>")
+            f"<div style='font-size:13px;margin-top:4px'><b>Order-sorting filter:</b> {_esc(flt['note'])}</div>{beams}")
 
     def _draw_line_shape(self):
         s = self.shown
@@ -1179,17 +1257,30 @@ class GratingSection:
                          f"{_deg(d.beta_range_deg[0], 1)} … {_deg(d.beta_range_deg[1], 1)}", f"{d.spread_mm:.1f}",
                          f"{100 * d.fill_fraction:.0f}%", f"{d.nm_per_pixel:.3f}", f"{d.resolution_nm:.2f}",
                          f"{d.free_spectral_range_nm:.0f}"))
+            if d.filter_edges_nm:
+                rows[-1] = rows[-1] + (f"stepped, edges {', '.join(f'{e:.0f}' for e in d.filter_edges_nm)} nm",)
+            else:
+                rows[-1] = rows[-1] + ("—",)
+        head.append("order-sorting filter")
         what = (f"{s.band_lo_nm:g}–{s.band_hi_nm:g} nm on a {s.detector_length_mm:g} mm detector with "
                 f"{s.pixel_pitch_um:g} µm pixels, f = {s.focal_length_mm:g} mm")
-        body = _table(head, rows) if rows else (
+        body = _table(head, rows, css="fg-plan-designs") if rows else (
             "<div style='font-size:13px;color:#b00020'>No listed groove density (150–3600 lines/mm) in orders 1–3 "
-            "fits this band on this detector without overflowing it, filling less than 30 % of it or overlapping "
-            "orders; try another focal length, detector or band.</div>")
+            "fits this band on this detector; the reasons for each are below. Try another focal length, detector, "
+            "deviation or band.</div>")
+        why = "".join(f"<li>{r.lines_per_mm:g} lines/mm, order {r.order:+d}: {_esc(r.reason)}</li>"
+                      for r in self.plan_rejected)
+        dropped = (f"<details class='fg-plan-rejected' style='font-size:12px;margin-top:3px'{' open' if not rows else ''}>"
+                   f"<summary>Why the other {len(self.plan_rejected)} densities and orders dropped out</summary>"
+                   f"<ul style='margin:2px 0'>{why}</ul></details>") if why else ""
+        source = (f"the {s.laser_nm:g} nm laser line" if s.source == "laser"
+                  else f"a source emitting {s.source_lo_nm:g}–{s.source_hi_nm:g} nm")
         self.plan_html.object = (
-            f"<h4 style='margin:4px 0'>Spectrometer planning: {what}</h4>{body}"
-            "<div style='font-size:12px;color:#555;margin-top:3px'>Fixed 30° between incident and diffracted beams "
-            "at the band centre, flat detector; resolution = 3 pixels of the reciprocal linear dispersion; best "
-            "resolution first.</div>")
+            f"<h4 style='margin:4px 0'>Spectrometer planning: {what}</h4>{body}{dropped}"
+            f"<div style='font-size:12px;color:#555;margin-top:3px'>{s.deviation_deg:g}° between incident and "
+            "diffracted beams at the band centre (the Deviation setting, also used by the blaze read-out), flat "
+            "detector; resolution = 3 pixels of the reciprocal linear dispersion; best resolution first. A band "
+            f"wider than one free spectral range is kept when a stepped long-pass filter clears it for {source}.</div>")
 
     # ------------------------------------------------------------------ colour map (background)
     def _refresh_map(self, s: GratingSettings, sync: bool = False):
@@ -1333,18 +1424,22 @@ class GratingSection:
             head("Light"),
             field_pair(self.incidence, self.illuminant),
             field_pair(self.band_lo, self.band_hi),
+            _label("Source"), self.source,
             field_pair(self.source_lo, self.source_hi),
-            pn.pane.HTML("<div style='font-size:12px;color:#555'>Source band: what the lamp emits and the detector "
-                         "sees, for the order overlaps and the order-sorting filter.</div>", width=300, margin=(0, 5)),
+            self.laser.view(),
+            pn.pane.HTML("<div style='font-size:12px;color:#555'>Source: what the lamp emits and the detector "
+                         "sees (or the one laser line), for the order overlaps and the order-sorting filter.</div>",
+                         width=300, margin=(0, 5)),
             head("Spectrometer"),
             field_pair(self.focal, self.width),
             field_pair(self.det_len, self.pitch),
+            self.deviation.view(),
             pn.pane.HTML(f"<div style='font-size:12px;color:#555'>{CONVENTION}</div>", width=300, margin=(6, 5)),
             head("Downloads"), self.dl_csv, self.dl_map, self.dl_strip,
             width=320, margin=(0, 5), scroll=True, sizing_mode="stretch_height",
             styles={"background": "#f6f6f4", "border-right": "1px solid #ddd"})
         views = pn.Column(
-            self.caution,
+            self.caution, self.laser_caution,
             pn.Row(pn.pane.Bokeh(self.fan_fig), self.readout_html, sizing_mode="stretch_width", margin=0),
             self.fan_caption,
             self.overlap_html,
