@@ -476,6 +476,9 @@ def band_average(stack: Stack, band_nm, angle_deg: float = 0.0, na: float = 0.0,
 
 #: Most trials of a tolerance run (bounds its time: about a millisecond each for a thin stack).
 MAX_TOLERANCE_TRIALS = 2000
+#: Most wavelength × ray × layer evaluations of one tolerance run (about 10 s on one core): bounds the time a
+#: run from a page may hold a worker thread.
+MAX_TOLERANCE_WORK = 300_000_000
 #: Largest thickness tolerance accepted, ± % of each layer.
 MAX_TOLERANCE_PCT = 50.0
 
@@ -522,6 +525,13 @@ def tolerance_run(stack: Stack, tolerance_pct: float, trials: int = 200, seed: i
     rng = np.random.default_rng(int(seed))
     factors = 1.0 + tol / 100.0 * rng.uniform(-1.0, 1.0, (int(trials), len(stack.layers)))
     wl = colour_wavelengths_nm(scaled_stack(stack, 1.0 + tol / 100.0), illuminant=illuminant)
+    n0 = float(np.real(stack.ambient.nk(wl).min()))
+    rays = cone_rays(angle_deg, na, n0)[0].shape[1]
+    work = int(trials) * wl.size * rays * (len(stack.layers) + 1)
+    if work > MAX_TOLERANCE_WORK:
+        raise InputError(f"This tolerance run needs {work:,} evaluations ({int(trials)} trials x {wl.size} wavelengths x "
+                         f"{rays} rays of the viewing cone x {len(stack.layers) + 1} interfaces); at most "
+                         f"{MAX_TOLERANCE_WORK:,} are allowed. Use fewer trials or a smaller viewing-cone NA.")
     R0 = cone_reflectance(stack, wl, angle_deg, na, polarization)
     R = np.stack([cone_reflectance(scaled_stack(stack, f), wl, angle_deg, na, polarization) for f in factors])
     xyz0 = spectrum_to_xyz(R0, wl, illuminant, observer)

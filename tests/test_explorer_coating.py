@@ -123,3 +123,11 @@ def test_tolerance_run_is_seeded_and_bounded(ar):
     assert "a* " in ar.tol_out.object and "b* " in ar.tol_out.object
     ar.angle_slider.value = 10.0
     assert "run it again" in ar.tol_out.object
+
+
+def test_a_tolerance_run_too_large_is_refused_with_what_to_change():
+    from physics import InputError, Stack
+    from physics.appearance import tolerance_run
+    thick = Stack([("SiO2", 90_000.0)] * 12, "Si")
+    with pytest.raises(InputError, match="fewer trials"):
+        tolerance_run(thick, 5.0, 1000, na=0.5)
