@@ -453,3 +453,13 @@ def test_an_unknown_material_in_a_stack_file_points_to_the_page_s_search_box():
     ex.file_in.receive("odd.json", json.dumps(stack).encode())
     text = ex.file_msg.message.object
     assert "Unknown material" in text and "Find a material" in text and "search_materials" not in text
+
+
+def test_an_unknown_material_typed_in_a_layer_row_points_to_the_search_box():
+    from views.explorer import FilmExplorer
+
+    ex = FilmExplorer()
+    row = ex.layers_box.objects[0]
+    row.objects[0].objects[0].value = "unobtainium"                  # the row's material field
+    text = row.objects[1].object
+    assert "Unknown material" in text and "Find a material" in text and "search_materials" not in text

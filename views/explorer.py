@@ -26,6 +26,7 @@ from bokeh.events import Tap
 from bokeh.plotting import figure
 
 from physics import InputError, search_materials, list_materials
+from physics.materials import page_wording
 from physics.color import lamp_label, srgb_to_hex
 from physics.stackfile import MAX_FILE_BYTES as MAX_STACK_FILE_BYTES, list_presets, load_stack_file
 
@@ -111,8 +112,9 @@ class Field:
         self.message = pn.pane.HTML("", css_classes=["fg-error"], margin=(0, 5), visible=False, stylesheets=[CSS])
 
     def show_error(self, text: str | None) -> None:
-        """Show ``text`` (plain text: it is escaped, so a message quoting user input cannot add markup)."""
-        self.message.object = f'<div class="fg-error" role="alert">{_esc(str(text))}</div>' if text else ""
+        """Show ``text`` (plain text: it is escaped, so a message quoting user input cannot add markup), worded
+        for the page (:func:`physics.materials.page_wording`)."""
+        self.message.object = f'<div class="fg-error" role="alert">{_esc(page_wording(str(text)))}</div>' if text else ""
         self.message.visible = bool(text)
 
     def set_text(self, text: str) -> None:
@@ -607,7 +609,7 @@ class FilmExplorer:
                                                              *THICKNESS_LIMITS_NM, "nm")
             self.state.set_stack(layers=layers)
         except InputError as exc:
-            msg.object = f'<div class="fg-error" role="alert">{_esc(str(exc))}</div>'
+            msg.object = f'<div class="fg-error" role="alert">{_esc(page_wording(str(exc)))}</div>'
             msg.visible = True
             return
         msg.visible = False

@@ -29,7 +29,6 @@ import panel as pn
 import param
 
 from physics import InputError
-from physics.materials import page_wording
 
 from .limits import (MB, JobCancelled, UPLOAD_CHUNK_BYTES, interactive_executor, logged_job, post_to_page,  # noqa: F401
                      served, session_key, size_text, upload_cap_bytes, upload_refusal)
@@ -189,11 +188,11 @@ class UploadReader:
     def refuse(self, message: str) -> bool:
         """Say why the newest file was refused (the drop zone's ``on_refused``); one still being read is dropped."""
         self.cancel()
-        self.field.show_error(page_wording(message))
+        self.field.show_error(message)
         return False
 
     def _refused(self, name: str, message: str) -> bool:
-        self.field.show_error(page_wording(f"{name}: {message}"))
+        self.field.show_error(f"{name}: {message}")
         return False
 
     @property
