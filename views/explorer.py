@@ -236,7 +236,7 @@ class FilmExplorer:
         self.bright_note = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#555"},
                                         css_classes=["fg-bright-note"])
         self.stack_scale = Field("Whole-stack thickness error (%)", width=200, css="fg-stack-scale")
-        self.band_lo = Field("Band mean from (nm)", width=140)
+        self.band_lo = Field("Mean R, T over: from (nm)", width=140)
         self.band_hi = Field("to (nm)", width=140)
         self.tol_pct = Field("Tolerance ± % per layer", width=140)
         self.tol_trials = Field("Trials", width=140)
