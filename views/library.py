@@ -84,7 +84,7 @@ table.diff { font: 12px monospace; border-collapse: collapse; }
 table.diff td { padding: 0 4px; white-space: pre-wrap; vertical-align: top; }
 table.diff th.diff_header { background: #eee; font-weight: 600; }
 table.diff td.diff_header { color: #888; text-align: right; }
-table.diff td.diff_next { display: none; }
+table.diff td.diff_next, table.diff th.diff_next { display: none; }
 .diff_add { background: #d9f2d9; } .diff_chg { background: #fff0b3; } .diff_sub { background: #f7d4d4; }
 """
 
@@ -173,7 +173,7 @@ class LibrarySection:
         self.detail = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"}, css_classes=["fg-lib-detail"])
         self.search = pn.widgets.TextInput(label="Search the list (name, saver or note)", width=560, margin=(2, 5),
                                            placeholder="e.g. gate oxide, ak, line 3", css_classes=["fg-lib-search"])
-        self.compare_with = pn.widgets.Select(label="Compare with version", options={}, width=170, margin=(2, 5),
+        self.compare_with = pn.widgets.Select(label="Compare with version", options={}, width=260, margin=(2, 5),
                                               css_classes=["fg-lib-compare-with"])
         self.compare_button = pn.widgets.Button(label="Show both side by side", color="light", width=190,
                                                 margin=(20, 5, 2, 5))
