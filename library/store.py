@@ -1023,9 +1023,15 @@ def prepare_root(root) -> list:
 def _prepare(root: Path) -> list:
     """prepare_root's work; raises _PrepareError with a reason that names no path."""
     with _PREPARE_ONE_AT_A_TIME:
-        if _is_prepared(root):
-            return []
         return _prepare_now(root)
+
+
+def _prepare_once(root: Path) -> None:
+    """_prepare unless this process has prepared ``root`` already (checked under the same lock, so two
+    first saves at once prepare it once)."""
+    with _PREPARE_ONE_AT_A_TIME:
+        if not _is_prepared(root):
+            _prepare_now(root)
 
 
 def _prepare_now(root: Path) -> list:
@@ -1188,7 +1194,7 @@ class Library:
         advice = _WRITE_ADVICE if done == "saved" else "nothing was changed."
         if not _is_prepared(self.root) and (create or self.root.is_dir()):
             try:
-                _prepare(self.root)
+                _prepare_once(self.root)
             except _PrepareError as exc:
                 raise LibraryWriteError(
                     f"The lab library folder cannot be used: it {exc} Nothing was {done}; {advice} "
