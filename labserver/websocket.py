@@ -213,6 +213,12 @@ class GuardedWSHandler(PanelWSHandler):
         if guard is not None and self._joined is not None:
             guard.disconnect(self._joined, self.request.remote_ip, self)
         self._joined = None
+        conn = getattr(self, "connection", None)
+        if conn is not None and getattr(conn, "_session", None) is None:
+            # The browser left after its connection was made and before the page's session joined it (the
+            # page was still being built): nothing to notify, only the connection to forget.
+            self.application.client_lost(conn)
+            self.connection = None
         super().on_close()
 
     def _check_overdue(self) -> None:

@@ -293,3 +293,28 @@ def test_document_pulls_are_limited_per_connection():
     pull = [json.dumps({"msgid": "p", "msgtype": "PULL-DOC-REQ"}), "{}", "{}"]
     assert _feed(meter, pull) is None and _feed(meter, pull) is None
     assert "whole page" in _feed(meter, pull)
+
+
+def test_a_websocket_closed_before_its_page_joined_it_closes_quietly():
+    """A browser that leaves while its page is still being built: the connection exists, its session not yet;
+    closing it forgets the connection and raises nothing (Bokeh's own close would assert)."""
+    from labserver.websocket import GuardedWSHandler
+
+    class Connection:
+        _session = None
+
+    class Application:
+        fringegauge_sessions = None
+
+        def __init__(self):
+            self.lost = []
+
+        def client_lost(self, conn):
+            self.lost.append(conn)
+
+    handler = GuardedWSHandler.__new__(GuardedWSHandler)
+    conn, app = Connection(), Application()
+    handler.__dict__.update(_deadline=None, _joined=None, application=app, connection=conn,
+                            close_code=1001, close_reason=None)
+    handler.on_close()
+    assert app.lost == [conn] and handler.connection is None
