@@ -270,7 +270,12 @@ def test_the_preset_list_names_a_preset_only_while_it_is_what_is_shown():
     from urllib.parse import unquote
     assert apply_query(other.state, {k: unquote(v) for k, v in query.items()}) == []
     other._sync_widgets()
-    assert other.preset.value == ""
+    assert other.preset.value == "nitride_on_oxide_on_silicon"          # the link names the preset it shows
+    edited = dict(query, stack=state_to_query(ex.state)[1:].split("stack=")[1].split("&")[0])
+    third = FilmExplorer()
+    assert apply_query(third.state, {k: unquote(v) for k, v in edited.items()}) == []
+    third._sync_widgets()
+    assert third.preset.value == ""                                     # a preset's name over an edited stack: none
 
 
 def test_the_swatch_names_the_swept_layer_and_says_when_it_is_beyond_the_map():
