@@ -129,3 +129,48 @@ def test_the_address_follows_a_built_tab():
     link.follow("Spectrum → thickness", fit, lambda *_: calls.append(2))
     fit.win_lo.input.value = "10"
     assert calls == [1, 2]
+
+
+def test_the_explorer_s_coating_and_brightness_settings_travel_only_when_set():
+    link = _page()
+    plain = link.query()
+    assert "bref=" not in plain and "tol=" not in plain and "cct=" not in plain
+    st = link.ex.state
+    st.param.update(brightness_reference=[r for r in st.param.brightness_reference.objects
+                                          if r != st.param.brightness_reference.default][0],
+                    normalize_min_nm=85.0, normalize_max_nm=105.0, thickness_scale_pct=-3.0,
+                    band_min_nm=420.0, band_max_nm=680.0, tolerance_pct=5.0, tolerance_trials=300,
+                    lamp_cct_k=3200.0,
+                    spectrum_view=[v for v in st.param.spectrum_view.objects if v != st.param.spectrum_view.default][0])
+    other = _page()
+    assert other.apply_link_state(link.query()) == []
+    names = ("brightness_reference", "normalize_min_nm", "normalize_max_nm", "thickness_scale_pct", "band_min_nm",
+             "band_max_nm", "spectrum_view", "tolerance_pct", "tolerance_trials", "lamp_cct_k")
+    assert {n: getattr(other.ex.state, n) for n in names} == {n: getattr(st, n) for n in names}
+
+
+def test_the_colour_reading_and_wafer_settings_travel():
+    link = _page()
+    colour = link.tabs["Colour → thickness"].get()
+    colour.reading.reading = "calibrated camera" if "calibrated camera" in colour.reading.param.reading.objects \
+        else colour.reading.param.reading.objects[-2]
+    wafer = colour.tools.settings
+    wafer.param.update(diameter_mm=200.0, edge_exclusion_mm=5.0, pattern=49)
+    other = _page()
+    assert other.apply_link_state(link.query()) == []
+    back = other.tabs["Colour → thickness"].get()
+    assert (back.reading.reading, back.reading.reading_error_de) == (colour.reading.reading,
+                                                                     colour.reading.reading_error_de)
+    w = back.tools.settings
+    assert (w.diameter_mm, w.edge_exclusion_mm, w.pattern) == (200.0, 5.0, 49)
+
+
+def test_a_bad_wafer_field_in_a_link_is_named_and_skipped():
+    other = _page()
+    errors = other.apply_link_state("?c_edge=-4&c_sites=7&c_error=nan")
+    assert len(errors) == 3, errors
+    assert any("'c_edge'" in e and "Edge exclusion" in e for e in errors)
+    assert any("'c_sites'" in e and "49" in e for e in errors)
+    assert any("'c_error'" in e and "number" in e for e in errors)
+    w = other.tabs["Colour → thickness"].get().tools.settings
+    assert w.edge_exclusion_mm == w.param.edge_exclusion_mm.default and w.pattern == w.param.pattern.default

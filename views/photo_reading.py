@@ -83,7 +83,7 @@ class PhotoReading:
         pf.line(x="d", y="t", source=self.prof_src, line_color="#3b6fa0", line_width=2)
         self.prof_fig = pf
         from .inverse import locked             # the section's module, loaded by now
-        st.param.watch(locked(lambda e: self.refresh()), ["diameter_mm", "mm_per_px", "edge_exclusion_mm", "pattern"])
+        st.param.watch(locked(lambda *events: self.refresh()), ["diameter_mm", "mm_per_px", "edge_exclusion_mm", "pattern"])
         self._draw()
 
     # ------------------------------------------------------------------ input from the photo

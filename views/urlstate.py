@@ -37,6 +37,13 @@ URL_KEYS = {
     "angle_deg": "angle", "polarization": "pol", "illuminant": "lamp", "spd_json": "spd",
     "observer": "obs", "na": "na", "brightness": "bright",
 }
+#: Explorer fields a link carries only when they differ from their defaults (so a link of a plain view stays
+#: short): the brightness reference, the coating read-outs and checks, the halogen's colour temperature.
+URL_KEYS_WHEN_SET = {
+    "brightness_reference": "bref", "normalize_min_nm": "nmin", "normalize_max_nm": "nmax",
+    "thickness_scale_pct": "dscale", "band_min_nm": "band0", "band_max_nm": "band1", "spectrum_view": "view",
+    "tolerance_pct": "tol", "tolerance_trials": "trials", "lamp_cct_k": "cct",
+}
 #: Longest URL value read (characters); a link is not a file upload.
 MAX_VALUE_CHARS = 20_000
 #: Largest decompressed stack accepted (bytes).
@@ -88,6 +95,10 @@ def state_to_query(state: ExplorerState) -> str:
         elif isinstance(v, float):
             v = f"{v:.6g}"
         values[key] = str(v)
+    for name, key in URL_KEYS_WHEN_SET.items():
+        v = getattr(state, name)
+        if v != state.param[name].default:
+            values[key] = f"{v:.6g}" if isinstance(v, float) else str(v)
     if state.preset_name:
         values[NAME_KEY] = state.preset_name[:MAX_TEXT_CHARS]
     return "?" + urlencode(values)
@@ -105,7 +116,7 @@ def apply_query(state: ExplorerState, query) -> list[str]:
         items = {k: (v[0] if v else "") if isinstance(v, (list, tuple)) else v for k, v in query.items()}
         items = {k: (v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)) for k, v in items.items()}
     errors, update = [], {}
-    for name, key in URL_KEYS.items():
+    for name, key in (URL_KEYS | URL_KEYS_WHEN_SET).items():
         if key not in items:
             continue
         try:
@@ -159,9 +170,10 @@ def _field_value(state: ExplorerState, name: str, text: str):
         return value
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         raise InputError("it is not a " + ("whole number" if isinstance(p, param.Integer) else "finite number"))
-    lo, hi = p.bounds
-    if value < lo or value > hi:
-        raise InputError(f"it must lie from {lo:g} to {hi:g}")
+    lo, hi = p.bounds or (None, None)
+    if (lo is not None and value < lo) or (hi is not None and value > hi):
+        raise InputError(f"it must lie from {lo:g} to {hi:g}" if None not in (lo, hi)
+                         else f"it must be at least {lo:g}" if lo is not None else f"it must be at most {hi:g}")
     return value
 
 
@@ -254,6 +266,35 @@ def tick_field(key: str, label: str, box) -> LinkField:
     return LinkField(key, label, lambda: "1" if box.value else "0", write, box)
 
 
+def param_field(key: str, label: str, owner, name: str) -> LinkField:
+    """A declared parameter ``name`` of ``owner`` (a param.Parameterized), checked like the explorer's link
+    fields; carried only when it differs from its default (None: never carried)."""
+    p = owner.param[name]
+
+    def read():
+        v = getattr(owner, name)
+        if v is None or v == p.default:
+            return None
+        return f"{v:.6g}" if isinstance(v, float) else str(v)
+
+    def write(text):
+        try:
+            if isinstance(p, param.Selector):
+                value = next((v for v in p.objects if str(v) == text), None)
+                if value is None:
+                    raise InputError(f"give one of {', '.join(map(str, p.objects))}")
+            else:
+                value = _field_value(owner, name, text)
+            owner.param.update({name: value})
+        except InputError as exc:
+            return str(exc)
+        except ValueError as exc:        # a bound the declaration checks that the text did not show
+            return str(exc).split(":")[0]
+        return None
+
+    return LinkField(key, label, read, write, (owner, name))
+
+
 def fields_state(fields) -> dict[str, str]:
     """{key: text} of every field that has something to carry."""
     return {f.key: v for f in fields if (v := f.read()) is not None}
@@ -276,9 +317,20 @@ def _skipped(key: str, label: str, why: str) -> str:
 
 def widget_fields(section, table) -> list[LinkField]:
     """:class:`LinkField` s of ``section``'s widgets from rows (key, label, attribute name, kind[, number]):
-    kind "text" (a Field; ``number`` = (lowest, highest) checks it as a number), "choice" or "tick"."""
+    kind "text" (a Field; ``number`` = (lowest, highest) checks it as a number), "choice", "tick", or "param"
+    (the attribute is a dotted path to a declared parameter: ``"reading.reading_error_de"``)."""
     make = {"text": text_field, "choice": choice_field, "tick": tick_field}
-    return [make[kind](key, label, getattr(section, attr), *rest) for key, label, attr, kind, *rest in table]
+    out = []
+    for key, label, attr, kind, *rest in table:
+        if kind == "param":
+            *path, name = attr.split(".")
+            owner = section
+            for part in path:
+                owner = getattr(owner, part)
+            out.append(param_field(key, label, owner, name))
+        else:
+            out.append(make[kind](key, label, getattr(section, attr), *rest))
+    return out
 
 
 #: The colour → thickness inputs a link carries (typed colours, tilt, window, target, photo reference);
@@ -291,7 +343,13 @@ COLOUR_TAB_LINK = (("c_colour", "Observed colour", "colour", "text"),
                    ("c_nominal", "Nominal", "nominal", "text"),
                    ("c_tol", "Tolerance", "tolerance", "text"),
                    ("c_ref", "Photo reference", "reference", "choice"),
-                   ("c_grey", "Grey card reflectance", "grey", "text", (0.0, 1.0)))
+                   ("c_grey", "Grey card reflectance", "grey", "text", (0.0, 1.0)),
+                   ("c_read", "Colour read", "reading.reading", "param"),
+                   ("c_error", "Colour reading error", "reading.reading_error_de", "param"),
+                   ("c_wafer", "Wafer diameter", "tools.settings.diameter_mm", "param"),
+                   ("c_pixel", "Pixel size", "tools.settings.mm_per_px", "param"),
+                   ("c_edge", "Edge exclusion", "tools.settings.edge_exclusion_mm", "param"),
+                   ("c_sites", "Sites", "tools.settings.pattern", "param"))
 
 
 class _Fields:
@@ -311,7 +369,9 @@ class _Fields:
 
     def follow(self, callback) -> None:
         for f in self.fields:
-            if f.source is not None:
+            if isinstance(f.source, tuple):                    # a declared parameter: (owner, name)
+                f.source[0].param.watch(callback, f.source[1])
+            elif f.source is not None:
                 f.source.param.watch(callback, "value")
 
 
@@ -384,7 +444,7 @@ class PageLink:
             return [f"This link is {size:,} characters long, more than the {MAX_LINK_CHARS:,} a link may have "
                     "(it was probably joined to other text or edited); nothing from it was applied. Ask for the "
                     "link again, or share the stack as a file."]
-        known = set(URL_KEYS.values()) | {NAME_KEY, TAB_KEY}
+        known = set(URL_KEYS.values()) | set(URL_KEYS_WHEN_SET.values()) | {NAME_KEY, TAB_KEY}
         errors = apply_query(self.ex.state, {k: v for k, v in items.items() if k in known})
         self.ex._sync_widgets()
         for title, prefix in SECTION_PREFIXES.items():
