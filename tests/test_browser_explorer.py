@@ -50,3 +50,18 @@ def test_the_explorer_figures_have_ranges_from_the_start(page):
 def test_coating_read_outs_and_the_brightness_line_are_on_the_page(page):
     assert "luminous R" in (page.evaluate(DEEP_TEXT_JS, ".fg-readout-text") or "")
     assert "Brightness: absolute" in (page.evaluate(DEEP_TEXT_JS, ".fg-bright-text") or "")
+
+
+#: The page's tabs, in the order the test opens them (ending where it started).
+TAB_TITLES = ("Colour → thickness", "Spectrum → thickness", "Gratings", "Lab library", "Film explorer")
+#: Seconds a tab gets to be built and drawn after it is opened.
+TAB_SETTLE_S = 6
+
+
+def test_every_tab_opens_without_a_range_warning_and_with_finite_ranges(page):
+    for title in TAB_TITLES:
+        page.get_by_text(title, exact=True).first.click()
+        time.sleep(TAB_SETTLE_S)
+    assert not [m for m in page.messages if RANGE_WARNING in m]
+    for title, *ends in page.evaluate(FIGURE_RANGES_JS):
+        assert all(isinstance(v, (int, float)) and v == v for v in ends), (title, ends)

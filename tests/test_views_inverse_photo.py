@@ -97,3 +97,14 @@ def test_a_bad_wafer_setting_is_said_not_raised(section):
     section.tools.set_circle((cx - r, cy - r, cx + r, cy + r))
     section.tools.settings.edge_exclusion_mm = 80.0                                     # more than the 75 mm radius
     assert section.tools.sites is None and "edge exclusion" in section.tools.info.object
+
+
+def test_a_photo_is_read_as_from_an_uncalibrated_camera_unless_the_user_chose(section):
+    data, c, r = _wafer_photo(section)
+    assert section.reading.reading == "by eye / on a display"
+    section.load_photo(data, "wafer.png")
+    assert (section.reading.reading, section.reading.reading_error_de) == ("uncalibrated camera", 4.0)
+    assert "uncalibrated camera" in section.pick_info.object
+    section.reading.reading = "calibrated camera"
+    section.load_photo(data, "wafer2.png")
+    assert section.reading.reading == "calibrated camera"             # a choice the user made is kept

@@ -27,6 +27,7 @@ from physics.errors import WavelengthRangeError
 from physics.fit import (BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, MAX_SPECTRUM_BYTES,
                          fit_thickness_reporting, read_spectrum_table)
 
+from .figures import RangeHolder
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
 from .uploads import COMPACT, CappedDropper, UploadReader
@@ -71,6 +72,11 @@ LINK_FIELDS = (("s_ref", "Reference", "ref_mode", "choice"),
                ("s_wlfrom", "Use wavelengths from", "wl_lo", "text"),
                ("s_wlto", "Use wavelengths to", "wl_hi", "text"))
 
+
+#: Wavelengths (nm) the spectrum figure spans before a spectrum arrives (the visible band and a little more).
+PLACEHOLDER_WL_NM = (380.0, 1000.0)
+#: Margin added to a fitted figure's range on each side, as a fraction of the data's span.
+RANGE_PAD = 0.05
 
 class _Stop(Exception):
     """A field was invalid; its message is already shown beside it."""
@@ -167,8 +173,10 @@ class SpectrumFitSection:
                         padding=2)
         p.add_layout(legend, "above")
         self.spec_fig = p
+        self.spec_holder = RangeHolder(p, x=PLACEHOLDER_WL_NM, y=(0.0, 100.0))
         r = figure(height=160, sizing_mode="stretch_width", tools=tools, title="Residual (measured − model)",
-                   x_axis_label="wavelength (nm)", y_axis_label="residual (% reflectance)", x_range=p.x_range)
+                   x_axis_label="wavelength (nm)", y_axis_label="residual (% reflectance)", x_range=p.x_range,
+                   y_range=Range1d(-1.0, 1.0))                      # set from the residuals when a fit is drawn
         r.scatter("wl", "res", source=self.model_src, size=3, color="#444")
         r.add_layout(Span(location=0, dimension="width", line_color="#999", line_dash="dashed"))
         self.resid_fig = r
@@ -177,7 +185,8 @@ class SpectrumFitSection:
         g = figure(height=220, sizing_mode="stretch_width", tools=tools,
                    title=SCAN_TITLE,
                    x_axis_label="trial thickness of the unknown layer (nm)", y_axis_label="rms residual (%)",
-                   y_axis_type="log", y_range=Range1d(1e-3, 100.0))   # set from the curve when a fit is drawn
+                   y_axis_type="log", y_range=Range1d(1e-3, 100.0),   # set from the curve when a fit is drawn
+                   x_range=Range1d(0.0, 1000.0))
         g.line("d", "rms", source=self.scan_src, color="#333", line_width=1.2)
         mk = g.scatter("d", "rms", source=self.minima_src, marker="inverted_triangle", size=11, color="#c0392b")
         g.text("d", "rms", text="label", source=self.minima_src, text_font_size="10px", y_offset=-8,
@@ -468,6 +477,7 @@ class SpectrumFitSection:
         return wl, R, info
 
     def _show_measured(self, wl, R):
+        self.spec_holder.release()
         self.meas_src.data = dict(wl=wl, R=R * 100)
         if self.result is None:
             self.model_src.data = dict(wl=[], R=[], res=[])
@@ -738,9 +748,12 @@ class SpectrumFitSection:
 
     def _draw_result(self):
         r, a = self.result, self.result_info["args"]
+        self.spec_holder.release()
         self.meas_src.data = dict(wl=r.wavelength_nm, R=r.measured * 100)
         unit, scale = _residual_unit(r.residual)
         self.model_src.data = dict(wl=r.wavelength_nm, R=r.model * 100, res=r.residual / scale)
+        _span_range(self.resid_fig.y_range, r.residual / scale, symmetric=True)
+        _span_range(self.scan_fig.x_range, r.scan_thickness_nm)
         self.resid_fig.yaxis.axis_label = f"residual ({unit} reflectance)" if unit == "%" else f"residual ({unit})"
         head = (f"d = {_pm(r.thickness_nm, r.quoted_uncertainty_nm)} nm" if r.trustworthy else
                 f"d ≈ {r.thickness_nm:.0f} nm (not trustworthy)")
@@ -941,3 +954,19 @@ def _residual_unit(residual) -> tuple[str, float]:
         if top / size >= 0.1:
             return unit, size
     return RESIDUAL_UNITS[-1]
+
+
+def _span_range(rng, values, symmetric: bool = False) -> None:
+    """Set a Range1d to the finite extent of ``values`` plus RANGE_PAD of its span (about 0 when
+    ``symmetric``); unchanged when there is nothing finite."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return
+    if symmetric:
+        half = float(np.max(np.abs(v))) * (1 + RANGE_PAD) or 1.0
+        rng.start, rng.end = -half, half
+        return
+    lo, hi = float(v.min()), float(v.max())
+    pad = (hi - lo) * RANGE_PAD or max(abs(lo), 1.0) * RANGE_PAD
+    rng.start, rng.end = lo - pad, hi + pad

@@ -35,6 +35,7 @@ from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, _footer, field_pair
 from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
+from .figures import RangeHolder
 from .colour_answer import (CUSTOM_READING, READING_PRESETS, ColourReading, _searched_stack_text,  # noqa: F401
                             _tolerance_verdict, _viewing_text)
 from .photo_reading import PhotoReading
@@ -66,6 +67,9 @@ HIST_BINS = 60
 #: Rest (ms) of the viewing conditions or reading error before the answer shown is searched again.
 ANSWER_AGAIN_MS = 400
 
+#: How a photo's colours are read when the page still says "by eye": from a camera no one has calibrated
+#: (its usual reading error, common practice, is the preset's).
+PHOTO_READING = "uncalibrated camera"
 
 class ColourToThickness:
     """The colour → thickness section for one session, bound to a :class:`views.explorer.FilmExplorer`."""
@@ -187,6 +191,7 @@ class ColourToThickness:
         pf.legend.visible = False
         pf.legend.label_text_font_size = "11px"
         self.photo_fig = pf
+        RangeHolder(pf)                               # inside every photo (pixels from 0): never released
 
         self.tmap_src = ColumnDataSource(dict(image=[], de=[], x=[], y=[], dw=[], dh=[]))
         self.tmapper = LinearColorMapper(palette=Viridis256, nan_color="#d9d9d9")
@@ -200,6 +205,7 @@ class ColourToThickness:
                                                           ("ΔE00", "@de{0.0}")]))
         tm.add_layout(ColorBar(color_mapper=self.tmapper, title="nm", width=12), "right")
         self.tmap_fig = tm
+        RangeHolder(tm)
         self.mark_src = ColumnDataSource(dict(x=[], y=[], label=[]))
         pf.scatter(x="x", y="y", source=self.mark_src, marker="cross", size=18, line_width=3, color="#ff00ff")
         pf.text(x="x", y="y", text="label", source=self.mark_src, x_offset=10, y_offset=-8, text_font_size="12px",
@@ -214,6 +220,7 @@ class ColourToThickness:
         cf.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.cmap_src, color_mapper=self.cmapper)
         cf.add_layout(ColorBar(color_mapper=self.cmapper, title="ΔE00", width=12), "right")
         self.conf_fig = cf
+        RangeHolder(cf)
         self.hist_src = ColumnDataSource(dict(left=[], right=[], top=[]))
         hf = figure(height=250, sizing_mode="stretch_width", tools="save", title="Histogram of thickness",
                     x_range=Range1d(0, 1), y_range=Range1d(0, 1),
@@ -525,6 +532,11 @@ class ColourToThickness:
         self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo.bit_depth}-bit"
         self.mark_src.data = dict(x=[], y=[], label=[])
         self.pick_info.object = ""
+        if self.reading.reading == self.reading.param.reading.default:     # a photo's colours come from a camera
+            self.reading.reading = PHOTO_READING
+            self.pick_info.object = (f"Colour read set to “{PHOTO_READING}” (reading error ΔE00 "
+                                     f"{self.reading.reading_error_de:g}) for this photo; choose “calibrated camera” "
+                                     "under Colour read once the camera is calibrated against a reference.")
         self.tools.clear()
         self._draw_boxes()
         self.run_map.disabled = False
