@@ -54,14 +54,27 @@ def test_coating_read_outs_and_the_brightness_line_are_on_the_page(page):
 
 #: The page's tabs, in the order the test opens them (ending where it started).
 TAB_TITLES = ("Colour → thickness", "Spectrum → thickness", "Gratings", "Lab library", "Film explorer")
-#: Seconds a tab gets to be built and drawn after it is opened.
-TAB_SETTLE_S = 6
+#: Longest a tab may take to be built and drawn after it is opened (s), and how long its figures must stay
+#: the same to count as drawn (s).
+TAB_BUILT_WITHIN_S, TAB_STEADY_S = 30, 1.5
+
+
+def _figures_settled(page):
+    """Wait until the page's figures (titles) have stayed the same for TAB_STEADY_S."""
+    last, since, t_end = None, time.monotonic(), time.monotonic() + TAB_BUILT_WITHIN_S
+    while time.monotonic() < t_end:
+        now = sorted(f[0] for f in page.evaluate(FIGURE_RANGES_JS))
+        if now != last:
+            last, since = now, time.monotonic()
+        elif time.monotonic() - since >= TAB_STEADY_S:
+            return
+        time.sleep(0.25)
 
 
 def test_every_tab_opens_without_a_range_warning_and_with_finite_ranges(page):
     for title in TAB_TITLES:
         page.get_by_text(title, exact=True).first.click()
-        time.sleep(TAB_SETTLE_S)
+        _figures_settled(page)
     assert not [m for m in page.messages if RANGE_WARNING in m]
     for title, *ends in page.evaluate(FIGURE_RANGES_JS):
         assert all(isinstance(v, (int, float)) and v == v for v in ends), (title, ends)
