@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import csv
+import functools
 import io
 import logging
 import time
@@ -140,6 +141,11 @@ def _link_choice(text: str, allowed) -> str:
 
 
 # ---------------------------------------------------------------------- settings
+#: Grating colour maps kept for reuse (a few hundred kB each): every new page computes the defaults' map,
+#: 0.4 s of interpreter time, and people going back and forth between settings meet the same ones again.
+COLOUR_MAPS_KEPT = 32
+
+
 @dataclass(frozen=True)
 class GratingSettings:
     """Everything the section shows depends on; only valid values are ever stored."""
@@ -433,11 +439,25 @@ def compute_strip(s: GratingSettings) -> dict:
 
 def compute_colour_map(s: GratingSettings) -> dict:
     """Colours over (groove density, viewing angle) for the current incidence, grooves and lamp, over the
-    density range of :func:`map_densities` that holds the current density."""
+    density range of :func:`map_densities` that holds the current density. Its arrays are shared between
+    pages with the same settings (every new page opens on the defaults): read them, never write them."""
     dens = map_densities(s.lines_per_mm)
     check_grid_points("grating colour map", VIEW_DEG.size * dens.size * gr.COLOUR_BAND_SAMPLES)
-    return gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness,
-                                **s.groove_kw())
+    kw = s.groove_kw()
+    if not isinstance(s.illuminant, str):
+        return gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness, **kw)
+    return _shared_colour_map(tuple(float(g) for g in dens), float(s.incidence_deg), s.illuminant, s.brightness,
+                              tuple(sorted(kw.items())))
+
+
+@functools.lru_cache(maxsize=COLOUR_MAPS_KEPT)
+def _shared_colour_map(dens, incidence_deg, illuminant, brightness, groove_items) -> dict:
+    cm = gr.grating_color_map(VIEW_DEG, np.array(dens), incidence_deg, illuminant, normalize=brightness,
+                              **dict(groove_items))
+    for v in cm.values():
+        if isinstance(v, np.ndarray):
+            v.setflags(write=False)
+    return cm
 
 
 def compute_plan(s: GratingSettings) -> dict:
