@@ -86,6 +86,10 @@ def _label(text: str) -> pn.pane.HTML:
     return pn.pane.HTML(f'<div class="fg-label">{text}</div>', margin=(4, 5, 0, 5), stylesheets=[CSS])
 
 
+#: Sidebar parts sent to the browser in one turn of the event loop when a page opens: a turn of the
+#: whole sidebar held the loop up to about a second on a busy 2-core machine (every other page waits).
+SIDEBAR_ITEMS_PER_TURN = 4
+
 class TickBox(pn.viewable.Viewer):
     """A checkbox whose words tick it too, with a boolean ``value`` (Bokeh's own Checkbox puts its label
     beside the box, where a click does nothing; a one-option checkbox group wraps both in a label)."""
@@ -1100,8 +1104,11 @@ class FilmExplorer:
             # and its sidebar and its plots follow in turns of their own once the browser has it, so no turn
             # holds the loop for long (see views/pagebuild.py).
             sidebar.append(pn.pane.HTML("Opening the page…", margin=(4, 8)))
-            in_turns(lambda: setattr(sidebar, "objects", [heading, *sidebar_items]),
-                     partial(main.extend, views))
+            parts = [sidebar_items[i:i + SIDEBAR_ITEMS_PER_TURN]
+                     for i in range(0, len(sidebar_items), SIDEBAR_ITEMS_PER_TURN)]
+            in_turns(lambda: setattr(sidebar, "objects", [heading, *parts[0]]),
+                     *(partial(sidebar.extend, part) for part in parts[1:]),
+                     *(partial(main.append, view) for view in views))
         else:
             sidebar.extend(sidebar_items)
             main.extend(views)
