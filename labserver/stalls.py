@@ -49,8 +49,13 @@ class StallWatch:
         frame = sys._current_frames().get(self.loop_thread_id)
         if frame is None:
             return []
-        stack = traceback.extract_stack(frame)[-FRAMES:]
-        return [f"{s.filename.rsplit('site-packages/', 1)[-1]}:{s.lineno} {s.name}" for s in stack]
+        stack = traceback.extract_stack(frame)
+        # The innermost frames say what runs; the innermost of this project's own frames say on whose behalf.
+        ours = [s for s in stack[:-FRAMES] if "site-packages" not in s.filename and "/lib/python" not in s.filename
+                and not s.filename.startswith("<")][-FRAMES:]
+        shown = [*ours, *(["…"] if ours else []), *stack[-FRAMES:]]
+        return [s if isinstance(s, str) else f"{s.filename.rsplit('site-packages/', 1)[-1]}:{s.lineno} {s.name}"
+                for s in shown]
 
     def _run(self) -> None:
         while not self._stop.wait(PROBE_EVERY_S):
