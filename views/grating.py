@@ -444,8 +444,6 @@ def compute_colour_map(s: GratingSettings) -> dict:
     dens = map_densities(s.lines_per_mm)
     check_grid_points("grating colour map", VIEW_DEG.size * dens.size * gr.COLOUR_BAND_SAMPLES)
     kw = s.groove_kw()
-    if not isinstance(s.illuminant, str):
-        return gr.grating_color_map(VIEW_DEG, dens, s.incidence_deg, s.illuminant, normalize=s.brightness, **kw)
     return _shared_colour_map(tuple(float(g) for g in dens), float(s.incidence_deg), s.illuminant, s.brightness,
                               tuple(sorted(kw.items())))
 
