@@ -338,7 +338,7 @@ def test_pages_closed_mid_computation_stop_their_work_and_the_server_goes_on(tmp
     from tests.support.loadclient import ExplorerUser, HeavyResult, PhotoMapUser, log_problems, synthetic_wedge_png
 
     png = synthetic_wedge_png(3000, 2000)                    # 6 MP: a map takes seconds
-    with served_lab(tmp_path, "--idle-timeout-s", "0.5", *CROWD_SERVER_ARGS) as (base, proc, log_path):
+    with served_lab(tmp_path, "--idle-timeout-s", "3", *CROWD_SERVER_ARGS) as (base, proc, log_path):
         async def scenario():
             mapper = PhotoMapUser(base, png)
             assert await mapper.open(), mapper.open_error
