@@ -7,7 +7,7 @@ dependence exp(-iωt)). A material given with ``k < 0`` is rejected.
 Kinds of material:
 
 - :class:`ConstantMaterial`: one n and k at every wavelength.
-- :class:`CauchyMaterial`: n = A + B/λ² + C/λ⁴ (λ in µm), k = 0.
+- :class:`CauchyMaterial`: n = A + B/λ² + C/λ⁴ (λ in µm), k = 0 or an Urbach tail.
 - :class:`SellmeierMaterial`: n² = 1 + Σ Bᵢ λ² / (λ² − Cᵢ) (λ in µm, Cᵢ in µm²), k = 0.
 - :class:`TabulatedMaterial`: n and k tabulated against wavelength, linearly interpolated.
 - :class:`DatabaseMaterial`: one page of the refractiveindex.info database as
@@ -50,6 +50,8 @@ _RANGE_RTOL = 1e-9
 #: inside; beyond it the stack algebra loses all precision and returns NaN).
 N_LIMITS = (1e-3, 100.0)
 K_MAX = 1e3
+#: Photon energy times wavelength, h·c in eV·nm (CODATA 2018: h = 4.135667696e-15 eV s, c = 299792458 m/s).
+HC_EV_NM = 1239.841984
 
 
 class Material(ABC):
@@ -147,28 +149,47 @@ class ConstantMaterial(Material):
 
 
 class CauchyMaterial(Material):
-    """Cauchy dispersion n = A + B/λ² + C/λ⁴ with λ in µm; transparent (k = 0).
+    """Cauchy dispersion n = A + B/λ² + C/λ⁴ with λ in µm; transparent (k = 0) unless an Urbach tail is given.
+
+    The optional Urbach absorption tail (keyword-only, off by default) is
+    k(λ) = k_amplitude · exp(k_exponent_per_ev · (E − E_b)), E = hc/λ and E_b = hc/k_band_edge_nm in eV
+    (hc = :data:`HC_EV_NM`): ``k_amplitude`` is k at the band-edge wavelength, and k falls off
+    exponentially towards longer wavelengths.
 
     References
     ----------
     A.-L. Cauchy, Mémoire sur la dispersion de la lumière (1836); the form as
     used for transparent films, e.g. H. G. Tompkins and E. A. Irene (eds.),
-    Handbook of Ellipsometry (2005), ch. 4.
+    Handbook of Ellipsometry (2005), ch. 4. Urbach tail: F. Urbach, Phys. Rev. 92, 1324 (1953);
+    the Cauchy-with-exponential-k form of G. E. Jellison Jr., in Tompkins and Irene (2005), ch. 3.
     """
 
     def __init__(self, A: float, B: float = 0.0, C: float = 0.0, *, range_nm=(300.0, 2500.0),
-                 name: str = "Cauchy", source: str = "Cauchy coefficients given by the user"):
+                 name: str = "Cauchy", source: str = "Cauchy coefficients given by the user",
+                 k_amplitude: float = 0.0, k_exponent_per_ev: float = 0.0, k_band_edge_nm: float = 400.0):
         self.A, self.B, self.C = (float(require_finite(s, v)) for s, v in (("A", A), ("B", B), ("C", C)))
+        self.k_amplitude = float(require_finite("k_amplitude", k_amplitude, minimum=0.0))
+        self.k_exponent_per_ev = float(require_finite("k_exponent_per_ev", k_exponent_per_ev, minimum=0.0,
+                                                      unit="1/eV"))
+        self.k_band_edge_nm = float(require_finite("k_band_edge_nm", k_band_edge_nm, minimum=0.0,
+                                                   min_inclusive=False, unit="nm"))
         self.range_nm = _check_range(range_nm)
         self.name, self.source = name, source
 
     def _nk(self, wl):
         um2 = (wl / 1000.0) ** 2
-        return self.A + self.B / um2 + self.C / um2 ** 2 + 0j
+        n = self.A + self.B / um2 + self.C / um2 ** 2
+        if self.k_amplitude == 0.0:
+            return n + 0j
+        de = HC_EV_NM / wl - HC_EV_NM / self.k_band_edge_nm
+        return n + 1j * self.k_amplitude * np.exp(self.k_exponent_per_ev * de)
 
     def spec(self):
-        return {"kind": "cauchy", "coefficients": [self.A, self.B, self.C],
-                "range_nm": list(self.range_nm), "name": self.name, "source": self.source}
+        out = {"kind": "cauchy", "coefficients": [self.A, self.B, self.C],
+               "range_nm": list(self.range_nm), "name": self.name, "source": self.source}
+        if self.k_amplitude:
+            out["urbach"] = [self.k_amplitude, self.k_exponent_per_ev, self.k_band_edge_nm]
+        return out
 
 
 class SellmeierMaterial(Material):
@@ -401,7 +422,7 @@ def material(spec) -> Material:
         - a database page ``"shelf/book/page"`` (``"main/Si/Green-2008"``);
         - a real number (constant n) or a complex number (constant n + ik, k >= 0);
         - a dict as returned by ``Material.spec()`` (kinds constant, cauchy,
-          sellmeier, table);
+          sellmeier, table, tauc-lorentz, effective-medium);
         - a Material, returned as it is.
 
     Returns
@@ -450,8 +471,9 @@ def _material_from_dict(d: dict) -> Material:
         if kind == "constant":
             return ConstantMaterial(d["n"], d.get("k", 0.0), name=d.get("name"))
         if kind == "cauchy":
+            tail = dict(zip(("k_amplitude", "k_exponent_per_ev", "k_band_edge_nm"), d.get("urbach", ())))
             return CauchyMaterial(*d["coefficients"], range_nm=tuple(d.get("range_nm", (300, 2500))),
-                                  name=d.get("name", "Cauchy"), source=d.get("source", "user Cauchy fit"))
+                                  name=d.get("name", "Cauchy"), source=d.get("source", "user Cauchy fit"), **tail)
         if kind == "sellmeier":
             return SellmeierMaterial(d["B"], d["C"], range_nm=tuple(d.get("range_nm", (300, 2500))),
                                      name=d.get("name", "Sellmeier"), source=d.get("source", "user Sellmeier fit"))
@@ -460,12 +482,16 @@ def _material_from_dict(d: dict) -> Material:
                                      source=d.get("source", "user table"))
         if kind in ("database", "curated"):
             return material(d["page"] if kind == "database" else d["name"])
+        if kind in ("tauc-lorentz", "effective-medium"):
+            from .filmmodels import material_from_dict       # built on Material: imported here, not at the top
+
+            return material_from_dict(d)
     except KeyError as exc:
         raise InputError(f"A {kind} material needs the field {exc.args[0]!r}.") from None
     except TypeError as exc:
         raise InputError(f"Malformed {kind} material description: {exc}.") from None
     raise InputError(f"Unknown material kind {kind!r}; use constant, cauchy, sellmeier, table, "
-                     "database or curated.")
+                     "tauc-lorentz, effective-medium, database or curated.")
 
 
 def list_materials() -> list[tuple[str, str, str]]:
