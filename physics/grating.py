@@ -406,13 +406,23 @@ def _sinc2(x):
     return np.where((k != 0) & (np.abs(x - k) <= 1e-12 * np.maximum(1.0, np.abs(x))), 0.0, np.sinc(x) ** 2)
 
 
-def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_cycle=0.5, blaze_angle_deg=None):
+def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_cycle=0.5, blaze_angle_deg=None,
+                      incidence_deg=0.0):
     """Relative efficiency of an order in the scalar approximation (0..1).
 
     ``"lamellar"``: rectangular grooves of open fraction f, sinc²(m·f) (amplitude grating).
-    ``"blazed"``: sawtooth facets at θ_B, sinc²(m − λ_B/λ) with λ_B = 2d sin θ_B the first-order
-    Littrow blaze wavelength (Loewen & Popov, ch. 4). Scalar theory holds for d ≫ λ; near and
-    below d ≈ λ it is only indicative.
+    ``"blazed"``: sawtooth facets at θ_B lit at incidence α (degrees, ``incidence_deg``); the
+    Kirchhoff integral over one facet gives sinc²(m − (d/λ)·tan θ_B·(cos α + cos β)), which is 1
+    on the facet-specular direction α + β = 2θ_B at any deviation (in Littrow, α = β = θ_B, it
+    reduces to sinc²(m − λ_B/λ) with λ_B = 2d sin θ_B); an order that does not propagate at this
+    incidence carries nothing (0). Scalar theory holds for d ≫ λ; below d/λ ≈ 3 (common practice)
+    it is only indicative: :func:`rigorous_efficiency` solves Maxwell's equations for the groove.
+
+    References
+    ----------
+    Loewen & Popov, Diffraction Gratings and Applications, ch. 4 (scalar efficiency of lamellar
+    and blazed grooves); Palmer & Loewen, Diffraction Grating Handbook, sec. 2.9 (blaze on the
+    facet-specular direction).
     """
     m = _order(order)
     wl = _wavelength(wavelength_nm)
@@ -423,9 +433,14 @@ def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_
     if kind == "blazed":
         if blaze_angle_deg is None:
             raise InputError("A blazed groove needs blaze_angle_deg.")
-        lb = 2 * d * np.sin(np.radians(
-            float(require_finite("blaze_angle_deg", blaze_angle_deg, minimum=0.0, maximum=89.0, unit="deg"))))
-        return _sinc2(m - lb / wl)
+        tb = np.radians(float(require_finite("blaze_angle_deg", blaze_angle_deg, minimum=0.0, maximum=89.0,
+                                             unit="deg")))
+        a = np.radians(_incidence(incidence_deg))
+        sb = m * wl / d - np.sin(a)                                     # grating equation: sin β
+        live = np.abs(sb) <= 1.0 + _GRAZING_TOL
+        cb = np.sqrt(np.clip(1.0 - sb ** 2, 0.0, None))
+        # phase across one facet, in waves: (d/λ)[(sin α + sin β) − tan θ_B (cos α + cos β)] = m − …
+        return np.where(live, _sinc2(m - d / wl * np.tan(tb) * (np.cos(a) + cb)), 0.0)
     raise InputError(f"kind must be 'lamellar' or 'blazed'; got {kind!r}.")
 
 
@@ -467,7 +482,8 @@ def grating_spectrum(view_deg, lines_per_mm, incidence_deg=0.0, *, kind="lamella
         inside = (lam >= wl[0]) & (lam <= wl[-1])
         if not inside.any():
             continue
-        eff = groove_efficiency(np.where(inside, lam, wl[0]), lines_per_mm, m, kind, duty_cycle, blaze_angle_deg)
+        eff = groove_efficiency(np.where(inside, lam, wl[0]), lines_per_mm, m, kind, duty_cycle, blaze_angle_deg,
+                                incidence_deg)
         weight = np.where(inside, eff * d * np.abs(cosb) / abs(m), 0.0)
         pos = np.interp(lam, wl, np.arange(wl.size))
         i0 = np.clip(np.floor(pos).astype(int), 0, wl.size - 1)

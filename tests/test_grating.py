@@ -489,6 +489,16 @@ def test_default_slit_width_is_half_the_period():
 
 
 # ---------------------------------------------------------------------- groove efficiency
+def test_blazed_efficiency_peaks_on_the_facet_specular_direction():
+    # Scalar Kirchhoff result (Loewen & Popov ch. 4): the blaze peak lies where α + β = 2θ_B, at any
+    # deviation. 600 lines/mm, θ_B = 40°, α = 0: order 1 leaves at β = 80° for λ = d·sin 80° (by hand).
+    lam = G.groove_spacing_nm(600.0) * math.sin(math.radians(80.0))
+    assert float(G.groove_efficiency(lam, 600.0, 1, "blazed", blaze_angle_deg=40.0)) == pytest.approx(1.0, abs=1e-9)
+    assert float(G.groove_efficiency(lam, 600.0, 1, "blazed", blaze_angle_deg=40.0, incidence_deg=20.0)) < 0.9
+    # An order that does not propagate carries nothing.
+    assert float(G.groove_efficiency(2 * lam, 600.0, 1, "blazed", blaze_angle_deg=40.0)) == 0.0
+
+
 def test_lamellar_efficiency_values():
     # sinc²(m·f), sinc(x) = sin(πx)/(πx): m = 0 → 1; f = 0.5: m = ±1 → 4/π² = 0.405285 (by hand),
     # even orders → 0; f = 1/3: every third order → 0.
@@ -503,12 +513,13 @@ def test_lamellar_efficiency_values():
 
 @given(st.floats(1.0, 60.0), densities)
 def test_blazed_efficiency_is_one_at_the_blaze_wavelength(tb, lpmm):
-    lb = G.blaze_wavelength_nm(tb, lpmm, 1)
-    assert float(G.groove_efficiency(lb, lpmm, 1, "blazed", blaze_angle_deg=tb)) == pytest.approx(1.0, rel=1e-12)
+    lb = G.blaze_wavelength_nm(tb, lpmm, 1)                 # the Littrow blaze: α = β = θ_B
+    lit = dict(blaze_angle_deg=tb, incidence_deg=tb)
+    assert float(G.groove_efficiency(lb, lpmm, 1, "blazed", **lit)) == pytest.approx(1.0, rel=1e-12)
     # Order 2 is blazed at λ_B/2: sinc²(2 − 2) = 1 (by hand from sinc²(m − λ_B/λ)).
-    assert float(G.groove_efficiency(lb / 2, lpmm, 2, "blazed", blaze_angle_deg=tb)) == pytest.approx(1.0, rel=1e-12)
+    assert float(G.groove_efficiency(lb / 2, lpmm, 2, "blazed", **lit)) == pytest.approx(1.0, rel=1e-12)
     # Away from it the efficiency drops.
-    assert float(G.groove_efficiency(1.3 * lb, lpmm, 1, "blazed", blaze_angle_deg=tb)) < 1.0
+    assert float(G.groove_efficiency(1.3 * lb, lpmm, 1, "blazed", **lit)) < 1.0
 
 
 # ---------------------------------------------------------------------- grating colour
