@@ -163,6 +163,30 @@ class Stack:
         """(R, T) in one computation; same parameters and shapes as :meth:`reflectance`."""
         return self._power(wavelength_nm, angle_deg, polarization)
 
+    def reflection_amplitudes(self, wavelength_nm, angle_deg=0.0):
+        """Complex reflection amplitudes (r_s, r_p) seen from the ambient, reference plane at the top face.
+
+        The p amplitude follows the module's Fresnel convention (r_p = −r_s at normal incidence): each
+        wave's p unit vector is ŝ × k̂ for its own direction k̂, ŝ being common to the incident and the
+        reflected wave. Same parameters and shape as :meth:`reflectance`; |r_s|², |r_p|² are R_s, R_p.
+
+        Raises
+        ------
+        InputError
+            For a thick (incoherent) substrate, whose back-face light adds in power, not in amplitude.
+
+        References
+        ----------
+        S. J. Byrnes, arXiv:1603.02720 (2016), eqs. 3-4 and sec. 4.
+        """
+        if self.substrate_thickness_mm is not None:
+            raise InputError("Reflection amplitudes exist only for a coherent stack; this one has a thick substrate "
+                             "whose back-face light adds in power. Use reflectance(), or a semi-infinite substrate.")
+        wl, ang, out_shape = _grid(wavelength_nm, angle_deg)
+        optics = _Optics(self, wl, ang)
+        last = len(optics.N) - 1
+        return tuple(optics.two_port(0, last, p)[0].reshape(out_shape) for p in ("s", "p"))
+
     def roles(self) -> list[str]:
         """Names of the media top to bottom, as people count layers: 'ambient', 'layer 1', ..., 'substrate'
         (layer 1 is ``layers[0]``, next to the ambient)."""
