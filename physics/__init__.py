@@ -7,9 +7,11 @@ from .errors import InputError, WavelengthRangeError
 from .materials import (Material, ConstantMaterial, CauchyMaterial, SellmeierMaterial,
                         TabulatedMaterial, DatabaseMaterial, material, list_materials,
                         search_materials, curated_materials, database_version)
+from .filmmodels import TaucLorentzMaterial, EffectiveMedium
 from .stack import Layer, Stack, sweep
 from . import grating
 from .fit import fit_thickness, read_spectrum, FitResult, SpectrumData, optical_thickness_fft, reflectance_from_counts
+from .filmfit import fit_film, FilmFitResult
 from .inverse import thickness_candidates, thickness_map, parse_color, Candidate, Candidates, ThicknessMap
 from .color import (spectrum_to_xyz, xyz_to_lab, xyz_to_srgb, delta_e_2000, srgb_out_of_gamut,
                     spectra_to_srgb, illuminant_white_xyz, srgb_to_hex, lab_to_xyz, srgb_to_xyz)
@@ -18,9 +20,9 @@ __all__ = [
     "InputError", "WavelengthRangeError",
     "Material", "ConstantMaterial", "CauchyMaterial", "SellmeierMaterial", "TabulatedMaterial",
     "DatabaseMaterial", "material", "list_materials", "search_materials", "curated_materials",
-    "database_version",
+    "database_version", "TaucLorentzMaterial", "EffectiveMedium",
     "Layer", "Stack", "sweep", "grating",
-    "fit_thickness", "read_spectrum", "FitResult", "SpectrumData", "optical_thickness_fft", "reflectance_from_counts",
+    "fit_thickness", "fit_film", "FilmFitResult", "read_spectrum", "FitResult", "SpectrumData", "optical_thickness_fft", "reflectance_from_counts",
     "thickness_candidates", "thickness_map", "parse_color", "Candidate", "Candidates", "ThicknessMap",
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "delta_e_2000", "srgb_out_of_gamut",
     "spectra_to_srgb", "illuminant_white_xyz", "srgb_to_hex", "lab_to_xyz", "srgb_to_xyz",
