@@ -397,8 +397,13 @@ def _curated_material(name: str) -> Material:
     e = curated_materials()[name]
     kind = e["kind"]
     if kind == "database":
-        m = DatabaseMaterial(e["page"], name=name)
-        m.source = f"{e['reference']} (refractiveindex.info {e['page']})"
+        from . import air                      # imported here: physics.air builds on this module
+
+        if e["page"] == air.CIDDOR_PAGE:       # standard air: the page, and its formula beyond the page
+            m = air.StandardAirMaterial(name=name, range_nm=tuple(e["range_nm"]))
+        else:
+            m = DatabaseMaterial(e["page"], name=name)
+        m.source = f"{e['reference']} (refractiveindex.info {e['page']}){getattr(m, 'beyond_page', '')}"
     elif kind == "constant":
         m = ConstantMaterial(e["n"], e.get("k", 0.0), name=name)
         m.source = e["reference"]
