@@ -76,6 +76,10 @@ SPREAD_START_WAVES = np.sqrt(2 * np.log(2)) / (4 * np.pi)
 #: Starting materials drawn per fit, besides the start itself, and scan minima kept per material.
 MATERIAL_SAMPLES = 24
 MINIMA_PER_SAMPLE = 2
+#: Wavelengths of each spectrum the global search (scans and first refinements) uses at most, evenly picked:
+#: it only ranks starts, and model and data are compared at the same points, so a coarser comb still puts
+#: the truth lowest. The final refinement uses every point.
+SCAN_WAVELENGTHS = 160
 #: (material, thickness) candidates refined by least squares, and model evaluations each gets at first;
 #: only the best is then run to convergence.
 CANDIDATES_REFINED = 4
@@ -90,6 +94,22 @@ SEED = 20260
 URBACH_START = (1e-3, 1.0)
 
 VOID = ConstantMaterial(1.0, name="void")
+
+
+class _AtWavelengths(Material):
+    """A material whose n + ik at the fit's wavelength arrays is computed once (the media the fit does not
+    change are evaluated at every step otherwise); any other wavelengths go to the material itself."""
+
+    def __init__(self, inner: Material, grids):
+        self.inner, self.name, self.source, self.range_nm = inner, inner.name, inner.source, inner.range_nm
+        self._known = {np.asarray(g, dtype=float).tobytes(): inner.nk(g) for g in grids}
+
+    def _nk(self, wl):
+        known = self._known.get(wl.tobytes()) if wl.ndim == 1 else None
+        return self.inner.nk(wl) if known is None else known
+
+    def spec(self):
+        return self.inner.spec()
 
 
 @dataclass(frozen=True)
@@ -316,6 +336,9 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     spectra = _spectra(wavelength_nm, reflectance, angle_deg, stack, layer, window)
     band = (min(s[0][0] for s in spectra), max(s[0][-1] for s in spectra))
     start_material = stack.layers[layer].material
+    coarse = [_comb(*s) for s in spectra]
+    given = stack
+    stack = _frozen(stack, layer, [s[0] for s in spectra + coarse])
     family = _MODELS.get(model)
     n_mat = len(family.names) if family else 0
     names = (("thickness_nm",) + (family.names if family else ()) + (("roughness_nm",) if roughness else ())
@@ -349,47 +372,62 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
         of = p[i + int(free_scale)] if free_offset else 0.0
         return float(p[0]), mat, rough, sigma, sc, of
 
-    def spectra_at(d, mat, rough, sigma):
+    def spectra_at(d, mat, rough, sigma, specs):
         st = _with_film(stack, layer, mat, d, rough)
         film = layer + int(rough is not None)
         if sigma is None:
-            return [st.reflectance(wl, ang, polarization) for wl, _, ang in spectra]
+            return [st.reflectance(wl, ang, polarization) for wl, _, ang in specs]
         x, w = np.polynomial.hermite.hermgauss(SPREAD_NODES)
         nodes = np.clip(d + np.sqrt(2.0) * sigma * x, 0.0, None)
-        return [(w / np.sqrt(np.pi)) @ sweep(st, film, nodes, [ang], wl, polarization)[:, 0, :] for wl, _, ang in spectra]
+        return [(w / np.sqrt(np.pi)) @ sweep(st, film, nodes, [ang], wl, polarization)[:, 0, :] for wl, _, ang in specs]
 
-    measured = np.concatenate([s[1] for s in spectra])
+    def residual_on(specs):
+        measured = np.concatenate([s[1] for s in specs])
 
-    def residual(p):
-        d, mat, rough, sigma, sc, of = unpack(p)
-        try:
-            return sc * np.concatenate(spectra_at(d, mat, rough, sigma)) + of - measured
-        except InputError:
-            return np.full(measured.size, INVALID_RESIDUAL)
+        def residual(p):
+            d, mat, rough, sigma, sc, of = unpack(p)
+            try:
+                return sc * np.concatenate(spectra_at(d, mat, rough, sigma, specs)) + of - measured
+            except InputError:
+                return np.full(measured.size, INVALID_RESIDUAL)
+        return residual
 
     thickness_fit = None
     if family is None and len(spectra) == 1:
         wl, R, ang = spectra[0]
-        thickness_fit = fit_thickness(wl, R, stack, layer, window, ang, polarization=polarization,
+        thickness_fit = fit_thickness(wl, R, given, layer, window, ang, polarization=polarization,
                                       free_scale=free_scale, free_offset=free_offset)
         candidates = [(0, t) for t, _ in thickness_fit.minima[:CANDIDATES_REFINED]]
     else:
-        candidates = _scan_candidates(stack, layer, hosts, window, spectra, polarization, free_scale, free_offset,
+        candidates = _scan_candidates(stack, layer, hosts, window, coarse, polarization, free_scale, free_offset,
                                       family, band)
-    refined = []
+    refined, first = [], residual_on(coarse)
     for h, d0 in candidates:
         p_mat = list(hosts[h]) if family else []
         extra = ([ROUGHNESS_START_NM] if roughness else []) + ([spread_start] if spread else [])
         p0 = [d0, *p_mat, *extra]
         if free_scale or free_offset:
-            model0 = np.concatenate(spectra_at(*unpack(np.r_[p0, [1.0] * free_scale, [0.0] * free_offset])[:4]))
-            s0, o0, _ = _linear_fit(model0[None, :], measured, free_scale, free_offset)
+            model0 = np.concatenate(spectra_at(*unpack(np.r_[p0, [1.0] * free_scale, [0.0] * free_offset])[:4], coarse))
+            s0, o0, _ = _linear_fit(model0[None, :], np.concatenate([c[1] for c in coarse]), free_scale, free_offset)
             p0 += ([float(s0[0])] if free_scale else []) + ([float(o0[0])] if free_offset else [])
         p0 = np.clip(p0, lower, upper)
-        refined.append(_refine(residual, p0, lower, upper, FIRST_NFEV))
+        refined.append(_refine(first, p0, lower, upper, FIRST_NFEV))
     refined.sort(key=lambda s: s.cost)
-    best = _refine(residual, refined[0].x, lower, upper, FINAL_NFEV)
-    return _result(best, names, unpack, model, measured.size, thickness_fit, window)
+    best = _refine(residual_on(spectra), refined[0].x, lower, upper, FINAL_NFEV)
+    return _result(best, names, unpack, model, n_points, thickness_fit, window)
+
+
+def _comb(wl, R, angle):
+    """At most :data:`SCAN_WAVELENGTHS` evenly picked points of a spectrum, for the global search."""
+    pick = np.unique(np.linspace(0, wl.size - 1, min(wl.size, SCAN_WAVELENGTHS)).round().astype(int))
+    return wl[pick], R[pick], angle
+
+
+def _frozen(stack, layer, grids):
+    """``stack`` with every medium but the film replaced by its values at the fit's wavelengths."""
+    keep = lambda m: _AtWavelengths(m, grids)                                   # noqa: E731
+    layers = [l if i == layer else Layer(keep(l.material), l.thickness_nm) for i, l in enumerate(stack.layers)]
+    return Stack(layers, keep(stack.substrate), keep(stack.ambient), stack.substrate_thickness_mm)
 
 
 def _with_film(stack, layer, mat, d, rough):

@@ -213,7 +213,9 @@ class EffectiveMedium(Material):
 
     def _nk(self, wl):
         ea, eb = self.material_a.nk(wl) ** 2, self.material_b.nk(wl) ** 2
-        return np.sqrt(effective_epsilon(ea, eb, self.fraction_b, self.rule))
+        e = effective_epsilon(ea, eb, self.fraction_b, self.rule)
+        # an exactly real root comes out with Im ε of a few ulp either side of 0: held at 0 (k >= 0)
+        return np.sqrt(e.real + 1j * np.maximum(e.imag, 0.0))
 
     def spec(self):
         return {"kind": "effective-medium", "a": self.material_a.spec(), "b": self.material_b.spec(),
