@@ -8,11 +8,15 @@ XYZ = Σ R(λᵢ) wᵢ reduces to a (n_wavelength, 3) weight matrix computed onc
 cached, so millions of spectra cost one matrix product. The weights integrate
 illuminant × colour-matching function on colour-science's 1 nm table against the
 piecewise-linear interpolant of the samples (each sample's "hat" function), so a
-coarse grid (5, 10, 20 nm) keeps most of the accuracy of a 1 nm one, and a grid
-finer than 1 nm (the fringes of a thick layer) is integrated on the union of both
-grids rather than read at whole nanometres; beyond the
-sampled band the end values are held constant; the weights are normalised so that
-a perfect reflector has Y = 1.
+5 nm grid keeps the accuracy of a 1 nm one, and a grid finer than 1 nm (the fringes
+of a thick layer) is integrated on the union of both grids rather than read at whole
+nanometres. Spectra sampled coarser than that, as measured or lamp spectra come, are
+integrated as ASTM E308 does: uniform 10 nm samples with the ASTM E2022 weights,
+uniform 20 nm samples interpolated to 10 nm first (ASTM E308's method for 20 nm data),
+both through colour-science's ASTM E308 implementation; other coarse samplings are
+interpolated to 1 nm by a cubic spline before integrating (:func:`_integration_weights`
+picks the route). Beyond the sampled band the end values are held constant; the
+weights are normalised so that a perfect reflector has Y = 1.
 
 Conventions: XYZ scaled so a perfect reflector has Y = 1; CIELAB L* in 0..100;
 sRGB values are display-encoded in 0..1 (IEC 61966-2-1). Colours under an
@@ -24,6 +28,7 @@ References
 CIE 015:2018 Colorimetry, 4th ed. (XYZ, CIELAB). IEC 61966-2-1:1999 (sRGB).
 CIE 142-2001 / G. Sharma, W. Wu, E. N. Dalal, Color Res. Appl. 30, 21 (2005) (CIEDE2000).
 CIE 159:2004 (CAT02). T. Mansencal et al., colour-science (software, doi:10.5281/zenodo.3757045).
+ASTM E308-15 (computing the colors of objects); ASTM E2022-11 (weighting factors), via colour-science.
 """
 
 from __future__ import annotations
@@ -38,7 +43,10 @@ from .errors import InputError, WavelengthRangeError, require_finite
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")
     import colour
-    from colour.colorimetry import reshape_sd
+    from colour.colorimetry import (adjust_tristimulus_weighting_factors_ASTME308, lagrange_coefficients_ASTME2022,
+                                    reshape_sd, tristimulus_weighting_factors_ASTME2022)
+    from colour.utilities import CACHE_REGISTRY
+from scipy.interpolate import CubicSpline
 
 __all__ = [
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "srgb_out_of_gamut", "delta_e_2000",
@@ -84,6 +92,19 @@ GAMUT_TOLERANCE = 1e-3
 MAX_SPD_WAVELENGTH_NM = 100_000.0
 #: The 1 nm grid of the CIE tables used for every integration.
 _FINE = colour.SpectralShape(360, 830, 1)
+#: Uniform sample steps (nm) integrated as ASTM E308 does (colour-science's implementation): 10 nm with the
+#: ASTM E2022 weights, 20 nm interpolated to 10 nm first. The samples must lie on whole tens of nm.
+ASTM_E308_STEPS_NM = (10, 20)
+#: Largest sample step (nm) integrated with the samples' piecewise-linear interpolant: at 5 nm and finer it
+#: errs by under 0.05 ΔE00 on a 25 nm wide band (tests/test_colour_sampling.py), and the thin-film colour
+#: grids (5 nm, or uniform in wavenumber) stay on it. Coarser samplings other than ASTM E308's are
+#: interpolated to 1 nm by a cubic spline first.
+LINEAR_MAX_STEP_NM = 5.0
+#: Slack (nm) in telling a uniform sampling and its step: far below any spectrometer's wavelength error.
+_STEP_ATOL_NM = 1e-6
+#: Most samples a spectrum is spline-interpolated from: its interpolation matrix is samples × 471, and a
+#: spectrum with more samples than the 1 nm grid is fine where it is dense (the linear route serves it).
+_SPLINE_MAX_SAMPLES = 471
 
 
 def _observer(observer) -> str:
@@ -221,12 +242,123 @@ def _sample_weights(wavelength_nm: np.ndarray, table: np.ndarray) -> np.ndarray:
     return W
 
 
+def _integration_route(wavelength_nm: np.ndarray) -> str:
+    """How samples at ``wavelength_nm`` are integrated: "astm-e308", "spline" or "linear".
+
+    "astm-e308": uniform at a step of :data:`ASTM_E308_STEPS_NM` on whole tens of nm. "linear": steps of
+    at most :data:`LINEAR_MAX_STEP_NM`, or a grid uniform in wavenumber (the fringe-resolving grids of
+    thin-film colour), or too few or too many samples for a spline. "spline": any other coarse sampling.
+    """
+    wl = wavelength_nm
+    if wl.size < 4:
+        return "linear"
+    d = np.diff(wl)
+    if d.max() - d.min() <= _STEP_ATOL_NM:                           # uniform in wavelength
+        step = (wl[-1] - wl[0]) / (wl.size - 1)
+        on_tens = abs(wl[0] - 10.0 * round(wl[0] / 10.0)) <= _STEP_ATOL_NM
+        if on_tens and any(abs(step - s) <= _STEP_ATOL_NM for s in ASTM_E308_STEPS_NM):
+            return "astm-e308"
+        return "linear" if step <= LINEAR_MAX_STEP_NM + _STEP_ATOL_NM else "spline"
+    ds = np.diff(1.0 / wl)
+    if np.ptp(ds) <= 1e-6 * abs(ds.mean()):                          # uniform in wavenumber
+        return "linear"
+    coarse = d.max() > LINEAR_MAX_STEP_NM + _STEP_ATOL_NM
+    return "spline" if coarse and wl.size <= _SPLINE_MAX_SAMPLES else "linear"
+
+
+def _integration_weights(wavelength_nm: np.ndarray, table: np.ndarray) -> np.ndarray:
+    """(n_samples, k) weights of samples at ``wavelength_nm`` against ``table`` (471, k) on the 1 nm grid,
+    by the route :func:`_integration_route` picks (unnormalised)."""
+    route = _integration_route(wavelength_nm)
+    if route == "astm-e308":
+        return _astm_e308_weights(wavelength_nm, table)
+    if route == "spline":
+        return _spline_weights(wavelength_nm, table)
+    return _sample_weights(wavelength_nm, table)
+
+
+#: colour-science's cache of ASTM E2022 weight tables: it keeps one per table, so it is emptied after use
+#: (ours are kept, bounded, by :func:`_weights_cached`).
+_COLOUR_WEIGHTS_CACHE = "colour.colorimetry.tristimulus_values._CACHE_TRISTIMULUS_WEIGHTING_FACTORS"
+
+
+def _astm_e308_weights(wavelength_nm: np.ndarray, table: np.ndarray) -> np.ndarray:
+    """(n_samples, k) ASTM E308 weights of uniform 10 or 20 nm samples against ``table`` (471, k).
+
+    The ASTM E2022 weights of the 10 nm interval (colour-science's
+    ``tristimulus_weighting_factors_ASTME2022``), folded onto the samples' band with
+    ``adjust_tristimulus_weighting_factors_ASTME308`` (the weights beyond the band go to its end samples,
+    which holds the end values); 20 nm samples are first interpolated to 10 nm with ASTM E2022's Lagrange
+    coefficients (``lagrange_coefficients_ASTME2022``), ASTM E308's method for 20 nm data. The weights
+    depend on illuminant × colour-matching function only through their product, so ``table`` is passed as
+    the functions with an equal-energy illuminant. Equal to colour-science's
+    ``sd_to_XYZ(method="ASTM E308", use_practice_range=False)`` on the same samples (tests check it).
+
+    References
+    ----------
+    ASTM E308-15, sec. 7 and ASTM E2022-11 (via colour-science, T. Mansencal et al.).
+    """
+    n = wavelength_nm.size
+    step = int(round((wavelength_nm[-1] - wavelength_nm[0]) / (n - 1)))
+    start = int(round(wavelength_nm[0]))
+    k = table.shape[1]
+    funcs = table if k == 3 else np.repeat(table[:, :1], 3, axis=1)     # ASTM's tables are for 3 functions
+    fine = _FINE.wavelengths
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cmfs = colour.MultiSpectralDistributions(funcs, fine)
+        flat = colour.SpectralDistribution(np.ones(fine.size), fine)
+        W = tristimulus_weighting_factors_ASTME2022(cmfs, flat, colour.SpectralShape(_FINE.start, _FINE.end, 10))
+        table_shape = colour.SpectralShape(_FINE.start, _FINE.start + 10 * (len(W) - 1), 10)
+        W = adjust_tristimulus_weighting_factors_ASTME308(
+            W, table_shape, colour.SpectralShape(start, start + step * (n - 1), 10))
+        if step == 20:
+            W = _astm_e308_20nm_to_10nm(n).T @ W
+        if _COLOUR_WEIGHTS_CACHE in CACHE_REGISTRY.registry:
+            CACHE_REGISTRY.clear_cache(_COLOUR_WEIGHTS_CACHE)
+    return np.asarray(W, dtype=float)[:, :k]
+
+
+def _astm_e308_20nm_to_10nm(n: int) -> np.ndarray:
+    """(2n − 1, n) matrix that interpolates n samples at 20 nm to the 10 nm grid between them: each
+    midpoint from the four samples around it (three in the end intervals), with ASTM E2022's Lagrange
+    coefficients as colour-science gives them, as ASTM E308 prescribes for 20 nm data."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        inner = np.asarray(lagrange_coefficients_ASTME2022(2, "inner"), dtype=float)[0]      # 4 coefficients
+        edge = np.asarray(lagrange_coefficients_ASTME2022(2, "boundary"), dtype=float)[0]    # 3 coefficients
+    L = np.zeros((2 * n - 1, n))
+    L[0::2] = np.eye(n)
+    for i in range(n - 1):
+        if i == 0:
+            L[1, 0:3] = edge
+        elif i == n - 2:
+            L[2 * i + 1, n - 3:n] = edge[::-1]
+        else:
+            L[2 * i + 1, i - 1:i + 3] = inner
+    return L
+
+
+def _spline_weights(wavelength_nm: np.ndarray, table: np.ndarray) -> np.ndarray:
+    """(n_samples, k) weights of coarse samples against ``table`` (471, k): the samples' cubic spline
+    (not-a-knot, as colour-science interpolates irregular data) on the 1 nm grid, end values held beyond
+    them, summed against the table."""
+    fine = np.arange(_FINE.start, _FINE.end + 1.0)
+    n = wavelength_nm.size
+    B = np.zeros((fine.size, n))                                        # 1 nm values from the samples
+    inside = (fine >= wavelength_nm[0]) & (fine <= wavelength_nm[-1])
+    B[inside] = CubicSpline(wavelength_nm, np.eye(n), axis=0)(fine[inside])
+    B[fine < wavelength_nm[0], 0] = 1.0
+    B[fine > wavelength_nm[-1], -1] = 1.0
+    return B.T @ table
+
+
 @functools.lru_cache(maxsize=64)
 def _weights_cached(wl_bytes: bytes, illum_key: str, observer: str, spd_bytes: bytes) -> np.ndarray:
     wl = np.frombuffer(wl_bytes)
     spd = np.frombuffer(spd_bytes)
     SxCMF = spd[:, None] * _cmfs(observer)                          # (471, 3)
-    W = _sample_weights(wl, SxCMF)                                  # (n, 3)
+    W = _integration_weights(wl, SxCMF)                             # (n, 3)
     norm = W[:, 1].sum()
     if norm <= 0:
         raise InputError("The illuminant has no power where the samples lie; widen the wavelength range.")
@@ -452,7 +584,7 @@ def _luminous_cached(wl_bytes: bytes, illum_key: str, spd_bytes: bytes) -> np.nd
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         V = reshape_sd(colour.colorimetry.SDS_LEFS_PHOTOPIC[PHOTOPIC_LEF], _FINE).values
-    w = _sample_weights(np.frombuffer(wl_bytes), (np.frombuffer(spd_bytes) * np.asarray(V, float))[:, None])[:, 0]
+    w = _integration_weights(np.frombuffer(wl_bytes), (np.frombuffer(spd_bytes) * np.asarray(V, float))[:, None])[:, 0]
     w = w / w.sum()
     w.setflags(write=False)
     return w
