@@ -36,6 +36,7 @@ G. E. Jellison Jr. and F. A. Modine, Appl. Phys. Lett. 69, 371 (1996) (Tauc-Lore
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 from typing import Callable
 
@@ -73,8 +74,8 @@ SPREAD_MAX_FRACTION = 0.2
 #: The spread starts where it halves the fringe contrast at the shortest wavelength:
 #: exp(−(4π n σ/λ)²/2) = 1/2 at σ = 0.094 λ/n.
 SPREAD_START_WAVES = np.sqrt(2 * np.log(2)) / (4 * np.pi)
-#: Starting materials drawn per fit, besides the start itself, and scan minima kept per material.
-MATERIAL_SAMPLES = 24
+#: Starting materials drawn per model parameter, besides the start itself, and scan minima kept per material.
+SAMPLES_PER_PARAMETER = 6
 MINIMA_PER_SAMPLE = 2
 #: Wavelengths of each spectrum the global search (scans and first refinements) uses at most, evenly picked:
 #: it only ranks starts, and model and data are compared at the same points, so a coarser comb still puts
@@ -83,8 +84,13 @@ SCAN_WAVELENGTHS = 160
 #: (material, thickness) candidates refined by least squares, and model evaluations each gets at first;
 #: only the best is then run to convergence.
 CANDIDATES_REFINED = 4
-FIRST_NFEV = 15
+FIRST_NFEV = 10
 FINAL_NFEV = 400
+#: Another solution whose χ² (sum of squares over the residual variance) exceeds the best one's by less
+#: than this is not ruled out by the data: 9 is a 3σ difference for one parameter (Press et al., sec. 15.6).
+#: Rivals are finished on all points when their first-pass sum of squares is within RIVAL_COST_RATIO of the best.
+COMPETING_DELTA_CHI2 = 9.0
+RIVAL_COST_RATIO = 2.0
 #: Residual returned where a trial material has no valid index (n <= 0): larger than any reflectance
 #: misfit, so the optimizer steps back.
 INVALID_RESIDUAL = 10.0
@@ -354,7 +360,7 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     hosts = [start_material] if family is None else None
     if family is not None:
         p_start = _start(family, start_material, band, model)
-        hosts = _draws(family, p_start, MATERIAL_SAMPLES)
+        hosts = _draws(family, p_start, SAMPLES_PER_PARAMETER * n_mat)
     spread_start = SPREAD_START_WAVES * band[0] / float(start_material.nk([band[0]]).real[0])
     lower = [window[0], *(family.lower if family else ()), *([0.0] if roughness else []),
              *([0.0] if spread else []), *([-np.inf] * (int(free_scale) + int(free_offset)))]
@@ -413,8 +419,24 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
         p0 = np.clip(p0, lower, upper)
         refined.append(_refine(first, p0, lower, upper, FIRST_NFEV))
     refined.sort(key=lambda s: s.cost)
-    best = _refine(residual_on(spectra), refined[0].x, lower, upper, FINAL_NFEV)
-    return _result(best, names, unpack, model, n_points, thickness_fit, window)
+    full = residual_on(spectra)
+    best = _refine(full, refined[0].x, lower, upper, FINAL_NFEV)
+    result = _result(best, names, unpack, model, n_points, thickness_fit, window)
+    s2 = 2.0 * best.cost / max(n_points - best.x.size, 1)
+    for sol in refined[1:]:
+        if sol.cost > RIVAL_COST_RATIO * refined[0].cost or abs(sol.x[0] - best.x[0]) <= max(3 * result.uncertainty_nm, 1.0):
+            continue
+        rival = _refine(full, sol.x, lower, upper, FINAL_NFEV)
+        delta = 2.0 * (rival.cost - best.cost) / s2
+        if abs(rival.x[0] - best.x[0]) > max(3 * result.uncertainty_nm, 1.0) and delta < COMPETING_DELTA_CHI2:
+            mid = 0.5 * (band[0] + band[1])
+            n_best, n_rival = (float(unpack(x)[1].nk([mid]).real[0]) for x in (best.x, rival.x))
+            note = (f"Another solution fits the data as well: {rival.x[0]:.1f} nm with n = {n_rival:.3f} at {mid:.0f} nm "
+                    f"(this fit: {best.x[0]:.1f} nm, n = {n_best:.3f}; χ² only {delta:.1f} higher). These spectra cannot "
+                    "choose between them: add a spectrum at another angle, or fix the index.")
+            result = dataclasses.replace(result, message=(note + " " + result.message).strip())
+            break
+    return result
 
 
 def _comb(wl, R, angle):

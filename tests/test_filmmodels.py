@@ -65,11 +65,9 @@ def test_tauc_lorentz_refuses_unphysical_parameters(kwargs, words):
 
 def tmm_reflectance(stack_media, thicknesses, wl):
     """Unpolarized normal-incidence R from the tmm package (coh_tmm), media as Materials."""
-    out = []
-    for w in wl:
-        ns = [complex(m.nk([w])[0]) if not isinstance(m, float) else m for m in stack_media]
-        out.append(tmm.coh_tmm("s", ns, [np.inf, *thicknesses, np.inf], 0.0, w)["R"])
-    return np.array(out)
+    nk = np.array([m.nk(wl) if hasattr(m, "nk") else np.full(len(wl), complex(m)) for m in stack_media])
+    return np.array([tmm.coh_tmm("s", list(nk[:, i]), [np.inf, *thicknesses, np.inf], 0.0, w)["R"]
+                     for i, w in enumerate(wl)])
 
 
 def test_film_models_as_stack_layers_against_tmm():
