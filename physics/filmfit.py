@@ -85,12 +85,19 @@ SCAN_WAVELENGTHS = 160
 #: only the best is then run to convergence.
 CANDIDATES_REFINED = 4
 FIRST_NFEV = 10
-FINAL_NFEV = 400
+FINAL_NFEV = 100
+#: Least-squares stopping tolerances (relative change of the sum of squares and of the parameters). A film
+#: model often has a flat valley (parameters that trade); 1e-6 of the sum of squares is far below what the
+#: noise can tell, and beyond it the optimizer only walks along the valley.
+FTOL = XTOL = 1e-6
 #: Another solution whose χ² (sum of squares over the residual variance) exceeds the best one's by less
 #: than this is not ruled out by the data: 9 is a 3σ difference for one parameter (Press et al., sec. 15.6).
 #: Rivals are finished on all points when their first-pass sum of squares is within RIVAL_COST_RATIO of the best.
 COMPETING_DELTA_CHI2 = 9.0
 RIVAL_COST_RATIO = 2.0
+#: The model fitted to the start material's n and k is only a start among the drawn ones: a loose fit will do.
+START_FTOL = 1e-4
+START_NFEV = 30
 #: Residual returned where a trial material has no valid index (n <= 0): larger than any reflectance
 #: misfit, so the optimizer steps back.
 INVALID_RESIDUAL = 10.0
@@ -110,9 +117,14 @@ class _AtWavelengths(Material):
         self.inner, self.name, self.source, self.range_nm = inner, inner.name, inner.source, inner.range_nm
         self._known = {np.asarray(g, dtype=float).tobytes(): inner.nk(g) for g in grids}
 
+    def nk(self, wavelength_nm) -> np.ndarray:
+        """The values computed (and checked by :meth:`Material.nk`) once, or the material's own elsewhere."""
+        wl = np.asarray(wavelength_nm)
+        known = self._known.get(wl.tobytes()) if wl.ndim == 1 and wl.dtype == float else None
+        return self.inner.nk(wavelength_nm) if known is None else known
+
     def _nk(self, wl):
-        known = self._known.get(wl.tobytes()) if wl.ndim == 1 else None
-        return self.inner.nk(wl) if known is None else known
+        return self.inner.nk(wl)
 
     def spec(self):
         return self.inner.spec()
@@ -278,7 +290,8 @@ def _start(family: _Model, start: Material, band, model: str):
             return np.full(2 * wl.size, INVALID_RESIDUAL)
         return np.r_[nk.real - target.real, nk.imag - target.imag]
 
-    return least_squares(resid, p0, bounds=(family.lower, family.upper), x_scale="jac").x
+    return least_squares(resid, p0, bounds=(family.lower, family.upper), x_scale="jac", ftol=START_FTOL,
+                         max_nfev=START_NFEV).x
 
 
 def _draws(family: _Model, p0, n):
@@ -420,13 +433,16 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
         refined.append(_refine(first, p0, lower, upper, FIRST_NFEV))
     refined.sort(key=lambda s: s.cost)
     full = residual_on(spectra)
-    best = _refine(full, refined[0].x, lower, upper, FINAL_NFEV)
+    finals = [_finish(full, refined[0].x, lower, upper)]
+    apart = max(3.0 * _result(finals[0], names, unpack, model, n_points, None, window).uncertainty_nm, 1.0)
+    for sol in refined[1:]:
+        if sol.cost <= RIVAL_COST_RATIO * refined[0].cost and all(abs(sol.x[0] - f.x[0]) > apart for f in finals):
+            finals.append(_finish(full, sol.x, lower, upper))
+    finals.sort(key=lambda s: s.cost)
+    best = finals[0]
     result = _result(best, names, unpack, model, n_points, thickness_fit, window)
     s2 = 2.0 * best.cost / max(n_points - best.x.size, 1)
-    for sol in refined[1:]:
-        if sol.cost > RIVAL_COST_RATIO * refined[0].cost or abs(sol.x[0] - best.x[0]) <= max(3 * result.uncertainty_nm, 1.0):
-            continue
-        rival = _refine(full, sol.x, lower, upper, FINAL_NFEV)
+    for rival in finals[1:]:
         delta = 2.0 * (rival.cost - best.cost) / s2
         if abs(rival.x[0] - best.x[0]) > max(3 * result.uncertainty_nm, 1.0) and delta < COMPETING_DELTA_CHI2:
             mid = 0.5 * (band[0] + band[1])
@@ -437,6 +453,12 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
             result = dataclasses.replace(result, message=(note + " " + result.message).strip())
             break
     return result
+
+
+def _finish(residual, p0, lower, upper):
+    """The refinement run to convergence on every point (tolerances :data:`FTOL`, :data:`XTOL`)."""
+    return least_squares(residual, p0, bounds=(lower, upper), x_scale="jac", method="trf", xtol=XTOL, ftol=FTOL,
+                         max_nfev=FINAL_NFEV)
 
 
 def _comb(wl, R, angle):
