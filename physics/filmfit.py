@@ -517,7 +517,8 @@ def _result(sol, names, unpack, model, n, thickness_fit, window) -> FilmFitResul
         c, i, j = max(pairs)
         notes.append(f"{names[i]} and {names[j]} trade against each other (correlation {corr[i, j]:+.3f}): the "
                      "spectrum fixes a combination of the two, so each is uncertain"
-                     + (" (a thin transparent film's thickness and index correlate strongly). Fix the index "
+                     + (" (of a transparent film the spectrum mostly fixes the optical thickness n·d, and the "
+                        "thinner the film the less it tells n from d). Fix the index "
                         "(model='fixed' with a known material) or add a spectrum at another angle."
                         if "thickness_nm" in (names[i], names[j]) else
                         ". Fix one of them or use a model with fewer parameters."))
