@@ -101,6 +101,9 @@ START_NFEV = 30
 #: Residual returned where a trial material has no valid index (n <= 0): larger than any reflectance
 #: misfit, so the optimizer steps back.
 INVALID_RESIDUAL = 10.0
+#: Most spectra in one joint fit: each adds a full model evaluation per step (a dozen angles or polarizations
+#: is more than any film needs), and the bound keeps one call's time and memory limited.
+MAX_SPECTRA = 12
 #: Seed of the draw of starting materials: the same spectrum always gives the same fit.
 SEED = 20260
 #: Urbach tail start when the start has none: k = 0.001 at the band's short end, falling e-fold per eV.
@@ -248,6 +251,9 @@ class FilmFitResult:
 def _spectra(wavelength_nm, reflectance, angle_deg, stack, layer, window):
     """[(wl, R, angle)] of one or several spectra, each checked, sorted and (when dense) binned."""
     several = isinstance(wavelength_nm, (list, tuple)) and len(wavelength_nm) > 0 and np.ndim(wavelength_nm[0]) >= 1
+    if several and len(wavelength_nm) > MAX_SPECTRA:
+        raise InputError(f"{len(wavelength_nm)} spectra were given; a joint fit takes at most {MAX_SPECTRA}. Fit the "
+                         "angles that separate the parameters best (e.g. normal incidence and one near 65°).")
     if not several:
         wavelength_nm, reflectance, angle_deg = [wavelength_nm], [reflectance], [angle_deg]
     elif not isinstance(reflectance, (list, tuple)) or len(reflectance) != len(wavelength_nm):
@@ -420,6 +426,9 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     else:
         candidates = _scan_candidates(stack, layer, hosts, window, coarse, polarization, free_scale, free_offset,
                                       family, band)
+    if not candidates:
+        raise InputError(f"No starting {model} material gives a valid index over {band[0]:g}-{band[1]:g} nm; start "
+                         "from a material with data over the whole band, or choose another model.")
     refined, first = [], residual_on(coarse)
     for h, d0 in candidates:
         p_mat = list(hosts[h]) if family else []

@@ -46,6 +46,7 @@ def check_nitride(r, nitride, d_true):
     assert r.k_at(633.0) == 0.0 and r.rms < 1.5 * NOISE
     assert set(r.parameters) == {"thickness_nm", "A", "B_um2", "C_um4"} == set(r.uncertainties)
     assert r.correlation.shape == (4, 4) and np.allclose(np.diag(r.correlation), 1.0)
+    assert material(r.material.spec()).spec() == r.material.spec()     # the fitted film can be stored
 
 
 @pytest.mark.parametrize("d_true", [300.0, 900.0])
@@ -143,6 +144,8 @@ def test_one_sigma_intervals_cover_the_truth():
      "top surface"),
     (dict(model="drude"), "model must be one of"),
     (dict(wavelength_nm=[WL, WL], reflectance=[np.full(WL.size, 0.3)] * 2, angle_deg=[0.0]), "one angle per"),
+    (dict(wavelength_nm=[WL] * 13, reflectance=[np.full(WL.size, 0.3)] * 13), "at most 12"),
+    (dict(angle_deg=float("nan")), "angle_deg"),
 ])
 def test_bad_input_gets_a_sentence(kwargs, words):
     args = dict(wavelength_nm=WL, reflectance=np.full(WL.size, 0.3), stack=Stack([Layer(GENERIC, 0.0)], "Si",
