@@ -46,7 +46,7 @@ with warnings.catch_warnings():
     from colour.colorimetry import (adjust_tristimulus_weighting_factors_ASTME308, lagrange_coefficients_ASTME2022,
                                     reshape_sd, tristimulus_weighting_factors_ASTME2022)
     from colour.utilities import CACHE_REGISTRY
-from scipy.interpolate import CubicSpline
+from scipy.interpolate import CubicSpline, PchipInterpolator
 
 __all__ = [
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "srgb_out_of_gamut", "delta_e_2000",
@@ -186,7 +186,9 @@ def lamp_label(code: str) -> str:
 
 
 def user_spd_on_fine_grid(wavelength_nm, values) -> np.ndarray:
-    """A user's lamp spectrum, linearly interpolated onto the 360-830 nm 1 nm grid.
+    """A user's lamp spectrum on the 360-830 nm 1 nm grid: linearly interpolated between samples at most
+    :data:`LINEAR_MAX_STEP_NM` apart (a spectrometer's), by a shape-preserving cubic (PCHIP) between
+    coarser ones (10 nm, 20 nm, irregular).
 
     Outside the supplied range the lamp is taken to emit nothing; the range must
     cover at least 400-700 nm, where the eye is sensitive.
@@ -208,6 +210,12 @@ def user_spd_on_fine_grid(wavelength_nm, values) -> np.ndarray:
         raise InputError("The lamp spectrum is zero everywhere; give a spectrum with some power.")
     fine = np.arange(360, 831, dtype=float)
     out = np.interp(fine, wl, v, left=0.0, right=0.0)
+    if np.all(np.diff(wl) > 0) and _integration_route(wl) != "linear":
+        # Coarse samples (10 nm, 20 nm, irregular): a shape-preserving cubic (PCHIP; F. N. Fritsch and
+        # R. E. Carlson, SIAM J. Numer. Anal. 17, 238 (1980)) to 1 nm. It never leaves the range of the
+        # neighbouring samples, so a lamp's dark bands stay dark and its power never goes negative.
+        inside = (fine >= wl[0]) & (fine <= wl[-1])
+        out[inside] = PchipInterpolator(wl, v)(fine[inside])
     if not np.any(out[(fine >= 400) & (fine <= 700)] > 0):
         raise InputError("The lamp spectrum has no power from 400 to 700 nm, where the eye sees; "
                          "give a lamp that emits visible light.")

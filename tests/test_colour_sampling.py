@@ -137,3 +137,27 @@ def test_thin_film_colour_grids_keep_the_linear_route():
         assert C._integration_route(wl) == "linear"
         W = C._sample_weights(wl, table)
         np.testing.assert_array_equal(C.color_weights(wl), W / W[:, 1].sum())
+
+
+@pytest.mark.parametrize("lamp", ["LED-B3", "LED-RGB1"])
+def test_a_lamp_given_at_10_nm_gives_the_colours_of_its_1_nm_table(lamp):
+    """colour-science's white-LED tables (CIE 015:2018) sampled at 10 nm, against the same tables at 1 nm,
+    for the 24 patches of colour-science's ISO 17321-1 chart. Measured: at most 0.008 and 0.045 ΔE00 (a
+    linear interpolation of the 10 nm lamp gave 0.13 and 0.14)."""
+    fine = FINE.wavelengths
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        chart = colour.SDS_COLOURCHECKERS["ISO 17321-1"]
+        R = np.array([reshape_sd(sd, FINE).values for sd in chart.values()])
+        table = reshape_sd(colour.SDS_ILLUMINANTS[lamp], FINE).values
+    wl = np.arange(360.0, 831.0, 10.0)
+    coarse = (wl, np.interp(wl, fine, table))
+    lab = C.xyz_to_lab(C.spectrum_to_xyz(R, fine, coarse), coarse)
+    truth = C.xyz_to_lab(C.spectrum_to_xyz(R, fine, lamp), lamp)
+    assert C.delta_e_2000(lab, truth).max() <= MAX_DE_10NM
+
+
+def test_a_coarse_lamp_dark_across_the_visible_is_still_refused():
+    """Interpolating coarse lamp samples adds no power where every sample is dark."""
+    with pytest.raises(C.InputError, match="no power from 400 to 700 nm"):
+        C.user_spd_on_fine_grid([1.0, 400.0, 700.0, 900.0, 1000.0], [0.0, 0.0, 0.0, 0.0, 5.0])
