@@ -98,6 +98,13 @@ def test_twenty_nm_samples_of_a_25_nm_band_come_within_0_3_de00_of_the_fine_inte
     assert de.max() <= MAX_DE_20NM_ANY_CENTRE
 
 
+def test_five_nm_samples_keep_the_linear_route_and_its_accuracy():
+    # measured: 0.072 (380-780 nm) and 0.139 (400-700 nm), the bound physics.color.LINEAR_MAX_STEP_NM states
+    for wl in (np.arange(380.0, 781.0, 5.0), np.arange(400.0, 701.0, 5.0)):
+        assert C._integration_route(wl) == "linear"
+        assert _errors(wl).max() <= 0.14
+
+
 def test_irregular_coarse_samples_are_interpolated_before_integrating():
     # steps of 8-12 nm (an instrument's own sampling) and 10 nm off the tens: cubic spline to 1 nm.
     # measured: 0.048 and 0.010 (the linear route gave 0.39 and 0.30)
