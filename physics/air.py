@@ -19,10 +19,10 @@ recalled from memory.
 
 Validity: the paper fits data from about 300 to 1690 nm (recalled from memory); the database page uses
 the formula from 230 nm. Between 1690 and 2500 nm, and from 200 to 230 nm, the formula is extrapolated,
-as is common practice for air: its dispersion there is tiny (n − 1 changes by 2.9e-7 from 1690 to
-2500 nm) and far below what a reflectance or colour can show; an extrapolation error well below 1e-7
-in n is common practice, not a measured bound. Below 200 nm oxygen begins to absorb and the formula's
-pole (σ² = k2, 132 nm) nears, so nothing below 200 nm is given.
+as is common practice for air. The paper does not bound the error there; the formula's own dispersion
+beyond 1690 nm is tiny (n − 1 changes by 2.9e-7 from 1690 to 2500 nm), far below what a reflectance or a
+colour can show. Below 200 nm oxygen begins to absorb (recalled from memory) and the formula's pole
+(σ² = k2, at 132 nm) nears, so nothing below 200 nm is given.
 
 References
 ----------
