@@ -47,7 +47,7 @@ from scipy.stats import qmc
 from .errors import InputError, require_finite
 from .filmmodels import EffectiveMedium, TaucLorentzMaterial
 from .fit import (SAMPLES_PER_FRINGE, MAX_SCAN_POINTS, FitResult, _bin_dense, _linear_fit, _local_minima, _prepare,
-                  _refine, _scan_grid, _window, fit_thickness)
+                  _scan_grid, _window, fit_thickness)
 from .materials import CauchyMaterial, ConstantMaterial, HC_EV_NM, Material, SellmeierMaterial
 from .stack import Layer, Stack, _check_layer_index, _check_polarization, sweep
 
@@ -90,6 +90,8 @@ FINAL_NFEV = 100
 #: model often has a flat valley (parameters that trade); 1e-6 of the sum of squares is far below what the
 #: noise can tell, and beyond it the optimizer only walks along the valley.
 FTOL = XTOL = 1e-6
+#: ... and of the first passes, which only rank the starts: 1e-4 of the sum of squares tells basins apart.
+FIRST_TOL = 1e-4
 #: Another solution whose χ² (sum of squares over the residual variance) exceeds the best one's by less
 #: than this is not ruled out by the data: 9 is a 3σ difference for one parameter (Press et al., sec. 15.6).
 #: Rivals are finished on all points when their first-pass sum of squares is within RIVAL_COST_RATIO of the best.
@@ -439,7 +441,7 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
             s0, o0, _ = _linear_fit(model0[None, :], np.concatenate([c[1] for c in coarse]), free_scale, free_offset)
             p0 += ([float(s0[0])] if free_scale else []) + ([float(o0[0])] if free_offset else [])
         p0 = np.clip(p0, lower, upper)
-        refined.append(_refine(first, p0, lower, upper, FIRST_NFEV))
+        refined.append(_finish(first, p0, lower, upper, first=True))
     refined.sort(key=lambda s: s.cost)
     full = residual_on(spectra)
     finals = [_finish(full, refined[0].x, lower, upper)]
@@ -464,10 +466,12 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     return result
 
 
-def _finish(residual, p0, lower, upper):
-    """The refinement run to convergence on every point (tolerances :data:`FTOL`, :data:`XTOL`)."""
-    return least_squares(residual, p0, bounds=(lower, upper), x_scale="jac", method="trf", xtol=XTOL, ftol=FTOL,
-                         max_nfev=FINAL_NFEV)
+def _finish(residual, p0, lower, upper, first=False):
+    """Bounded least squares from ``p0``: a first pass (:data:`FIRST_NFEV`, :data:`FIRST_TOL`) that only ranks the
+    starts, or the refinement run to convergence (:data:`FINAL_NFEV`, :data:`FTOL`, :data:`XTOL`)."""
+    tol = FIRST_TOL if first else FTOL
+    return least_squares(residual, p0, bounds=(lower, upper), x_scale="jac", method="trf", xtol=tol, ftol=tol,
+                         max_nfev=FIRST_NFEV if first else FINAL_NFEV)
 
 
 def _comb(wl, R, angle):
