@@ -12,10 +12,14 @@ Method.
    Starting materials are then drawn over the usual range of each model parameter (a seeded Latin
    hypercube, scipy.stats.qmc); for each, the film's thickness window is scanned densely with the
    O(1)-per-point sweep of :mod:`physics.stack`, solving the optional scale and offset in closed form
-   (the scan of :mod:`physics.fit`). With the optical constants fixed the thickness search is
-   :func:`physics.fit_thickness` itself.
-2. The best (material, thickness) pairs are refined by bounded non-linear least squares over every
-   free parameter (scipy.optimize.least_squares, trust-region reflective); the best is kept.
+   (the scan of :mod:`physics.fit`), on at most :data:`SCAN_WAVELENGTHS` points of each spectrum. With the
+   optical constants fixed the thickness search is :func:`physics.fit_thickness` itself.
+2. The best (material, thickness) pairs get a short first pass of bounded non-linear least squares over
+   every free parameter on those points (scipy.optimize.least_squares, trust-region reflective); the best
+   one, and any other that ends in another thickness with a sum of squares close to it, are refined to
+   convergence on every point. The lowest is the answer; another whose χ² lies within
+   :data:`COMPETING_DELTA_CHI2` of it is named in the message (a thin film on silicon seen at one angle
+   can have two such solutions, with n² either side of silicon's ε1).
 3. Uncertainties: 1σ from the square roots of the diagonal of (JᵀJ)⁻¹·s², J the Jacobian at the
    solution and s² = SSR/(n − p), the curvature scaled by the residual; the correlation matrix is the
    covariance over the product of the σs. A pair with |correlation| > :data:`CORRELATION_WARN` is
