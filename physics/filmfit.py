@@ -18,8 +18,9 @@ Method.
    every free parameter on those points (scipy.optimize.least_squares, trust-region reflective); the best
    one, and any other that ends in another thickness with a sum of squares close to it, are refined to
    convergence on every point. The lowest is the answer; another whose χ² lies within
-   :data:`COMPETING_DELTA_CHI2` of it is named in the message (a thin film on silicon seen at one angle
-   can have two such solutions, with n² either side of silicon's ε1).
+   :data:`COMPETING_DELTA_CHI2` of it is named in the message (a thin transparent film seen at one angle
+   can have two: the quarter-wave minimum R = ((n_s − n²)/(n_s + n²))² is as deep for n as for n_s/n,
+   n_s the substrate's index; Born & Wolf, Principles of Optics, sec. 7.6.1).
 3. Uncertainties: 1σ from the square roots of the diagonal of (JᵀJ)⁻¹·s², J the Jacobian at the
    solution and s² = SSR/(n − p), the curvature scaled by the residual; the correlation matrix is the
    covariance over the product of the σs. A pair with |correlation| > :data:`CORRELATION_WARN` is

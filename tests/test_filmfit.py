@@ -58,8 +58,9 @@ def test_pecvd_like_nitride_on_silicon(d_true):
 
 
 def test_thin_nitride_needs_a_second_angle():
-    """At 80 nm one normal-incidence spectrum fits two films about equally well (n² either side of silicon's
-    ε1 gives the same depth of the reflectance minimum): the fit says so; with 65° added it is settled."""
+    """At 80 nm one normal-incidence spectrum fits two films about equally well (the quarter-wave minimum
+    ((n_s − n²)/(n_s + n²))² is as deep for n as for n_s/n; Born & Wolf, Principles of Optics, sec. 7.6.1):
+    the fit says so; with 65° added it is settled."""
     nitride, si = nitride_page(), material("Si")
     start = Stack([Layer(GENERIC, 500.0)], si, ambient=1.0)
     R0 = noisy(tmm_reflectance([1.0, nitride, si], [80.0], WL), 80)
