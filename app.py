@@ -22,14 +22,20 @@ pn.extension("filedropper", design="native", notifications=False)
 ADDRESS_DELAY_MS = 400
 
 
-def tab_opened(tabs, library, title):
-    """Build a tab's section when it is first opened; sections that draw only while their tab is open are
-    told so; the library is re-read when its tab is opened."""
+def tab_opened(tabs, library, title, now=None):
+    """Build a tab's section when it is first opened (off the loop when served); sections that draw only
+    while their tab is open are told so; the library is re-read when its tab is opened. ``now`` (a dict
+    of the page's) keeps the open tab for a section that arrives from its builder after the person moved on."""
     inverse = tabs["Colour → thickness"]
+    now = {} if now is None else now
+    now["tab"] = title
+
+    def shown():
+        if inverse.built:
+            inverse.set_shown(now.get("tab") == "Colour → thickness")
     if title in tabs:
-        tabs[title].get()
-    if inverse.built:
-        inverse.set_shown(title == "Colour → thickness")
+        tabs[title].open_soon(pn.state.curdoc, then=shown)
+    shown()
     if title == "Lab library":
         library.refresh()
 
@@ -43,12 +49,10 @@ def page():
 
     def built(title, make):
         """Build a tab's section; from then on the page address follows its settings too."""
-        def build():
-            section = make()
+        def followed(section):
             for fn in follow:
                 fn(title, section)
-            return section
-        return BuiltOnFirstOpen(build)
+        return BuiltOnFirstOpen(make, on_built=followed)
 
     def colour_section():
         inverse = ColourToThickness(explorer)
@@ -61,7 +65,7 @@ def page():
     library = LibrarySection(explorer, tabs["Colour → thickness"], tabs["Gratings"])
     layout = explorer.panel(extra_tabs=[*((title, tab.holder) for title, tab in tabs.items()),
                                         ("Lab library", library.panel())],
-                            without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, tabs, library)))
+                            without_stack={"Gratings", "Lab library"}, on_tab=locked(partial(tab_opened, tabs, library, now={})))
     switcher = layout[1]
     link = PageLink(explorer, tabs, switcher, ["Film explorer", *tabs, "Lab library"])
     note = pn.pane.Alert("", alert_type="warning", visible=False, margin=(2, 10), css_classes=["fg-link-note"])

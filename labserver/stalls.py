@@ -4,8 +4,9 @@ Every page's changes, every login and ``/health`` are answered by one thread, th
 thread of this module puts a no-op on the loop every :data:`PROBE_EVERY_S` and sees how long it
 waits; while one waits longer than :data:`STALL_S`, it looks at what the loop's thread is doing and,
 once the loop is free again, logs one line with how long it was held and the innermost frames seen
-(file, line, function): what to make faster or move off the loop. It costs one wake-up a tenth of
-a second.
+(file, line, function): what to make faster or move off the loop, and how much of the time the loop's
+thread spent computing (``loop_cpu_s``; the rest it waited for the interpreter lock or a core, which other
+threads and processes held). It costs one wake-up a tenth of a second.
 """
 
 from __future__ import annotations
@@ -37,6 +38,18 @@ class StallWatch:
         self.stalls = 0
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, daemon=True, name="fringegauge-stall-watch")
+        try:
+            self._loop_clock = time.pthread_getcpuclockid(loop_thread_id)
+        except (AttributeError, OSError, OverflowError):    # no per-thread CPU clock on this system
+            self._loop_clock = None
+
+    def _loop_cpu_s(self) -> float | None:
+        if self._loop_clock is None:
+            return None
+        try:
+            return time.clock_gettime(self._loop_clock)
+        except OSError:                                     # the loop's thread has ended
+            return None
 
     def start(self) -> StallWatch:
         self._thread.start()
@@ -60,7 +73,7 @@ class StallWatch:
     def _run(self) -> None:
         while not self._stop.wait(PROBE_EVERY_S):
             answered = threading.Event()
-            t0 = time.perf_counter()
+            t0, cpu0 = time.perf_counter(), self._loop_cpu_s()
             try:
                 self.loop.call_soon_threadsafe(answered.set)
             except RuntimeError:                     # the loop has closed
@@ -75,4 +88,6 @@ class StallWatch:
             self.worst_s = max(self.worst_s, held)
             if held > self.stall_s:
                 self.stalls += 1
-                _log.warning("event loop held up", extra={"held_s": round(held, 3), "where": where or []})
+                cpu1 = self._loop_cpu_s()
+                cpu = None if cpu0 is None or cpu1 is None else round(cpu1 - cpu0, 3)
+                _log.warning("event loop held up", extra={"held_s": round(held, 3), "loop_cpu_s": cpu, "where": where or []})

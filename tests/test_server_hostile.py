@@ -574,10 +574,6 @@ def test_tls_serves_https_with_secure_cookies(tmp_path):
 
 
 # ---------------------------------------------------------------------- the whole run
-@pytest.mark.xfail(strict=False, reason=(
-    "opening a tab builds its section on the event loop (app.py tab_opened -> BuiltOnFirstOpen.get): with "
-    "pages built in threads beside it, that held the loop 0.6-1.9 s on a 2-core machine, so /health can "
-    "wait over 1 s; the sections must be built off the loop"))
 def test_health_answered_within_a_second_throughout(lab):
     watch = lab["watch"]
     assert len(watch.latencies) > 100
