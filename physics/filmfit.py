@@ -51,8 +51,8 @@ from scipy.stats import qmc
 
 from .errors import InputError, require_finite
 from .filmmodels import EffectiveMedium, TaucLorentzMaterial
-from .fit import (SAMPLES_PER_FRINGE, MAX_SCAN_POINTS, FitResult, _bin_dense, _linear_fit, _local_minima, _prepare,
-                  _scan_grid, _window, fit_thickness)
+from .fit import (SAMPLES_PER_FRINGE, MAX_SCAN_POINTS, FitResult, _bin_dense, _judge, _linear_fit, _local_minima,
+                  _prepare, _scan_grid, _window, fit_thickness, noise_rms)
 from .materials import CauchyMaterial, ConstantMaterial, HC_EV_NM, Material, SellmeierMaterial
 from .stack import Layer, Stack, _check_layer_index, _check_polarization, sweep
 
@@ -229,6 +229,9 @@ class FilmFitResult:
     model : the dispersion model
     thickness_fit : the :class:`~physics.fit.FitResult` of the thickness search (model "fixed", one
         spectrum), else None
+    quality : "good", "misfit" or "poor", judged as :func:`physics.fit_thickness` judges its fits (the
+        residual against the noise seen in the spectra and against their spread); "misfit" and "poor" add
+        a sentence to ``message``
     """
 
     thickness_nm: float
@@ -245,6 +248,7 @@ class FilmFitResult:
     n_points: int = 0
     model: str = "fixed"
     thickness_fit: FitResult | None = field(default=None, repr=False)
+    quality: str = "good"
 
     def n_at(self, wavelength_nm) -> np.ndarray:
         """Refractive index n of the fitted film at vacuum wavelengths (nm)."""
@@ -457,6 +461,10 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     finals.sort(key=lambda s: s.cost)
     best = finals[0]
     result = _result(best, names, unpack, model, n_points, thickness_fit, window)
+    noise = float(np.sqrt(np.mean([noise_rms(R) ** 2 for _, R, _ in spectra])))
+    quality, note, _ = _judge(result.rms, noise, float(np.std(np.concatenate([R for _, R, _ in spectra]))), None, 0.0,
+                              window, f"layer {layer + 1}")
+    result = dataclasses.replace(result, quality=quality, message=(result.message + " " + note).strip())
     s2 = 2.0 * best.cost / max(n_points - best.x.size, 1)
     for rival in finals[1:]:
         delta = 2.0 * (rival.cost - best.cost) / s2

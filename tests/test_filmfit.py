@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 import tmm
 
-from physics import (CauchyMaterial, EffectiveMedium, InputError, Layer, SellmeierMaterial, Stack, fit_film,
-                     fit_thickness, material, search_materials)
+from physics import (CauchyMaterial, EffectiveMedium, InputError, Layer, SellmeierMaterial, Stack,
+                     TaucLorentzMaterial, fit_film, fit_thickness, material, search_materials)
 
 WL = np.linspace(400.0, 1000.0, 500)
 #: Noise of the invented measurements (rms reflectance): a good reflectometer's 0.1-0.3 % (common practice).
@@ -107,6 +107,22 @@ def test_thin_film_says_thickness_and_index_trade():
     r = fit_film(WL, R, Stack([Layer(GENERIC, 0.0)], si, ambient=1.0), model="cauchy", thickness_nm=(0, 300))
     assert "thickness_nm and A trade against each other" in r.message
     assert "another angle" in r.message
+
+
+def test_absorbing_amorphous_film_by_tauc_lorentz():
+    """An a-Si-like Tauc-Lorentz film (invented parameters) on oxide on silicon: thickness, n and k recovered;
+    a transparent Cauchy cannot describe it, and the fit says so."""
+    ox, si = material("SiO2"), material("Si")
+    truth = TaucLorentzMaterial(1.5, 1.7, 120.0, 3.7, 2.2)
+    wl = WL[::2]
+    R = noisy(tmm_reflectance([1.0, truth, ox, si], [60.0, 100.0], wl), 5)
+    start = Stack([Layer(GENERIC, 0.0), Layer(ox, 100.0)], si, ambient=1.0)
+    r = fit_film(wl, R, start, model="tauc-lorentz", thickness_nm=(0, 1000))
+    assert r.thickness_nm == pytest.approx(60.0, rel=0.01) and r.quality == "good"
+    np.testing.assert_allclose(r.n_at([500.0, 800.0]), truth.nk([500.0, 800.0]).real, atol=0.02)
+    np.testing.assert_allclose(r.k_at([500.0, 700.0]), truth.nk([500.0, 700.0]).imag, atol=0.01)
+    wrong = fit_film(wl, R, start, model="cauchy", thickness_nm=(0, 1000))
+    assert wrong.quality != "good" and "times the noise" in wrong.message
 
 
 def test_fixed_model_is_fit_thickness():
