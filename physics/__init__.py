@@ -10,6 +10,7 @@ from .materials import (Material, ConstantMaterial, CauchyMaterial, SellmeierMat
 from .filmmodels import TaucLorentzMaterial, EffectiveMedium
 from .stack import Layer, Stack, sweep
 from . import grating
+from .grating import rigorous_efficiency, rigorous_efficiency_detail
 from .fit import fit_thickness, read_spectrum, FitResult, SpectrumData, optical_thickness_fft, reflectance_from_counts
 from .filmfit import fit_film, FilmFitResult
 from .inverse import thickness_candidates, thickness_map, parse_color, Candidate, Candidates, ThicknessMap
@@ -21,7 +22,7 @@ __all__ = [
     "Material", "ConstantMaterial", "CauchyMaterial", "SellmeierMaterial", "TabulatedMaterial",
     "DatabaseMaterial", "material", "list_materials", "search_materials", "curated_materials",
     "database_version", "TaucLorentzMaterial", "EffectiveMedium",
-    "Layer", "Stack", "sweep", "grating",
+    "Layer", "Stack", "sweep", "grating", "rigorous_efficiency", "rigorous_efficiency_detail",
     "fit_thickness", "fit_film", "FilmFitResult", "read_spectrum", "FitResult", "SpectrumData", "optical_thickness_fft", "reflectance_from_counts",
     "thickness_candidates", "thickness_map", "parse_color", "Candidate", "Candidates", "ThicknessMap",
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "delta_e_2000", "srgb_out_of_gamut",

@@ -42,7 +42,8 @@ __all__ = [
     "order_overlaps", "order_sorting_filter_nm", "littrow_angle_deg", "blaze_wavelength_nm",
     "blaze_wavelength_at_deviation_nm", "plan_spectrometer_report", "PlanRejection", "rayleigh_wavelength_nm", "n_slit_intensity", "groove_efficiency",
     "grating_spectrum", "grating_color", "grating_color_map", "plan_spectrometer", "SpectrometerDesign",
-    "display_srgb", "spectral_line_srgb",
+    "display_srgb", "spectral_line_srgb", "rigorous_efficiency", "rigorous_efficiency_detail",
+    "SCALAR_TRUST_D_OVER_LAMBDA",
 ]
 
 #: Largest |incidence| accepted: 90° is grazing and illuminates nothing.
@@ -442,6 +443,140 @@ def groove_efficiency(wavelength_nm, lines_per_mm, order, kind="lamellar", duty_
         # phase across one facet, in waves: (d/λ)[(sin α + sin β) − tan θ_B (cos α + cos β)] = m − …
         return np.where(live, _sinc2(m - d / wl * np.tan(tb) * (np.cos(a) + cb)), 0.0)
     raise InputError(f"kind must be 'lamellar' or 'blazed'; got {kind!r}.")
+
+
+# ---------------------------------------------------------------------- rigorous efficiency
+#: Most wavelengths one rigorous curve may hold (each costs a few ms to tens of ms): a bound on the
+#: work one request can ask for.
+MAX_RIGOROUS_WAVELENGTHS = 2000
+#: Below this groove spacing over wavelength, scalar efficiency theory is not to be trusted: the
+#: efficiency depends on polarization and shows anomalies (common practice).
+SCALAR_TRUST_D_OVER_LAMBDA = 3.0
+
+
+def _rigorous_inputs(wavelength_nm, lines_per_mm, order, incidence_deg, profile, depth_nm, duty_cycle,
+                     blaze_angle_deg, material, polarization, kind):
+    from . import rcwa
+    from .materials import material as _material
+
+    wl = np.atleast_1d(_wavelength(wavelength_nm)).astype(float).ravel()
+    if wl.size > MAX_RIGOROUS_WAVELENGTHS:
+        raise InputError(f"{wl.size} wavelengths asked; a rigorous curve holds at most {MAX_RIGOROUS_WAVELENGTHS}. "
+                         "Use fewer samples or split the band.")
+    for name, value in (("lines_per_mm", lines_per_mm), ("incidence_deg", incidence_deg)):
+        if np.ndim(value) != 0:
+            raise InputError(f"{name} must be one number for a rigorous curve; got {value!r}.")
+    d = float(groove_spacing_nm(lines_per_mm))
+    scalar = np.ndim(order) == 0
+    orders = tuple(int(m) for m in np.atleast_1d(_order(order)).ravel())
+    if not orders:
+        raise InputError("orders is empty; give one order or a list of orders (…, −1, 0, 1, …).")
+    alpha = float(_incidence(incidence_deg))
+    pol = str(polarization).strip().lower() if isinstance(polarization, str) else None
+    if pol not in rcwa.POLARIZATIONS:
+        raise InputError(f"polarization must be 'TE' (or 's'), 'TM' (or 'p') or 'unpolarized'; got {polarization!r}.")
+    if kind not in ("reflection", "transmission"):
+        raise InputError(f"kind must be 'reflection' or 'transmission'; got {kind!r}.")
+    depth = rcwa.check_profile(profile, depth_nm, duty_cycle, blaze_angle_deg, d)
+    mat = _material(material)
+    nk = np.asarray(mat.nk(wl), dtype=complex)
+    if kind == "transmission" and float(nk.imag.max()) > rcwa.TRANSPARENT_K_MAX:
+        raise InputError(f"{mat.name} absorbs (k up to {float(nk.imag.max()):.3g}); a transmission grating needs a "
+                         f"transparent material (k <= {rcwa.TRANSPARENT_K_MAX:g}), such as a glass or SiO2. Use "
+                         "kind='reflection' for a metal.")
+    return rcwa, wl, d, scalar, orders, alpha, pol, depth, nk
+
+
+def rigorous_efficiency_detail(wavelength_nm, lines_per_mm, order, incidence_deg=0.0, *, profile="lamellar",
+                               depth_nm=None, duty_cycle=0.5, blaze_angle_deg=None, material="Al",
+                               polarization="unpolarized", kind="reflection"):
+    """:func:`rigorous_efficiency` with how it was obtained: a :class:`physics.rcwa.RigorousEfficiency`.
+
+    Its ``efficiency`` is always (W, O) (O orders asked); it also holds the TE and TM curves, the
+    reflected and transmitted totals over all orders, the absorbed fraction, the harmonic count
+    chosen (``harmonics`` N, ``fourier_orders`` = 2N + 1) and whether it converged.
+    """
+    rcwa, wl, d, scalar, orders, alpha, pol, depth, nk = _rigorous_inputs(
+        wavelength_nm, lines_per_mm, order, incidence_deg, profile, depth_nm, duty_cycle, blaze_angle_deg,
+        material, polarization, kind)
+    thickness, intervals = rcwa.profile_slices(profile, depth, duty_cycle, blaze_angle_deg, d, float(wl.min()))
+    pols = rcwa.POLARIZATIONS[pol]
+    R, T, n, converged, change = rcwa.converged_orders(wl, d, alpha, thickness, intervals, nk, orders, pols, kind)
+    cols = n + np.asarray(orders)
+    quoted = (R if kind == "reflection" else T)[:, :, cols]            # (W, P, O)
+    live = np.abs(np.asarray(orders)[None, :] * wl[:, None] / d - np.sin(np.radians(alpha))) <= 1.0 + _GRAZING_TOL
+    quoted = np.where(live[:, None, :], np.clip(quoted, 0.0, None), 0.0)
+    te = quoted[:, pols.index(0)] if 0 in pols else None
+    tm = quoted[:, pols.index(1)] if 1 in pols else None
+    eff = quoted.mean(axis=1)
+    r_tot, t_tot = R.sum(axis=2), T.sum(axis=2)
+    lossless = float(nk.imag.max()) <= rcwa.TRANSPARENT_K_MAX
+    absorbed = 1.0 - r_tot - (t_tot if lossless else 0.0)               # an absorbing substrate keeps what enters it
+    note = (f"{2 * n + 1} Fourier orders (harmonics ±{n})" + ("" if converged else
+            f"; not converged to {rcwa.CONVERGENCE_TOL:g} at the cap (last change {change:.2g})"))
+    return rcwa.RigorousEfficiency(wl, orders, eff, te, tm, pols, r_tot, t_tot, absorbed, int(n), bool(converged),
+                                   float(change), len(thickness), kind, note)
+
+
+def rigorous_efficiency(wavelength_nm, lines_per_mm, order, incidence_deg=0.0, *, profile="lamellar", depth_nm=None,
+                        duty_cycle=0.5, blaze_angle_deg=None, material="Al", polarization="unpolarized",
+                        kind="reflection"):
+    """Absolute diffraction efficiency of an order from Maxwell's equations (rigorous coupled waves).
+
+    Parameters
+    ----------
+    wavelength_nm : array_like
+        Vacuum wavelengths, nm (one axis W; a single number gives W = 1).
+    lines_per_mm : float
+        Groove density.
+    order : int or sequence of int
+        Diffraction order(s), sign convention m·λ = d(sin α + sin β) of this module.
+    incidence_deg : float
+        Angle of incidence α from the grating normal, degrees (|α| < 90°), in the plane
+        perpendicular to the grooves.
+    profile : {"lamellar", "sinusoidal", "blazed"}
+        Groove shape; "sinusoidal" and "blazed" are cut into a staircase of 10 to 20 slices, each at
+        most 1/20 of the shortest wavelength thick.
+    depth_nm : float, optional
+        Groove depth peak to valley, nm. Default (None): 100 nm for lamellar and sinusoidal grooves;
+        for blazed grooves the right-angle apex depth d·sin θ_B·cos θ_B.
+    duty_cycle : float
+        Ridge width over the period, strictly between 0 and 1 (lamellar only).
+    blaze_angle_deg : float
+        Facet angle θ_B, 0° < θ_B < 90° (blazed only); the facet blazes the positive orders.
+    material : str, number or Material
+        Grating and substrate material, anything :func:`physics.material` accepts ("Al", "Ag",
+        "Au", "SiO2", 1.5, "1.2+7i" …); the ambient above is vacuum/air with n = 1 exactly.
+    polarization : {"TE", "s", "TM", "p", "unpolarized"}
+        TE/s: electric field along the grooves; TM/p: magnetic field along the grooves;
+        unpolarized: their mean.
+    kind : {"reflection", "transmission"}
+        Reflected orders, or orders transmitted into the substrate that leave through a flat
+        back face (power carried in the substrate; back-face Fresnel loss not included). Transmission
+        is only meaningful for a transparent grating on a substrate of the same material.
+
+    Returns
+    -------
+    numpy.ndarray
+        Efficiencies 0..1 (fraction of the incident power), shape (W,) for one order and (W, O)
+        for a sequence of O orders; an order that does not propagate is 0. The harmonic count is
+        chosen by convergence (:func:`rigorous_efficiency_detail` reports it).
+
+    Raises
+    ------
+    InputError
+        Bad depth, duty cycle, blaze angle, profile, polarization or kind; an unknown material; a
+        wavelength outside the material's data.
+
+    References
+    ----------
+    M. G. Moharam and T. K. Gaylord, J. Opt. Soc. Am. 71, 811 (1981); M. G. Moharam et al.,
+    J. Opt. Soc. Am. A 12, 1068 (1995); the meent solver (:mod:`physics.rcwa`).
+    """
+    res = rigorous_efficiency_detail(wavelength_nm, lines_per_mm, order, incidence_deg, profile=profile,
+                                     depth_nm=depth_nm, duty_cycle=duty_cycle, blaze_angle_deg=blaze_angle_deg,
+                                     material=material, polarization=polarization, kind=kind)
+    return res.efficiency[:, 0] if np.ndim(order) == 0 else res.efficiency
 
 
 # ---------------------------------------------------------------------- colour
