@@ -18,11 +18,14 @@ from views.explorer import FilmExplorer
 from views.grating import GratingSection
 from views.inverse import ColourToThickness
 from views.library import LIBRARY_ENV, LibrarySection, library_title
+from views.pagebuild import BuiltOnFirstOpen
 
 
 def _page(lib):
+    """A page's library tab; as on the page, the colour and gratings tabs are built when first needed."""
     ex = FilmExplorer()
-    return LibrarySection(ex, ColourToThickness(ex), GratingSection(), library=lib)
+    return LibrarySection(ex, BuiltOnFirstOpen(lambda: ColourToThickness(ex)), BuiltOnFirstOpen(GratingSection),
+                          library=lib)
 
 
 def _choose(section, i):
