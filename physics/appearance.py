@@ -50,7 +50,7 @@ __all__ = ["ColorMap", "color_map", "colour_wavelengths_nm", "fringe_path_nm", "
            "order_thicknesses_nm", "colour_band_nm", "DEFAULT_BAND_NM", "MAX_NA", "point_color",
            "scaled_colors", "PointColor", "BRIGHTNESS", "band_average", "scaled_stack", "tolerance_run",
            "ToleranceResult", "MAX_TOLERANCE_TRIALS", "MAX_TOLERANCE_PCT", "max_na", "DRY_INDEX_MAX",
-           "IMMERSION_NA_FRACTION"]
+           "IMMERSION_NA_FRACTION", "MAX_OFFERED_NA", "ambient_index", "check_na_for"]
 
 #: The colour band used by default: CIE tables are significant from 380 to 780 nm.
 DEFAULT_BAND_NM = (380.0, 780.0)
@@ -60,6 +60,9 @@ ORDER_WAVELENGTH_NM = 550.0
 MAX_NA = 0.95
 #: Ambient indices up to this count as a gas (air is 1.00028 near 1 atm): the dry cap MAX_NA applies.
 DRY_INDEX_MAX = 1.01
+#: Largest NA a stack file or the page offers: oil-immersion objectives (1.4-1.45 are the usual ones,
+#: common practice); whether a given NA is possible depends on the ambient (:func:`max_na`).
+MAX_OFFERED_NA = 1.45
 #: In a liquid or solid ambient the NA may reach this fraction of its index (a half-angle of 78.5°):
 #: water-immersion objectives reach NA 1.2-1.27 in n = 1.333, oil 1.4-1.49 in n = 1.515 (common practice).
 IMMERSION_NA_FRACTION = 0.98
@@ -256,16 +259,30 @@ def max_na(ambient_n: float) -> float:
     return MAX_NA if n0 <= DRY_INDEX_MAX else IMMERSION_NA_FRACTION * n0
 
 
+def ambient_index(stack: Stack) -> float:
+    """Lowest real index of the stack's ambient over the colour band (380-780 nm, cut to its data)."""
+    lo, hi = DEFAULT_BAND_NM
+    if stack.ambient.range_nm is not None:
+        lo, hi = max(lo, stack.ambient.range_nm[0]), min(hi, stack.ambient.range_nm[1])
+    wl = np.linspace(lo, hi, 41) if hi > lo else np.array([float(stack.ambient.range_nm[0])])
+    return float(np.real(stack.ambient.nk(wl)).min())
+
+
+def check_na_for(stack: Stack, na) -> float:
+    """``na`` as a float after checking it is possible in the stack's ambient (InputError otherwise)."""
+    return _check_na(na, ambient_index(stack))
+
+
 def _check_na(na, ambient_n: float) -> float:
     """``na`` as a float after checking it against :func:`max_na` of the ambient."""
     value = float(require_finite("na", na, minimum=0.0))
     limit = max_na(ambient_n)
     if value > limit:
-        kind = ("a dry objective (the ambient is a gas)" if float(ambient_n) <= DRY_INDEX_MAX
-                else f"{IMMERSION_NA_FRACTION:g} of the ambient's index")
-        raise InputError(f"NA = {value:g} is too large for an ambient of index n₀ = {float(ambient_n):.4g}: the "
-                         f"largest NA accepted there is {limit:.3g} ({kind}; NA = n₀ sin α can never reach n₀). "
-                         "Lower the NA, or choose an immersion ambient (water, oil) of higher index.")
+        where = ("in a gas (a dry objective)" if float(ambient_n) <= DRY_INDEX_MAX else
+                 f"in a liquid or solid, {IMMERSION_NA_FRACTION:g} of n₀, since NA = n₀ sin α never reaches n₀")
+        raise InputError(f"NA = {value:g} is too large for an ambient of index n₀ = {float(ambient_n):.5g}: the "
+                         f"largest NA accepted {where} is {limit:.3g}. Lower the NA, or choose an immersion "
+                         "ambient (water, oil) of higher index.")
     return value
 
 

@@ -37,6 +37,7 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from .appearance import MAX_OFFERED_NA, check_na_for
 from .errors import InputError
 from .materials import Material, material
 from .stack import Layer, Stack
@@ -81,7 +82,7 @@ POLARIZATIONS = ("s", "p", "unpolarized")
 ILLUMINANTS = ("D65", "D50", "A", "F2", "F11")
 OBSERVERS = ("2", "10")
 #: (lowest, highest, unit) of each numeric view setting.
-VIEW_RANGES = {"angle_deg": (0.0, 89.9, "deg"), "na": (0.0, 0.95, ""),
+VIEW_RANGES = {"angle_deg": (0.0, 89.9, "deg"), "na": (0.0, MAX_OFFERED_NA, ""),     # NA also below the ambient's cap
                "thickness_max_nm": (10.0, 100_000.0, "nm")}
 
 _REQUIRED = ("format", "version", "ambient", "layers", "substrate")
@@ -368,6 +369,10 @@ def stack_from_dict(data: dict) -> StackFile:
         stack = Stack(layers, substrate=substrate, ambient=ambient, substrate_thickness_mm=d_mm)
     except InputError as exc:  # pragma: no cover - every part is checked above
         raise InputError(f"stack: {exc}") from None
+    try:
+        check_na_for(stack, view["na"])
+    except InputError as exc:
+        raise InputError(f"view.na: {exc}") from None
     return StackFile(name=name, scenario=scenario, stack=stack, swept_layer=swept, view=view)
 
 

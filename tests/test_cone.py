@@ -246,3 +246,11 @@ def test_na_cap_follows_the_ambient():
         cone_reflectance(water, [550.0], 0.0, 1.32)
     with pytest.raises(InputError, match="dry objective"):
         cone_rays([0.0], 0.97, 1.0)
+
+
+def test_stack_file_na_is_checked_against_its_ambient():
+    from physics.stackfile import stack_to_dict
+    water = Stack([Layer(1.46, 300.0)], substrate=SI, ambient=1.333)
+    assert stack_to_dict(water, view={"na": 1.25})["view"]["na"] == 1.25
+    with pytest.raises(InputError, match="view.na: NA = 1.25 is too large"):
+        stack_to_dict(Stack([Layer(1.46, 300.0)], substrate=SI, ambient=1.0), view={"na": 1.25})

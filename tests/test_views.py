@@ -322,3 +322,16 @@ def test_a_tick_box_is_one_boolean_whichever_side_changes():
     assert box.value is True and seen == [True]
     box.value = False                                                # set from Python
     assert box._group.value == [] and seen == [True, False]
+
+
+def test_viewing_cone_na_beyond_the_ambient_is_refused_in_the_page_and_immersion_allows_it():
+    from physics import Layer
+    from physics.stackfile import dump_stack_file
+    ex = FilmExplorer()
+    assert ex.na_slider.end == ex.state.param.na.bounds[1] > 1.0
+    ex.na_slider.value = 1.2                               # in air: no objective reaches it
+    assert ex.error.visible and "too large for an ambient of index" in ex.error.object
+    water = Stack([Layer("SiO2", 300.0)], substrate="Si", ambient=1.333)
+    assert ex.load_stack_upload("water.json", dump_stack_file(water, name="invented water cell",
+                                                              view={"na": 1.2}).encode())
+    assert ex.state.na == 1.2 and not ex.error.visible    # a water-immersion objective

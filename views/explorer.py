@@ -226,7 +226,8 @@ class FilmExplorer:
                                     css_classes=["fg-lamp-file"])
         self.observer = pn.widgets.RadioButtonGroup(label="Observer", options={"2° (CIE 1931)": "2", "10° (CIE 1964)": "10"},
                                                     value=s.observer, margin=(2, 5))
-        self.na_slider = pn.widgets.FloatSlider(label="Viewing cone NA (0 = eye at a distance)", start=0.0, end=0.95,
+        self.na_slider = pn.widgets.FloatSlider(label="Viewing cone NA (0 = eye at a distance)", start=0.0,
+                                                end=s.param.na.bounds[1],      # above 0.95 in immersion only
                                                 step=0.01, value=s.na, width=300, margin=(2, 5),
                                                 tooltips=False)      # the label shows the value; a bubble hid it
         self.brightness = pn.widgets.RadioButtonGroup(label="Brightness", options={"absolute": "absolute",

@@ -20,7 +20,7 @@ from physics import InputError, Layer, Stack, material
 from physics.appearance import (MAX_TOLERANCE_PCT, ToleranceResult, band_average, scaled_stack, tolerance_run)
 from physics.color import luminous_reflectance
 from physics.appearance import (ColorMap, color_map, colour_band_nm, colour_map_points, colour_wavelengths_nm, fringe_path_nm, cone_reflectance, interference_order,
-                                order_thicknesses_nm, point_color, scaled_colors, MAX_NA)
+                                order_thicknesses_nm, point_color, scaled_colors, MAX_OFFERED_NA)
 from physics.color import (ILLUMINANTS, LED_ILLUMINANTS, PLANCK_CCT_LIMITS_K, YELLOW_ROOM, lamp_label, planck_spd,
                            srgb_to_hex, user_spd_on_fine_grid)
 from physics.fit import text_lines
@@ -84,7 +84,9 @@ class ExplorerState(param.Parameterized):
                               doc="Colour temperature of the halogen lamp (a Planck radiator), K.")
     spd_json = param.String(default="", doc="A custom lamp spectrum [[nm...], [values...]] (illuminant 'custom').")
     observer = param.Selector(default="2", objects=["2", "10"], doc="CIE 1931 2° or CIE 1964 10° observer.")
-    na = param.Number(default=0.0, bounds=(0.0, MAX_NA), doc="Numerical aperture of the viewing cone (0 = one direction).")
+    na = param.Number(default=0.0, bounds=(0.0, MAX_OFFERED_NA),
+                      doc="Numerical aperture of the viewing cone (0 = one direction); above 0.95 only in an immersion "
+                          "ambient (the physics refuses an NA the ambient's index does not allow, with a message).")
     brightness = param.Selector(default="absolute", objects=["absolute", "normalized"],
                                 doc="Absolute reflectance, or scaled so the brightest colour of a reference is white.")
     brightness_reference = param.Selector(default="strip", objects=list(BRIGHTNESS_REFERENCES),
