@@ -557,6 +557,27 @@ def _cone_sum(view_count: int, angles, weights):
     return uniq, M
 
 
+def _check_lab_frame(stack, polarization, quantity, polarizer_deg, analyzer_deg) -> bool:
+    """Whether a lab-frame polarizer or analyzer is asked for, after checking it can be modelled."""
+    if polarizer_deg is None and analyzer_deg is None:
+        return False
+    if polarization != "unpolarized":
+        raise InputError(f"polarization={polarization!r} (each ray's own s or p) and a polarizer in the lab "
+                         "frame exclude each other; with polarizer_deg or analyzer_deg give "
+                         "polarization='unpolarized'.")
+    for name, value in (("polarizer_deg", polarizer_deg), ("analyzer_deg", analyzer_deg)):
+        if value is not None:
+            require_finite(name, value, unit="deg")
+    if analyzer_deg is not None and quantity == "transmittance":
+        raise InputError("An analyzer is modelled in the reflected beam only; for transmittance give "
+                         "polarizer_deg alone (the detected power of each ray's s and p parts).")
+    if analyzer_deg is not None and stack.substrate_thickness_mm is not None:
+        raise InputError("An analyzer needs the reflected amplitudes of a coherent stack; this stack's thick "
+                         "substrate adds its back-face light in power. Give polarizer_deg alone, or make the "
+                         "substrate semi-infinite.")
+    return True
+
+
 def cone_reflectance(stack: Stack, wavelength_nm, view_deg=0.0, na: float = 0.0,
                      polarization: str = "unpolarized", quantity: str = "reflectance", *,
                      polarizer_deg=None, analyzer_deg=None) -> np.ndarray:
@@ -586,22 +607,7 @@ def cone_reflectance(stack: Stack, wavelength_nm, view_deg=0.0, na: float = 0.0,
     wl = np.asarray(wavelength_nm, dtype=float)
     if quantity not in ("reflectance", "transmittance"):
         raise InputError(f"quantity must be 'reflectance' or 'transmittance'; got {quantity!r}.")
-    lab = polarizer_deg is not None or analyzer_deg is not None
-    if lab:
-        if polarization != "unpolarized":
-            raise InputError(f"polarization={polarization!r} (each ray's own s or p) and a polarizer in the lab "
-                             "frame exclude each other; with polarizer_deg or analyzer_deg give "
-                             "polarization='unpolarized'.")
-        for name, value in (("polarizer_deg", polarizer_deg), ("analyzer_deg", analyzer_deg)):
-            if value is not None:
-                require_finite(name, value, unit="deg")
-        if analyzer_deg is not None and quantity == "transmittance":
-            raise InputError("An analyzer is modelled in the reflected beam only; for transmittance give "
-                             "polarizer_deg alone (the detected power of each ray's s and p parts).")
-        if analyzer_deg is not None and stack.substrate_thickness_mm is not None:
-            raise InputError("An analyzer needs the reflected amplitudes of a coherent stack; this stack's thick "
-                             "substrate adds its back-face light in power. Give polarizer_deg alone, or make the "
-                             "substrate semi-infinite.")
+    lab = _check_lab_frame(stack, polarization, quantity, polarizer_deg, analyzer_deg)
     n0 = float(np.real(stack.ambient.nk(np.atleast_1d(wl)).min())) if wl.size else 1.0
     cone = _cone(view, na, n0, stack, wl.ravel() if wl.size else None)
     A = cone.view_deg.size
@@ -712,7 +718,7 @@ def scaled_colors(xyz, illuminant="D65", observer="2", scale: float = 1.0):
 
 def color_map(stack: Stack, layer: int, thickness_nm, angle_deg, wavelength_nm=None, *,
               illuminant="D65", observer="2", polarization="unpolarized", na: float = 0.0,
-              brightness: str = "absolute") -> ColorMap:
+              brightness: str = "absolute", polarizer_deg=None, analyzer_deg=None) -> ColorMap:
     """Colour seen for each (thickness of one layer, viewing angle).
 
     Parameters
@@ -735,11 +741,16 @@ def color_map(stack: Stack, layer: int, thickness_nm, angle_deg, wavelength_nm=N
         Viewing-cone numerical aperture (0 = a single direction).
     brightness : {"absolute", "normalized"}
         "normalized" scales so the brightest colour of the map is display white.
+    polarizer_deg, analyzer_deg : float, optional
+        A linear polarizer and analyzer in the lab frame, as in :func:`cone_reflectance` (with or without
+        a cone). With an analyzer each row's amplitudes are computed in full (slower than the sweep).
 
     Returns
     -------
     ColorMap
     """
+    lab = (polarizer_deg, analyzer_deg) if _check_lab_frame(stack, polarization, "reflectance", polarizer_deg,
+                                                             analyzer_deg) else None
     ang = np.atleast_1d(require_finite("angle_deg", angle_deg, minimum=0.0, maximum=MAX_ANGLE_DEG,
                                        max_inclusive=False, unit="deg")).ravel()
     d = np.atleast_1d(np.asarray(thickness_nm, dtype=float)).ravel()
@@ -753,38 +764,52 @@ def color_map(stack: Stack, layer: int, thickness_nm, angle_deg, wavelength_nm=N
     for rows, wl_g in groups:
         # one cone (rays, grid, matrix) per group, for its thickest row; pieces are sized on the larger of
         # the map's angles and the cone's grid
-        cone = _map_cone(stack, layer, float(d[rows].max()), ang, wl_g, na)
+        cone = _map_cone(stack, layer, float(d[rows].max()), ang, wl_g, na, lab)
         width = max(ang.size, cone[0].size if cone is not None else 0)
         piece = max(1, _MAP_PIECE_POINTS // max(1, width * wl_g.size))
         for start in range(0, rows.size, piece):
             r = rows[start:start + piece]
-            R = _map_reflectance(stack, layer, d[r], ang, wl_g, polarization, na, cone)
+            R = _map_reflectance(stack, layer, d[r], ang, wl_g, polarization, na, cone, lab)
             xyz[r] = spectrum_to_xyz(R, wl_g, illuminant, observer)
     scale = _scale_for(xyz, brightness)
     rgb, lab, oog = scaled_colors(xyz, illuminant, observer, scale)
     return ColorMap(d, ang, wl, xyz, lab, rgb, oog, scale)
 
 
-def _map_cone(stack, layer, thickest_nm, ang, wl, na):
-    """(grid angles, cone matrix) for map rows up to ``thickest_nm`` thick (see :func:`_cone_matrix`);
-    None without a cone."""
-    if not (na and na >= MIN_NA):
-        return None
+def _map_cone(stack, layer, thickest_nm, ang, wl, na, lab=None):
+    """(grid angles, [matrices]) for map rows up to ``thickest_nm`` thick: the cone's (see
+    :func:`_cone_matrix`), or with a lab-frame ``lab`` = (polarizer_deg, analyzer_deg) and no cone the map's
+    own angles with diagonal matrices; None without either."""
     n0 = float(stack.ambient.nk(wl).real.min())
-    grid, (M,) = _cone_matrix(ang, na, n0, stack.with_thickness(layer, thickest_nm), wl)
-    return grid, M
+    coefficients = None if lab is None else (lambda cone: [c for c in _polarization_coefficients(cone, *lab)
+                                                           if c is not None])
+    if na and na >= MIN_NA:
+        return _cone_matrix(ang, na, n0, stack.with_thickness(layer, thickest_nm), wl, coefficients)
+    if lab is None:
+        return None
+    return ang, [np.diag(c.sum(axis=1)) for c in coefficients(_cone(ang, 0.0, n0))]
 
 
-def _map_reflectance(stack, layer, d, ang, wl, polarization, na, cone=None):
+def _map_reflectance(stack, layer, d, ang, wl, polarization, na, cone=None, lab=None):
     """R (T, A, W) of the swept layer over thickness × viewing angle, averaged over the cone when na > 0
-    (``cone`` from :func:`_map_cone`, made for the thickest row here when not given)."""
-    if cone is None and na and na >= MIN_NA:
-        cone = _map_cone(stack, layer, float(np.max(d)), ang, wl, na)
-    if cone is not None:
-        grid, M = cone
-        R_grid = sweep(stack, layer, d, grid, wl, polarization)          # (T, G, W)
-        return np.einsum("ag,tgw->taw", M, R_grid, optimize=True)
-    return sweep(stack, layer, d, ang, wl, polarization)                 # (T, A, W)
+    (``cone`` from :func:`_map_cone`, made for the thickest row here when not given); ``lab`` =
+    (polarizer_deg, analyzer_deg) for a lab-frame polarizer."""
+    if cone is None:
+        cone = _map_cone(stack, layer, float(np.max(d)), ang, wl, na, lab)
+    if cone is None:
+        return sweep(stack, layer, d, ang, wl, polarization)                 # (T, A, W)
+    grid, mats = cone
+    if lab is None:
+        return np.einsum("ag,tgw->taw", mats[0], sweep(stack, layer, d, grid, wl, polarization), optimize=True)
+    if lab[1] is None:                  # polarizer alone: the s and p powers, each with its share
+        return sum(np.einsum("ag,tgw->taw", M, sweep(stack, layer, d, grid, wl, p), optimize=True)
+                   for M, p in zip(mats, ("s", "p")))
+    out = np.empty((len(d), len(ang), len(wl)))
+    M_s, M_p, M_x = mats
+    for i, t in enumerate(d):           # an analyzer needs the amplitudes' phases: each row in full
+        r_s, r_p = stack.with_thickness(layer, float(t)).reflection_amplitudes(wl, grid)
+        out[i] = M_s @ _abs2(r_s) + M_p @ _abs2(r_p) + M_x @ (r_s * np.conj(r_p)).real
+    return out
 
 
 @dataclass(frozen=True)
