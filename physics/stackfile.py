@@ -19,7 +19,13 @@ save and load. Version 1 looks like this::
 
 Layers are listed from the ambient side down. A material is a string (curated
 name, alias, ``"shelf/book/page"`` or a number written as text) or a material
-description object as written by ``Material.spec()``. ``presets/README.md``
+description object as written by ``Material.spec()``: kinds constant, cauchy
+(with an optional Urbach tail ``"urbach": [k at the band edge, exponent per eV,
+band-edge wavelength in nm]``), sellmeier, table, tauc-lorentz (eps_inf, gap_ev,
+amplitude_ev, center_ev, broadening_ev), effective-medium (materials ``"a"`` and
+``"b"``, each a string or an object checked the same way, at most
+:data:`MAX_MIX_DEPTH` mixtures deep; ``fraction_b`` of b from 0 to 1; ``rule``
+bruggeman or maxwell-garnett), database and curated. ``presets/README.md``
 lists every field with its type, range and default.
 
 Reading never evaluates anything: the text is parsed as JSON and every field is
@@ -37,9 +43,12 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from .appearance import MAX_OFFERED_NA, check_na_for
 from .errors import InputError
-from .materials import Material, material
+from .filmmodels import EMA_RULES, EPS_INF_MIN
+from .materials import K_MAX, Material, material
 from .stack import Layer, Stack
 
 __all__ = [
@@ -92,12 +101,38 @@ _LAYER_FIELDS = ("material", "thickness_nm")
 #: Fields of a material description object, by kind (as written by Material.spec()).
 _MATERIAL_FIELDS = {
     "constant": (("n",), ("k", "name")),
-    "cauchy": (("coefficients",), ("range_nm", "name", "source")),
+    "cauchy": (("coefficients",), ("range_nm", "name", "source", "urbach")),
     "sellmeier": (("B", "C"), ("range_nm", "name", "source")),
     "table": (("wavelength_nm", "n"), ("k", "name", "source")),
+    "tauc-lorentz": (("eps_inf", "gap_ev", "amplitude_ev", "center_ev", "broadening_ev"),
+                     ("range_nm", "name", "source")),
+    "effective-medium": (("a", "b", "fraction_b"), ("rule", "name")),
     "database": (("page",), ()),
     "curated": (("name",), ()),
 }
+#: Effective media inside one another a material description may hold (a mixture of a mixture of a
+#: mixture): enough for a graded or rough film, and it bounds the work and the recursion of one field.
+MAX_MIX_DEPTH = 3
+#: Longest name of an effective medium, characters: its default name spells out both materials, and
+#: nested mixtures of database pages pass MAX_MATERIAL_CHARS.
+MAX_MIX_NAME_CHARS = 1000
+#: Ranges of the Urbach tail of a Cauchy film, written ``"urbach": [k at the band edge, exponent, band
+#: edge]`` (as CauchyMaterial.spec() writes them): k at most physics.materials.K_MAX; the exponent is
+#: 1/E_u, and Urbach energies of real films lie above 10 meV (common practice), so at most 100 per eV;
+#: the band edge is a wavelength as the stack file's others are.
+URBACH_RANGES = ((0.0, K_MAX, ""), (0.0, 100.0, "1/eV"), (1.0, 100_000.0, "nm"))
+URBACH_NAMES = ("k at the band edge", "exponent", "band-edge wavelength")
+#: Ranges of the Tauc-Lorentz parameters (eV, except ε∞): ε∞ from physics.filmmodels.EPS_INF_MIN; the upper
+#: ends lie well beyond fitted films (ε∞ < 10, Eg and E0 in the UV, A up to a few hundred eV) and refuse
+#: only numbers no film has. A, E0 and C must be above zero; C below 2·E0 is checked by the model.
+TAUC_LORENTZ_RANGES = {"eps_inf": (EPS_INF_MIN, 100.0, ""), "gap_ev": (0.0, 50.0, "eV"),
+                       "amplitude_ev": (0.0, 10_000.0, "eV"), "center_ev": (0.0, 50.0, "eV"),
+                       "broadening_ev": (0.0, 50.0, "eV")}
+_POSITIVE = ("amplitude_ev", "center_ev", "broadening_ev")
+#: Wavelengths across a dispersion model's range at which a file's model is evaluated once when read:
+#: an Urbach tail or Tauc-Lorentz parameters that give no usable index anywhere in the range are refused
+#: there, naming the field, not later in a view.
+PROBE_POINTS = 64
 
 
 @dataclass(frozen=True)
@@ -206,24 +241,48 @@ def _number_list(where: str, value, min_len=1, max_len=None) -> list:
     return [_number(f"{where}[{i}]", v) for i, v in enumerate(value)]
 
 
-def _material_description(where: str, d: dict) -> dict:
-    """Check a material description object's fields and types; return a clean copy."""
+def _material_description(where: str, d: dict, depth: int = 0) -> dict:
+    """Check a material description object's fields and types; return a clean copy (the two materials
+    of an effective medium built, each checked the same way; ``depth``: mixtures around this one)."""
     kind = d.get("kind")
     if not isinstance(kind, str) or kind not in _MATERIAL_FIELDS:
         _fail(f"{where}.kind", f"must be one of {', '.join(_MATERIAL_FIELDS)}, got {_got(kind)}.")
     required, optional = _MATERIAL_FIELDS[kind]
     _check_fields(where, d, ("kind", *required, *optional), required)
+    if kind == "effective-medium" and depth >= MAX_MIX_DEPTH:
+        _fail(where, f"is an effective medium inside {depth} others; a stack file nests mixtures at most "
+                     f"{MAX_MIX_DEPTH} deep. Describe the film with fewer mixtures.")
     out = {"kind": kind}
     for key, value in d.items():
         w = f"{where}.{key}"
         if key == "kind":
             continue
-        if key in ("name", "source", "page"):
+        if key == "name" and kind == "effective-medium":
+            out[key] = _string(w, value, MAX_MIX_NAME_CHARS)
+        elif key in ("name", "source", "page"):
             out[key] = _string(w, value, MAX_MATERIAL_CHARS if key != "source" else MAX_SCENARIO_CHARS)
         elif key == "range_nm":
             out[key] = _number_list(w, value, 2, 2)
         elif key == "coefficients":
             out[key] = _number_list(w, value, 1, 3)
+        elif key == "urbach":
+            values = _number_list(w, value, 3, 3)
+            for i, (x, (lo, hi, unit), label) in enumerate(zip(values, URBACH_RANGES, URBACH_NAMES)):
+                _number(f"{w}[{i}] ({label})", x, lo, hi, unit)
+            out[key] = values
+        elif key in TAUC_LORENTZ_RANGES:
+            lo, hi, unit = TAUC_LORENTZ_RANGES[key]
+            out[key] = _number(w, value, lo, hi, unit)
+            if key in _POSITIVE and out[key] <= 0:
+                _fail(w, f"must be above 0 {unit}, got {out[key]:g}; give a value up to {hi:g} {unit}.")
+        elif key in ("a", "b"):
+            out[key] = _material(w, value, depth + 1)
+        elif key == "fraction_b":
+            out[key] = _number(w, value, 0.0, 1.0)
+        elif key == "rule":
+            if not isinstance(value, str) or value not in EMA_RULES:
+                _fail(w, f"must be one of {', '.join(repr(r) for r in EMA_RULES)} (a string), got {_got(value)}.")
+            out[key] = value
         elif kind == "constant":             # n, k
             out[key] = _number(w, value)
         else:                                # B, C, wavelength_nm, n, k of sellmeier/table
@@ -231,21 +290,36 @@ def _material_description(where: str, d: dict) -> dict:
     return out
 
 
-def _material(where: str, value) -> Material:
+def _probe(m: Material) -> None:
+    """Evaluate a dispersion model across its range once (raises InputError where it gives no usable index)."""
+    if m.range_nm is not None:
+        m.nk(np.geomspace(*m.range_nm, PROBE_POINTS))
+
+
+def _material(where: str, value, depth: int = 0) -> Material:
     """A material from a file field (string or description object), errors prefixed by ``where``."""
+    probe = False
     if isinstance(value, str):
         _string(where, value, MAX_MATERIAL_CHARS)
         spec = value
     elif isinstance(value, dict):
-        spec = _material_description(where, value)
+        spec = _material_description(where, value, depth)
+        probe = spec["kind"] in ("tauc-lorentz", "effective-medium") or "urbach" in spec
     else:
         _fail(where, f"must be a material name or page as a string (e.g. \"SiO2\", "
                      f"\"main/Si/Green-2008\", \"1.46\") or a material description object "
                      f"(e.g. {{\"kind\": \"constant\", \"n\": 1.46, \"k\": 0.0}}); "
                      f"got {_got(value)}.")
+    m = None
     try:
-        return material(spec)
+        m = material(spec)
+        if probe:
+            _probe(m)
+        return m
     except InputError as exc:
+        if m is not None and spec["kind"] == "cauchy":         # built, but its Urbach tail runs away
+            raise InputError(f"{where}.urbach: {exc} The tail grows too fast: give a smaller exponent or "
+                             "k at the band edge.") from None
         raise InputError(f"{where}: {exc}") from None
     except (TypeError, ValueError, ArithmeticError, IndexError, KeyError) as exc:
         raise InputError(f"{where}: not a usable material description ({exc}); "

@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 from hypothesis import given, strategies as st
 
-from physics import InputError, Layer, Stack, curated_materials, material
+from physics import (CauchyMaterial, EffectiveMedium, InputError, Layer, Stack, TaucLorentzMaterial,
+                     curated_materials, material)
 from physics.stackfile import (FORMAT, MAX_FILE_BYTES, MAX_LAYERS, VIEW_DEFAULTS, StackFile,
                                dump_stack_file, list_presets, load_preset, load_stack_file,
                                stack_from_dict, stack_to_dict)
@@ -461,3 +462,106 @@ def test_fuzz_arbitrary_bytes(content):
 @given(st.text(max_size=500))
 def test_fuzz_arbitrary_text(content):
     _load_any(content)
+
+
+# ---------------------------------------------------------------------- film models
+def _with_material(spec) -> dict:
+    data = _valid()
+    data["layers"][2]["material"] = spec
+    return data
+
+
+FILM_MODELS = [
+    CauchyMaterial(2.0, 0.016, 0.0002, range_nm=(400.0, 1000.0), name="PECVD nitride, invented",
+                   k_amplitude=0.01, k_exponent_per_ev=3.0, k_band_edge_nm=400.0),
+    TaucLorentzMaterial(1.5, 1.7, 120.0, 3.7, 2.2, range_nm=(300.0, 1200.0), name="a-Si-like, invented"),
+    EffectiveMedium("Si", 1.0, 0.5),
+    EffectiveMedium(EffectiveMedium("SiO2", TaucLorentzMaterial(1.5, 1.7, 120.0, 3.7, 2.2), 0.2), 1.0, 0.3,
+                    "maxwell-garnett", name="graded top, invented"),
+]
+
+
+@pytest.mark.parametrize("film", FILM_MODELS, ids=["cauchy-urbach", "tauc-lorentz", "rough-si", "nested"])
+def test_film_models_round_trip_through_a_stack_file(film):
+    stack = Stack([Layer(film, 120.0)], "Si")
+    text = dump_stack_file(stack)
+    back = load_stack_file(text).stack
+    assert back.layers[0].material.spec() == film.spec()              # exactly what spec() writes
+    assert json.loads(dump_stack_file(back)) == json.loads(text)
+    wl = np.linspace(400.0, 1000.0, 31)
+    np.testing.assert_array_equal(back.reflectance(wl), stack.reflectance(wl))
+
+
+def test_fitted_film_is_stored_as_fit_film_writes_it():
+    from physics import fit_film
+
+    wl = np.linspace(400.0, 1000.0, 200)
+    truth = Stack([Layer(CauchyMaterial(2.0, 0.016), 300.0)], "Si", ambient=1.0)
+    start = Stack([Layer(CauchyMaterial(1.6, 0.005), 0.0)], "Si", ambient=1.0)
+    r = fit_film(wl, truth.reflectance(wl), start, model="cauchy-urbach", thickness_nm=(0, 1000))
+    sf = load_stack_file(dump_stack_file(Stack([Layer(r.material, r.thickness_nm)], "Si")))
+    assert sf.stack.layers[0].material.spec() == r.material.spec()
+
+
+_TL = {"kind": "tauc-lorentz", "eps_inf": 1.5, "gap_ev": 1.7, "amplitude_ev": 120.0, "center_ev": 3.7,
+       "broadening_ev": 2.2}
+
+
+def _nested(depth: int):
+    spec = "SiO2"
+    for _ in range(depth):
+        spec = {"kind": "effective-medium", "a": spec, "b": "1.0", "fraction_b": 0.1}
+    return spec
+
+
+@pytest.mark.parametrize("spec, field, words", [
+    ({"kind": "cauchy", "coefficients": [1.5], "urbach": [0.01, 3.0]}, "urbach", "give 3"),
+    ({"kind": "cauchy", "coefficients": [1.5], "urbach": [-0.01, 3.0, 400]}, r"urbach\[0\]", "out of range"),
+    ({"kind": "cauchy", "coefficients": [1.5], "urbach": [0.01, 500.0, 400]}, r"urbach\[1\]", "0 to 100 1/eV"),
+    ({"kind": "cauchy", "coefficients": [1.5], "urbach": [0.01, 50.0, 400]}, "urbach", "grows too fast"),
+    ({"kind": "cauchy", "coefficients": [1.5], "urbach": "steep"}, "urbach", "list of numbers"),
+    (_TL | {"eps_inf": 0.5}, "eps_inf", "from 1 to 100"),
+    (_TL | {"gap_ev": None}, "gap_ev", "must be a number"),
+    (_TL | {"amplitude_ev": 0.0}, "amplitude_ev", "above 0"),
+    (_TL | {"center_ev": 1e9}, "center_ev", "out of range"),
+    (_TL | {"broadening_ev": 8.0}, "material", "not below 2·center_ev"),
+    (_TL | {"range_nm": [900, 300]}, "material", "lowest < highest"),
+    ({k: v for k, v in _TL.items() if k != "gap_ev"}, "gap_ev", "missing"),
+    (_TL | {"oscillators": 2}, "material", "unknown field"),
+    ({"kind": "effective-medium", "a": "SiO2", "b": "void-ish", "fraction_b": 0.5}, "b", "Unknown"),
+    ({"kind": "effective-medium", "a": {"kind": "constant", "n": 1.5, "k": -1.0}, "b": "1", "fraction_b": 0.5},
+     "a", "k >= 0"),
+    ({"kind": "effective-medium", "a": "SiO2", "b": "1", "fraction_b": 1.5}, "fraction_b", "from 0 to 1"),
+    ({"kind": "effective-medium", "a": "SiO2", "b": "1", "fraction_b": 0.5, "rule": "lorentz-lorenz"}, "rule",
+     "bruggeman"),
+    ({"kind": "effective-medium", "a": "SiO2", "fraction_b": 0.5}, "b", "missing"),
+    ({"kind": "effective-medium", "a": 7, "b": "1", "fraction_b": 0.5}, "a", "material name"),
+    (_nested(4), r"a\.a\.a", "at most 3 deep"),
+])
+def test_film_model_refusals_name_the_field(spec, field, words):
+    where = r"layers\[2\]\.material" + ("" if field == "material" else rf"\.{field}")
+    with pytest.raises(InputError, match=rf"{where}.*{words}"):
+        stack_from_dict(_with_material(spec))
+
+
+def test_film_model_nan_in_the_text_is_refused():
+    text = json.dumps(_with_material(_TL)).replace('"gap_ev": 1.7', '"gap_ev": NaN')
+    with pytest.raises(InputError, match="NaN is not a JSON number"):
+        load_stack_file(text)
+
+
+def test_three_mixtures_deep_is_allowed():
+    assert isinstance(stack_from_dict(_with_material(_nested(3))).stack.layers[2].material, EffectiveMedium)
+
+
+film_objects = st.fixed_dictionaries(
+    {"kind": st.sampled_from(["cauchy", "tauc-lorentz", "effective-medium"])},
+    optional={k: json_values | st.floats(-5, 200) | st.sampled_from(["SiO2", "1.0", "bruggeman"])
+              | st.lists(st.floats(-5, 2000), max_size=4) | material_objects
+              for k in ("coefficients", "urbach", "range_nm", "eps_inf", "gap_ev", "amplitude_ev", "center_ev",
+                        "broadening_ev", "a", "b", "fraction_b", "rule", "name")})
+
+
+@given(film_objects)
+def test_fuzz_film_model_objects(spec):
+    _load_any(json.dumps(_with_material(spec)))
