@@ -74,7 +74,7 @@ def _fixed_cone_matrix(view_deg, na, n0):
     return grid, M
 
 
-def _fixed_map_reflectance(stack, layer, d, ang, wl, polarization, na, cone=None):
+def _fixed_map_reflectance(stack, layer, d, ang, wl, polarization, na, cone=None, lab=None):
     grid, M = _fixed_cone_matrix(ang, na, float(stack.ambient.nk(wl).real.min()))
     return np.einsum("ag,tgw->taw", M, sweep(stack, layer, d, grid, wl, polarization))
 

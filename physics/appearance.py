@@ -85,6 +85,15 @@ _CONE_RADIAL_PER_FRINGE, _CONE_AZIMUTH_PER_FRINGE = 6.0, 10.0
 #: Most nodes each way (a 100 µm layer would ask for thousands; the average is then near the incoherent
 #: limit, reached to well under a colour step with this many).
 _CONE_MAX_RADIAL, _CONE_MAX_AZIMUTH = 256, 256
+#: Most rays of one view's (half) cone: bounds a colour map's cone matrix (91 views x this x a few arrays of
+#: 8 bytes, about 100 MB) for layers of tens of µm; a 5 µm film at NA 0.95 needs about 11,000.
+_CONE_MAX_RAYS = 16_384
+#: Most ray x wavelength evaluations of one view in :func:`cone_reflectance` (about 1 s on one core for a
+#: single layer): a thick layer's colour wants thousands of wavelengths, and its cone, then averaging over
+#: many fringes in angle and in wavelength, fewer rays (81 wavelengths are never limited).
+_CONE_MAX_WORK = 1 << 22
+#: Elements (angles x wavelengths) evaluated at once by :func:`cone_reflectance` (bounds its memory).
+_CONE_CHUNK = 1 << 20
 #: Wavelengths the fringe count across a cone is probed at (it is smooth in λ; the blue end is included).
 _FRINGE_PROBE_WAVELENGTHS = 9
 #: Below this sine a ray counts as normal to the sample (its plane of incidence is undefined: any ŝ serves).
@@ -405,8 +414,10 @@ def _cone_of_view(view_rad: float, rho_max: float, n_rad: int, n_az: int):
     return np.arcsin(np.sqrt(u)), phi, w
 
 
-def _cone(view_deg, na: float, ambient_n: float, stack=None, wavelength_nm=None) -> _Cone:
-    """The viewing cone's rays, as many as the cone's width and the stack's fringes across it need."""
+def _cone(view_deg, na: float, ambient_n: float, stack=None, wavelength_nm=None,
+          max_rays: int = _CONE_MAX_RAYS) -> _Cone:
+    """The viewing cone's rays, as many as the cone's width and the stack's fringes across it need, at most
+    ``max_rays`` per view (both node counts then shrink by the same factor)."""
     view = np.atleast_1d(require_finite("angle_deg", view_deg, minimum=0.0, maximum=MAX_ANGLE_DEG,
                                         max_inclusive=False, unit="deg")).ravel()
     na = _check_na(na, ambient_n)
@@ -424,6 +435,10 @@ def _cone(view_deg, na: float, ambient_n: float, stack=None, wavelength_nm=None)
                             _CONE_MAX_RADIAL)
         n_az = _node_count(_CONE_MIN_AZIMUTH + int(np.ceil(width * np.sin(np.radians(v)))), f_az[i],
                            _CONE_AZIMUTH_PER_FRINGE, _CONE_MAX_AZIMUTH)
+        if n_rad * n_az > max_rays:
+            shrink = np.sqrt(max_rays / (n_rad * n_az))
+            n_rad = max(_CONE_MIN_RADIAL, int(n_rad * shrink))
+            n_az = max(_CONE_MIN_AZIMUTH, int(n_az * shrink))
         cones.append(_cone_of_view(float(np.radians(v)), rho_max, n_rad, n_az))
     if any(c[0].size == 0 for c in cones):
         raise InputError("The viewing cone lies wholly below the surface at some viewing angle; "
@@ -609,23 +624,34 @@ def cone_reflectance(stack: Stack, wavelength_nm, view_deg=0.0, na: float = 0.0,
         raise InputError(f"quantity must be 'reflectance' or 'transmittance'; got {quantity!r}.")
     lab = _check_lab_frame(stack, polarization, quantity, polarizer_deg, analyzer_deg)
     n0 = float(np.real(stack.ambient.nk(np.atleast_1d(wl)).min())) if wl.size else 1.0
-    cone = _cone(view, na, n0, stack, wl.ravel() if wl.size else None)
+    # two rays per pupil point in the lab frame (the half cone and its mirror image): half as many points
+    cone = _cone(view, na, n0, stack, wl.ravel() if wl.size else None,
+                 min(_CONE_MAX_RAYS, _CONE_MAX_WORK // max(wl.size, 1) // (2 if lab else 1)))
     A = cone.view_deg.size
     power = stack.reflectance if quantity == "reflectance" else stack.transmittance
     if not lab:
         uniq, M = _cone_sum(A, cone.theta_deg, cone.weights)
-        out = M @ power(wl.ravel(), uniq, polarization)
-        return out.reshape(view.shape + wl.shape)
-    c_ss, c_pp, c_sp = _polarization_coefficients(cone, polarizer_deg, analyzer_deg)
-    angles = np.concatenate([cone.theta_deg, cone.theta_deg], axis=1)
-    uniq, M_s = _cone_sum(A, angles, c_ss)
-    _, M_p = _cone_sum(A, angles, c_pp)
-    if c_sp is None:
-        out = M_s @ power(wl.ravel(), uniq, "s") + M_p @ power(wl.ravel(), uniq, "p")
+        evaluate = lambda ang: [power(wl.ravel(), ang, polarization)]          # noqa: E731
+        mats = [M]
     else:
-        _, M_x = _cone_sum(A, angles, c_sp)
-        r_s, r_p = stack.reflection_amplitudes(wl.ravel(), uniq)
-        out = M_s @ _abs2(r_s) + M_p @ _abs2(r_p) + M_x @ (r_s * np.conj(r_p)).real
+        coefficients = [c for c in _polarization_coefficients(cone, polarizer_deg, analyzer_deg) if c is not None]
+        angles = np.concatenate([cone.theta_deg, cone.theta_deg], axis=1)
+        uniq, mats = None, []
+        for c in coefficients:
+            uniq, M = _cone_sum(A, angles, c)
+            mats.append(M)
+        if analyzer_deg is None:
+            evaluate = lambda ang: [power(wl.ravel(), ang, "s"), power(wl.ravel(), ang, "p")]   # noqa: E731
+        else:
+            def evaluate(ang):
+                r_s, r_p = stack.reflection_amplitudes(wl.ravel(), ang)
+                return [_abs2(r_s), _abs2(r_p), (r_s * np.conj(r_p)).real]
+    out = np.zeros((A, wl.size))
+    step = max(1, _CONE_CHUNK // max(wl.size, 1))
+    for start in range(0, uniq.size, step):           # bounded memory: a chunk of the angles at a time
+        part = slice(start, start + step)
+        for M, values in zip(mats, evaluate(uniq[part])):
+            out += M[:, part] @ values
     return out.reshape(view.shape + wl.shape)
 
 
