@@ -889,7 +889,7 @@ def scaled_stack(stack: Stack, factors) -> Stack:
 
 
 def band_average(stack: Stack, band_nm, angle_deg: float = 0.0, na: float = 0.0,
-                 polarization: str = "unpolarized") -> tuple[float, float]:
+                 polarization: str = "unpolarized", *, polarizer_deg=None, analyzer_deg=None) -> tuple[float, float]:
     """Mean reflectance and transmittance (fractions) over a wavelength band, each wavelength weighted equally.
 
     Sampled every 1 nm, or finer where the stack's fringes need it (SMOOTH_SAMPLES_PER_FRINGE per fringe:
@@ -899,6 +899,8 @@ def band_average(stack: Stack, band_nm, angle_deg: float = 0.0, na: float = 0.0,
     Parameters
     ----------
     band_nm : (lo, hi) in nm, lo < hi, inside the materials' data.
+    polarizer_deg, analyzer_deg : float, optional
+        A lab-frame polarizer and analyzer (:func:`cone_reflectance`); T takes the polarizer alone.
     """
     lo, hi = (float(x) for x in band_nm)
     if not (np.isfinite(lo) and np.isfinite(hi)) or hi <= lo:
@@ -912,8 +914,9 @@ def band_average(stack: Stack, band_nm, angle_deg: float = 0.0, na: float = 0.0,
     step = min(1.0, lo * lo / path / SMOOTH_SAMPLES_PER_FRINGE) if path > 0 else 1.0
     n = int(min(max(np.ceil((hi - lo) / step) + 1, 2), MAX_COLOUR_SAMPLES))
     wl = np.linspace(lo, hi, n)
-    R = cone_reflectance(stack, wl, angle_deg, na, polarization)
-    T = cone_reflectance(stack, wl, angle_deg, na, polarization, "transmittance")
+    R = cone_reflectance(stack, wl, angle_deg, na, polarization, polarizer_deg=polarizer_deg,
+                         analyzer_deg=analyzer_deg)
+    T = cone_reflectance(stack, wl, angle_deg, na, polarization, "transmittance", polarizer_deg=polarizer_deg)
     return (float(np.trapezoid(R, wl) / (hi - lo)), float(np.trapezoid(T, wl) / (hi - lo)))
 
 
@@ -951,11 +954,12 @@ class ToleranceResult:
 
 def tolerance_run(stack: Stack, tolerance_pct: float, trials: int = 200, seed: int = 1, *, angle_deg: float = 0.0,
                   na: float = 0.0, polarization: str = "unpolarized", illuminant="D65", observer="2",
-                  scale: float = 1.0) -> ToleranceResult:
+                  scale: float = 1.0, polarizer_deg=None, analyzer_deg=None) -> ToleranceResult:
     """Monte-Carlo tolerance run: every layer's thickness times 1 + u·tolerance/100, u uniform in [-1, 1],
     drawn independently per layer and trial from a generator seeded with ``seed`` (the same run every time).
 
     ``scale`` is the brightness factor of the colours (as on the page); ΔE00 is taken at that brightness.
+    ``polarizer_deg``, ``analyzer_deg``: a lab-frame polarizer and analyzer (:func:`cone_reflectance`).
 
     References
     ----------
@@ -976,8 +980,9 @@ def tolerance_run(stack: Stack, tolerance_pct: float, trials: int = 200, seed: i
         raise InputError(f"This tolerance run needs {work:,} evaluations ({int(trials)} trials x {wl.size} wavelengths x "
                          f"{rays} rays of the viewing cone x {len(stack.layers) + 1} interfaces); at most "
                          f"{MAX_TOLERANCE_WORK:,} are allowed. Use fewer trials or a smaller viewing-cone NA.")
-    R0 = cone_reflectance(stack, wl, angle_deg, na, polarization)
-    R = np.stack([cone_reflectance(scaled_stack(stack, f), wl, angle_deg, na, polarization) for f in factors])
+    lab = {"polarizer_deg": polarizer_deg, "analyzer_deg": analyzer_deg}
+    R0 = cone_reflectance(stack, wl, angle_deg, na, polarization, **lab)
+    R = np.stack([cone_reflectance(scaled_stack(stack, f), wl, angle_deg, na, polarization, **lab) for f in factors])
     xyz0 = spectrum_to_xyz(R0, wl, illuminant, observer)
     xyz = spectrum_to_xyz(R, wl, illuminant, observer)
     _, lab0, _ = scaled_colors(xyz0, illuminant, observer, scale)

@@ -335,3 +335,25 @@ def test_viewing_cone_na_beyond_the_ambient_is_refused_in_the_page_and_immersion
     assert ex.load_stack_upload("water.json", dump_stack_file(water, name="invented water cell",
                                                               view={"na": 1.2}).encode())
     assert ex.state.na == 1.2 and not ex.error.visible    # a water-immersion objective
+
+
+def test_polarizer_and_analyzer_feed_the_map_swatch_and_link():
+    from physics.appearance import cone_reflectance
+    from views.urlstate import apply_query, state_to_query
+    ex = FilmExplorer()
+    ex.na_slider.value = 0.4
+    before_map, before_hex = ex.map_src.data["image"][0].copy(), ex._point.hex
+    ex.polarizer.value = "linear"
+    ex.polarizer_angle.input.value = "30"
+    ex.analyzer.value = "crossed"
+    s = ex.state
+    assert s.lab_frame() == {"polarizer_deg": 30.0, "analyzer_deg": 120.0} and s.ray_polarization == "unpolarized"
+    assert not np.array_equal(before_map, ex.map_src.data["image"][0]) and ex._point.hex != before_hex
+    wl = np.array([450.0, 600.0])
+    np.testing.assert_allclose(compute_point(s, 1.0, wl).R, cone_reflectance(s.stack, wl, s.angle_deg, 0.4,
+                                                                             polarizer_deg=30.0, analyzer_deg=120.0))
+    other = ExplorerState()
+    assert apply_query(other, state_to_query(s)) == []
+    assert other.lab_frame() == s.lab_frame()
+    ex.polarizer_angle.input.value = "400"                 # outside the allowed angles: refused in place
+    assert s.polarizer_deg == 30.0 and ex.polarizer_angle.message.visible

@@ -212,6 +212,12 @@ class FilmExplorer:
         self.angle = Field("Angle (°)", width=140, css="fg-angle-field")
         self.polarization = pn.widgets.RadioButtonGroup.from_param(s.param.polarization, label="Polarization",
                                                                    color="default", margin=(2, 5))
+        self.polarizer = pn.widgets.Select.from_param(s.param.polarizer, label="Polarizer (in the light)", width=145,
+                                                      margin=(2, 5))
+        self.polarizer_angle = Field("Polarizer axis (°, 90 = s)", width=145)
+        self.analyzer = pn.widgets.Select.from_param(s.param.analyzer, label="Analyzer (in the view)", width=145,
+                                                     margin=(2, 5))
+        self.analyzer_angle = Field("Analyzer axis (°)", width=145)
         self.illuminant = pn.widgets.Select(label="Illuminant (lamp)", width=300, margin=(2, 5),
                                             options={_lamp_option(c): c for c in sorted(ILLUMINANT_CHOICES,
                                                                                           key=lambda c: c == "custom")},
@@ -367,6 +373,10 @@ class FilmExplorer:
         self.lamp_k.input.param.watch(partial(self._on_number, "lamp_cct_k", self.lamp_k, "Colour temperature", "K"),
                                       "value")
         self.na_slider.param.watch(lambda e: setattr(s, "na", round(float(e.new), 3)), "value")
+        self.polarizer_angle.input.param.watch(partial(self._on_number, "polarizer_deg", self.polarizer_angle,
+                                                       "Polarizer axis", "°"), "value")
+        self.analyzer_angle.input.param.watch(partial(self._on_number, "analyzer_deg", self.analyzer_angle,
+                                                      "Analyzer axis", "°"), "value")
         self.brightness.param.watch(lambda e: setattr(s, "brightness", e.new), "value")
         self.spec_view.param.watch(lambda e: None if self._syncing else setattr(s, "spectrum_view", e.new), "value")
         self.stack_scale.input.param.watch(partial(self._on_number, "thickness_scale_pct", self.stack_scale,
@@ -411,6 +421,8 @@ class FilmExplorer:
             self.lamp_k.set_text(_fmt(s.lamp_cct_k, 0))
             self.lamp_k.input.visible = s.illuminant == HALOGEN
             self.na_slider.value = s.na
+            self.polarizer_angle.set_text(_fmt(s.polarizer_deg, 1))
+            self.analyzer_angle.set_text(_fmt(s.analyzer_deg, 1))
             self.brightness.value = s.brightness
             self._show_brightness()
             self.spec_view.value = s.spectrum_view
@@ -771,7 +783,7 @@ class FilmExplorer:
             self._show_row_thickness()
         kinds = {"point"}
         if names & {"stack_json", "swept_layer", "thickness_max_nm", "polarization", "illuminant", "spd_json",
-                    "observer", "na", "brightness"}:
+                    "observer", "na", "brightness", "polarizer", "polarizer_deg", "analyzer", "analyzer_deg"}:
             kinds |= {"map", "strip"}
         if names & {"angle_deg", "brightness_reference", "normalize_min_nm", "normalize_max_nm"}:
             kinds.add("strip")
@@ -1071,7 +1083,9 @@ class FilmExplorer:
             section("Swept layer"),
             self.swept, self.thickness_slider, pn.Row(self.thickness.view(), self.tmax.view(), margin=0),
             section("Viewing and light"),
-            self.angle_slider, self.angle.view(), _label("Polarization"), self.polarization,
+            self.angle_slider, self.angle.view(), _label("Polarization (each ray's own s or p)"), self.polarization,
+            pn.Row(self.polarizer, self.analyzer, margin=0),
+            pn.Row(self.polarizer_angle.view(), self.analyzer_angle.view(), margin=0),
             self.illuminant, self.lamp_k.view(), _label("Lamp spectrum (CSV: nm, power) → illuminant 'custom'"), self.spd_in,
             self.spd_msg.message, _label("Observer"), self.observer, self.na_slider, _label("Brightness"),
             self.brightness, self.bright_ref, field_pair(self.norm_lo, self.norm_hi, message_width=290),

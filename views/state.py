@@ -50,6 +50,8 @@ DEFAULT_HALOGEN_K = 3000.0
 DEFAULT_PRESET = "thermal_oxide_on_silicon"
 
 
+#: Angles a polarizer or analyzer axis may be typed at, degrees (a half turn either way covers every axis).
+POLARIZER_LIMITS_DEG = (-180.0, 180.0)
 #: Largest whole-stack thickness error on the page, ± % (a deposition-rate error of a few % is common).
 MAX_STACK_SCALE_PCT = 50.0
 #: Default band of the band-average read-out, nm: where the eye is sensitive enough for a visible coating.
@@ -87,6 +89,17 @@ class ExplorerState(param.Parameterized):
     na = param.Number(default=0.0, bounds=(0.0, MAX_OFFERED_NA),
                       doc="Numerical aperture of the viewing cone (0 = one direction); above 0.95 only in an immersion "
                           "ambient (the physics refuses an NA the ambient's index does not allow, with a message).")
+    polarizer = param.Selector(default="none", objects=["none", "linear"],
+                               doc="A linear polarizer in the light: 'none', or 'linear' at polarizer_deg. With one "
+                                   "(or an analyzer) the per-ray polarization choice gives way to the lab frame.")
+    polarizer_deg = param.Number(default=90.0, bounds=POLARIZER_LIMITS_DEG,
+                                 doc="Polarizer axis, degrees to the plane of tilt (normal and viewing direction): "
+                                     "90 = field perpendicular to it (s), 0 = in it (p).")
+    analyzer = param.Selector(default="none", objects=["none", "parallel", "crossed", "angle"],
+                              doc="A linear analyzer in the viewing beam: parallel to or crossed with the polarizer "
+                                  "(at polarizer_deg even without one), or at analyzer_deg.")
+    analyzer_deg = param.Number(default=0.0, bounds=POLARIZER_LIMITS_DEG,
+                                doc="Analyzer axis with analyzer 'angle', degrees to the plane of tilt.")
     brightness = param.Selector(default="absolute", objects=["absolute", "normalized"],
                                 doc="Absolute reflectance, or scaled so the brightest colour of a reference is white.")
     brightness_reference = param.Selector(default="strip", objects=list(BRIGHTNESS_REFERENCES),
@@ -135,6 +148,18 @@ class ExplorerState(param.Parameterized):
             j = min(self.swept_layer, len(layers) - 1)
             layers[j] = Layer(layers[j].material, self.thickness_nm)
         return Stack(layers, sf.stack.substrate, sf.stack.ambient, sf.stack.substrate_thickness_mm)
+
+    def lab_frame(self) -> dict:
+        """The lab-frame polarizer and analyzer as keywords of the physics (both None without them)."""
+        polarizer = self.polarizer_deg if self.polarizer == "linear" else None
+        analyzer = {"none": None, "parallel": self.polarizer_deg, "crossed": self.polarizer_deg + 90.0,
+                    "angle": self.analyzer_deg}[self.analyzer]
+        return {"polarizer_deg": polarizer, "analyzer_deg": analyzer}
+
+    @property
+    def ray_polarization(self) -> str:
+        """The per-ray polarization the physics gets: 'unpolarized' when a lab-frame polarizer takes over."""
+        return "unpolarized" if any(v is not None for v in self.lab_frame().values()) else self.polarization
 
     @property
     def thickness_factor(self) -> float:
@@ -349,8 +374,8 @@ def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMa
         a = np.linspace(0.0, ANGLE_MAX_DEG, na)
     f = s.thickness_factor
     cm = color_map(stack, s.swept_layer, d * f, a,
-                   illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.polarization,
-                   na=s.na, brightness=s.brightness)
+                   illuminant=s.illuminant_spec(), observer=s.observer, polarization=s.ray_polarization,
+                   na=s.na, brightness=s.brightness, **s.lab_frame())
     return cm if f == 1.0 else dataclasses.replace(cm, thickness_nm=d)     # the axis stays nominal
 
 
@@ -411,19 +436,25 @@ def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=N
         sub = wl
     Rs = cone_reflectance(stack, sub, s.angle_deg, s.na, "s")
     Rp = cone_reflectance(stack, sub, s.angle_deg, s.na, "p")
-    R = {"s": Rs, "p": Rp}.get(s.polarization, 0.5 * (Rs + Rp))
+    lab, pol = s.lab_frame(), s.ray_polarization
+    polarizer_only = {"polarizer_deg": lab["polarizer_deg"]}        # an analyzer is in the reflected beam only
+    if any(v is not None for v in lab.values()):
+        R = cone_reflectance(stack, sub, s.angle_deg, s.na, pol, **lab)
+    else:
+        R = {"s": Rs, "p": Rp}.get(s.polarization, 0.5 * (Rs + Rp))
     transmits = (stack.substrate_thickness_mm is not None
                  or bool(np.all(stack.substrate.nk(wl).imag < TRANSPARENT_SUBSTRATE_K)))
-    T = cone_reflectance(stack, sub, s.angle_deg, s.na, s.polarization, "transmittance") if transmits else None
+    T = (cone_reflectance(stack, sub, s.angle_deg, s.na, pol, "transmittance", **polarizer_only) if transmits
+         else None)
     same = spectrum_wavelength_nm is None and m == 1 and wl_colour.size == wl.size
-    Rc = R if same else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization)
+    Rc = R if same else cone_reflectance(stack, wl_colour, s.angle_deg, s.na, pol, **lab)
     pc = point_color(Rc, wl_colour, illuminant=s.illuminant_spec(), observer=s.observer, scale=scale)
     lum_R = float(luminous_reflectance(Rc, wl_colour))
-    lum_T = (float(luminous_reflectance(cone_reflectance(stack, wl_colour, s.angle_deg, s.na, s.polarization,
-                                                         "transmittance"), wl_colour)) if transmits else float("nan"))
+    lum_T = (float(luminous_reflectance(cone_reflectance(stack, wl_colour, s.angle_deg, s.na, pol, "transmittance",
+                                                         **polarizer_only), wl_colour)) if transmits else float("nan"))
     band_error = ""
     try:
-        band_R, band_T = band_average(stack, (s.band_min_nm, s.band_max_nm), s.angle_deg, s.na, s.polarization)
+        band_R, band_T = band_average(stack, (s.band_min_nm, s.band_max_nm), s.angle_deg, s.na, pol, **lab)
     except InputError as exc:
         band_R = band_T = float("nan")
         band_error = str(exc)
@@ -447,8 +478,8 @@ def compute_point(s: ExplorerState, scale: float = 1.0, spectrum_wavelength_nm=N
 def compute_tolerance(s: ExplorerState, scale: float = 1.0) -> ToleranceResult:
     """The tolerance run of the stack as shown (current thickness, whole-stack factor, angle, cone, lamp)."""
     return tolerance_run(s.stack, s.tolerance_pct, s.tolerance_trials, TOLERANCE_SEED, angle_deg=s.angle_deg,
-                         na=s.na, polarization=s.polarization, illuminant=s.illuminant_spec(), observer=s.observer,
-                         scale=scale)
+                         na=s.na, polarization=s.ray_polarization, illuminant=s.illuminant_spec(), observer=s.observer,
+                         scale=scale, **s.lab_frame())
 
 
 @dataclass(frozen=True)
@@ -470,7 +501,7 @@ def compute_strip(s: ExplorerState, scale: float = 1.0) -> StripResult:
     ill = s.illuminant_spec()
     f = s.thickness_factor
     cm = color_map(stack, s.swept_layer, d * f, [s.angle_deg], illuminant=ill, observer=s.observer,
-                   polarization=s.polarization, na=s.na)
+                   polarization=s.ray_polarization, na=s.na, **s.lab_frame())
     rgb, lab, _ = scaled_colors(cm.xyz[:, 0, :], ill, s.observer, scale)
     marks = order_thicknesses_nm(stack, s.swept_layer, s.angle_deg, s.thickness_max_nm * f) / f
     return StripResult(d, rgb, lab, marks, cm.xyz[:, 0, :])
@@ -500,7 +531,7 @@ def compute_chart_steps(s: ExplorerState, scale: float = 1.0) -> ChartSteps:
     ill = s.illuminant_spec()
     f = s.thickness_factor
     cm = color_map(s.stack, s.swept_layer, d * f, [s.angle_deg], illuminant=ill, observer=s.observer,
-                   polarization=s.polarization, na=s.na)
+                   polarization=s.ray_polarization, na=s.na, **s.lab_frame())
     rgb, lab, _ = scaled_colors(cm.xyz[:, 0, :], ill, s.observer, scale)
     return ChartSteps(float(step), d, rgb, lab, tuple(srgb_to_hex(c) for c in rgb))
 

@@ -43,6 +43,7 @@ URL_KEYS_WHEN_SET = {
     "brightness_reference": "bref", "normalize_min_nm": "nmin", "normalize_max_nm": "nmax",
     "thickness_scale_pct": "dscale", "band_min_nm": "band0", "band_max_nm": "band1", "spectrum_view": "view",
     "tolerance_pct": "tol", "tolerance_trials": "trials", "lamp_cct_k": "cct",
+    "polarizer": "polz", "polarizer_deg": "polz_deg", "analyzer": "anlz", "analyzer_deg": "anlz_deg",
 }
 #: Longest URL value read (characters); a link is not a file upload.
 MAX_VALUE_CHARS = 20_000
