@@ -89,10 +89,10 @@ def cone_map_times():
         new = appearance._map_reflectance, appearance._map_cone
         appearance._map_reflectance, appearance._map_cone = _fixed_map_reflectance, lambda *a: None
         try:
-            t_fixed = best_of(lambda: appearance.color_map(oxide, 0, d, ang, na=na), repeats=1)
+            t_fixed = best_of(lambda: appearance.color_map(oxide, 0, d, ang, na=na))
         finally:
             appearance._map_reflectance, appearance._map_cone = new
-        t_new = best_of(lambda: appearance.color_map(oxide, 0, d, ang, na=na), repeats=1)
+        t_new = best_of(lambda: appearance.color_map(oxide, 0, d, ang, na=na))
         out.append((f"oxide 0-{top:g} nm, NA {na:g}", t_fixed, t_new))
     return out
 

@@ -364,9 +364,9 @@ def _node_count(base: int, fringes: float, per_fringe: float, largest: int) -> i
     return int(min(base + np.ceil(per_fringe * float(fringes)), largest))
 
 
-@functools.lru_cache(maxsize=64)
+@functools.lru_cache(maxsize=max(_CONE_MAX_RADIAL, _CONE_MAX_AZIMUTH))
 def _gauss_legendre(n: int):
-    """Gauss-Legendre nodes and weights on [-1, 1] (cached: the cone asks for the same few counts)."""
+    """Gauss-Legendre nodes and weights on [-1, 1] (cached: every count the cone may ask for fits)."""
     x, w = np.polynomial.legendre.leggauss(n)
     x.setflags(write=False)
     w.setflags(write=False)
@@ -666,10 +666,10 @@ def _cone_matrix(view_deg: np.ndarray, na: float, n0: float, stack=None, wavelen
     cone = _cone(view_deg, na, n0, stack, wavelength_nm)
     weights = [cone.weights] if coefficients is None else coefficients(cone)
     reps = weights[0].shape[1] // cone.theta_deg.shape[1]
-    angles = np.tile(cone.theta_deg, (1, reps))
     kept = np.any([w != 0 for w in weights], axis=0)
-    c = np.tile(cone.cos_theta, (1, reps))
-    lo, hi = float(c[kept].min()), float(c[kept].max())
+    rows, cols = np.nonzero(kept)                      # only the kept rays (views pad to the largest cone)
+    c = cone.cos_theta[rows, cols % cone.cos_theta.shape[1]]
+    lo, hi = float(c.min()), float(c.max())
     fringes = float(_cone_path_fringes(stack, wavelength_nm, np.degrees(np.arccos(hi)), np.degrees(np.arccos(lo)),
                                        n0)[0]) if stack is not None else 0.0
     n_grid = int(min(_GRID_MIN_POINTS + np.ceil(_GRID_POINTS_PER_FRINGE * fringes), _GRID_MAX_POINTS))
@@ -682,13 +682,13 @@ def _cone_matrix(view_deg: np.ndarray, na: float, n0: float, stack=None, wavelen
     t = pos - i0
     lagrange = (-(t - 1) * (t - 2) * (t - 3) / 6, t * (t - 2) * (t - 3) / 2, -t * (t - 1) * (t - 3) / 2,
                 t * (t - 1) * (t - 2) / 6)
-    rows = np.repeat(np.arange(angles.shape[0]), angles.shape[1])
+    size = kept.shape[0] * n_grid
+    index = np.concatenate([rows * n_grid + i0 + j for j in range(4)])
     mats = []
     for w in weights:
-        M = np.zeros(angles.shape[0] * n_grid)
-        for j, L in enumerate(lagrange):
-            M += np.bincount(rows * n_grid + (i0 + j).ravel(), weights=(w * L).ravel(), minlength=M.size)
-        mats.append(M.reshape(angles.shape[0], n_grid))
+        wk = w[rows, cols]
+        M = np.bincount(index, weights=np.concatenate([wk * L for L in lagrange]), minlength=size)
+        mats.append(M.reshape(kept.shape[0], n_grid))
     return np.degrees(np.arccos(np.clip(grid_c, -1.0, 1.0))), mats
 
 

@@ -923,7 +923,7 @@ class FilmExplorer:
             self.map_fig.x_range.update(start=d0, end=d1)
             self.map_fig.y_range.update(start=a0, end=a1)
             self.map_fig.title.text = (f"Colour vs thickness of layer {s.swept_layer + 1} and viewing angle — "
-                                       f"{s.lamp_short()}, {s.observer}° observer, {s.polarization}"
+                                       f"{s.lamp_short()}, {s.observer}° observer, {s.polarization_text()}"
                                        + (f", cone NA {s.na:g}" if s.na else "")
                                        + (f" — {s.brightness_text()}" if s.brightness == "normalized" else ""))
         if "strip" in result:
@@ -1013,7 +1013,7 @@ class FilmExplorer:
             f"# date: {date.today().isoformat()}",
             f"# stack (top to bottom): {_stack_text(s)}",
             f"# swept layer {s.swept_layer + 1} (from the top) thickness_nm: {s.thickness_nm:g}; angle_deg: {s.angle_deg:g}; "
-            f"cone NA: {s.na:g}; polarization: {s.polarization}",
+            f"cone NA: {s.na:g}; polarization: {s.polarization_text()}",
             f"# colour: illuminant {s.lamp_text()}, observer {s.observer} deg: sRGB {pt.hex}, "
             f"L*a*b* {pt.lab[0]:.2f} {pt.lab[1]:.2f} {pt.lab[2]:.2f}",
         ]
@@ -1222,7 +1222,7 @@ def _stack_text(s: ExplorerState, swept_range: bool = False) -> str:
 
 
 def _light_text(s: ExplorerState) -> str:
-    return (f"illuminant {s.lamp_text()}, CIE {s.observer}° observer, {s.polarization}"
+    return (f"illuminant {s.lamp_text()}, CIE {s.observer}° observer, {s.polarization_text()}"
             + (f", cone NA {s.na:g}" if s.na else "") + (f", {s.brightness_text()}" if s.brightness == "normalized" else ""))
 
 

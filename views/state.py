@@ -156,6 +156,17 @@ class ExplorerState(param.Parameterized):
                     "angle": self.analyzer_deg}[self.analyzer]
         return {"polarizer_deg": polarizer, "analyzer_deg": analyzer}
 
+    def polarization_text(self) -> str:
+        """The polarization in words: 'unpolarized', 's', 'p', or the polarizer and analyzer with their axes."""
+        lab = self.lab_frame()
+        if all(v is None for v in lab.values()):
+            return self.polarization
+        words = [f"polarizer {lab['polarizer_deg']:g}°" if lab["polarizer_deg"] is not None else "unpolarized light"]
+        if lab["analyzer_deg"] is not None:
+            words.append(f"analyzer {self.analyzer}" if self.analyzer in ("parallel", "crossed")
+                         else f"analyzer {lab['analyzer_deg']:g}°")
+        return ", ".join(words) + " (to the plane of tilt)"
+
     @property
     def ray_polarization(self) -> str:
         """The per-ray polarization the physics gets: 'unpolarized' when a lab-frame polarizer takes over."""
