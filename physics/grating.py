@@ -494,28 +494,37 @@ def rigorous_efficiency_detail(wavelength_nm, lines_per_mm, order, incidence_deg
 
     Its ``efficiency`` is always (W, O) (O orders asked); it also holds the TE and TM curves, the
     reflected and transmitted totals over all orders, the absorbed fraction, the harmonic count
-    chosen (``harmonics`` N, ``fourier_orders`` = 2N + 1) and whether it converged.
+    chosen (``harmonics`` N, the larger of the two polarizations', ``fourier_orders`` = 2N + 1, and
+    ``harmonics_by_polarization``) and whether it converged.
     """
     rcwa, wl, d, scalar, orders, alpha, pol, depth, nk = _rigorous_inputs(
         wavelength_nm, lines_per_mm, order, incidence_deg, profile, depth_nm, duty_cycle, blaze_angle_deg,
         material, polarization, kind)
     thickness, intervals = rcwa.profile_slices(profile, depth, duty_cycle, blaze_angle_deg, d, float(wl.min()))
     pols = rcwa.POLARIZATIONS[pol]
-    R, T, n, converged, change = rcwa.converged_orders(wl, d, alpha, thickness, intervals, nk, orders, pols, kind)
-    cols = n + np.asarray(orders)
-    quoted = (R if kind == "reflection" else T)[:, :, cols]            # (W, P, O)
+    quoted, r_tot, t_tot, counts, converged, change = [], [], [], [], True, 0.0
+    for p in pols:                              # each polarization converges at its own pace (TM on metals slowly)
+        R, T, n, ok, ch = rcwa.converged_orders(wl, d, alpha, thickness, intervals, nk, orders, (p,), kind)
+        quoted.append((R if kind == "reflection" else T)[:, 0, n + np.asarray(orders)])
+        r_tot.append(R[:, 0].sum(axis=1))
+        t_tot.append(T[:, 0].sum(axis=1))
+        counts.append(int(n))
+        converged, change = converged and ok, max(change, ch if not ok else 0.0)
+    quoted = np.stack(quoted, axis=1)                                   # (W, P, O)
+    r_tot, t_tot = np.stack(r_tot, axis=1), np.stack(t_tot, axis=1)     # (W, P)
     live = np.abs(np.asarray(orders)[None, :] * wl[:, None] / d - np.sin(np.radians(alpha))) <= 1.0 + _GRAZING_TOL
     quoted = np.where(live[:, None, :], np.clip(quoted, 0.0, None), 0.0)
     te = quoted[:, pols.index(0)] if 0 in pols else None
     tm = quoted[:, pols.index(1)] if 1 in pols else None
     eff = quoted.mean(axis=1)
-    r_tot, t_tot = R.sum(axis=2), T.sum(axis=2)
     lossless = float(nk.imag.max()) <= rcwa.TRANSPARENT_K_MAX
     absorbed = 1.0 - r_tot - (t_tot if lossless else 0.0)               # an absorbing substrate keeps what enters it
-    note = (f"{2 * n + 1} Fourier orders (harmonics ±{n})" + ("" if converged else
-            f"; not converged to {rcwa.CONVERGENCE_TOL:g} at the cap (last change {change:.2g})"))
-    return rcwa.RigorousEfficiency(wl, orders, eff, te, tm, pols, r_tot, t_tot, absorbed, int(n), bool(converged),
-                                   float(change), len(thickness), kind, note)
+    names = {0: "TE", 1: "TM"}
+    note = (", ".join(f"{2 * n + 1} Fourier orders for {names[p]}" for p, n in zip(pols, counts))
+            + ("" if converged else f"; not converged to {rcwa.CONVERGENCE_TOL:g} at the cap (last change {change:.2g})"))
+    return rcwa.RigorousEfficiency(wl, orders, eff, te, tm, pols, r_tot, t_tot, absorbed, max(counts),
+                                   bool(converged), float(change), len(thickness), kind, note,
+                                   dict(zip((names[p] for p in pols), counts)))
 
 
 def rigorous_efficiency(wavelength_nm, lines_per_mm, order, incidence_deg=0.0, *, profile="lamellar", depth_nm=None,

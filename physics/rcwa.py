@@ -60,16 +60,17 @@ DEFAULT_DEPTH_NM = 100.0
 #: Convergence: the harmonic count grows until the quoted efficiencies change by less than this
 #: (absolute) from one count to the next: below what a practitioner reads off an efficiency curve.
 CONVERGENCE_TOL = 1e-3
-#: Largest harmonic index N tried (2N + 1 plane waves): TM on metals converges slowly; past this
-#: the time per curve grows beyond a few seconds and the result is reported as not converged.
-MAX_HARMONICS = 40
+#: Largest harmonic index N tried (2N + 1 plane waves) unless the grating needs more to hold its
+#: propagating orders: TM on metals converges slowly; past this a curve costs many seconds on two
+#: cores, so the result is reported as not converged (with its last change) instead.
+MAX_HARMONICS = 32
 #: Smallest harmonic index tried; and the margin above the highest propagating order.
 MIN_HARMONICS = 8
 HARMONIC_MARGIN = 6
 #: Growth factor of the harmonic index between convergence steps.
 HARMONIC_GROWTH = 1.5
 #: Wavelengths of a curve at which convergence is checked (spread over the curve, ends included).
-CONVERGENCE_PROBES = 5
+CONVERGENCE_PROBES = 3
 #: Staircase of a smooth profile: each slice at most this fraction of the shortest wavelength thick,
 #: and between STAIR_STEPS_MIN and STAIR_STEPS_MAX slices (slices much thinner than the wavelength
 #: represent a smooth profile; common practice).
@@ -110,6 +111,7 @@ class RigorousEfficiency:
     slices: int                         #: slices of the groove profile (1 for lamellar)
     kind: str = "reflection"
     note: str = field(default="")
+    harmonics_by_polarization: dict = field(default_factory=dict)   #: {"TE": N, "TM": N} as computed
 
     @property
     def fourier_orders(self) -> int:
