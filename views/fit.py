@@ -24,6 +24,7 @@ from bokeh.plotting import figure
 
 from physics import InputError, Stack, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
+from physics.filmcurves import fit_film_curves
 from physics.fit import (BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, MAX_SPECTRUM_BYTES,
                          fit_thickness_reporting, read_spectrum_table)
 
@@ -32,6 +33,7 @@ from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
 from .uploads import COMPACT, CappedDropper, UploadReader
 from .explorer import Field, TickBox, _esc, _fmt, _label, field_pair
+from .fit_film import FilmModelEditor, page_text as film_page_text
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 from .urlstate import widget_fields
@@ -70,7 +72,10 @@ LINK_FIELDS = (("s_ref", "Reference", "ref_mode", "choice"),
                ("s_scale", "Free scale", "free_scale", "tick"),
                ("s_offset", "Free offset", "free_offset", "tick"),
                ("s_wlfrom", "Use wavelengths from", "wl_lo", "text"),
-               ("s_wlto", "Use wavelengths to", "wl_hi", "text"))
+               ("s_wlto", "Use wavelengths to", "wl_hi", "text"),
+               ("s_model", "Film model", "film_model", "choice"),
+               ("s_rough", "Surface roughness", "film_roughness", "tick"),
+               ("s_spread", "Thickness spread", "film_spread", "tick"))
 
 
 #: Wavelengths (nm) the spectrum figure spans before a spectrum arrives (the visible band and a little more).
@@ -145,6 +150,8 @@ class SpectrumFitSection:
         self.wl_hi = Field("to (nm)", width=140, placeholder="all")
         self.fit_button = pn.widgets.Button(label="Fit thickness", color="primary", width=200, margin=(6, 5),
                                             css_classes=["fg-fit-run"])
+        self.film = FilmModelEditor(self)
+        self.film_model, self.film_roughness, self.film_spread = self.film.model, self.film.roughness, self.film.spread
         self.fit_msg = Field("")
         self.status = pn.pane.HTML("", css_classes=["fg-status"], margin=(0, 5))
         self.progress = pn.indicators.Progress(value=0, max=100, width=300, visible=False, margin=(6, 5),
@@ -223,6 +230,7 @@ class SpectrumFitSection:
         self.wl_unit.param.watch(locked(lambda e: self._reimport()), "value")
         self.value_unit.param.watch(locked(lambda e: self._reimport()), "value")
         self.fit_button.on_click(locked(lambda *_: self.run_fit()))
+        self.film.use_button.on_click(locked(lambda *_: self.use_fitted_film()))
         self.ex.state.param.watch(locked(self._on_state), ["stack_json", "swept_layer", "angle_deg", "polarization"])
         self._sync_layers()
 
@@ -253,9 +261,11 @@ class SpectrumFitSection:
 
     def _on_state(self, *events):
         self._sync_layers()
+        if self.film.adopting:                      # the fitted film going into the stack: the fit stays current
+            return
         if "reference" in self.files and self.ref_mode.value == "silicon":
             self._reimport()                        # the computed reference depends on the angle and ambient
-        if self.result is not None:                 # a fit of another model must not look current
+        if self.result is not None or self.film.result is not None:    # a fit of another model must not look current
             self._clear_result("The stack, unknown layer, angle or polarization changed since the last fit: "
                                "press “Fit thickness”.")
 
@@ -347,7 +357,7 @@ class SpectrumFitSection:
         self.import_info = info
         self._show_notes(info)
         self._clear_fit_messages()
-        if not same and (self.result is not None or self.fit_button.disabled):
+        if not same and (self.result is not None or self.film.result is not None or self.fit_button.disabled):
             self._clear_result(SPECTRUM_CHANGED)
         _locked(partial(self._show_measured, wl, R))
         return True
@@ -373,6 +383,7 @@ class SpectrumFitSection:
         self._job += 1
         self._end_progress()
         self.result = self.result_info = None
+        self.film.clear()
         self.details.object = ""
         self.verdict.alert_type = "light"
         self.verdict.object = why or "Press “Fit thickness” to fit the spectrum."
@@ -390,7 +401,7 @@ class SpectrumFitSection:
 
     def _no_spectrum(self, why: str):
         """The files in hand give no reflectance (raw counts without a reference): nothing to fit or show."""
-        had = self.spectrum is not None or self.result is not None
+        had = self.spectrum is not None or self.result is not None or self.film.result is not None
         self.spectrum = None
         self.import_info = {}
         self._clear_result(why if had else "")
@@ -584,11 +595,12 @@ class SpectrumFitSection:
             raise _Stop
         return lo, hi
 
-    def _start_progress(self, job):
+    def _start_progress(self, job, film: bool = False):
         self.fit_button.disabled = True
-        self.progress.value = 0
+        self.progress.value = -1 if film else 0            # -1: the bar runs without a fraction
+        self.progress.active = film
         self.progress.visible = self.cancel_button.visible = True
-        self.status.object = "Fitting…"
+        self.status.object = "Fitting the film model…" if film else "Fitting…"
 
     def _show_progress(self, job, fraction, text):
         if job == self._job:
@@ -609,7 +621,15 @@ class SpectrumFitSection:
         """Fit the current spectrum (off the event loop when served). Returns True when a fit was started."""
         try:
             args = self._request()
+            film = self.film.active()
+            if film:
+                args = self.film.request(args)
         except _Stop:
+            return False
+        except ValueError as exc:                   # a film fit that cannot be asked for these settings
+            self._clear_fit_messages()
+            self.fit_msg.show_error(str(exc))
+            self._fit_error_fields.append(self.fit_msg)
             return False
         self._clear_fit_messages()
         self._job += 1
@@ -623,13 +643,15 @@ class SpectrumFitSection:
         def gone():
             return job != self._job or (live and not served(doc))
 
-        self._start_progress(job)
+        self._start_progress(job, film)
+        kind = "film_fit" if film else "spectrum_fit"
         if sync or not live:
             limits = Limits.from_env()
             channel = workers.LocalChannel(partial(self._show_progress, job), gone)
             try:
-                with heavy_job("spectrum_fit", size, session, limits):
-                    out = fit_thickness_reporting(channel, **args, max_grid_points=limits.max_grid_points), None
+                with heavy_job(kind, size, session, limits):
+                    out = (fit_film_curves(**args) if film else
+                           fit_thickness_reporting(channel, **args, max_grid_points=limits.max_grid_points)), None
             except InputError as exc:
                 out = None, exc
             except JobCancelled:
@@ -640,23 +662,27 @@ class SpectrumFitSection:
         async def run():
             limits = Limits.from_env()
             try:
-                with heavy_job("spectrum_fit", size, session, limits):
-                    channel = await workers.new_channel()
-                    result = await workers.run_in_worker(
-                        limits.max_jobs_server, partial(fit_thickness_reporting, **args,
-                                                        max_grid_points=limits.max_grid_points),
-                        channel=channel, cancelled=gone,
-                        on_progress=lambda f, text: post_to_page(doc, partial(self._show_progress, job, f, text)))
+                with heavy_job(kind, size, session, limits):
+                    if film:                        # no progress to report: cancel drops the result when it comes
+                        result = await workers.run_in_worker(limits.max_jobs_server, partial(fit_film_curves, **args),
+                                                             cancelled=gone)
+                    else:
+                        channel = await workers.new_channel()
+                        result = await workers.run_in_worker(
+                            limits.max_jobs_server, partial(fit_thickness_reporting, **args,
+                                                            max_grid_points=limits.max_grid_points),
+                            channel=channel, cancelled=gone,
+                            on_progress=lambda f, text: post_to_page(doc, partial(self._show_progress, job, f, text)))
                 out = result, None
             except InputError as exc:
                 out = None, exc
             except JobCancelled:
                 return
             except workers.WorkerLost as exc:
-                log.error("spectrum fit: worker process lost", extra={"session": session, "size": size})
+                log.error(f"{kind.replace('_', ' ')}: worker process lost", extra={"session": session, "size": size})
                 out = None, InputError(str(exc))
             except Exception:  # never lose the session to one failed computation
-                log.exception("spectrum fit failed")
+                log.exception(f"{kind.replace('_', ' ')} failed")
                 out = None, InputError("The fit failed unexpectedly; the server log has the details.")
             post_to_page(doc, partial(self._finish, job, args, info, *out))
         pn.state.execute(run)
@@ -669,6 +695,10 @@ class SpectrumFitSection:
         self.status.object = ""
         if error is not None:
             self._show_fit_error(error)
+            return
+        if isinstance(result, tuple):               # a film fit: (FilmFitResult, FilmFitCurves)
+            self.film.show(*result, args, info.get("sample_file", ""))
+            self.result_info = dict(args=args, import_info=info, date=date.today().isoformat())
             return
         self.result = result
         self.result_info = dict(args=args, import_info=info, date=date.today().isoformat())
@@ -683,7 +713,7 @@ class SpectrumFitSection:
         elif "thickness window" in text:
             field = self.win_hi
         else:
-            field = self.fit_msg
+            field, text = self.fit_msg, film_page_text(text)
         field.show_error(text)
         self._fit_error_fields.append(field)
 
@@ -748,16 +778,11 @@ class SpectrumFitSection:
 
     def _draw_result(self):
         r, a = self.result, self.result_info["args"]
-        self.spec_holder.release()
-        self.meas_src.data = dict(wl=r.wavelength_nm, R=r.measured * 100)
-        unit, scale = _residual_unit(r.residual)
-        self.model_src.data = dict(wl=r.wavelength_nm, R=r.model * 100, res=r.residual / scale)
-        _span_range(self.resid_fig.y_range, r.residual / scale, symmetric=True)
-        _span_range(self.scan_fig.x_range, r.scan_thickness_nm)
-        self.resid_fig.yaxis.axis_label = f"residual ({unit} reflectance)" if unit == "%" else f"residual ({unit})"
         head = (f"d = {_pm(r.thickness_nm, r.quoted_uncertainty_nm)} nm" if r.trustworthy else
                 f"d ≈ {r.thickness_nm:.0f} nm (not trustworthy)")
-        self.spec_fig.title.text = f"Measured ({self.result_info['import_info'].get('sample_file', '')}) and fitted: {head}"
+        self._draw_curves(r.wavelength_nm, r.measured, r.model, r.residual,
+                          f"Measured ({self.result_info['import_info'].get('sample_file', '')}) and fitted: {head}")
+        _span_range(self.scan_fig.x_range, r.scan_thickness_nm)
         rms = np.maximum(r.scan_rms * 100, 1e-9)
         self.scan_src.data = dict(d=r.scan_thickness_nm, rms=rms)
         mins = [max(m[1] * 100, 1e-9) for m in r.minima]
@@ -770,6 +795,26 @@ class SpectrumFitSection:
         self.scan_fig.title.text = (f"rms residual against trial thickness of layer {a['layer'] + 1}"
                                     + (" (minimised over the second layer)" if r.second_thickness_nm is not None else "")
                                     + "; triangles: refined minima")
+
+    def draw_film_curves(self, c, title: str):
+        """Measured, model and residual of a film fit (:class:`physics.filmcurves.FilmFitCurves`) in the spectrum
+        and residual plots."""
+        _locked(partial(self._draw_curves, c.wavelength_nm, c.measured, c.model, c.residual, title))
+
+    def _draw_curves(self, wl, measured, model, residual, title):
+        self.spec_holder.release()
+        self.meas_src.data = dict(wl=wl, R=measured * 100)
+        unit, scale = _residual_unit(residual)
+        self.model_src.data = dict(wl=wl, R=model * 100, res=residual / scale)
+        _span_range(self.resid_fig.y_range, residual / scale, symmetric=True)
+        self.resid_fig.yaxis.axis_label = f"residual ({unit} reflectance)" if unit == "%" else f"residual ({unit})"
+        self.spec_fig.title.text = title
+
+    def use_fitted_film(self) -> bool:
+        """Put the fitted film into the film explorer's stack in place of the fitted layer."""
+        info = self.result_info or {}
+        return self.film.use(info.get("import_info", {}).get("sample_file", "spectrum"),
+                             info.get("date", date.today().isoformat()))
 
     def fourier_thickness(self):
         """(optical thickness n·d·cos θ, d for the unknown layer, n cos θ used, wavelength) or None."""
@@ -907,7 +952,9 @@ class SpectrumFitSection:
             self.second, field_pair(self.win2_lo, self.win2_hi, PAIR_MESSAGE_WIDTH),
             self.free_scale, self.free_offset,
             field_pair(self.wl_lo, self.wl_hi, PAIR_MESSAGE_WIDTH),
+            self.film.controls(),
             self.fit_button, self.fit_msg.message, self.status, self.progress, self.cancel_button,
+            self.film.use_button, self.film.use_status,
             pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Downloads</h3>"),
             self.dl_csv, self.dl_scan, self.dl_json, width=340)
         results = pn.Column(
@@ -915,6 +962,7 @@ class SpectrumFitSection:
             pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"),
             pn.pane.Bokeh(self.resid_fig, sizing_mode="stretch_width"),
             pn.pane.Bokeh(self.scan_fig, sizing_mode="stretch_width"),
+            pn.pane.Bokeh(self.film.nk_fig, sizing_mode="stretch_width"),
             sizing_mode="stretch_width")
         return pn.Row(controls, results, sizing_mode="stretch_width", scroll=True)
 

@@ -1,0 +1,309 @@
+"""The spectrum tab's film-model editor: fit a film's n and k with its thickness, and use the fitted film.
+
+Part of :class:`views.fit.SpectrumFitSection` (built with it, when the tab is first opened). With a dispersion
+model chosen (or a roughness layer or a thickness spread ticked) "Fit" runs :func:`physics.filmcurves.fit_film_curves`
+(:func:`physics.fit_film` and the curves the page draws) in a worker, as the thickness fit runs; this module
+shows the result and puts the fitted film into the film explorer's stack. Every number comes from physics.
+"""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import panel as pn
+from bokeh.models import ColumnDataSource, Legend, LinearAxis, Range1d
+from bokeh.plotting import figure
+
+from physics import InputError
+
+from .explorer import TickBox, _esc, _label
+
+#: The film models offered, in the page's words, and the fit_film model each runs.
+FILM_MODELS = {"fixed constants (the stack's material)": "fixed", "Cauchy (transparent)": "cauchy",
+               "Cauchy + Urbach absorption tail": "cauchy-urbach", "Sellmeier, one term (transparent)": "sellmeier",
+               "Tauc-Lorentz (absorbing, amorphous)": "tauc-lorentz"}
+#: Wavelength at which n and k are quoted (nm): the helium-neon line, where film indices are commonly quoted
+#: (common practice); the band's middle when the spectrum does not reach it.
+QUOTE_WAVELENGTH_NM = 633.0
+#: Most points of the measured spectrum a film fit uses (the fit bins denser spectra itself; a cap here
+#: keeps the model curve the worker returns bounded).
+MAX_FILM_POINTS = 20_000
+#: Fewest points left after the "Use wavelengths" range for a film fit to be tried.
+MIN_FILM_POINTS = 10
+#: How each fitted parameter is named on the page: (label, unit, factor from the fit's value to the shown one).
+PARAMETER_LABELS = {
+    "thickness_nm": ("thickness d", "nm", 1.0),
+    "A": ("Cauchy A", "", 1.0), "B_um2": ("Cauchy B", "µm²", 1.0), "C_um4": ("Cauchy C", "µm⁴", 1.0),
+    "k_amplitude": ("k at the band's short end", "", 1.0), "k_exponent_per_ev": ("Urbach slope", "1/eV", 1.0),
+    "B1": ("Sellmeier B₁", "", 1.0), "C1_um2": ("Sellmeier C₁", "µm²", 1.0),
+    "eps_inf": ("ε∞", "", 1.0), "gap_ev": ("Tauc gap Eg", "eV", 1.0), "amplitude_ev": ("amplitude A", "eV", 1.0),
+    "center_ev": ("peak energy E₀", "eV", 1.0), "broadening_ev": ("broadening C", "eV", 1.0),
+    "roughness_nm": ("surface roughness layer", "nm", 1.0), "spread_nm": ("thickness spread σ in the spot", "nm", 1.0),
+    "scale": ("reflectance scale", "", 1.0), "offset": ("reflectance offset", "% R", 100.0),
+}
+NK_TITLE = "Fitted n and k of the film"
+#: The fit's API words and how the page says them (the page has a model list and tick boxes, not keywords).
+PAGE_WORDS = (("(model='fixed' with a known material)",
+               "(film model “fixed constants”, with the film's known material in the film explorer)"),
+              ("(model='fixed', no roughness or spread, no free scale or offset)",
+               "(film model “fixed constants”, no surface roughness or thickness spread, no free scale or offset)"),
+              ("fit the top layer (layer=0) with roughness=True",
+               "make the top layer the explorer's swept layer to fit it with a surface roughness"),
+              (" and A trade", " and Cauchy A trade"))
+
+
+def page_text(message: str) -> str:
+    """A fit's message in the page's words (:data:`PAGE_WORDS`); parameter names become their page labels."""
+    for api, page in PAGE_WORDS:
+        message = message.replace(api, page)
+    for name, (label, _, _) in PARAMETER_LABELS.items():
+        if "_" in name or name in ("B1",):                      # names that are no everyday word
+            message = re.sub(rf"\b{name}\b", label, message)
+    return message
+
+
+def value_text(value: float, sigma: float) -> tuple[str, str]:
+    """(value, ±1σ) as text: the value to the σ's second significant digit, 4 significant digits without σ."""
+    if not np.isfinite(sigma) or sigma <= 0:
+        return f"{value:.4g}", "–"
+    place = int(np.floor(np.log10(sigma))) - 1
+    digits = max(0, -place)
+    if abs(value) >= 1e5 or (value != 0 and abs(value) < 1e-3 and digits > 6):
+        return f"{value:.3e}", f"{sigma:.2g}"
+    return f"{value:.{digits}f}", f"{sigma:.{digits}f}" if digits else f"{sigma:.0f}"
+
+
+class FilmModelEditor:
+    """Film model choice, the fitted film's table and n, k plot, and "Use this fitted film", for one section."""
+
+    def __init__(self, section):
+        self.section = section
+        self.result = None              # physics.FilmFitResult shown
+        self.curves = None              # physics.filmcurves.FilmFitCurves shown
+        self.args = None                # the fit's arguments
+        self.adopting = False           # the explorer's stack is being changed by "Use this fitted film"
+        self.model = pn.widgets.Select(label="Film model", options=FILM_MODELS, value="fixed", width=300,
+                                       margin=(2, 5), css_classes=["fg-fit-model"])
+        self.roughness = TickBox("surface roughness (50 % void top layer)")
+        self.spread = TickBox("thickness spread in the spot")
+        self.hint = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "11px", "color": "#555"})
+        self.use_button = pn.widgets.Button(label="Use this fitted film", color="success", width=200, margin=(4, 5),
+                                            visible=False, css_classes=["fg-fit-use-film"])
+        self.use_status = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"},
+                                       css_classes=["fg-fit-use-status"])
+        self.nk_src = ColumnDataSource(dict(wl=[], n=[], n_lo=[], n_hi=[], k=[], k_lo=[], k_hi=[]))
+        f = figure(height=220, sizing_mode="stretch_width", tools="pan,wheel_zoom,box_zoom,reset,save",
+                   title=NK_TITLE, x_axis_label="wavelength (nm)", y_axis_label="refractive index n",
+                   y_range=Range1d(1.0, 3.0), visible=False)
+        f.extra_y_ranges = {"k": Range1d(0.0, 0.1)}
+        f.add_layout(LinearAxis(y_range_name="k", axis_label="extinction coefficient k"), "right")
+        f.varea("wl", "n_lo", "n_hi", source=self.nk_src, fill_color="#1f6fb4", fill_alpha=0.2)
+        n_line = f.line("wl", "n", source=self.nk_src, color="#1f6fb4", line_width=2)
+        f.varea("wl", "k_lo", "k_hi", source=self.nk_src, fill_color="#c0392b", fill_alpha=0.2, y_range_name="k")
+        k_line = f.line("wl", "k", source=self.nk_src, color="#c0392b", line_width=2, line_dash="dashed",
+                        y_range_name="k")
+        f.add_layout(Legend(items=[("n (left axis)", [n_line]), ("k (right axis)", [k_line])],
+                            orientation="horizontal", location="top_right", label_text_font_size="11px", margin=0,
+                            padding=2), "above")
+        self.nk_fig = f
+        self.model.param.watch(lambda e: self._show_hint(), "value")
+        self.roughness.param.watch(lambda e: self._show_hint(), "value")
+        self.spread.param.watch(lambda e: self._show_hint(), "value")
+        self._show_hint()
+
+    # ------------------------------------------------------------------ controls
+    def active(self) -> bool:
+        """True when "Fit" fits a film model (n and k, or roughness, or a spread), not the thickness alone."""
+        return self.model.value != "fixed" or bool(self.roughness.value) or bool(self.spread.value)
+
+    def _show_hint(self):
+        s = self.section
+        if self.model.value == "fixed" and not (self.roughness.value or self.spread.value):
+            self.hint.object = "The layer keeps the stack's optical constants; only its thickness is fitted."
+            label = "Fit thickness"
+        else:
+            what = "its n and k" if self.model.value != "fixed" else "the stack's n and k for it"
+            self.hint.object = (f"The unknown layer's thickness and {what} are fitted together"
+                                + (", with a surface roughness layer" if self.roughness.value else "")
+                                + (" and a thickness spread" if self.spread.value else "")
+                                + ". One unknown layer; the second layer choice is not used.")
+            label = "Fit thickness and film"
+        if hasattr(s, "fit_button"):
+            s.fit_button.label = label
+
+    def controls(self):
+        return pn.Column(pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Film model</h3>"),
+                         self.model, self.roughness, self.spread, self.hint, margin=0)
+
+    def request(self, args: dict) -> dict:
+        """fit_film's arguments from the thickness fit's; raises ValueError with the sentence for the page."""
+        if "second_layer" in args:
+            raise ValueError("A film-model fit finds one unknown layer: choose “(none)” under “Second unknown "
+                             "layer”, or the film model “fixed constants” to fit two thicknesses.")
+        wl, R = np.asarray(args["wavelength_nm"]), np.asarray(args["reflectance"])
+        rng = args.get("wavelength_range_nm")
+        if rng is not None:
+            keep = (wl >= rng[0]) & (wl <= rng[1])
+            if keep.sum() < MIN_FILM_POINTS:
+                raise ValueError(f"Only {int(keep.sum())} points of the spectrum lie in {rng[0]:g}–{rng[1]:g} nm; a "
+                                 f"film fit needs at least {MIN_FILM_POINTS}: widen “Use wavelengths”.")
+            wl, R = wl[keep], R[keep]
+        if wl.size > MAX_FILM_POINTS:
+            pick = np.unique(np.linspace(0, wl.size - 1, MAX_FILM_POINTS).round().astype(int))
+            wl, R = wl[pick], R[pick]
+        return dict(wavelength_nm=wl, reflectance=R, stack=args["stack"], layer=args["layer"],
+                    model=self.model.value, thickness_nm=args["thickness_nm"], angle_deg=args["angle_deg"],
+                    polarization=args["polarization"], roughness=bool(self.roughness.value),
+                    spread=bool(self.spread.value), free_scale=args["free_scale"], free_offset=args["free_offset"])
+
+    # ------------------------------------------------------------------ result
+    def clear(self):
+        self.result = self.curves = self.args = None
+        self.use_button.visible = False
+        self.use_status.object = ""
+        self.nk_src.data = dict(wl=[], n=[], n_lo=[], n_hi=[], k=[], k_lo=[], k_hi=[])
+        self.nk_fig.visible = False
+        self.section.scan_fig.visible = True
+
+    def show(self, result, curves, args, file_name: str):
+        """Show a film fit: the verdict, the parameter table, the spectra and the n, k plot."""
+        s = self.section
+        self.result, self.curves, self.args = result, curves, args
+        layer = args["layer"]
+        old = args["stack"].layers[layer].material.name
+        kind, lines = self._verdict(result, curves, layer, old)
+        s.verdict.alert_type = kind
+        s.verdict.object = "<br>".join(lines)
+        s.details.object = self._table(result, curves)
+        fitted_model = result.model != "fixed"
+        self.use_button.visible = fitted_model or result.roughness_nm is not None
+        self.use_status.object = ""
+        s.draw_film_curves(curves, f"Measured ({file_name}) and fitted: "
+                                   f"d = {' ± '.join(value_text(result.thickness_nm, result.uncertainty_nm))} nm")
+        s.scan_fig.visible = False
+        if fitted_model:
+            self._draw_nk(curves, result)
+        else:
+            self.nk_fig.visible = False
+
+    def quote_wavelength(self, curves) -> float:
+        lo, hi = float(curves.nk_wavelength_nm[0]), float(curves.nk_wavelength_nm[-1])
+        return QUOTE_WAVELENGTH_NM if lo <= QUOTE_WAVELENGTH_NM <= hi else 0.5 * (lo + hi)
+
+    def _verdict(self, r, c, layer, old):
+        at = self.quote_wavelength(c)
+        n, k = float(r.n_at([at])[0]), float(r.k_at([at])[0])
+        sn = sk = float("nan")
+        if c.sigma_n is not None:
+            sn = float(np.interp(at, c.nk_wavelength_nm, c.sigma_n))
+            sk = float(np.interp(at, c.nk_wavelength_nm, c.sigma_k))
+        model = next(label for label, v in FILM_MODELS.items() if v == r.model)
+        d, sd = value_text(r.thickness_nm, r.uncertainty_nm)
+        lines = [f"<b>d = {d} ± {sd} nm (1σ)</b> — layer {layer + 1}, "
+                 + (f"fitted as {_esc(model)} (started from {_esc(old)})" if r.model != "fixed" else
+                    f"{_esc(old)}, optical constants as in the stack")]
+        nk_text = f"n = {' ± '.join(value_text(n, sn)) if np.isfinite(sn) else f'{n:.4f}'}"
+        if k == 0 and r.model in ("cauchy", "sellmeier"):
+            nk_text += ", k = 0 (a transparent model)"
+        else:
+            nk_text += f", k = {' ± '.join(value_text(k, sk)) if np.isfinite(sk) and sk > 0 else f'{k:.3g}'}"
+        lines.append(f"<b>{nk_text}</b> at {at:.0f} nm" + ("" if at == QUOTE_WAVELENGTH_NM else
+                                                           " (the band's middle: the spectrum does not reach 633 nm)"))
+        if r.roughness_nm is not None:
+            lines.append("surface roughness layer " + " ± ".join(value_text(r.roughness_nm,
+                                                                            r.uncertainties["roughness_nm"]))
+                         + " nm (the film's material with 50 % void)")
+        if r.spread_nm is not None:
+            lines.append("thickness spread across the spot σ = " + " ± ".join(value_text(r.spread_nm,
+                                                                                      r.uncertainties["spread_nm"]))
+                         + " nm")
+        free = len(r.parameter_names)
+        lines.append(f"rms residual {100 * r.rms:.3g} % over {r.n_points} points, {free} free parameters")
+        if r.message:
+            lines.append(f"⚠ {_esc(page_text(r.message))}")
+        if c.at_bounds:
+            names = ", ".join(PARAMETER_LABELS.get(p, (p,))[0] for p in c.at_bounds)
+            lines.append(f"⚠ {_esc(names)} ended at the limit of the model's range: the data do not fix "
+                         f"{'it' if len(c.at_bounds) == 1 else 'them'}, so the ± there means little. A simpler "
+                         "model may describe this film as well.")
+        kind = "danger" if r.quality == "poor" else (
+            "warning" if r.quality != "good" or r.message or c.at_bounds else "success")
+        return kind, lines
+
+    def _table(self, r, c):
+        rows = []
+        for name in r.parameter_names:
+            label, unit, factor = PARAMETER_LABELS.get(name, (name, "", 1.0))
+            v, s = value_text(factor * r.parameters[name], factor * r.uncertainties[name])
+            mark = " (at its limit)" if name in c.at_bounds else ""
+            rows.append(f"<tr><td>{_esc(label)}{mark}</td><td style='text-align:right'>{v}</td>"
+                        f"<td>± {s}</td><td>{_esc(unit)}</td></tr>")
+        band = f"{c.wavelength_nm[0]:g}–{c.wavelength_nm[-1]:g} nm"
+        return ("<table class='fg-fit-table fg-fit-params' style='font-size:13px' cellpadding='2'>"
+                "<tr><th style='text-align:left'>fitted parameter</th><th>value</th><th>1σ</th><th></th></tr>"
+                + "".join(rows) + "</table>"
+                f"<div style='font-size:11px;color:#555'>Fitted over {band}; the ± are 1σ from the fit's curvature "
+                "scaled by its residual; the n and k bands in the plot propagate them linearly.</div>")
+
+    def _draw_nk(self, c, r):
+        zero = np.zeros_like(c.n)
+        sn = c.sigma_n if c.sigma_n is not None else zero
+        sk = c.sigma_k if c.sigma_k is not None else zero
+        self.nk_src.data = dict(wl=c.nk_wavelength_nm, n=c.n, n_lo=c.n - sn, n_hi=c.n + sn, k=c.k,
+                                k_lo=np.clip(c.k - sk, 0.0, None), k_hi=c.k + sk)
+        lo, hi = float(np.min(c.n - sn)), float(np.max(c.n + sn))
+        pad = max(0.05 * (hi - lo), 0.01)
+        self.nk_fig.y_range.start, self.nk_fig.y_range.end = lo - pad, hi + pad
+        k_top = float(np.max(c.k + sk))
+        self.nk_fig.extra_y_ranges["k"].start = 0.0
+        self.nk_fig.extra_y_ranges["k"].end = k_top * 1.1 if k_top > 0 else 0.01
+        self.nk_fig.title.text = (f"{NK_TITLE} (shaded: ±1σ)" if c.sigma_n is not None else NK_TITLE)
+        self.nk_fig.visible = True
+
+    # ------------------------------------------------------------------ use it
+    def fitted_layers(self, rows: list, file_name: str, day: str) -> tuple[list, int]:
+        """The explorer's layer rows with the fitted film in place of the fitted layer (and its roughness layer
+        on top of it), and the index of the film."""
+        r, layer = self.result, self.args["layer"]
+        rows = [dict(x) for x in rows]
+        spec = r.material.spec() if r.model != "fixed" else rows[layer]["material"]
+        if isinstance(spec, dict) and r.model != "fixed":
+            spec = dict(spec, name=f"{spec.get('name', 'film')} fit, {file_name}"[:200],
+                        source=f"fitted by fringegauge to {file_name} on {day} ({r.model}, "
+                               f"{100 * r.rms:.2g} % rms)"[:1000])
+        rows[layer] = {"material": spec, "thickness_nm": float(r.thickness_nm)}
+        if r.roughness_nm is not None:
+            mix = {"kind": "effective-medium", "a": spec, "b": {"kind": "constant", "n": 1.0, "k": 0.0},
+                   "fraction_b": 0.5, "rule": "bruggeman", "name": "surface roughness (50 % void)"}
+            rows.insert(layer, {"material": mix, "thickness_nm": float(r.roughness_nm)})
+            layer += 1
+        return rows, layer
+
+    def use(self, file_name: str, day: str) -> bool:
+        """Put the fitted film into the film explorer's stack; False (with the sentence shown) when it cannot."""
+        s = self.section
+        if self.result is None:
+            return False
+        state = s.ex.state
+        try:
+            rows, layer = self.fitted_layers(state.layer_rows(), file_name, day)
+            self.adopting = True
+            try:
+                state.set_stack(layers=rows, swept_layer=layer)
+            finally:
+                self.adopting = False
+        except InputError as exc:
+            s.fit_msg.show_error(f"The fitted film cannot go into the stack: {exc}")
+            return False
+        s.ex._sync_widgets()
+        name = rows[layer]["material"]
+        name = name.get("name", "fitted film") if isinstance(name, dict) else name
+        extra = ("" if self.result.spread_nm is None else
+                 " The thickness spread is not part of a stack: the explorer shows one thickness.")
+        self.use_status.object = (f"<span style='color:#1e6b2e'>✓ The film explorer's layer {layer + 1} is now "
+                                  f"<b>{_esc(name)}</b>, {self.result.thickness_nm:.1f} nm"
+                                  + (", under its roughness layer" if self.result.roughness_nm is not None else "")
+                                  + f": its colours, map and saved stack file use it.{extra}</span>")
+        self.use_button.visible = False
+        return True
