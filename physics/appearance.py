@@ -231,11 +231,28 @@ def colour_wavelengths_nm(stack: Stack, step_nm: float = 5.0, illuminant=None) -
     return _wavenumber_grid(base[0], base[-1], max(int(_sample_count(path, base[0], base[-1], spf)), base.size))
 
 
-def colour_map_points(stack: Stack, layer: int, thickness_nm, n_angle: int, illuminant=None) -> int:
-    """Grid points (thickness × angle × wavelength) an adaptive :func:`color_map` evaluates."""
+def colour_map_points(stack: Stack, layer: int, thickness_nm, n_angle: int, illuminant=None, *,
+                      na: float = 0.0) -> int:
+    """Grid points (thickness × angle × wavelength) an adaptive :func:`color_map` evaluates; with a viewing
+    cone (``na``) each row is evaluated on the cone's angle grid when that is the larger (thick layers)."""
     base = colour_band_nm(stack)
-    groups = _thickness_groups(stack, layer, thickness_nm, base, samples_per_fringe(illuminant))
-    return n_angle * int(sum(w.size * rows.size for rows, w in groups))
+    d = np.atleast_1d(np.asarray(thickness_nm, dtype=float))
+    groups = _thickness_groups(stack, layer, d, base, samples_per_fringe(illuminant))
+    total = 0
+    for rows, w in groups:
+        angles = n_angle
+        if na and na >= MIN_NA and rows.size:
+            n0 = float(stack.ambient.nk(w).real.min())
+            thick = stack.with_thickness(layer, float(d[rows].max()))
+            angles = max(n_angle, _grid_points(thick, w, 0.0, _GRAZING_DEG, n0))
+        total += angles * w.size * rows.size
+    return int(total)
+
+
+def _grid_points(stack, wavelength_nm, theta_lo_deg: float, theta_hi_deg: float, n0: float) -> int:
+    """Points of a cone-averaged map's cos θ grid between two incidence angles (see :func:`_cone_matrix`)."""
+    fringes = float(_cone_path_fringes(stack, wavelength_nm, theta_lo_deg, theta_hi_deg, n0)[0]) if stack else 0.0
+    return int(min(_GRID_MIN_POINTS + np.ceil(_GRID_POINTS_PER_FRINGE * fringes), _GRID_MAX_POINTS))
 
 
 def _thickness_groups(stack: Stack, layer: int, thickness_nm, base: np.ndarray, spf: int = SAMPLES_PER_FRINGE):
@@ -670,9 +687,7 @@ def _cone_matrix(view_deg: np.ndarray, na: float, n0: float, stack=None, wavelen
     rows, cols = np.nonzero(kept)                      # only the kept rays (views pad to the largest cone)
     c = cone.cos_theta[rows, cols % cone.cos_theta.shape[1]]
     lo, hi = float(c.min()), float(c.max())
-    fringes = float(_cone_path_fringes(stack, wavelength_nm, np.degrees(np.arccos(hi)), np.degrees(np.arccos(lo)),
-                                       n0)[0]) if stack is not None else 0.0
-    n_grid = int(min(_GRID_MIN_POINTS + np.ceil(_GRID_POINTS_PER_FRINGE * fringes), _GRID_MAX_POINTS))
+    n_grid = _grid_points(stack, wavelength_nm, np.degrees(np.arccos(hi)), np.degrees(np.arccos(lo)), n0)
     if hi - lo < _GRID_MIN_SPAN:
         lo, hi = lo - _GRID_MIN_SPAN, hi + _GRID_MIN_SPAN
         hi, lo = min(hi, 1.0), max(lo, np.cos(np.radians(_GRAZING_DEG)))

@@ -378,9 +378,11 @@ def compute_map(s: ExplorerState, max_grid_points: int | None = None) -> ColorMa
         per_cell = colour_map_points(stack, s.swept_layer, d * s.thickness_factor, 1, ill) / d.size
         nd, na = map_grid_counts(d.size, a.size, per_cell, max_grid_points)
         d = np.linspace(0.0, s.thickness_max_nm, nd)
-        points = colour_map_points(stack, s.swept_layer, d * s.thickness_factor, na, ill)
+        points = colour_map_points(stack, s.swept_layer, d * s.thickness_factor, na, ill, na=s.na)
         if points > max_grid_points:
-            raise InputError(f"Even a {nd} x {na} colour map needs {points:,} grid points; this "
+            cone = (" (the viewing cone's angle grid follows the layer's fringes: a smaller NA or map thickness "
+                    "needs fewer)" if s.na > 0 else "")
+            raise InputError(f"Even a {nd} x {na} colour map needs {points:,} grid points{cone}; this "
                              f"server allows {int(max_grid_points):,}. Ask whoever runs it to raise --max-grid-points.")
         a = np.linspace(0.0, ANGLE_MAX_DEG, na)
     f = s.thickness_factor
