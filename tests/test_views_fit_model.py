@@ -155,3 +155,15 @@ def test_model_and_ticks_travel_in_the_link_and_the_panel_holds_them(section):
     assert section.film_model in page.select(pn.widgets.Select)
     assert section.film.use_button in page.select(pn.widgets.Button)
     assert any(p.object is section.film.nk_fig for p in page.select(pn.pane.Bokeh))
+
+
+def test_the_fitted_film_downloads_with_its_parameters(section, nitride_csv):
+    csv, _ = nitride_csv
+    _fit(section, csv, model="cauchy-urbach")
+    assert not section.film.download.disabled
+    text = section.film._nk_csv().getvalue()
+    assert "not certified metrology" in text and "nitride_invented.csv" in text and "k_exponent_per_ev" in text
+    rows = [l.split(",") for l in text.splitlines() if l and not l.startswith("#")]
+    assert rows[0] == ["wavelength_nm", "n", "sigma_n", "k", "sigma_k"] and len(rows) == 201
+    spec = json.loads(text.split("stores it: ")[1].splitlines()[0])
+    assert spec["kind"] == "cauchy" and len(spec["urbach"]) == 3

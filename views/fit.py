@@ -956,7 +956,7 @@ class SpectrumFitSection:
             self.fit_button, self.fit_msg.message, self.status, self.progress, self.cancel_button,
             self.film.use_button, self.film.use_status,
             pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Downloads</h3>"),
-            self.dl_csv, self.dl_scan, self.dl_json, width=340)
+            self.dl_csv, self.dl_scan, self.dl_json, self.film.download, width=340)
         results = pn.Column(
             self.verdict, self.details, self.disclaimer,
             pn.pane.Bokeh(self.spec_fig, sizing_mode="stretch_width"),

@@ -8,11 +8,12 @@ shows the result and puts the fitted film into the film explorer's stack. Every 
 
 from __future__ import annotations
 
+import json
 import re
 
 import numpy as np
 import panel as pn
-from bokeh.models import ColumnDataSource, Legend, LinearAxis, Range1d
+from bokeh.models import ColumnDataSource, Legend, LegendItem, LinearAxis, Range1d
 from bokeh.plotting import figure
 
 from physics import InputError
@@ -85,13 +86,16 @@ class FilmModelEditor:
         self.adopting = False           # the explorer's stack is being changed by "Use this fitted film"
         self.model = pn.widgets.Select(label="Film model", options=FILM_MODELS, value="fixed", width=300,
                                        margin=(2, 5), css_classes=["fg-fit-model"])
-        self.roughness = TickBox("surface roughness (50 % void top layer)")
-        self.spread = TickBox("thickness spread in the spot")
+        self.roughness = TickBox("Surface roughness (50 % void top layer)")
+        self.spread = TickBox("Thickness spread in the spot")
         self.hint = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "11px", "color": "#555"})
         self.use_button = pn.widgets.Button(label="Use this fitted film", color="success", width=200, margin=(4, 5),
                                             visible=False, css_classes=["fg-fit-use-film"])
         self.use_status = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px"},
                                        css_classes=["fg-fit-use-status"])
+        self.download = pn.widgets.FileDownload(callback=self._nk_csv, filename="fitted_film_n_k.csv",
+                                                label="Fitted film: parameters, n and k (.csv)", width=300,
+                                                disabled=True, margin=(2, 5))
         self.nk_src = ColumnDataSource(dict(wl=[], n=[], n_lo=[], n_hi=[], k=[], k_lo=[], k_hi=[]))
         f = figure(height=220, sizing_mode="stretch_width", tools="pan,wheel_zoom,box_zoom,reset,save",
                    title=NK_TITLE, x_axis_label="wavelength (nm)", y_axis_label="refractive index n",
@@ -103,9 +107,12 @@ class FilmModelEditor:
         f.varea("wl", "k_lo", "k_hi", source=self.nk_src, fill_color="#c0392b", fill_alpha=0.2, y_range_name="k")
         k_line = f.line("wl", "k", source=self.nk_src, color="#c0392b", line_width=2, line_dash="dashed",
                         y_range_name="k")
-        f.add_layout(Legend(items=[("n (left axis)", [n_line]), ("k (right axis)", [k_line])],
-                            orientation="horizontal", location="top_right", label_text_font_size="11px", margin=0,
-                            padding=2), "above")
+        self._k_parts = [f.renderers[-2], k_line, f.right[0]]      # band, line, axis: hidden when k = 0
+        self._legend_items = [LegendItem(label="n (left axis)", renderers=[n_line]),
+                              LegendItem(label="k (right axis)", renderers=[k_line])]
+        self._legend = Legend(items=list(self._legend_items), orientation="horizontal", location="top_right",
+                              label_text_font_size="11px", margin=0, padding=2)
+        f.add_layout(self._legend, "above")
         self.nk_fig = f
         self.model.param.watch(lambda e: self._show_hint(), "value")
         self.roughness.param.watch(lambda e: self._show_hint(), "value")
@@ -127,7 +134,7 @@ class FilmModelEditor:
             self.hint.object = (f"The unknown layer's thickness and {what} are fitted together"
                                 + (", with a surface roughness layer" if self.roughness.value else "")
                                 + (" and a thickness spread" if self.spread.value else "")
-                                + ". One unknown layer; the second layer choice is not used.")
+                                + ". It fits one unknown layer: leave “Second unknown layer” at (none).")
             label = "Fit thickness and film"
         if hasattr(s, "fit_button"):
             s.fit_button.label = label
@@ -161,6 +168,7 @@ class FilmModelEditor:
     def clear(self):
         self.result = self.curves = self.args = None
         self.use_button.visible = False
+        self.download.disabled = True
         self.use_status.object = ""
         self.nk_src.data = dict(wl=[], n=[], n_lo=[], n_hi=[], k=[], k_lo=[], k_hi=[])
         self.nk_fig.visible = False
@@ -178,6 +186,7 @@ class FilmModelEditor:
         s.details.object = self._table(result, curves)
         fitted_model = result.model != "fixed"
         self.use_button.visible = fitted_model or result.roughness_nm is not None
+        self.download.disabled = False
         self.use_status.object = ""
         s.draw_film_curves(curves, f"Measured ({file_name}) and fitted: "
                                    f"d = {' ± '.join(value_text(result.thickness_nm, result.uncertainty_nm))} nm")
@@ -201,7 +210,7 @@ class FilmModelEditor:
         model = next(label for label, v in FILM_MODELS.items() if v == r.model)
         d, sd = value_text(r.thickness_nm, r.uncertainty_nm)
         lines = [f"<b>d = {d} ± {sd} nm (1σ)</b> — layer {layer + 1}, "
-                 + (f"fitted as {_esc(model)} (started from {_esc(old)})" if r.model != "fixed" else
+                 + (f"fitted with the film model {_esc(model)}, starting from {_esc(old)}" if r.model != "fixed" else
                     f"{_esc(old)}, optical constants as in the stack")]
         nk_text = f"n = {' ± '.join(value_text(n, sn)) if np.isfinite(sn) else f'{n:.4f}'}"
         if k == 0 and r.model in ("cauchy", "sellmeier"):
@@ -258,8 +267,39 @@ class FilmModelEditor:
         k_top = float(np.max(c.k + sk))
         self.nk_fig.extra_y_ranges["k"].start = 0.0
         self.nk_fig.extra_y_ranges["k"].end = k_top * 1.1 if k_top > 0 else 0.01
-        self.nk_fig.title.text = (f"{NK_TITLE} (shaded: ±1σ)" if c.sigma_n is not None else NK_TITLE)
+        absorbing = bool(np.any(c.k > 0))
+        for part in self._k_parts:
+            part.visible = absorbing
+        self._legend.items = self._legend_items if absorbing else self._legend_items[:1]
+        self.nk_fig.title.text = (NK_TITLE + (" (shaded: ±1σ)" if c.sigma_n is not None else "")
+                                  + ("" if absorbing else "; k = 0 everywhere (a transparent model)"))
         self.nk_fig.visible = True
+
+    def _nk_csv(self):
+        import io
+        from datetime import date
+
+        r, c, a = self.result, self.curves, self.args
+        s = self.section
+        info = (s.result_info or {}).get("import_info", {})
+        lines = ["# fringegauge film fit (a model fit, not certified metrology)",
+                 f"# date: {(s.result_info or {}).get('date', date.today().isoformat())}",
+                 f"# spectrum file: {info.get('sample_file', '')}; {c.wavelength_nm[0]:g}-{c.wavelength_nm[-1]:g} nm, "
+                 f"{r.n_points} points; angle_deg {a['angle_deg']:g}; polarization {a['polarization']}",
+                 f"# layer {a['layer'] + 1}, film model: {r.model}; rms residual (fraction): {r.rms:.6g}; "
+                 f"quality: {r.quality}"]
+        lines += [f"# {name}: {r.parameters[name]:.10g} +/- {r.uncertainties[name]:.3g} (1 sigma)"
+                  for name in r.parameter_names]
+        if r.message:
+            lines.append(f"# note: {page_text(r.message)}")
+        lines.append("# material as a stack file stores it: " + json.dumps(r.material.spec(), ensure_ascii=False))
+        lines.append("wavelength_nm,n,sigma_n,k,sigma_k")
+        zero = np.zeros_like(c.n)
+        sn = c.sigma_n if c.sigma_n is not None else zero
+        sk = c.sigma_k if c.sigma_k is not None else zero
+        lines += [f"{w:.6g},{n:.8g},{a_:.3g},{k:.8g},{b:.3g}" for w, n, a_, k, b in zip(c.nk_wavelength_nm, c.n, sn,
+                                                                                          c.k, sk)]
+        return io.StringIO("\n".join(lines) + "\n")
 
     # ------------------------------------------------------------------ use it
     def fitted_layers(self, rows: list, file_name: str, day: str) -> tuple[list, int]:
