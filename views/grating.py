@@ -24,6 +24,7 @@ from functools import partial
 
 import numpy as np
 import panel as pn
+import param
 from bokeh.models import Arrow, ColumnDataSource, DataRange1d, HoverTool, Range1d, Span, VeeHead
 from bokeh.plotting import figure
 from PIL import Image
@@ -37,7 +38,9 @@ from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_gr
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, field_pair
 from .inverse import _locked
-from .limits import check_grid_points, interactive_executor, post_to_page, served
+from . import workers
+from .limits import (JobCancelled, Limits, check_grid_points, heavy_job, interactive_executor, post_to_page,
+                     served, session_key)
 from .state import parse_number
 
 log = logging.getLogger("fringegauge")
@@ -338,7 +341,7 @@ def compute_readouts(s: GratingSettings) -> dict:
         resolvable_nm=gr.resolvable_difference_nm(c, g, s.illuminated_width_mm, m),
         free_spectral_range_nm=gr.free_spectral_range_nm(lo, m),
         littrow_deg=gr.littrow_angle_deg(c, g, m),
-        efficiency=float(np.asarray(gr.groove_efficiency(c, g, m, **s.groove_kw()))),
+        efficiency=float(np.asarray(gr.groove_efficiency(c, g, m, **s.groove_kw(), incidence_deg=a))),
         blaze_nm=None, blaze_at_deviation_nm=None, deviation_deg=None,
         rayleigh_nm={},
     )
@@ -361,7 +364,8 @@ def missing_orders(s: GratingSettings) -> list[int]:
     if s.groove != "lamellar":
         return []
     return [k for k in fan_orders(s) if k != 0 and abs(k) <= MAX_FAN_ORDER
-            and float(np.asarray(gr.groove_efficiency(s.centre_nm, s.lines_per_mm, k, **s.groove_kw())))
+            and float(np.asarray(gr.groove_efficiency(s.centre_nm, s.lines_per_mm, k, **s.groove_kw(),
+                                                       incidence_deg=s.incidence_deg)))
             < MISSING_EFFICIENCY]
 
 
@@ -405,7 +409,7 @@ def compute_line_shape(s: GratingSettings, n_slits: int) -> dict:
         bk = gr.diffraction_angle_deg(c, g, k, a)
         if not np.isfinite(bk) or not beta[0] <= bk <= beta[-1]:
             continue
-        eff = float(np.asarray(gr.groove_efficiency(c, g, k, **s.groove_kw())))
+        eff = float(np.asarray(gr.groove_efficiency(c, g, k, **s.groove_kw(), incidence_deg=a)))
         missing = s.groove == "lamellar" and k != 0 and eff < MISSING_EFFICIENCY
         orders.append(dict(order=k, beta=float(bk), efficiency=eff, missing=missing))
     return dict(beta=beta, rel=rel, db=10 * np.log10(np.maximum(rel, 10 ** (LOG_FLOOR_DB / 10))),
@@ -502,6 +506,79 @@ def _markdown_bold(text: str) -> str:
     return "".join(f"<b>{p}</b>" if i % 2 else p for i, p in enumerate(parts))
 
 
+# ---------------------------------------------------------------------- rigorous efficiency
+#: Wavelengths of the rigorous curve over the band: fine enough to show a Rayleigh anomaly's edge
+#: (a few nm wide) and about a second of solver time for a lamellar groove.
+RIGOROUS_SAMPLES = 101
+#: Groove profiles and materials offered for the rigorous curve (physics.material names).
+RIGOROUS_PROFILES = ("lamellar", "sinusoidal", "blazed")
+RIGOROUS_MATERIALS = ("Al", "Ag", "Au", "SiO2")
+RIGOROUS_NOTE = ("Rigorous: Maxwell's equations solved for the groove (coupled waves), absolute efficiency "
+                 "of an ideal grating (no surface roughness or oxide). Scalar: the page's sawtooth/rectangle "
+                 "estimate, relative to its peak.")
+
+
+class RigorousSettings(param.Parameterized):
+    """What the rigorous efficiency curve needs beyond the grating settings (the band, order, kind,
+    incidence, duty cycle and blaze angle come from :class:`GratingSettings`)."""
+
+    profile = param.Selector(default="blazed", objects=list(RIGOROUS_PROFILES),
+                             doc="Groove shape; sinusoidal and blazed grooves are cut into a staircase.")
+    depth_nm = param.Number(default=None, allow_None=True, bounds=(1.0, 5000.0),
+                            doc="Groove depth peak to valley (nm); empty: 100 nm, or the right-angle apex "
+                                "depth for blazed grooves.")
+    material = param.Selector(default="Al", objects=list(RIGOROUS_MATERIALS),
+                              doc="Grating material (and substrate); air above.")
+
+
+def compute_rigorous(s: GratingSettings, profile: str, depth_nm, material: str, channel=None) -> dict:
+    """The rigorous TE, TM and unpolarized efficiency of the order of interest over the band, the
+    scalar estimate beside it, the Rayleigh wavelengths in the band and where scalar theory stops
+    being trustworthy. ``channel`` (optional) receives progress reports."""
+    lo, hi = s.band
+    g, m, a = s.lines_per_mm, s.order, s.incidence_deg
+    wl = np.linspace(lo, hi, RIGOROUS_SAMPLES)
+    kw = dict(profile=profile, depth_nm=depth_nm, duty_cycle=s.duty_cycle,
+              blaze_angle_deg=s.blaze_angle_deg if profile == "blazed" else None, material=material, kind=s.kind)
+    detail = {}
+    for step, pol in enumerate(("TE", "TM")):
+        if channel is not None:
+            channel.report(step / 2, f"solving {pol} ({'s' if pol == 'TE' else 'p'}) light…")
+        detail[pol] = gr.rigorous_efficiency_detail(wl, g, m, a, polarization=pol, **kw)
+    te, tm = detail["TE"].efficiency[:, 0], detail["TM"].efficiency[:, 0]
+    scalar_kind = "blazed" if profile == "blazed" else "lamellar"
+    scalar = np.asarray(gr.groove_efficiency(wl, g, m, scalar_kind, s.duty_cycle,
+                                             s.blaze_angle_deg if profile == "blazed" else None, incidence_deg=a),
+                        dtype=float) * np.ones_like(wl)
+    scalar = np.where(np.isfinite(gr.diffraction_angle_deg(wl, g, m, a)), scalar, 0.0)
+    d = float(gr.groove_spacing_nm(g))
+    rayleigh = []
+    reach = int(np.ceil(2 * d / lo)) + 1
+    for k in [k for k in range(-reach, reach + 1) if k != 0]:
+        lam = float(gr.rayleigh_wavelength_nm(g, k, a))
+        if lo <= lam <= hi:
+            rayleigh.append((k, lam))
+    edge = d / gr.SCALAR_TRUST_D_OVER_LAMBDA                            # d/λ = 3 here
+    if edge >= hi:
+        trust = (f"Scalar theory is fair across this band: d/λ ≥ {gr.SCALAR_TRUST_D_OVER_LAMBDA:g} everywhere "
+                 "(common practice).")
+    elif edge <= lo:
+        trust = (f"Scalar theory is not to be trusted anywhere in this band: d/λ < {gr.SCALAR_TRUST_D_OVER_LAMBDA:g} "
+                 f"(d = {d:.0f} nm; common practice), where efficiency depends on polarization and shows anomalies.")
+    else:
+        trust = (f"Scalar theory stops being trustworthy above {edge:.0f} nm, where d/λ < "
+                 f"{gr.SCALAR_TRUST_D_OVER_LAMBDA:g} (common practice).")
+    if channel is not None:
+        channel.report(1.0, "done")
+    return dict(wavelength_nm=wl, te=te, tm=tm, unpolarized=0.5 * (te + tm), scalar=scalar, rayleigh=rayleigh,
+                trust=trust, trust_edge_nm=edge, orders_te=detail["TE"].fourier_orders,
+                orders_tm=detail["TM"].fourier_orders,
+                converged=detail["TE"].converged and detail["TM"].converged,
+                change=max(detail["TE"].change if not detail["TE"].converged else 0.0,
+                           detail["TM"].change if not detail["TM"].converged else 0.0),
+                slices=detail["TE"].slices, settings=(s, profile, depth_nm, material))
+
+
 def _footer() -> str:
     return (f"fringegauge {date.today().isoformat()} · computed colours (scalar groove efficiency), approximate · "
             "never look at a laser or the sun along a diffracted order")
@@ -524,6 +601,8 @@ class GratingSection:
         self.line_shape = None
         self.plan = None
         self.plan_rejected = []
+        self.rigorous = None            # the last rigorous efficiency curve shown (compute_rigorous's dict)
+        self._rigorous_job = 0
         self.generation = 0
         self.timings_ms = {}
         self.on_change = []             # callables run after the settings change (the page address follows)
@@ -533,6 +612,7 @@ class GratingSection:
         self._build_widgets(stem)
         self._style_messages()
         self._build_plots()
+        self._build_rigorous()
         self._sync_fields()
         self._wire()
         self.refresh()
@@ -1053,6 +1133,8 @@ class GratingSection:
         self.timings_ms["compute"] = results["ms"]
         self.timings_ms["draw"] = 1000 * (time.perf_counter() - t0)
         self._refresh_map(s)
+        if getattr(self, "rigorous", None) is not None:
+            self._mark_rigorous_stale()
 
     def _draw_fan(self):
         s, fan = self.shown, self.fan
@@ -1300,6 +1382,177 @@ class GratingSection:
             "detector; resolution = 3 pixels of the reciprocal linear dispersion; best resolution first. A band "
             f"wider than one free spectral range is kept when a stepped long-pass filter clears it for {source}.</div>")
 
+    # ------------------------------------------------------------------ rigorous efficiency (on request)
+    def _build_rigorous(self):
+        st = self.rigorous_state = RigorousSettings(profile="blazed" if self.settings.groove == "blazed" else "lamellar")
+        self.rig_profile = pn.widgets.Select.from_param(st.param.profile, name="Profile", width=130, margin=(2, 5))
+        self.rig_material = pn.widgets.Select.from_param(st.param.material, name="Material", width=90, margin=(2, 5))
+        self.rig_depth = pn.widgets.TextInput(label="Depth (nm)", placeholder="auto", width=100, margin=(2, 5))
+        self.rig_button = pn.widgets.Button(label="Compute rigorous efficiency", color="primary", width=230,
+                                            margin=(20, 5, 2, 5), css_classes=["fg-rigorous-compute"])
+        self.rig_progress = pn.indicators.Progress(value=0, max=100, width=200, visible=False, margin=(24, 5, 2, 5))
+        self.rig_status = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"},
+                                       sizing_mode="stretch_width", css_classes=["fg-rigorous-status"])
+        self.rig_text = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"},
+                                     sizing_mode="stretch_width", css_classes=["fg-rigorous-text"])
+        self.rig_src = ColumnDataSource(dict(wl=[], te=[], tm=[], unpolarized=[], scalar=[]))
+        self.rig_ray_src = ColumnDataSource(dict(x=[], y0=[], y1=[], label=[]))
+        self.rig_trust_src = ColumnDataSource(dict(left=[], right=[]))
+        f = figure(height=300, sizing_mode="stretch_width", y_range=Range1d(0.0, 1.08), x_range=DataRange1d(),
+                   tools="pan,wheel_zoom,box_zoom,reset,save", toolbar_location="right", min_border=4,
+                   title="Efficiency vs wavelength (press the button to compute)",
+                   x_axis_label="wavelength (nm)", y_axis_label="efficiency")
+        f.title.text_font_size = "12px"
+        f.quad(left="left", right="right", bottom=0.0, top=1.08, source=self.rig_trust_src, fill_color="#f3e6c8",
+               fill_alpha=0.6, line_alpha=0.0, legend_label="d/λ < 3: scalar untrustworthy")
+        f.segment(x0="x", x1="x", y0="y0", y1="y1", source=self.rig_ray_src, line_color="#7a4f9e", line_dash="dotted",
+                  line_width=1.5)
+        f.text(x="x", y="y1", text="label", source=self.rig_ray_src, angle=np.pi / 2, text_font_size="10px",
+               text_color="#7a4f9e", text_align="right", text_baseline="bottom", x_offset=-2)
+        f.line("wl", "te", source=self.rig_src, color="#1f5fa8", line_width=1.8, legend_label="TE (s), rigorous")
+        f.line("wl", "tm", source=self.rig_src, color="#c0392b", line_width=1.8, legend_label="TM (p), rigorous")
+        f.line("wl", "unpolarized", source=self.rig_src, color="#222", line_width=2.6,
+               legend_label="unpolarized, rigorous")
+        f.line("wl", "scalar", source=self.rig_src, color="#888", line_width=1.8, line_dash="dashed",
+               legend_label="scalar (relative)")
+        f.add_tools(HoverTool(tooltips=[("λ", "@wl{0.0} nm"), ("TE", "@te{0.000}"), ("TM", "@tm{0.000}"),
+                                        ("unpolarized", "@unpolarized{0.000}"), ("scalar", "@scalar{0.000}")],
+                              mode="vline", renderers=[f.renderers[-2]]))
+        f.legend.location = "top_left"
+        f.legend.click_policy = "hide"
+        f.legend.label_text_font_size = "11px"
+        f.legend.background_fill_alpha = 0.7
+        self.rig_fig = f
+        self.rig_button.on_click(lambda e: self.compute_rigorous())
+
+    def _rigorous_request(self):
+        """(profile, depth_nm, material) from the widgets; raises InputError for a bad depth."""
+        text = (self.rig_depth.value or "").strip()
+        if text:
+            try:
+                depth = float(text.replace(",", "."))
+            except ValueError:
+                raise InputError(f"Depth {text!r} is not a number; give the groove depth in nm (e.g. 100) or "
+                                 "leave it empty for the default.") from None
+            lo, hi = RigorousSettings.param.depth_nm.bounds
+            if not (np.isfinite(depth) and lo <= depth <= hi):
+                raise InputError(f"Depth {text} nm is outside {lo:g}–{hi:g} nm; give the groove depth peak to "
+                                 "valley in that range, or leave it empty for the default.")
+            self.rigorous_state.depth_nm = depth
+        else:
+            self.rigorous_state.depth_nm = None
+        st = self.rigorous_state
+        return st.profile, st.depth_nm, st.material
+
+    def compute_rigorous(self, sync: bool = False) -> bool:
+        """Compute the rigorous efficiency curve of the current settings (in a worker process when served;
+        about a second). Returns True when a computation was started (or done, when not served)."""
+        try:
+            profile, depth, material = self._rigorous_request()
+        except InputError as exc:
+            self._rigorous_error(exc)
+            return False
+        self._rigorous_job += 1
+        job = self._rigorous_job
+        s = self.shown
+        doc = pn.state.curdoc
+        live = served(doc)
+        session = session_key(self)
+        self.rig_button.disabled = True
+        self.rig_progress.visible, self.rig_progress.value = True, 0
+        self.rig_status.object = "computing the rigorous efficiency (about a second)…"
+
+        def gone():
+            return job != self._rigorous_job or (live and not served(doc))
+
+        if sync or not live:
+            channel = workers.LocalChannel(partial(self._rigorous_progress, job), gone)
+            try:
+                with heavy_job("grating_efficiency", RIGOROUS_SAMPLES, session):
+                    out = compute_rigorous(s, profile, depth, material, channel)
+            except InputError as exc:
+                out = exc
+            except JobCancelled:
+                return True
+            self._rigorous_done(job, out)
+            return True
+
+        async def run():
+            limits = Limits.from_env()
+            try:
+                with heavy_job("grating_efficiency", RIGOROUS_SAMPLES, session, limits):
+                    channel = await workers.new_channel()
+                    out = await workers.run_in_worker(
+                        limits.max_jobs_server, partial(compute_rigorous, s, profile, depth, material),
+                        channel=channel, cancelled=gone,
+                        on_progress=lambda f, text: post_to_page(doc, partial(self._rigorous_progress, job, f, text)))
+            except InputError as exc:
+                out = exc
+            except JobCancelled:
+                return
+            except workers.WorkerLost as exc:
+                log.error("grating efficiency: worker process lost", extra={"session": session})
+                out = InputError(str(exc))
+            except Exception:  # never lose the session to one failed computation
+                log.exception("grating efficiency failed")
+                out = InputError("The rigorous efficiency failed unexpectedly; the server log has the details.")
+            post_to_page(doc, partial(self._rigorous_done, job, out))
+        pn.state.execute(run)
+        return True
+
+    def _rigorous_progress(self, job, fraction, text):
+        if job == self._rigorous_job:
+            self.rig_progress.value = int(round(100 * fraction))
+            self.rig_status.object = f"computing the rigorous efficiency: {_esc(text)}"
+
+    def _rigorous_error(self, exc):
+        self.rig_status.object = f"<span style='color:#b00020'>{_esc(str(exc))}</span>"
+
+    def _rigorous_done(self, job, out):
+        if job != self._rigorous_job:                    # superseded by a newer request
+            return
+        self.rig_button.disabled = False
+        self.rig_progress.visible = False
+        if isinstance(out, Exception):
+            self._rigorous_error(out)
+            return
+        self.rigorous = out
+        self.rig_status.object = ""
+        self._draw_rigorous()
+
+    def _draw_rigorous(self):
+        r = self.rigorous
+        s, profile, depth, material = r["settings"]
+        wl = r["wavelength_nm"]
+        self.rig_src.data = dict(wl=wl, te=r["te"], tm=r["tm"], unpolarized=r["unpolarized"], scalar=r["scalar"])
+        self.rig_ray_src.data = dict(x=[lam for _, lam in r["rayleigh"]], y0=[0.0] * len(r["rayleigh"]),
+                                     y1=[1.06] * len(r["rayleigh"]),
+                                     label=[f"Rayleigh (order {_order_text(k)})" for k, _ in r["rayleigh"]])
+        edge, hi = r["trust_edge_nm"], float(wl[-1])
+        self.rig_trust_src.data = (dict(left=[max(edge, float(wl[0]))], right=[hi]) if edge < hi
+                                   else dict(left=[], right=[]))
+        depth_text = f"{depth:g} nm deep" if depth is not None else "default depth"
+        grooves = (f"blazed {s.blaze_angle_deg:g}°" if profile == "blazed" else
+                   f"lamellar, duty {s.duty_cycle:g}" if profile == "lamellar" else "sinusoidal")
+        self.rig_fig.title.text = (f"Order {_order_text(s.order)} {s.kind} efficiency: {s.lines_per_mm:g} lines/mm "
+                                   f"{material}, {grooves}, {depth_text}, α = {s.incidence_deg:g}°")
+        orders = (f"{r['orders_te']} Fourier orders for TE, {r['orders_tm']} for TM"
+                  + (f", {r['slices']} slices of the profile" if r["slices"] > 1 else ""))
+        conv = ("converged to 0.001" if r["converged"] else
+                f"<b>not converged</b> to 0.001 at the cap (last change {r['change']:.2g}; TM on metals converges "
+                "slowly), so read the curve to about that")
+        stale = "" if (s, profile, depth, material) == (self.shown, *self._rigorous_request_quiet()) else \
+            "<br><i>The settings have changed since: press the button again for the current ones.</i>"
+        self.rig_text.object = (f"{_esc(r['trust'])} {orders}; {conv}. {RIGOROUS_NOTE}{stale}")
+
+    def _rigorous_request_quiet(self):
+        st = self.rigorous_state
+        return st.profile, st.depth_nm, st.material
+
+    def _mark_rigorous_stale(self):
+        if self.rigorous is not None:
+            self._draw_rigorous()
+
     # ------------------------------------------------------------------ colour map (background)
     def _refresh_map(self, s: GratingSettings, sync: bool = False):
         key = s.map_key()
@@ -1376,7 +1629,8 @@ class GratingSection:
                     "reciprocal_linear_dispersion_nm_per_mm", "relative_efficiency"])
         for m in self.fan["drawn"]:
             beta = np.atleast_1d(gr.diffraction_angle_deg(wl, s.lines_per_mm, m, s.incidence_deg))
-            eff = np.broadcast_to(gr.groove_efficiency(wl, s.lines_per_mm, m, **s.groove_kw()), wl.shape)
+            eff = np.broadcast_to(gr.groove_efficiency(wl, s.lines_per_mm, m, **s.groove_kw(),
+                                                      incidence_deg=s.incidence_deg), wl.shape)
             if m:
                 disp = np.atleast_1d(gr.angular_dispersion_deg_per_nm(wl, s.lines_per_mm, m, s.incidence_deg))
                 rld = np.atleast_1d(gr.reciprocal_linear_dispersion_nm_per_mm(wl, s.lines_per_mm, s.focal_length_mm,
@@ -1471,6 +1725,11 @@ class GratingSection:
             self.map_status,
             pn.pane.Bokeh(self.map_fig, sizing_mode="stretch_width"),
             self.colour_caption,
+            _rule(),
+            pn.Row(self.rig_profile, self.rig_depth, self.rig_material, self.rig_button, self.rig_progress, margin=0),
+            self.rig_status,
+            pn.pane.Bokeh(self.rig_fig, sizing_mode="stretch_width"),
+            self.rig_text,
             _rule(),
             self.plan_html,
             self.caution_end,
