@@ -87,6 +87,8 @@ def test_cauchy_fit_shows_thickness_n_and_parameters_and_goes_into_the_explorer(
     assert abs(float(state.stack.layers[0].material.nk(633.0).real) - n633) < 0.01
     assert "layer 1 is now" in section.film.use_status.object and not section.film.use_button.visible
     assert section.film.result is not None                       # the fit stays shown: it is the stack's film now
+    section._on_state()                                           # as a served page calls it, a tick later
+    assert section.film.result is not None
     assert "fitted" in state.file_text()                          # and a saved stack file holds it
     section.ex.state.angle_deg = 10.0                             # another angle: that fit no longer applies
     assert section.film.result is None and "changed since the last fit" in section.verdict.object

@@ -33,7 +33,7 @@ from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
 from .uploads import COMPACT, CappedDropper, UploadReader
 from .explorer import Field, TickBox, _esc, _fmt, _label, field_pair
-from .fit_film import FilmModelEditor, page_text as film_page_text
+from .fit_film import FilmModelEditor, page_text as film_page_text, settings_key
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 from .urlstate import widget_fields
@@ -261,8 +261,8 @@ class SpectrumFitSection:
 
     def _on_state(self, *events):
         self._sync_layers()
-        if self.film.adopting:                      # the fitted film going into the stack: the fit stays current
-            return
+        if self.film.adopting or self.film.adopted == settings_key(self.ex.state):
+            return                                  # the fitted film went into the stack: the fit stays current
         if "reference" in self.files and self.ref_mode.value == "silicon":
             self._reimport()                        # the computed reference depends on the angle and ambient
         if self.result is not None or self.film.result is not None:    # a fit of another model must not look current

@@ -75,6 +75,11 @@ def value_text(value: float, sigma: float) -> tuple[str, str]:
     return f"{value:.{digits}f}", f"{sigma:.{digits}f}" if digits else f"{sigma:.0f}"
 
 
+def settings_key(state) -> tuple:
+    """The explorer settings a spectrum fit depends on: stack, unknown layer, angle, polarization."""
+    return state.stack_json, state.swept_layer, state.angle_deg, state.polarization
+
+
 class FilmModelEditor:
     """Film model choice, the fitted film's table and n, k plot, and "Use this fitted film", for one section."""
 
@@ -84,6 +89,7 @@ class FilmModelEditor:
         self.curves = None              # physics.filmcurves.FilmFitCurves shown
         self.args = None                # the fit's arguments
         self.adopting = False           # the explorer's stack is being changed by "Use this fitted film"
+        self.adopted = None             # the explorer's settings it left (a served page calls watchers a tick later)
         self.model = pn.widgets.Select(label="Film model", options=FILM_MODELS, value="fixed", width=300,
                                        margin=(2, 5), css_classes=["fg-fit-model"])
         self.roughness = TickBox("Surface roughness (50 % void top layer)")
@@ -166,7 +172,7 @@ class FilmModelEditor:
 
     # ------------------------------------------------------------------ result
     def clear(self):
-        self.result = self.curves = self.args = None
+        self.result = self.curves = self.args = self.adopted = None
         self.use_button.visible = False
         self.download.disabled = True
         self.use_status.object = ""
@@ -331,6 +337,7 @@ class FilmModelEditor:
             self.adopting = True
             try:
                 state.set_stack(layers=rows, swept_layer=layer)
+                self.adopted = settings_key(state)
             finally:
                 self.adopting = False
         except InputError as exc:
