@@ -1418,7 +1418,7 @@ class GratingSection:
         f.add_tools(HoverTool(tooltips=[("λ", "@wl{0.0} nm"), ("TE", "@te{0.000}"), ("TM", "@tm{0.000}"),
                                         ("unpolarized", "@unpolarized{0.000}"), ("scalar", "@scalar{0.000}")],
                               mode="vline", renderers=[f.renderers[-2]]))
-        f.legend.location = "top_left"
+        f.legend.location = "bottom_left"         # efficiencies rarely fall that low; the Rayleigh labels sit on top
         f.legend.click_policy = "hide"
         f.legend.label_text_font_size = "11px"
         f.legend.background_fill_alpha = 0.7
