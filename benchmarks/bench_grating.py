@@ -5,7 +5,7 @@ Run:  python benchmarks/bench_grating.py
 1. Lamellar Al grating, 1200 lines/mm, 100 nm deep, duty 0.5, 10° incidence, order 1, 200 wavelengths
    400-800 nm, TE and TM (``rigorous_efficiency_detail(..., polarization="unpolarized")``).
    Goal: <= 1 s.
-2. Blazed Al grating, 600 lines/mm, θ_B = 8.6°, right-angle apex (10 slices), same band and order.
+2. Blazed Al grating, 600 lines/mm, θ_B = 8.6°, right-angle apex (246 nm deep: 13 slices), same band and order.
    Goal: <= 3 s.
 Reference: the scalar ``groove_efficiency`` curve of the same grating (the page's former answer).
 Each figure is the best of a few runs; the ratio rigorous / scalar is printed beside it, with the
