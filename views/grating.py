@@ -37,6 +37,7 @@ from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_gr
 
 from . import render
 from .explorer import Field, _esc, _fmt, _label, _rgba, _rule, field_pair
+from .figures import RangeHolder
 from .inverse import _locked
 from . import workers
 from .limits import (JobCancelled, Limits, check_grid_points, heavy_job, interactive_executor, post_to_page,
@@ -1423,6 +1424,7 @@ class GratingSection:
         f.legend.label_text_font_size = "11px"
         f.legend.background_fill_alpha = 0.7
         self.rig_fig = f
+        self.rig_holder = RangeHolder(f, x=(400.0, 700.0), y=(0.0, 1.0))     # an empty figure still has a range
         self.rig_button.on_click(lambda e: self.compute_rigorous())
 
     def _rigorous_request(self):
@@ -1525,6 +1527,7 @@ class GratingSection:
         s, profile, depth, material = r["settings"]
         wl = r["wavelength_nm"]
         self.rig_src.data = dict(wl=wl, te=r["te"], tm=r["tm"], unpolarized=r["unpolarized"], scalar=r["scalar"])
+        self.rig_holder.release()
         self.rig_ray_src.data = dict(x=[lam for _, lam in r["rayleigh"]], y0=[0.0] * len(r["rayleigh"]),
                                      y1=[1.06] * len(r["rayleigh"]),
                                      label=[f"Rayleigh (order {_order_text(k)})" for k, _ in r["rayleigh"]])
