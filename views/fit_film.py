@@ -251,7 +251,9 @@ class FilmModelEditor:
         for name in r.parameter_names:
             label, unit, factor = PARAMETER_LABELS.get(name, (name, "", 1.0))
             v, s = value_text(factor * r.parameters[name], factor * r.uncertainties[name])
-            mark = " (at its limit)" if name in c.at_bounds else ""
+            mark = ""
+            if name in c.at_bounds:                 # the ± says little there: the value in full, the ± short
+                v, s, mark = f"{factor * r.parameters[name]:.4g}", f"{factor * r.uncertainties[name]:.2g}", " (at its limit)"
             rows.append(f"<tr><td>{_esc(label)}{mark}</td><td style='text-align:right'>{v}</td>"
                         f"<td>± {s}</td><td>{_esc(unit)}</td></tr>")
         band = f"{c.wavelength_nm[0]:g}–{c.wavelength_nm[-1]:g} nm"
