@@ -105,7 +105,7 @@ class FilmModelEditor:
         self.nk_src = ColumnDataSource(dict(wl=[], n=[], n_lo=[], n_hi=[], k=[], k_lo=[], k_hi=[]))
         f = figure(height=220, sizing_mode="stretch_width", tools="pan,wheel_zoom,box_zoom,reset,save",
                    title=NK_TITLE, x_axis_label="wavelength (nm)", y_axis_label="refractive index n",
-                   y_range=Range1d(1.0, 3.0), visible=False)
+                   y_range=Range1d(1.0, 3.0), x_range=Range1d(400.0, 1000.0), visible=False)   # set when drawn
         f.extra_y_ranges = {"k": Range1d(0.0, 0.1)}
         f.add_layout(LinearAxis(y_range_name="k", axis_label="extinction coefficient k"), "right")
         f.varea("wl", "n_lo", "n_hi", source=self.nk_src, fill_color="#1f6fb4", fill_alpha=0.2)
@@ -269,6 +269,9 @@ class FilmModelEditor:
         sk = c.sigma_k if c.sigma_k is not None else zero
         self.nk_src.data = dict(wl=c.nk_wavelength_nm, n=c.n, n_lo=c.n - sn, n_hi=c.n + sn, k=c.k,
                                 k_lo=np.clip(c.k - sk, 0.0, None), k_hi=c.k + sk)
+        wl = np.asarray(c.nk_wavelength_nm, dtype=float)
+        if wl.size > 1:
+            self.nk_fig.x_range.start, self.nk_fig.x_range.end = float(wl.min()), float(wl.max())
         lo, hi = float(np.min(c.n - sn)), float(np.max(c.n + sn))
         pad = max(0.05 * (hi - lo), 0.01)
         self.nk_fig.y_range.start, self.nk_fig.y_range.end = lo - pad, hi + pad
