@@ -414,6 +414,8 @@ def map_grid_counts(n_thickness: int, n_angle: int, n_wavelength: int, max_grid_
 SPECTRUM_SAMPLES_PER_FRINGE = 4
 #: Most sub-samples per plotted step when the fringes are finer than the step (bounds the work per move).
 MAX_SUBSAMPLES = 64
+#: Optical path below which a layer makes no fringes worth sampling, nm (a typed 1e-300 nm would overflow).
+MIN_FRINGE_PATH_NM = 1e-6
 #: Reference wavelength at which the fringe spacing is quoted, nm (near the eye's peak sensitivity).
 SPACING_WAVELENGTH_NM = 550.0
 
@@ -421,6 +423,8 @@ SPACING_WAVELENGTH_NM = 550.0
 def _spectrum_grid(stack: Stack, wl: np.ndarray):
     """(sub-samples per step m, fringe spacing at 550 nm): m = 1 while the step resolves the fringes."""
     path = fringe_path_nm(stack, wl) if wl.size > 2 else 0.0
+    if not path > MIN_FRINGE_PATH_NM:              # no layer to speak of (a typed 1e-300 nm): no fringes
+        path = 0.0
     spacing = SPACING_WAVELENGTH_NM ** 2 / path if path > 0 else float("inf")
     if wl.size < 2 or path <= 0:
         return 1, spacing
