@@ -56,6 +56,8 @@ MAX_ANGLE_DEG = 90.0
 AMBIENT_K_MAX = 1e-6
 #: Branch test tolerance for Im(kz) near zero (Byrnes 2016 uses 100 machine epsilons).
 _BRANCH_EPS = 100 * np.finfo(float).eps
+#: A wave's power flow below this fraction of its size is a rounding residue: it carries no power.
+POWER_FLOW_EPS = 100 * np.finfo(float).eps
 #: Elements per chunk of a sweep: keeps the working arrays in cache and memory bounded.
 _SWEEP_CHUNK = 1 << 17
 #: Thicknesses a uniform sweep carries its phase recurrence across before re-evaluating the exponential
@@ -307,15 +309,18 @@ class _Optics:
     def power_factor(self, into, outof, pol):
         """T = |t|² × this factor, for a wave from medium ``outof`` into medium ``into`` (Byrnes eqs. 21-22)."""
         if pol == "s":
-            num, den = self.kz[into].real, self.kz[outof].real
+            num, full = self.kz[into].real, self.kz[outof]
         else:
             num = (self.N[into][None, :] * np.conj(self.cos[into])).real
-            den = (self.N[outof][None, :] * np.conj(self.cos[outof])).real
-        with np.errstate(divide="ignore", invalid="ignore"):
-            factor = num / den
+            full = self.N[outof][None, :] * np.conj(self.cos[outof])
+        den = full.real
         # A wave that carries no power (evanescent in a transparent medium, past total internal
-        # reflection) transmits none: 0, not 0/0.
-        return np.where(den != 0, factor, 0.0)
+        # reflection) transmits none: 0, not 0/0; nor does one whose power flow is a rounding residue
+        # of its size (a k of 1e-311 past total reflection), which would overflow the ratio.
+        carries = np.abs(den) > POWER_FLOW_EPS * np.abs(full)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            factor = num / np.where(carries, den, 1.0)
+        return np.where(carries, factor, 0.0)
 
     def single_pass(self):
         """Intensity transmitted on one pass through the thick substrate, exp(−4π Im(kz) d/λ)."""

@@ -196,3 +196,13 @@ def test_weakly_absorbing_ambient_is_treated_as_transparent():
     """Water's page carries k ~ 2e-9 in the visible: it may be the ambient (oil seen from under water)."""
     R = Stack([Layer("oil", 300.0)], substrate="air", ambient="water").reflectance(np.linspace(400, 700, 4), 20.0)
     assert np.all(np.isfinite(R)) and np.all(R >= 0)
+
+
+def test_a_wave_past_total_reflection_with_a_vanishing_k_carries_no_power():
+    """A substrate of n = 0.5 with k = 2e-311 seen at 45° (total reflection, a k that is a rounding residue)
+    through a thick plate: R = 1, T = 0, not an overflow to NaN (found by a random search of indices)."""
+    st = Stack([], substrate=complex(0.5, 2.225073858507e-311), ambient=1.0, substrate_thickness_mm=0.5)
+    wl = np.linspace(400.0, 700.0, 7)
+    for pol in ("s", "p", "unpolarized"):
+        np.testing.assert_allclose(st.reflectance(wl, 45.0, pol), 1.0, atol=1e-12)
+        np.testing.assert_allclose(st.transmittance(wl, 45.0, pol), 0.0, atol=1e-12)
