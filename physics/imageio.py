@@ -3,9 +3,11 @@
 :func:`load_image` turns bytes, a file path or a numpy array into a
 :class:`Photo`: an (height, width, 3) RGB array of the file's own code values,
 8 or 16 bits per channel, turned upright by the file's EXIF orientation tag.
-:meth:`Photo.linear` decodes the code values to linear light with the sRGB
-transfer function; :func:`box_mean_linear` and :func:`box_saturated_fraction`
-summarise a rectangle of pixels.
+:attr:`Photo.linear` says whether the code values are linear light (a linear
+16-bit TIFF, a camera RAW) or sRGB-encoded (JPEG, PNG, 8-bit TIFF), and
+:meth:`Photo.linear_rgb` turns them into linear light (code / max_code, or the
+sRGB transfer function); :func:`box_mean_linear` and
+:func:`box_saturated_fraction` summarise a rectangle of pixels.
 
 Safety: the file size is checked before reading, the format by its first bytes,
 and the pixel count from the header before any pixel is decoded. Every bad
@@ -112,7 +114,7 @@ def srgb_decode_lut(bit_depth: int, dtype=np.float32) -> np.ndarray:
     bit_depth : {8, 16}
         Bits per channel: the table has 256 or 65536 entries.
     dtype : numpy dtype
-        ``float32`` (what :meth:`Photo.linear` uses) or ``float64``.
+        ``float32`` (what :meth:`Photo.linear_rgb` uses) or ``float64``.
 
     Returns
     -------
@@ -157,6 +159,15 @@ class Photo:
     orientation_applied : bool
         True when the file carried an EXIF orientation other than "upright"
         (values 2-8) and the pixels were turned and/or mirrored to match it.
+    linear : bool
+        True when the code values are linear light (proportional to the light
+        on the sensor: a linear 16-bit TIFF, a camera RAW); False when they are
+        sRGB-encoded (JPEG, PNG, an 8-bit TIFF). See :func:`load_image` for how
+        it is judged.
+    decoding : str
+        How the pixels were read, in words for the page, e.g. ``"8-bit JPEG,
+        sRGB decode"`` or ``"16-bit TIFF, linear"``; filled from the other
+        fields when not given.
     """
 
     rgb: np.ndarray
@@ -165,6 +176,8 @@ class Photo:
     height: int
     source_format: str
     orientation_applied: bool = False
+    linear: bool = False
+    decoding: str = ""
 
     def __post_init__(self):
         rgb = self.rgb
@@ -183,27 +196,50 @@ class Photo:
         if self.source_format not in FORMATS + ("array",):
             raise InputError(f"Photo.source_format = {self.source_format!r} is not allowed; "
                              f"give one of {', '.join(FORMATS + ('array',))}.")
+        if not isinstance(self.linear, (bool, np.bool_)):
+            raise InputError(f"Photo.linear = {self.linear!r} is not allowed; give True (linear light) "
+                             "or False (sRGB-encoded code values).")
+        object.__setattr__(self, "linear", bool(self.linear))
+        if not isinstance(self.decoding, str):
+            raise InputError(f"Photo.decoding = {self.decoding!r} is not allowed; give a short text.")
+        if not self.decoding:
+            what = "array" if self.source_format == "array" else self.source_format
+            how = "linear" if self.linear else "sRGB decode"
+            object.__setattr__(self, "decoding", f"{self.bit_depth}-bit {what}, {how}")
 
     @property
     def max_code(self) -> int:
         """Largest code value: 255 for 8 bits, 65535 for 16 bits."""
         return 2**self.bit_depth - 1
 
-    def linear(self) -> np.ndarray:
+    def linear_rgb(self) -> np.ndarray:
         """Linear-light RGB of every pixel.
 
         Returns
         -------
         numpy.ndarray
-            New float32 (height, width, 3) array of values 0..1, each code value
-            decoded with the sRGB transfer function through a 256- or
-            65536-entry lookup table (:func:`srgb_decode_lut`).
+            New float32 (height, width, 3) array of values 0..1: code / max_code
+            when :attr:`linear`, else each code value decoded with the sRGB
+            transfer function through a 256- or 65536-entry lookup table
+            (:func:`srgb_decode_lut`).
 
         References
         ----------
         IEC 61966-2-1:1999, the sRGB transfer function.
         """
-        return srgb_decode_lut(self.bit_depth)[self.rgb]
+        return self.decode_lut(np.float32)[self.rgb]
+
+    def decode_lut(self, dtype=np.float32) -> np.ndarray:
+        """(max_code + 1,) table from code value to linear light 0..1 for this photo:
+        :func:`srgb_decode_lut` for sRGB-encoded values, code / max_code for linear ones."""
+        return _linear_lut(self.bit_depth, np.dtype(dtype).name) if self.linear else srgb_decode_lut(self.bit_depth, dtype)
+
+
+@functools.lru_cache(maxsize=None)
+def _linear_lut(bit_depth: int, dtype: str) -> np.ndarray:
+    lut = (np.arange(2**bit_depth, dtype=np.float64) / (2**bit_depth - 1)).astype(dtype)
+    lut.flags.writeable = False
+    return lut
 
 
 # ---------------------------------------------------------------------------
@@ -713,7 +749,8 @@ def box_mean_linear(photo: Photo, box) -> np.ndarray:
     Returns
     -------
     numpy.ndarray
-        (3,) float64 mean of the sRGB-decoded values (0..1), channels R, G, B.
+        (3,) float64 mean of the linear-light values (0..1; sRGB-decoded, or
+        code / max_code for a linear photo), channels R, G, B.
 
     Raises
     ------
@@ -726,7 +763,7 @@ def box_mean_linear(photo: Photo, box) -> np.ndarray:
     IEC 61966-2-1:1999, the sRGB transfer function.
     """
     x0, y0, x1, y1 = _check_box(photo, box)
-    lut = srgb_decode_lut(photo.bit_depth, np.float64)
+    lut = photo.decode_lut(np.float64)
     total = np.zeros(3)
     for ya, yb in _row_chunks(y0, y1, x1 - x0):
         total += lut[photo.rgb[ya:yb, x0:x1]].sum(axis=(0, 1))

@@ -400,7 +400,7 @@ def test_photo_loader(content):
     if photo is not None:
         assert photo.rgb.shape == (photo.height, photo.width, 3) and photo.width >= 2 and photo.height >= 2
         assert photo.rgb.dtype == (np.uint8 if photo.bit_depth == 8 else np.uint16)
-        _finite(photo.linear()[:4, :4])
+        _finite(photo.linear_rgb()[:4, :4])
 
 
 @pytest.mark.parametrize("content", BOMBS, ids=["png-stream", "jpeg-65000", "tiff-2^31", "png-2^31", "png-0x0",

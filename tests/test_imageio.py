@@ -606,14 +606,14 @@ def test_lut_refuses_bad_arguments():
 @pytest.mark.parametrize("make", [rgb8, rgb16])
 def test_linear_decode(make):
     a = make(5, 8)
-    lin = load_image(a).linear()
+    lin = load_image(a).linear_rgb()
     assert lin.shape == a.shape and lin.dtype == np.float32
     expected = _srgb_formula(a / float(np.iinfo(a.dtype).max))
     assert np.max(np.abs(lin - expected)) < 1e-6
     # Spot values: the linear segment and the power segment.
-    assert load_image(np.full((2, 2, 3), 10, np.uint8)).linear()[0, 0, 0] == pytest.approx(
+    assert load_image(np.full((2, 2, 3), 10, np.uint8)).linear_rgb()[0, 0, 0] == pytest.approx(
         10 / 255 / 12.92, abs=1e-7)
-    assert load_image(np.full((2, 2, 3), 128, np.uint8)).linear()[0, 0, 0] == pytest.approx(
+    assert load_image(np.full((2, 2, 3), 128, np.uint8)).linear_rgb()[0, 0, 0] == pytest.approx(
         ((128 / 255 + 0.055) / 1.055) ** 2.4, abs=1e-7)
 
 
@@ -624,7 +624,7 @@ def test_linear_decode(make):
 @pytest.mark.parametrize("make", [rgb8, rgb16])
 def test_box_mean_linear(make, monkeypatch):
     photo = load_image(make(12, 20))
-    lin = photo.linear().astype(np.float64)
+    lin = photo.linear_rgb().astype(np.float64)
     for box in [(0, 0, 20, 12), (3, 2, 4, 3), (5, 1, 17, 11)]:
         x0, y0, x1, y1 = box
         mean = box_mean_linear(photo, box)
