@@ -14,8 +14,15 @@ save and load. Version 1 looks like this::
       "substrate_thickness_mm": null,
       "swept_layer": 0,
       "view": {"angle_deg": 0.0, "polarization": "unpolarized", "illuminant": "D65",
-               "observer": "2", "na": 0.0, "thickness_max_nm": 1000.0}
+               "observer": "2", "na": 0.0, "thickness_max_nm": 1000.0,
+               "lamp_cct_k": 3000.0, "lamp_spectrum": null,
+               "polarizer": "none", "polarizer_deg": 90.0, "analyzer": "none", "analyzer_deg": 0.0}
     }
+
+The illuminant is any lamp of the page: a CIE or LED code, "halogen" (a Planck
+radiator at ``lamp_cct_k``) or "custom" (the measured spectrum in
+``lamp_spectrum``). Files written before the lamp and polarizer fields existed
+read with their defaults.
 
 Layers are listed from the ambient side down. A material is a string (curated
 name, alias, ``"shelf/book/page"`` or a number written as text) or a material
@@ -46,6 +53,7 @@ from pathlib import Path
 import numpy as np
 
 from .appearance import MAX_OFFERED_NA, check_na_for
+from .color import ILLUMINANTS as COLOUR_ILLUMINANTS, PLANCK_CCT_LIMITS_K, user_spd_on_fine_grid
 from .errors import InputError
 from .filmmodels import EMA_RULES, EPS_INF_MIN
 from .materials import K_MAX, Material, material
@@ -86,13 +94,25 @@ PRESET_DIR = Path(__file__).resolve().parent.parent / "presets"
 DEFAULT_NAME = "untitled stack"
 #: Viewing settings used for keys missing from "view".
 VIEW_DEFAULTS = {"angle_deg": 0.0, "polarization": "unpolarized", "illuminant": "D65",
-                 "observer": "2", "na": 0.0, "thickness_max_nm": 1000.0}
+                 "observer": "2", "na": 0.0, "thickness_max_nm": 1000.0,
+                 "lamp_cct_k": 3000.0, "lamp_spectrum": None,
+                 "polarizer": "none", "polarizer_deg": 90.0, "analyzer": "none", "analyzer_deg": 0.0}
 POLARIZATIONS = ("s", "p", "unpolarized")
-ILLUMINANTS = ("D65", "D50", "A", "F2", "F11")
+#: A halogen lamp: a Planck radiator at ``lamp_cct_k``.
+HALOGEN = "halogen"
+#: A measured lamp: its spectrum in ``lamp_spectrum``.
+CUSTOM_LAMP = "custom"
+#: Every lamp the page offers: the CIE and LED codes of physics.color, the halogen and a measured lamp.
+ILLUMINANTS = (*COLOUR_ILLUMINANTS, HALOGEN, CUSTOM_LAMP)
 OBSERVERS = ("2", "10")
+POLARIZERS = ("none", "linear")
+ANALYZERS = ("none", "parallel", "crossed", "angle")
 #: (lowest, highest, unit) of each numeric view setting.
 VIEW_RANGES = {"angle_deg": (0.0, 89.9, "deg"), "na": (0.0, MAX_OFFERED_NA, ""),     # NA also below the ambient's cap
-               "thickness_max_nm": (10.0, 100_000.0, "nm")}
+               "thickness_max_nm": (10.0, 100_000.0, "nm"), "lamp_cct_k": (*PLANCK_CCT_LIMITS_K, "K"),
+               "polarizer_deg": (-180.0, 180.0, "deg"), "analyzer_deg": (-180.0, 180.0, "deg")}
+#: Most rows of a measured lamp spectrum kept in a stack file.
+MAX_LAMP_POINTS = 2000
 
 _REQUIRED = ("format", "version", "ambient", "layers", "substrate")
 _TOP_FIELDS = ("format", "version", "name", "scenario", "ambient", "layers", "substrate",
@@ -151,7 +171,10 @@ class StackFile:
         Index of the layer whose thickness the views sweep (0 = top); 0 for a stack without layers.
     view : dict
         Viewing settings, every key of :data:`VIEW_DEFAULTS` present: angle_deg (deg),
-        polarization, illuminant, observer, na, thickness_max_nm (nm).
+        polarization, illuminant, observer, na, thickness_max_nm (nm); lamp_cct_k (K, the
+        halogen's colour temperature), lamp_spectrum ([[nm], [power]] of the illuminant
+        "custom", else None); polarizer ("none"/"linear"), polarizer_deg, analyzer
+        ("none"/"parallel"/"crossed"/"angle"), analyzer_deg (deg to the plane of tilt).
     """
 
     name: str
@@ -338,14 +361,34 @@ def _check_view(view) -> dict:
         if key in VIEW_RANGES:
             lo, hi, unit = VIEW_RANGES[key]
             out[key] = _number(w, value, lo, hi, unit)
+        elif key == "lamp_spectrum":
+            out[key] = None if value is None else _lamp_spectrum(w, value)
         else:
-            allowed = {"polarization": POLARIZATIONS, "illuminant": ILLUMINANTS,
-                       "observer": OBSERVERS}[key]
+            allowed = {"polarization": POLARIZATIONS, "illuminant": ILLUMINANTS, "observer": OBSERVERS,
+                       "polarizer": POLARIZERS, "analyzer": ANALYZERS}[key]
             if not isinstance(value, str) or value not in allowed:
                 _fail(w, f"must be one of {', '.join(repr(a) for a in allowed)} (a string), "
                          f"got {_got(value)}.")
             out[key] = value
+    if out["illuminant"] == CUSTOM_LAMP and out["lamp_spectrum"] is None:
+        _fail("view.lamp_spectrum", "missing; the illuminant 'custom' needs the lamp's spectrum as "
+                                    "[[wavelengths in nm], [relative powers]].")
     return out
+
+
+def _lamp_spectrum(where: str, value) -> list:
+    """A measured lamp: [[nm, ...], [power, ...]] of equal length, usable as an illuminant."""
+    if not isinstance(value, (list, tuple)) or len(value) != 2:
+        _fail(where, f"must be [[wavelengths in nm], [relative powers]], got {_got(value)}.")
+    wl = _number_list(f"{where}[0]", value[0], 2, MAX_LAMP_POINTS)
+    power = _number_list(f"{where}[1]", value[1], 2, MAX_LAMP_POINTS)
+    if len(wl) != len(power):
+        _fail(where, f"has {len(wl)} wavelengths but {len(power)} powers; give one power per wavelength.")
+    try:
+        user_spd_on_fine_grid(wl, power)
+    except InputError as e:
+        _fail(where, f"is not a usable lamp: {e}")
+    return [wl, power]
 
 
 def _check_swept(value, n_layers: int) -> int:

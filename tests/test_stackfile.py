@@ -284,7 +284,7 @@ MALFORMED = [
     (_set(("view", "angle_deg"), 90.0), "view.angle_deg"),
     (_set(("view", "angle_deg"), -0.1), "view.angle_deg"),
     (_set(("view", "polarization"), "circular"), "view.polarization"),
-    (_set(("view", "illuminant"), "D75"), "view.illuminant"),
+    (_set(("view", "illuminant"), "D77"), "view.illuminant"),
     (_set(("view", "illuminant"), "d65"), "view.illuminant"),
     (_set(("view", "observer"), 2), "view.observer"),
     (_set(("view", "observer"), "5"), "view.observer"),

@@ -228,10 +228,18 @@ class ExplorerState(param.Parameterized):
             self.thickness_max_nm = max(float(v.get("thickness_max_nm", 1000.0)), 10.0)
             self.angle_deg = float(v.get("angle_deg", 0.0))
             self.polarization = v.get("polarization", "unpolarized")
-            ill = v.get("illuminant", "D65")
-            self.illuminant = ill if ill in ILLUMINANT_CHOICES else "D65"
             self.observer = str(v.get("observer", "2"))
             self.na = float(v.get("na", 0.0))
+            self.lamp_cct_k = float(v.get("lamp_cct_k", DEFAULT_HALOGEN_K))
+            ill = v.get("illuminant", "D65")
+            if ill == "custom" and v.get("lamp_spectrum"):
+                self.set_spd(*v["lamp_spectrum"])
+            else:
+                self.illuminant = ill if ill in ILLUMINANT_CHOICES and ill != "custom" else "D65"
+            self.polarizer = v.get("polarizer", "none")
+            self.polarizer_deg = float(v.get("polarizer_deg", 90.0))
+            self.analyzer = v.get("analyzer", "none")
+            self.analyzer_deg = float(v.get("analyzer_deg", 0.0))
             self.preset_name = name or sf.name
 
     def load_preset(self, stem: str) -> None:
@@ -242,10 +250,23 @@ class ExplorerState(param.Parameterized):
         sf = self.stack_file()
         return dump_stack_file(self.nominal_stack, name=sf.name, scenario=sf.scenario, swept_layer=self.swept_layer,
                                view={"angle_deg": self.angle_deg, "polarization": self.polarization,
-                                     "illuminant": self.illuminant if self.illuminant not in ("custom", HALOGEN)
-                                     else "D65",
+                                     "illuminant": self.illuminant, "lamp_cct_k": self.lamp_cct_k,
+                                     "lamp_spectrum": self._lamp_spectrum(),
                                      "observer": self.observer, "na": self.na,
-                                     "thickness_max_nm": self.thickness_max_nm})
+                                     "thickness_max_nm": self.thickness_max_nm,
+                                     "polarizer": self.polarizer, "polarizer_deg": self.polarizer_deg,
+                                     "analyzer": self.analyzer, "analyzer_deg": self.analyzer_deg})
+
+    def _lamp_spectrum(self):
+        """The measured lamp as [[nm], [power]] when the illuminant is 'custom', else None."""
+        if self.illuminant != "custom":
+            return None
+        try:
+            wl, power = json.loads(self.spd_json)
+        except (TypeError, ValueError):
+            raise InputError("Illuminant 'custom' has no lamp spectrum to save: upload a CSV of wavelength (nm), "
+                             "value, or choose another lamp.") from None
+        return [wl, power]
 
     # ------------------------------------------------------------------ light
     def illuminant_spec(self):
