@@ -14,6 +14,7 @@ from .grating import rigorous_efficiency, rigorous_efficiency_detail
 from .fit import fit_thickness, read_spectrum, FitResult, SpectrumData, optical_thickness_fft, reflectance_from_counts
 from .filmfit import fit_film, FilmFitResult
 from .inverse import thickness_candidates, thickness_map, parse_color, Candidate, Candidates, ThicknessMap
+from .camera import CameraCalibration, FlatField, calibrate_from_reference, calibrate_from_target, flat_field
 from .color import (spectrum_to_xyz, xyz_to_lab, xyz_to_srgb, delta_e_2000, srgb_out_of_gamut,
                     spectra_to_srgb, illuminant_white_xyz, srgb_to_hex, lab_to_xyz, srgb_to_xyz)
 
@@ -25,6 +26,7 @@ __all__ = [
     "Layer", "Stack", "sweep", "grating", "rigorous_efficiency", "rigorous_efficiency_detail",
     "fit_thickness", "fit_film", "FilmFitResult", "read_spectrum", "FitResult", "SpectrumData", "optical_thickness_fft", "reflectance_from_counts",
     "thickness_candidates", "thickness_map", "parse_color", "Candidate", "Candidates", "ThicknessMap",
+    "CameraCalibration", "FlatField", "calibrate_from_reference", "calibrate_from_target", "flat_field",
     "spectrum_to_xyz", "xyz_to_lab", "xyz_to_srgb", "delta_e_2000", "srgb_out_of_gamut",
     "spectra_to_srgb", "illuminant_white_xyz", "srgb_to_hex", "lab_to_xyz", "srgb_to_xyz",
 ]

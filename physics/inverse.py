@@ -618,6 +618,9 @@ class ThicknessMap:
         Matched pixels whose best match of another order (itself acceptable) is within the colour
         reading error of the chosen one's: colour alone cannot decide their order, which follows
         their confident neighbours (or the nominal). Counted in ``stats["undecided"]``.
+    uncertainty_nm : (H, W) float
+        Thickness uncertainty of each matched pixel (NaN elsewhere), see :func:`_uncertainty_nm`;
+        ``stats["median_uncertainty_nm"]`` and ``stats["p95_uncertainty_nm"]`` summarise it.
     """
 
     thickness_nm: np.ndarray
@@ -629,6 +632,7 @@ class ThicknessMap:
     message: str = ""
     order_outlier: np.ndarray | None = None
     undecided: np.ndarray | None = None
+    uncertainty_nm: np.ndarray | None = None
 
 
 def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
@@ -637,8 +641,9 @@ def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
     return xyz_to_lab(lin @ M.T, illuminant, observer)
 
 
-def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminant, observer, polarization, na):
-    from .imageio import box_mean_linear, box_saturated_fraction
+def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminant, observer, polarization, na,
+                       flat=None):
+    from .imageio import _check_box, box_mean_linear, box_saturated_fraction
 
     if box is None:
         return np.ones(3)
@@ -646,7 +651,13 @@ def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminan
     if sat > MAX_SATURATED_FRACTION:
         raise InputError(f"The calibration box is overexposed: {sat:.0%} of its pixels are clipped. Draw it on an "
                          "area that is not blown out, or take the photo with less exposure.")
-    measured = box_mean_linear(photo, box)
+    if flat is not None:                                              # the box as flat-fielded
+        from .camera import check_flat, linear_rgb
+        check_flat(flat, photo)
+        bx0, by0, bx1, by1 = b = _check_box(photo, box)
+        measured = flat.apply(linear_rgb(photo)[by0:by1, bx0:bx1], None, b).reshape(-1, 3).mean(axis=0, dtype=float)
+    else:
+        measured = box_mean_linear(photo, box)
     if np.any(measured < MIN_BOX_LINEAR):
         raise InputError("The calibration box is too dark to read its colour; draw it on a lit area of bare "
                          "substrate or the grey card, or expose the photo longer.")
@@ -665,7 +676,8 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
                   illuminant="D65", *, angle_deg: float = 0.0, observer="2", polarization="unpolarized",
                   na: float = 0.0, reference="substrate", roi=None, nominal_nm: float | None = None,
                   max_delta_e: float = MATCH_DE_MAX, progress=None,
-                  reading_error_de: float | None = None) -> ThicknessMap:
+                  reading_error_de: float | None = None, calibration=None, flat_field=None,
+                  denoise: str | None = None) -> ThicknessMap:
     """Thickness of one layer at every pixel of a photo.
 
     Parameters
@@ -691,6 +703,18 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
         another order is within this of its best match is one whose order colour cannot decide; its
         order is chosen by continuity (or the nominal) and it is flagged in ``undecided``. Default
         :data:`CONFIDENT_MARGIN_DE`.
+    calibration : physics.camera.CameraCalibration, optional
+        The station's camera calibration (made on photos of this size, under this illuminant and observer):
+        pixels are read as linear light, flat-fielded, and turned into XYZ by it instead of the sRGB decode
+        and ``reference_box`` gains; they are then compared with the path's unclipped colours. Its own flat
+        field is used unless ``flat_field`` is given.
+    flat_field : physics.camera.FlatField, optional
+        Divides out the lamp's fall-off across the field (with the calibration's dark offset, when given)
+        before the gains or the calibration; colours are then matched per pixel.
+    denoise : None or a key of :data:`physics.camera.DENOISE_FILTERS`
+        An edge-preserving median filter of the linear image (scipy.ndimage.median_filter, 5 x 5 for
+        "median") before matching: it removes sensor noise from smooth films at the cost of a pixel or two
+        of sharpness at edges.
 
     Returns
     -------
@@ -710,17 +734,28 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     H, W = photo.height, photo.width
     x0, y0, x1, y1 = _box(roi, W, H, "roi") if roi is not None else (0, 0, W, H)
     say(0.05, "calibrating")
-    gains = _calibration_gains(photo, reference_box, reference, stack, layer, angle_deg, illuminant, observer,
-                               polarization, na)
+    flat = flat_field if flat_field is not None else getattr(calibration, "flat_field", None)
+    per_pixel = calibration is not None or flat is not None or denoise is not None
+    gains = np.ones(3) if calibration is not None else _calibration_gains(
+        photo, reference_box, reference, stack, layer, angle_deg, illuminant, observer, polarization, na, flat)
     say(0.1, "computing the colour path")
     path = _colour_path(stack, layer, lo, hi, angle_deg, illuminant, observer, polarization, na)
     say(0.2, "reading colours")
-    codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth)
-    lab = _lab_from_linear(lin * gains, illuminant, observer)
-    n = len(codes)
+    if per_pixel:                                                    # every pixel its own colour
+        from .camera import pixel_lab
+        values, calibrated = pixel_lab(photo, (x0, y0, x1, y1), calibration, flat, denoise, illuminant, observer, say)
+        lab = values if calibrated else _lab_from_linear(values * gains, illuminant, observer)
+        inverse = np.arange(lab.shape[0])
+        path = _true_colour_path(path) if calibrated else path       # calibrated XYZ is not gamut-clipped
+        what = "pixels"
+    else:
+        codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth)
+        lab = _lab_from_linear(lin * gains, illuminant, observer)
+        what = "distinct colours"
+    n = len(lab)
     parts = []
     for start in range(0, max(n, 1), MATCH_CHUNK_COLOURS):           # in chunks: progress, and less memory
-        say(0.35 + 0.4 * start / max(n, 1), f"matching {n:,} distinct colours")
+        say(0.35 + 0.4 * start / max(n, 1), f"matching {n:,} {what}")
         parts.append(_match(lab[start:start + MATCH_CHUNK_COLOURS], path))
     t1, de1, o1, t2, de2, o2 = (np.concatenate(a) for a in zip(*parts))
     say(0.75, "resolving orders by continuity")
@@ -735,9 +770,51 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     stats["undecided"] = int(np.count_nonzero(undecided))
     stats["undecided_fraction"] = stats["undecided"] / stats["pixels"] if stats["pixels"] else 0.0
     stats["reading_error_de"] = margin_de
+    U = _uncertainty_nm(T, D, path, calibration.rms_delta_e if calibration is not None else AMBIGUOUS_DE, hi - lo)
+    u = U[np.isfinite(U)]
+    stats["median_uncertainty_nm"] = float(np.median(u)) if u.size else float("nan")
+    stats["p95_uncertainty_nm"] = float(np.percentile(u, 95)) if u.size else float("nan")
+    stats["calibrated"], stats["flat_fielded"], stats["denoise"] = calibration is not None, flat is not None, denoise
     say(1.0, "done")
     return ThicknessMap(thick, full(D, np.nan), full(M, np.nan), full(O, 0), gains, stats, _map_message(stats, max_de),
-                        full(outlier, False), full(undecided, False))
+                        full(outlier, False), full(undecided, False), full(U, np.nan))
+
+
+#: Thickness span (nm) over which the colour path's slope (nm per ΔE00) is measured for the uncertainty:
+#: wide enough to stay finite where the path turns, narrow against a fringe (our own choice).
+SLOPE_SPAN_NM = 5.0
+
+
+def _true_colour_path(path: _Path) -> _Path:
+    """The path with its unclipped CIELAB in the place of the display colours, for calibrated (true XYZ) pixels."""
+    from dataclasses import replace
+    return replace(path, lab_display=path.lab)
+
+
+def _nm_per_de(path: _Path) -> np.ndarray:
+    """(N,) nm per ΔE00 along the path: thickness step over the ΔE00 between the path points
+    ±SLOPE_SPAN_NM/2 around each point (the colours the matcher compares with)."""
+    t, ref = path.thickness_nm, path.lab_display
+    step = float(t[1] - t[0]) if t.size > 1 else 1.0
+    k = max(1, int(round(SLOPE_SPAN_NM / 2 / step)))
+    i = np.arange(t.size)
+    a, b = np.clip(i - k, 0, t.size - 1), np.clip(i + k, 0, t.size - 1)
+    return (t[b] - t[a]) / np.maximum(delta_e_2000(ref[a], ref[b]), 1e-9)
+
+
+def _uncertainty_nm(T, D, path: _Path, floor_de: float, cap_nm: float) -> np.ndarray:
+    """Per-pixel thickness uncertainty (nm): u = (nm per ΔE00 of the path at the pixel's thickness) x
+    sqrt(ΔE00 of its match² + floor_de²), at most ``cap_nm``; NaN where unmatched.
+
+    The match's ΔE00 carries the pixel's own colour error (noise, a colour the stack cannot show), and
+    ``floor_de`` the calibration's: its RMS ΔE00 over its boxes, or :data:`AMBIGUOUS_DE` (one
+    just-noticeable difference) for gains or no calibration. One ΔE00 moves the thickness by the path's
+    local nm per ΔE00, so where colour changes slowly with thickness the uncertainty is large. An estimate
+    of about one standard uncertainty by first-order propagation, not a certified one.
+    """
+    slope = np.interp(np.nan_to_num(T, nan=float(path.thickness_nm[0])), path.thickness_nm, _nm_per_de(path))
+    colour_de = np.sqrt(np.square(np.nan_to_num(D, nan=0.0).astype(np.float64)) + float(floor_de) ** 2)
+    return np.where(np.isfinite(T), np.minimum(slope * colour_de, cap_nm), np.nan).astype(np.float32)
 
 
 def _map_message(stats: dict, max_de: float) -> str:
