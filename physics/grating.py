@@ -489,8 +489,11 @@ def _rigorous_inputs(wavelength_nm, lines_per_mm, order, incidence_deg, profile,
 
 def rigorous_efficiency_detail(wavelength_nm, lines_per_mm, order, incidence_deg=0.0, *, profile="lamellar",
                                depth_nm=None, duty_cycle=0.5, blaze_angle_deg=None, material="Al",
-                               polarization="unpolarized", kind="reflection"):
+                               polarization="unpolarized", kind="reflection", backend="fmm"):
     """:func:`rigorous_efficiency` with how it was obtained: a :class:`physics.rcwa.RigorousEfficiency`.
+
+    ``backend``: "fmm" (the project's solver, :mod:`physics.fmm`) or "meent" (the second, independent
+    implementation, many times slower: for checks).
 
     Its ``efficiency`` is always (W, O) (O orders asked); it also holds the TE and TM curves, the
     reflected and transmitted totals over all orders, the absorbed fraction, the harmonic count
@@ -504,7 +507,8 @@ def rigorous_efficiency_detail(wavelength_nm, lines_per_mm, order, incidence_deg
     pols = rcwa.POLARIZATIONS[pol]
     quoted, r_tot, t_tot, counts, converged, change = [], [], [], [], True, 0.0
     for p in pols:                              # each polarization converges at its own pace (TM on metals slowly)
-        R, T, n, ok, ch = rcwa.converged_orders(wl, d, alpha, thickness, intervals, nk, orders, (p,), kind)
+        R, T, n, ok, ch = rcwa.converged_orders(wl, d, alpha, thickness, intervals, nk, orders, (p,), kind,
+                                                backend=backend)
         quoted.append((R if kind == "reflection" else T)[:, 0, n + np.asarray(orders)])
         r_tot.append(R[:, 0].sum(axis=1))
         t_tot.append(T[:, 0].sum(axis=1))

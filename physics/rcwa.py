@@ -1,11 +1,13 @@
 """Rigorous diffraction efficiency of one-dimensional surface-relief gratings (RCWA).
 
-Maxwell's equations are solved for a periodic groove profile by rigorous coupled-wave analysis:
-the permittivity of each slice of the groove is expanded in a Fourier series, the field in each
-slice is a sum of 2N + 1 plane-wave harmonics (orders −N … N), and the slices are joined by the
-enhanced transmittance matrix, which stays stable for deep grooves and metals. The solver is the
-numpy back end of the meent package (MIT licence), used here through its Fourier-series and 1D
-TE/TM solver functions; a maintained solver is worth more than hand-written algebra.
+Maxwell's equations are solved for a periodic groove profile by rigorous coupled-wave analysis
+(the Fourier modal method): the permittivity of each slice of the groove is expanded in a Fourier
+series, the field in each slice is a sum of 2N + 1 plane-wave harmonics (orders −N … N), and the
+slices are joined by the enhanced transmittance matrix, which stays stable for deep grooves and
+metals. Two independent solvers sit behind :func:`solve_orders`: the project's own
+(:mod:`physics.fmm`, numpy, every wavelength of a curve in one stacked eigen-solve per slice; the
+default) and the numpy back end of the meent package (MIT licence), kept as the second
+implementation the tests and the benchmark compare against.
 
 Conventions (stated once):
 
@@ -24,7 +26,8 @@ Conventions (stated once):
   ``transmitted_total``). Transmission is only meaningful for a transparent (dielectric)
   grating on a substrate of the same material.
 - Index N = n + ik with k >= 0 (the package's convention, exp(−iωt)); meent works with exp(+jωt),
-  so it is handed the complex conjugate.
+  so it is handed the complex conjugate. Both solvers agree to about 1e-11 at the same harmonic
+  count (tests/test_rcwa.py).
 - Profiles (depth = peak to valley): "lamellar" (rectangular ridges, ``duty_cycle`` = ridge width
   / period), "sinusoidal" and "blazed" (sawtooth: a facet at the blaze angle θ_B whose normal leans
   toward the positive orders, and a steep back side; a right-angle apex by default), the last two
@@ -41,13 +44,14 @@ https://github.com/kc-ml2/meent (the solver).
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .errors import InputError
 
-__all__ = ["RigorousEfficiency", "solve_orders", "converged_orders", "starting_harmonics", "profile_slices", "PROFILES", "POLARIZATIONS",
+__all__ = ["RigorousEfficiency", "solve_orders", "converged_orders", "harmonic_cap", "solver_threads", "BACKENDS", "starting_harmonics", "profile_slices", "PROFILES", "POLARIZATIONS",
            "check_profile", "DEFAULT_DEPTH_NM", "CONVERGENCE_TOL", "MAX_HARMONICS", "TRANSPARENT_K_MAX"]
 
 #: Groove profiles understood by :func:`profile_slices`.
@@ -60,17 +64,28 @@ DEFAULT_DEPTH_NM = 100.0
 #: Convergence: the harmonic count grows until the quoted efficiencies change by less than this
 #: (absolute) from one count to the next: below what a practitioner reads off an efficiency curve.
 CONVERGENCE_TOL = 1e-3
-#: Largest harmonic index N tried (2N + 1 plane waves) unless the grating needs more to hold its
-#: propagating orders: TM on metals converges slowly; past this a curve costs many seconds on two
-#: cores, so the result is reported as not converged (with its last change) instead.
+#: Largest harmonic index N tried (2N + 1 plane waves) for a one-slice groove unless the grating
+#: needs more to hold its propagating orders: TM on metals converges slowly (the field is singular
+#: at the metal's corners); past this a curve costs over a second on two cores, so the result is
+#: reported as not converged (with its last change) instead.
 MAX_HARMONICS = 32
+#: Work bound of a curve: a solve costs about (slices with grooves) × (2N + 1)³ per wavelength (one
+#: eigen-decomposition per slice), so a staircase of S slices is capped where S·(2N + 1)³ reaches
+#: one slice at MAX_HARMONICS: N about MAX_HARMONICS / S^(1/3).
+WORK_CAP = (2 * MAX_HARMONICS + 1) ** 3
 #: Smallest harmonic index tried; and the margin above the highest propagating order.
 MIN_HARMONICS = 8
 HARMONIC_MARGIN = 6
-#: Growth factor of the harmonic index between convergence steps.
-HARMONIC_GROWTH = 1.5
+#: Growth factor of the harmonic index between convergence steps (doubling: each step at least
+#: halves a truncation error that falls like 1/N, so a small change means a small error).
+HARMONIC_GROWTH = 2.0
 #: Wavelengths of a curve at which convergence is checked (spread over the curve, ends included).
-CONVERGENCE_PROBES = 3
+CONVERGENCE_PROBES = 5
+#: Solvers behind :func:`solve_orders`: the project's Fourier modal method and meent's.
+BACKENDS = ("fmm", "meent")
+#: Fewest wavelengths per thread when a curve is split over threads (below it, threads cost more
+#: than they give).
+THREAD_MIN_WAVELENGTHS = 16
 #: Staircase of a smooth profile: each slice at most this fraction of the shortest wavelength thick,
 #: and between STAIR_STEPS_MIN and STAIR_STEPS_MAX slices (slices much thinner than the wavelength
 #: represent a smooth profile; common practice).
@@ -163,8 +178,21 @@ def _conv_matrices(intervals, n_material, harmonics):
     return to_conv_mat_vector(info, harmonics, 0, type_complex=np.complex128)
 
 
+def solver_threads() -> int:
+    """Threads one curve may use: ``FRINGEGAUGE_SOLVER_THREADS`` if set (at least 1), else the cores this
+    process may run on, at most 2 (the stacked eigen-solves release the interpreter lock)."""
+    text = os.environ.get("FRINGEGAUGE_SOLVER_THREADS", "").strip()
+    if text.isdigit() and int(text) > 0:
+        return int(text)
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        cores = os.cpu_count() or 1
+    return max(1, min(2, cores))
+
+
 def solve_orders(wavelength_nm, period_nm, incidence_deg, thickness_nm, intervals, n_material, harmonics,
-                 pols=(0, 1)):
+                 pols=(0, 1), *, backend="fmm", threads=None):
     """Reflected and transmitted efficiencies of orders −N … N for each wavelength and polarization.
 
     Parameters
@@ -176,12 +204,38 @@ def solve_orders(wavelength_nm, period_nm, incidence_deg, thickness_nm, interval
     n_material : (W,) complex index n + ik of the grating and substrate at each wavelength
     harmonics : harmonic index N (orders −N … N are kept)
     pols : solver polarization numbers (0 TE, 1 TM)
+    backend : "fmm" (:mod:`physics.fmm`, all wavelengths at once) or "meent" (the second implementation)
+    threads : threads to split the wavelengths over ("fmm" only); default :func:`solver_threads`
 
     Returns
     -------
     (R, T) : arrays (W, P, 2N + 1); column N + m holds order m (sign convention of the module). T is
     the power carried into the substrate (for an absorbing substrate: the power it absorbs).
     """
+    if backend == "meent":
+        return _solve_orders_meent(wavelength_nm, period_nm, incidence_deg, thickness_nm, intervals, n_material,
+                                   harmonics, pols)
+    if backend != "fmm":
+        raise InputError(f"backend must be one of {', '.join(BACKENDS)}; got {backend!r}.")
+    from . import fmm
+
+    wl = np.asarray(wavelength_nm, dtype=float).ravel()
+    nk = np.broadcast_to(np.asarray(n_material, dtype=complex).ravel(), wl.shape)
+    args = (period_nm, incidence_deg, thickness_nm, intervals)
+    parts = int(min(threads or solver_threads(), max(1, wl.size // THREAD_MIN_WAVELENGTHS)))
+    if parts <= 1:
+        return fmm.solve_orders(wl, *args, nk, harmonics, pols)
+    from concurrent.futures import ThreadPoolExecutor
+
+    chunks = np.array_split(np.arange(wl.size), parts)
+    with ThreadPoolExecutor(parts) as pool:
+        out = list(pool.map(lambda ix: fmm.solve_orders(wl[ix], *args, nk[ix], harmonics, pols), chunks))
+    return np.concatenate([r for r, _ in out]), np.concatenate([t for _, t in out])
+
+
+def _solve_orders_meent(wavelength_nm, period_nm, incidence_deg, thickness_nm, intervals, n_material, harmonics,
+                        pols=(0, 1)):
+    """:func:`solve_orders` by meent's 1D solver, one wavelength and polarization at a time."""
     wl = np.asarray(wavelength_nm, dtype=float).ravel()
     nk = np.broadcast_to(np.asarray(n_material, dtype=complex).ravel(), wl.shape)
     size = 2 * harmonics + 1
@@ -225,26 +279,35 @@ def starting_harmonics(period_nm, shortest_nm, incidence_deg, n_substrate, order
     return int(max(MIN_HARMONICS, top + HARMONIC_MARGIN, max(abs(int(m)) for m in orders) + HARMONIC_MARGIN))
 
 
+def harmonic_cap(intervals, start):
+    """Largest harmonic index the convergence search may reach for these slices: :data:`WORK_CAP` shared
+    over the slices that have grooves (uniform ones cost no eigen-solve), :data:`MAX_HARMONICS` for one
+    slice; at least ``start`` + 2, so one step is always taken."""
+    grooved = max(1, sum(1 for x0, x1 in intervals if 0.0 < x1 - x0 < 1.0))
+    return int(max((round((WORK_CAP / grooved) ** (1.0 / 3.0)) - 1) // 2, start + 2))
+
+
 def converged_orders(wavelength_nm, period_nm, incidence_deg, thickness_nm, intervals, n_material, orders, pols,
-                     kind, tol=CONVERGENCE_TOL):
+                     kind, tol=CONVERGENCE_TOL, *, backend="fmm"):
     """(R, T, harmonics, converged, change): :func:`solve_orders` with the harmonic count chosen.
 
-    The count starts above every propagating order and grows by :data:`HARMONIC_GROWTH` while the
+    The count starts above every propagating order and doubles (:data:`HARMONIC_GROWTH`) while the
     quoted efficiencies (``orders`` in ``kind``, every polarization) at :data:`CONVERGENCE_PROBES`
     wavelengths spread over the curve change by ``tol`` or more; the count used is the last one
     whose change to the next was below ``tol`` (an a-posteriori error estimate). The cap is
-    :data:`MAX_HARMONICS` or twice the start, whichever is larger; reaching it leaves
-    ``converged`` False and ``change`` the last change.
+    :func:`harmonic_cap` (a work bound: fewer harmonics for more slices); reaching it leaves
+    ``converged`` False and ``change`` the last change, and the curve is computed at the cap.
     """
     wl = np.asarray(wavelength_nm, dtype=float).ravel()
     nk = np.broadcast_to(np.asarray(n_material, dtype=complex).ravel(), wl.shape)
     probe = np.unique(np.round(np.linspace(0, wl.size - 1, min(CONVERGENCE_PROBES, wl.size))).astype(int))
     n = starting_harmonics(period_nm, float(wl.min()), incidence_deg, nk, orders)
-    cap = max(MAX_HARMONICS, 2 * n)
+    cap = harmonic_cap(intervals, n)
     cols = np.asarray(orders, dtype=int)
 
     def quoted(h):
-        R, T = solve_orders(wl[probe], period_nm, incidence_deg, thickness_nm, intervals, nk[probe], h, pols)
+        R, T = solve_orders(wl[probe], period_nm, incidence_deg, thickness_nm, intervals, nk[probe], h, pols,
+                            backend=backend, threads=1)
         return (R if kind == "reflection" else T)[:, :, h + cols]
 
     prev = quoted(n)
@@ -259,7 +322,7 @@ def converged_orders(wavelength_nm, period_nm, incidence_deg, thickness_nm, inte
             converged = True
             break
         n, prev = nxt, cur
-    R, T = solve_orders(wl, period_nm, incidence_deg, thickness_nm, intervals, nk, n, pols)
+    R, T = solve_orders(wl, period_nm, incidence_deg, thickness_nm, intervals, nk, n, pols, backend=backend)
     return R, T, n, converged, change
 
 
