@@ -9,8 +9,9 @@ from physics.errors import InputError
 
 from .store import (KEY_FILE_ENV, KINDS, MAX_CONTENT_BYTES, MAX_NAME_CHARS, NOUNS, Entry, ItemMissing, Library,
                     LibraryKeyError, LibraryWriteError, Problem, SaveResult, load_or_create_key, prepare_root,
-                    sanitize_name, sign_library, validate_calibration)
+                    sanitize_name, sign_library, validate_calibration,
+                    validate_camera_calibration)
 
 __all__ = ["InputError", "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "LibraryKeyError",
-           "ItemMissing", "sanitize_name", "validate_calibration", "prepare_root", "load_or_create_key",
+           "ItemMissing", "sanitize_name", "validate_calibration", "validate_camera_calibration", "prepare_root", "load_or_create_key",
            "sign_library", "KINDS", "NOUNS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS", "KEY_FILE_ENV"]

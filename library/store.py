@@ -10,6 +10,7 @@ Layout on disk (one folder per kind under the library root)::
     <root>/stacks/.archive/...                    archived files (never deleted)
     <root>/stacks/.lock                           lock file serialising savers
     <root>/stacks/.changed                        a fresh token after every save or archive
+    <root>/camera_calibrations/Line 3 scope.json  a camera calibration (see validate_camera_calibration)
 
 The saved file holds exactly the text the user saved (UTF-8), so it loads back
 identical. Metadata lives in a sidecar ``<file>.meta.json``: kind, name,
@@ -120,16 +121,17 @@ except ImportError:                     # pragma: no cover - Windows
 
 __all__ = [
     "Library", "Entry", "Problem", "SaveResult", "LibraryWriteError", "LibraryKeyError", "ItemMissing",
-    "sanitize_name", "clean_note", "validate_calibration", "prepare_root", "load_or_create_key", "key_file_path",
+    "sanitize_name", "clean_note", "validate_calibration", "validate_camera_calibration", "prepare_root", "load_or_create_key", "key_file_path",
     "sign_library", "meta_mac", "saver_text", "error_text",
     "KINDS", "NOUNS", "DEFAULT_ROOT", "MAX_NOTE_CHARS", "MAX_CONTENT_BYTES", "MAX_NAME_CHARS", "MAX_META_BYTES", "MAX_SCAN_ENTRIES",
     "KEY_FILE_ENV", "MARKER_NAME",
 ]
 
 #: The kinds of item the library holds (one folder each).
-KINDS = ("stacks", "gratings", "calibrations")
+KINDS = ("stacks", "gratings", "calibrations", "camera_calibrations")
 #: The singular noun of each kind, for messages.
-NOUNS = {"stacks": "stack", "gratings": "grating", "calibrations": "calibration"}
+NOUNS = {"stacks": "stack", "gratings": "grating", "calibrations": "calibration",
+         "camera_calibrations": "camera calibration"}
 #: Largest content accepted, bytes of UTF-8.
 MAX_CONTENT_BYTES = 1_000_000
 #: Longest library name, characters.
@@ -440,13 +442,7 @@ def validate_calibration(content) -> dict:
     if not isinstance(data, dict):
         raise InputError("A calibration must hold one JSON object {\"name\": ..., \"box\": [x0, y0, x1, y1], "
                          "\"reference\": ...} at the top level.")
-    unknown = [k for k in data if k not in _CAL_FIELDS]
-    if unknown:
-        raise InputError(f"{_show(unknown[0])}: unknown field; a calibration has the fields "
-                         f"{', '.join(_CAL_FIELDS)}. Remove it or correct its spelling.")
-    for key in _CAL_REQUIRED:
-        if key not in data:
-            raise InputError(f"{key}: missing; a calibration needs the fields {', '.join(_CAL_REQUIRED)}.")
+    _check_field_names(data, _CAL_FIELDS, _CAL_REQUIRED, "calibration")
     if not isinstance(data["name"], str) or len(data["name"]) > 200:
         raise InputError("name: must be text of at most 200 characters.")
     note = data.get("note", "")
@@ -468,6 +464,17 @@ def validate_calibration(content) -> dict:
     return data
 
 
+def _check_field_names(data: dict, fields, required, noun: str) -> None:
+    """InputError naming the first unknown or missing field of a JSON object of this kind."""
+    unknown = [k for k in data if k not in fields]
+    if unknown:
+        raise InputError(f"{_show(unknown[0])}: unknown field; a {noun} has the fields "
+                         f"{', '.join(fields)}. Remove it or correct its spelling.")
+    for key in required:
+        if key not in data:
+            raise InputError(f"{key}: missing; a {noun} needs the fields {', '.join(required)}.")
+
+
 def _finite_number(v) -> bool:
     if isinstance(v, bool) or not isinstance(v, (int, float)):
         return False
@@ -482,10 +489,77 @@ def _short(v) -> str:
     return text if len(text) <= 60 else text[:57] + "…"
 
 
+# ---------------------------------------------------------------------- camera calibrations
+#: The ``format`` of a camera calibration file (a fitted colour correction of one camera + lamp + optics).
+CAMERA_CAL_FORMAT = "fringegauge-camera-calibration"
+CAMERA_CAL_VERSION = 1
+_CAMCAL_FIELDS = ("format", "version", "name", "camera", "lamp", "objective", "na", "date", "note",
+                  "calibration", "flat_field")
+_CAMCAL_REQUIRED = ("format", "version", "calibration")
+_CAMCAL_TEXT = ("name", "camera", "lamp", "objective", "note")
+#: Longest text of a camera calibration's describing fields (characters).
+_CAMCAL_TEXT_CHARS = 2000
+_DATE_RE = re.compile(r"^[0-9]{4}-[0-9]{2}-[0-9]{2}$")
+
+
+def validate_camera_calibration(content) -> dict:
+    """Check the text of a camera calibration file and return it parsed.
+
+    Format: one JSON object ``{"format": "fringegauge-camera-calibration", "version": 1,
+    "name": str, "camera": str, "lamp": str, "objective": str, "na": number or null,
+    "date": "YYYY-MM-DD", "note": str, "calibration": {...}, "flat_field": {...} or null}``.
+    ``calibration`` is ``physics.camera.CameraCalibration.to_dict()`` and ``flat_field``
+    ``physics.camera.FlatField.to_dict()``; both are rebuilt with their ``from_dict`` here, so a
+    file that would not load is refused when saved and skipped when listed.
+
+    Raises
+    ------
+    InputError
+        Too large, not JSON, or a field missing, unknown, of the wrong type or out of
+        range; the message starts with the field.
+    """
+    data = read_json_document(content, "camera calibration", MAX_CONTENT_BYTES)
+    if not isinstance(data, dict):
+        raise InputError("A camera calibration must hold one JSON object {\"format\": "
+                         f"\"{CAMERA_CAL_FORMAT}\", \"calibration\": ...}} at the top level.")
+    _check_field_names(data, _CAMCAL_FIELDS, _CAMCAL_REQUIRED, "camera calibration")
+    if data["format"] != CAMERA_CAL_FORMAT:
+        raise InputError(f"format: must be \"{CAMERA_CAL_FORMAT}\", got {_short(data['format'])}.")
+    if data["version"] != CAMERA_CAL_VERSION or isinstance(data["version"], bool):
+        raise InputError(f"version: this server reads version {CAMERA_CAL_VERSION}, got {_short(data['version'])}.")
+    for key in _CAMCAL_TEXT:
+        v = data.get(key, "")
+        if not isinstance(v, str) or len(v) > _CAMCAL_TEXT_CHARS:
+            raise InputError(f"{key}: must be text of at most {_CAMCAL_TEXT_CHARS} characters.")
+    na = data.get("na")
+    if na is not None and not (_finite_number(na) and 0 <= na < 2):
+        raise InputError(f"na: must be null or a numerical aperture from 0 to below 2, got {_short(na)}.")
+    when = data.get("date", "")
+    if not isinstance(when, str) or (when and not _DATE_RE.match(when)):
+        raise InputError(f"date: must be a date written YYYY-MM-DD, got {_short(when)}.")
+    if not isinstance(data["calibration"], dict):
+        raise InputError("calibration: must be a JSON object (a fitted camera calibration).")
+    if data.get("flat_field") is not None and not isinstance(data["flat_field"], dict):
+        raise InputError("flat_field: must be null or a JSON object (a flat field).")
+    from physics import camera                   # imported here: the library's other kinds never need it
+    for key, cls in (("calibration", camera.CameraCalibration), ("flat_field", camera.FlatField)):
+        if data.get(key) is None:
+            continue
+        try:
+            cls.from_dict(data[key])
+        except InputError as exc:
+            raise InputError(f"{key}: {exc}") from None
+        except Exception as exc:                 # a hostile file must give a sentence, never a crash
+            raise InputError(f"{key}: not a usable {key.replace('_', ' ')} ({type(exc).__name__}); the file was "
+                             "not written by this server or was damaged.") from None
+    return data
+
+
 _VALIDATORS = {
     "stacks": load_stack_file,
     "gratings": load_grating_file,
     "calibrations": validate_calibration,
+    "camera_calibrations": validate_camera_calibration,
 }
 
 

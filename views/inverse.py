@@ -39,6 +39,7 @@ from .figures import RangeHolder
 from .colour_answer import (CUSTOM_READING, READING_PRESETS, ColourReading, _searched_stack_text,  # noqa: F401
                             _tolerance_verdict, _viewing_text)
 from .photo_reading import PhotoReading
+from .camera_calibration import CameraCalibrationPanel, photo_decoding_text
 from .uploads import CappedDropper, UploadReader
 from .state import ANGLE_MAX_DEG, THICKNESS_LIMITS_NM, compute_strip, parse_number
 
@@ -159,7 +160,8 @@ class ColourToThickness:
                                      css_classes=["fg-photo-drop"])
         self.mode = pn.widgets.RadioBoxGroup(options={"calibration box": "calib", "region of interest": "roi",
                                                       "pick a point": "pick", "profile line": "line",
-                                                      "wafer circle": "wafer"}, value="calib", inline=True,
+                                                      "wafer circle": "wafer", "calibration sample boxes": "refbox"},
+                                             value="calib", inline=True,
                                              width=330, margin=(2, 5), css_classes=["fg-photo-mode"],
                                              stylesheets=[".bk-input-group { flex-wrap: wrap; gap: 2px 10px; }"])
         self.reference = pn.widgets.RadioButtonGroup(options={"bare substrate": "substrate", "grey card": "grey"},
@@ -212,6 +214,7 @@ class ColourToThickness:
                 text_color="black", background_fill_color="white", background_fill_alpha=0.85)
         self.pick_info = pn.pane.HTML("", margin=(0, 5), css_classes=["fg-pick-info"], styles={"font-size": "13px"})
         self.tools = PhotoReading(self)
+        self.camcal = CameraCalibrationPanel(self)
         self.cmap_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]))
         self.cmapper = LinearColorMapper(palette=Magma256[::-1], low=0, high=MATCH_DE_MAX, nan_color="#d9d9d9")
         cf = figure(height=330, sizing_mode="stretch_width", match_aspect=True, tools="pan,wheel_zoom,reset,save",
@@ -529,7 +532,7 @@ class ColourToThickness:
         self.progress.visible = self.cancel_map.visible = False
         self.progress_text.object = ""
         self.photo_src.data = dict(image=[preview], x=[0], y=[0], dw=[photo.width], dh=[photo.height])
-        self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo.bit_depth}-bit"
+        self.photo_fig.title.text = f"{name}: {photo.width} x {photo.height} px, {photo_decoding_text(photo)}"
         self.mark_src.data = dict(x=[], y=[], label=[])
         self.pick_info.object = ""
         if self.reading.reading == self.reading.param.reading.default:     # a photo's colours come from a camera
@@ -539,6 +542,7 @@ class ColourToThickness:
                                      "under Colour read once the camera is calibrated against a reference.")
         self.tools.clear()
         self._draw_boxes()
+        self.camcal.photo_changed()
         self.run_map.disabled = False
         return True
 
@@ -551,6 +555,8 @@ class ColourToThickness:
             self.pick_box(box)
         elif self.mode.value == "wafer":
             self.tools.set_circle(box)
+        elif self.mode.value == "refbox":
+            self.camcal.add_box(box)
         else:
             self.set_box(self.mode.value, box)
 
@@ -606,6 +612,14 @@ class ColourToThickness:
             self.reference.value = "grey"
             self.grey.set_text(_fmt(float(data["reference"]), 4))
         self.set_box("calib", (x0, y0, x1, y1))
+
+    def camera_calibration_text(self, name: str, note: str = "") -> str:
+        """The camera calibration in use as the text of a lab-library item (views/camera_calibration.py)."""
+        return self.camcal.file_text(name, note)
+
+    def apply_camera_calibration(self, text: str, label: str = "") -> None:
+        """Use a lab-library camera calibration's text for the next maps; InputError when it is unusable."""
+        self.camcal.apply_text(text, label)
 
     def _draw_boxes(self):
         data = dict(x=[], y=[], w=[], h=[], color=[], name=[])
@@ -711,6 +725,7 @@ class ColourToThickness:
         self.hist_src.data = dict(left=[], right=[], top=[])
         self.hist_fig.title.text = "Histogram of thickness"
         self.stats.object = ""
+        self.camcal.show_map(None, 1)
         self.map_msg.visible = False
         for w in (self.dl_npy, self.dl_png, self.dl_csv):
             w.disabled = True
@@ -724,6 +739,7 @@ class ColourToThickness:
         try:
             ref = "substrate" if self.reference.value == "substrate" else _grey_value(self.grey)
             v = self._check({"window", "target"})
+            camera = self.camcal.map_arguments()          # the camera calibration in use, if chosen
         except (_Stop, InputError) as exc:
             self.map_msg.object = _esc(f"Not started: {exc} " + self._shown_map_text())
             self.map_msg.alert_type, self.map_msg.visible = "danger", True
@@ -736,7 +752,7 @@ class ColourToThickness:
         args = dict(image=self.photo, stack=s.stack, layer=s.swept_layer, thickness_nm=window,
                     reference_box=self.calib_box, illuminant=s.illuminant_spec(), angle_deg=s.angle_deg,
                     observer=s.observer, polarization=s.polarization, na=s.na, reference=ref, roi=self.roi,
-                    nominal_nm=nominal, reading_error_de=self.reading.reading_error_de)
+                    nominal_nm=nominal, reading_error_de=self.reading.reading_error_de, **camera)
         self.progress.visible = self.cancel_map.visible = True
         self.progress.value = 0
         self.run_map.disabled = True
@@ -851,7 +867,8 @@ class ColourToThickness:
              f"{st['order_outliers']:,} ({100 * st['order_outlier_fraction']:.1f} % of matched)"),
             (f"order not decided by colour (reading error ΔE00 {st.get('reading_error_de', 0):g})",
              f"{st.get('undecided', 0):,} ({100 * st.get('undecided_fraction', 0):.1f} % of matched)"),
-            ("calibration gains R, G, B", f"{g[0]:.3f}, {g[1]:.3f}, {g[2]:.3f}"))
+            ("calibration gains R, G, B", f"{g[0]:.3f}, {g[1]:.3f}, {g[2]:.3f}"),
+            *self.camcal.show_map(result, step))
         self.stats.object = ("<table style='font-size:13px' cellpadding='2'>"
                              + "".join(f"<tr><td>{k}</td><td><b>{v}</b></td></tr>" for k, v in rows) + "</table>")
         for w in (self.dl_npy, self.dl_png, self.dl_csv):
@@ -924,8 +941,10 @@ class ColourToThickness:
         photo_controls = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A photo to a thickness map</h3>"),
             _label("Photo (JPEG, PNG or TIFF, 8 or 16 bit)"), self.dropper, self.photo_msg.message,
-            _label("Dragging or tapping on the photo sets"), self.mode, _label("The calibration box shows"),
-            self.reference, self.grey.view(), self.box_info, _label("The wafer (for sites and its usable area)"),
+            _label("Dragging or tapping on the photo sets"), self.mode,
+            self.camcal.panel(quick=pn.Column(_label("The calibration box shows"), self.reference, self.grey.view(),
+                                              self.box_info, margin=0)),
+            _label("The wafer (for sites and its usable area)"),
             self.tools.controls(), self.run_map, self.progress, self.cancel_map, self.progress_text,
             self.dl_npy, self.dl_png, self.dl_csv, width=340)
         return pn.Column(
@@ -936,6 +955,7 @@ class ColourToThickness:
                                              sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.tmap_fig, sizing_mode="stretch_width"),
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
+            self.camcal.unc_row,
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.tools.prof_fig, sizing_mode="stretch_width"), self.tools.site_table,
                    sizing_mode="stretch_width"),

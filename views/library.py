@@ -74,7 +74,9 @@ DIFF_CONTEXT_LINES = 3
 
 _SOURCE = {"stacks": "the Film explorer's stack (with its thickness and view)",
            "gratings": "the Gratings tab's grating and spectrometer",
-           "calibrations": "the calibration box and reference on the Colour → thickness tab"}
+           "calibrations": "the calibration box and reference on the Colour → thickness tab",
+           "camera_calibrations": "the camera calibration in use on the Colour → thickness tab (with its flat "
+                                  "field, camera, lamp, objective, NA and date)"}
 
 #: Headings of the tab's two columns: a real gap below them, so they never touch the controls.
 _CSS = """
@@ -164,7 +166,8 @@ class LibrarySection:
         #: Name of the tab's body in the Bokeh document: present there only while the tab is on screen.
         self.body_name = f"fg-lib-body-{uuid.uuid4().hex}"
         self.kind = pn.widgets.RadioButtonGroup(options={"Stacks": "stacks", "Gratings": "gratings",
-                                                         "Calibrations": "calibrations"},
+                                                         "Calibrations": "calibrations",
+                                                         "Camera calibrations": "camera_calibrations"},
                                                 value="stacks", margin=(2, 5))
         # a list box that can also select nothing (a Select always falls back to its first option),
         # so that after an archive no other item is selected; one item at a time (see _selection_changed)
@@ -436,6 +439,11 @@ class LibrarySection:
                     raise InputError("This page has no Gratings tab to load into.")
                 self.grating.load_file_text(text)
                 where = "the Gratings tab"
+            elif kind == "camera_calibrations":
+                if self.inverse is None:
+                    raise InputError("This page has no Colour → thickness tab to load into.")
+                self.inverse.apply_camera_calibration(text, f"{e.name} v{e.version}")
+                where = "the Colour → thickness tab (Calibrated camera; the next map uses it)"
             else:
                 if self.inverse is None:
                     raise InputError("This page has no Colour → thickness tab to load into.")
@@ -610,6 +618,8 @@ class LibrarySection:
             return self.grating.file_text(name)
         if self.inverse is None:
             raise InputError("This page has no Colour → thickness tab to save from.")
+        if kind == "camera_calibrations":
+            return self.inverse.camera_calibration_text(name)
         return self.inverse.calibration_text(name)
 
     def _say(self, html: str, kind: str) -> None:

@@ -1,0 +1,200 @@
+"""The colour tab's camera calibration driven from its objects, without a browser: the box table, a box CSV,
+the fit and its residuals, the refusals, and a save/load round trip through a temporary lab library.
+
+Every photo here is invented: an 8-step oxide-on-silicon reference sample (steps of known thickness, as a
+fab's step wafer would be measured on an instrument), rendered through a made-up camera (a fixed 3x3 mixing
+of the channels and a dark level) so that the quick gains cannot read it and a calibration can.
+"""
+
+import io
+import json
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from library.store import Library, validate_camera_calibration
+from physics import InputError
+from physics.appearance import color_map
+from views.camera_calibration import parse_box_csv
+from views.explorer import FilmExplorer
+from views.inverse import ColourToThickness
+
+#: Known thicknesses of the invented reference sample's steps (nm).
+STEPS_NM = (40.0, 90.0, 140.0, 190.0, 240.0, 300.0, 360.0, 420.0)
+#: Width of one step in the photo (px); the photo is 40 px high.
+STEP_PX = 24
+#: The invented camera: a fixed channel mixing and a dark level (fraction of full scale).
+MIXING = np.array([[0.85, 0.12, 0.03], [0.08, 0.84, 0.08], [0.02, 0.15, 0.83]])
+DARK = 0.03
+
+
+@pytest.fixture()
+def section(tmp_path):
+    sec = ColourToThickness(FilmExplorer())
+    sec.panel()
+    sec.camcal.library = Library(tmp_path / "lab")
+    sec.win_hi.input.value = "500"
+    return sec
+
+
+def _png(rgb):
+    buf = io.BytesIO()
+    Image.fromarray(np.round(np.clip(rgb, 0, 1) * 255).astype(np.uint8)).save(buf, format="PNG")
+    return buf.getvalue()
+
+
+def _camera(linear):
+    """sRGB-encoded output of the invented camera for linear-light sRGB values (..., 3)."""
+    out = np.clip(linear @ MIXING.T * 0.9 + DARK, 0, 1)
+    return np.where(out <= 0.0031308, 12.92 * out, 1.055 * out ** (1 / 2.4) - 0.055)
+
+
+def _reference_photo(section, steps=STEPS_NM, height=40):
+    """(PNG bytes, boxes) of the invented step sample: one vertical stripe per step."""
+    st = section.ex.state.stack
+    srgb = color_map(st, 0, list(steps), [0.0]).rgb[:, 0, :]
+    lin = np.where(srgb <= 0.04045, srgb / 12.92, ((srgb + 0.055) / 1.055) ** 2.4)
+    img = np.repeat(_camera(lin)[None, :, :], height, axis=0).repeat(STEP_PX, axis=1)
+    boxes = [(i * STEP_PX + 4, 8, (i + 1) * STEP_PX - 4, height - 8) for i in range(len(steps))]
+    return _png(img), boxes
+
+
+def _csv(boxes, thicknesses):
+    lines = ["x0,y0,x1,y1,thickness_nm"] + [",".join(str(v) for v in (*b, t)) for b, t in zip(boxes, thicknesses)]
+    return ("\n".join(lines) + "\n").encode()
+
+
+def _draw(section, boxes, thicknesses):
+    """Boxes dragged on the photo in "calibration sample boxes" mode, each thickness typed in its row."""
+    section.camcal.settings.method = "calibrated"
+    section.mode.value = "refbox"
+    for b in boxes:
+        assert section.camcal.add_box(b)
+    for f, t in zip(section.camcal.thickness_fields, thicknesses):
+        f.input.value = f"{t:g}"
+
+
+def test_drawn_boxes_get_rows_and_the_fit_shows_residuals_per_box(section):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    assert "8-bit PNG" in section.camcal.photo_info.object            # bit depth and decode path shown
+    _draw(section, boxes, STEPS_NM)
+    assert len(section.camcal.thickness_fields) == len(STEPS_NM)
+    assert section.camcal.box_src.data["label"] == [str(i + 1) for i in range(len(STEPS_NM))]
+    cal = section.camcal.fit()
+    assert cal is not None, section.camcal.fit_msg.object
+    table = section.camcal.residuals.object
+    assert table.count("<tr>") == len(STEPS_NM) + 1 and "ΔE00" in table and "residual (nm)" in table
+    assert len(cal.residual_delta_e) == len(STEPS_NM)
+    assert section.camcal.fit_msg.alert_type == "success"
+    assert section.camcal.active is cal and "In use" in section.camcal.active_info.object
+    # the map now uses the calibration and shows an uncertainty
+    args = section.camcal.map_arguments()
+    assert args["calibration"] is cal
+    section.start_map(sync=True)
+    assert section.result is not None, section.map_msg.object
+    assert section.camcal.unc_row.visible and "uncertainty" in section.stats.object
+
+
+def test_a_box_csv_fills_the_table_and_a_bad_row_is_named(section):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    assert section.camcal.load_box_csv(_csv(boxes, STEPS_NM), "steps.csv")
+    assert [f.input.value for f in section.camcal.thickness_fields] == [f"{t:g}" for t in STEPS_NM]
+    assert section.camcal.settings.method == "calibrated"
+    bad = _csv(boxes[:2], STEPS_NM[:2]) + b"10,5,4,30,100\n"
+    assert not section.camcal.load_box_csv(bad, "bad.csv")
+    msg = section.camcal.box_msg.message.object
+    assert "bad.csv" in msg and "Row 4" in msg
+    assert len(section.camcal.boxes) == len(STEPS_NM)                   # the boxes on the page stay
+
+
+@pytest.mark.parametrize("text, row", [
+    (b"0,0,10,10\n", "Row 1: has 4 value(s)"),
+    (b"0,0,10,10,abc\n", "Row 1: 0, 0, 10, 10, abc is not five numbers"),
+    (b"x0,y0,x1,y1,t\n0,0,10,10,100\n0,0,10,10,-5\n", "Row 3: the thickness -5 nm is outside"),
+    (b"", "holds no rows"),
+])
+def test_box_csv_refusals_name_the_row(text, row):
+    with pytest.raises(InputError, match=row.replace("(", r"\(").replace(")", r"\)")):
+        parse_box_csv(text)
+
+
+def test_refusals_are_sentences_and_keep_what_was_there(section):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    good = section.camcal.fit()
+    assert good is not None
+    # a known thickness outside the window
+    section.camcal.thickness_fields[3].input.value = "800"
+    assert section.camcal.fit() is None
+    assert "Box 4" in section.camcal.fit_msg.object and "outside the search window" in section.camcal.fit_msg.object
+    assert section.camcal.active is good                                 # the calibration in use stays
+    section.camcal.thickness_fields[3].input.value = f"{STEPS_NM[3]:g}"
+    # a box outside a smaller photo
+    small, _ = _reference_photo(section, steps=STEPS_NM[:3])
+    section.load_photo(small, "small.png")
+    assert section.camcal.fit() is None
+    assert "lies outside this photo" in section.camcal.fit_msg.object
+    # too few boxes: the fit's own sentence
+    section.load_photo(data, "steps.png")
+    section.camcal.remove_boxes()
+    _draw(section, boxes[:2], STEPS_NM[:2])
+    assert section.camcal.fit() is None
+    assert section.camcal.fit_msg.alert_type == "danger" and section.camcal.fit_msg.object.startswith("Not fitted")
+    # calibrated without a calibration in use: the map is refused with a sentence
+    section.camcal.active = None
+    section.start_map(sync=True)
+    assert "no calibration is in use" in section.map_msg.object
+
+
+def test_save_and_load_round_trip_through_the_library(section, tmp_path):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    cam = section.camcal
+    cam.settings.camera, cam.settings.lamp, cam.settings.objective, cam.settings.na = "Line 3 scope", "halogen", "5x", 0.15
+    cal = cam.fit()
+    assert cal is not None
+    cam.save_name.value, cam.save_user.value = "Line 3 scope 5x", "ak"
+    assert cam.save(), cam.lib_msg.object
+    text = cam.library.load("camera_calibrations", "Line 3 scope 5x")
+    doc = validate_camera_calibration(text)
+    assert doc["camera"] == "Line 3 scope" and doc["na"] == 0.15 and len(doc["date"]) == 10
+    # a second page loads it from its picker
+    other = ColourToThickness(FilmExplorer())
+    other.panel()
+    other.camcal.library = cam.library
+    other.camcal.refresh_list()
+    assert list(other.camcal.picker.options.values()) == [("Line 3 scope 5x", 1)]
+    other.camcal.picker.value = ("Line 3 scope 5x", 1)
+    assert other.camcal.load_selected(), other.camcal.lib_msg.object
+    assert other.camcal.active is not None and other.camcal.settings.method == "calibrated"
+    assert np.allclose(other.camcal.active.residual_delta_e, cal.residual_delta_e)
+    assert "Line 3 scope 5x v1" in other.camcal.active_info.object
+
+
+def test_a_corrupt_calibration_in_the_library_is_a_sentence(section, tmp_path):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    assert section.camcal.fit() is not None
+    cam = section.camcal
+    cam.save_name.value, cam.save_user.value = "Scope", "ak"
+    assert cam.save()
+    path = cam.library.path_for("camera_calibrations", "Scope")
+    doc = json.loads(path.read_text())
+    doc["calibration"] = {"garbage": [1, 2]}
+    path.write_text(json.dumps(doc))                                      # edited by hand: checksum fails
+    cam.refresh_list()
+    assert "skipped" in cam.lib_msg.object
+    cam.active = None
+    cam.picker.options = {"Scope · v1": ("Scope", 1)}
+    cam.picker.value = ("Scope", 1)
+    assert not cam.load_selected()
+    assert "Could not load Scope v1" in cam.lib_msg.object and cam.active is None
+    # the envelope's own check refuses a calibration that does not rebuild, with the field named
+    with pytest.raises(InputError, match="calibration"):
+        validate_camera_calibration(json.dumps(doc))
