@@ -30,7 +30,8 @@ model="matrix", flat_field=None, dark=None, ...) -> CameraCalibration``
     ``dark`` (3,), ``illuminant``, ``observer``, ``width``, ``height`` (``image_size``), ``boxes``,
     ``thickness_nm`` (reference only), ``reference_lab`` (N, 3), ``residual_delta_e`` (ΔE00 per box),
     ``residual_nm`` (reference only: thickness each box's corrected colour maps to minus its known
-    thickness), ``rms_delta_e``, ``condition_number``, ``kind`` ("reference"/"target"),
+    thickness), ``holdout_delta_e`` (each box predicted from the others), ``rms_delta_e``,
+    ``colour_error_de``, ``condition_number``, ``kind`` ("reference"/"target"),
     ``flat_field`` (the FlatField it was made with, or None), metadata ``camera``, ``lamp``,
     ``objective``, ``objective_na`` (float or None), ``date`` (strings), ``message``.
     ``xyz_from_linear(rgb, flat_field=None)`` applies it; ``lab_from_linear`` gives CIELAB;
@@ -419,6 +420,8 @@ class CameraCalibration:
     residual_nm : (N,) float, thickness each box's corrected colour maps to (in its known order) minus the
         known thickness (reference sample; empty for a target).
     condition_number : float, of the design matrix (see :data:`MAX_CONDITION`).
+    holdout_delta_e : (N,) float, ΔE00 of each box predicted by the matrix fitted to the other boxes (the dark
+        offset kept): how well the calibration predicts colours between its boxes.
     kind : "reference" or "target"
     flat_field : FlatField or None, the flat field the box colours were corrected with; a map with this
         calibration uses it unless another is given.
@@ -439,6 +442,7 @@ class CameraCalibration:
     thickness_nm: np.ndarray = field(default_factory=lambda: np.zeros(0))
     residual_nm: np.ndarray = field(default_factory=lambda: np.zeros(0))
     condition_number: float = float("nan")
+    holdout_delta_e: np.ndarray = field(default_factory=lambda: np.zeros(0))
     kind: str = "reference"
     flat_field: FlatField | None = None
     camera: str = ""
@@ -454,9 +458,16 @@ class CameraCalibration:
 
     @property
     def rms_delta_e(self) -> float:
-        """Root mean square of the boxes' ΔE00: the calibration's own colour error."""
+        """Root mean square of the boxes' ΔE00."""
         r = np.asarray(self.residual_delta_e, dtype=float)
         return float(np.sqrt(np.mean(r ** 2))) if r.size else 0.0
+
+    @property
+    def colour_error_de(self) -> float:
+        """The calibration's own colour error (ΔE00): the larger of the boxes' RMS ΔE00 and the RMS of their
+        hold-out ΔE00 (a fit with few boxes matches its own boxes better than colours between them)."""
+        h = np.asarray(self.holdout_delta_e, dtype=float)
+        return max(self.rms_delta_e, float(np.sqrt(np.mean(h ** 2))) if h.size else 0.0)
 
     def with_metadata(self, **fields) -> CameraCalibration:
         """A copy with camera, lamp, objective, objective_na or date set (checked)."""
@@ -495,6 +506,7 @@ class CameraCalibration:
                 "thickness_nm": [float(v) for v in self.thickness_nm],
                 "residual_nm": [float(v) for v in self.residual_nm],
                 "condition_number": float(self.condition_number),
+                "holdout_delta_e": [float(v) for v in self.holdout_delta_e],
                 "flat_field": self.flat_field.to_dict() if self.flat_field is not None else None,
                 "camera": self.camera, "lamp": self.lamp, "objective": self.objective,
                 "objective_na": self.objective_na, "date": self.date, "message": self.message}
@@ -540,6 +552,7 @@ class CameraCalibration:
         n = len(boxes)
         ref_lab = _float_array(d, "reference_lab", (n, 3), minimum=-500.0, maximum=500.0)
         res_de = _float_array(d, "residual_delta_e", (n,), minimum=0.0, maximum=1000.0)
+        held = _float_array(d, "holdout_delta_e", (n,), minimum=0.0, maximum=1e6)
         want = (n,) if kind == "reference" else (0,)
         thick = _float_array(d, "thickness_nm", want, minimum=0.0, maximum=1e6)
         res_nm = _float_array(d, "residual_nm", want, minimum=-1e6, maximum=1e6, allow_nan=True)
@@ -556,7 +569,7 @@ class CameraCalibration:
         meta = _metadata(**{k: d.get(k, None if k == "objective_na" else "")
                             for k in ("camera", "lamp", "objective", "objective_na", "date")})
         return cls(model, matrix, dark, illuminant, observer, width, height, tuple(boxes), ref_lab, res_de,
-                   thick, res_nm, float(cond), kind, flat, message=message, **meta)
+                   thick, res_nm, float(cond), held, kind, flat, message=message, **meta)
 
 
 def _mapping(data, what):
@@ -770,11 +783,18 @@ def _calibrate(photo, boxes, lab_target, xyz_target, model, illuminant, observer
         raise InputError(f"{len(checked)} boxes but {len(lab_target)} reference colours: give one per box.")
     cond = _design_check(px.prepared(np.zeros(3)), model, len(checked))
     M, d = _fit(px, xyz_target, lab_target, model, illuminant, observer, dark)
-    lab_fit = _target_lab_from_xyz(_positive(_apply(px.prepared(d), M, model)), illuminant, observer)
+    q = px.prepared(d)
+    lab_fit = _target_lab_from_xyz(_positive(_apply(q, M, model)), illuminant, observer)
     res = np.asarray(delta_e_2000(lab_fit, lab_target), dtype=float)
+    held = np.empty(len(checked))
+    for i in range(len(checked)):                                     # each box predicted by the others
+        keep = np.arange(len(checked)) != i
+        Mi = _fit_matrix(q[keep], xyz_target[keep], model)
+        lab_i = _target_lab_from_xyz(_positive(_apply(q[i:i + 1], Mi, model)), illuminant, observer)
+        held[i] = float(delta_e_2000(lab_i[0], lab_target[i]))
     cal = CameraCalibration(model, M, np.asarray(d, dtype=float), illuminant, str(observer), photo.width,
                             photo.height, checked, np.asarray(lab_target, dtype=float), res, condition_number=cond,
-                            kind=kind, flat_field=flat, **_metadata(**meta))
+                            kind=kind, flat_field=flat, holdout_delta_e=held, **_metadata(**meta))
     return cal, lab_fit
 
 
@@ -851,7 +871,8 @@ def calibrate_from_reference(image, boxes, thickness_nm, stack, layer: int = 0, 
     res_nm = np.array([_thickness_in_order(path, lab, known) - known for lab, known in zip(lab_fit, t)])
     worst = int(np.argmax(np.abs(res_nm)))
     message = (f"{model} calibration from {len(t)} boxes: ΔE00 {cal.rms_delta_e:.2f} RMS (largest "
-               f"{cal.residual_delta_e.max():.2f}); thickness residual {np.sqrt(np.mean(res_nm ** 2)):.1f} nm RMS, largest "
+               f"{cal.residual_delta_e.max():.2f}; each box predicted from the others: largest "
+               f"{cal.holdout_delta_e.max():.2f}); thickness residual {np.sqrt(np.mean(res_nm ** 2)):.1f} nm RMS, largest "
                f"{res_nm[worst]:+.1f} nm at the {t[worst]:g} nm box.")
     return replace(cal, thickness_nm=t, residual_nm=res_nm, message=message)
 
@@ -902,7 +923,8 @@ def calibrate_from_target(image, boxes, reference_lab, *, illuminant="D65", obse
     cal, _ = _calibrate(photo, boxes, lab, lab_to_xyz(lab, name, observer), model, name, str(observer), flat_field,
                         dark, meta, "target")
     message = (f"{model} calibration from {len(lab)} target patches: ΔE00 {cal.rms_delta_e:.2f} RMS (largest "
-               f"{cal.residual_delta_e.max():.2f}).")
+               f"{cal.residual_delta_e.max():.2f}; each patch predicted from the others: largest "
+               f"{cal.holdout_delta_e.max():.2f}).")
     return replace(cal, message=message)
 
 
