@@ -50,9 +50,10 @@ FWHM), then convolved with the slit function and read at the measured wavelength
 :data:`GAUSSIAN_CUT_FWHM` FWHM either side) or "triangular" (g = 1 − |x|/FWHM for |x| < FWHM: the
 image of an entrance slit swept across an exit slit of the same width in a grating monochromator;
 Born & Wolf sec. 8.6.3; an array spectrometer's line is closer to Gaussian). The bandwidth is constant
-in wavelength across the band (a grating instrument's is, to first order). Within one slit half-width
-of the band's ends the slit is cut at the end and renormalized (the model is never evaluated outside
-the measured band, where the fitted dispersion is not defined). The bandwidth is an instrument constant
+in wavelength across the band (a grating instrument's is, to first order). The reading at the band's
+ends holds light from up to one slit half-width beyond them, so the fine grid reaches that far where
+every medium has data, and the fitted dispersion's range includes that reach; where a medium's data
+end, the slit is cut there and renormalized. The bandwidth is an instrument constant
 and is given, not fitted: it damps the fringes as a thickness spread does (both wash out contrast most
 at short wavelengths), so a free bandwidth would trade against a free spread.
 
@@ -429,23 +430,31 @@ def slit_matrix(wavelength_nm, fine_nm, bandwidth_nm: float, slit: str = "gaussi
     return sparse.csr_matrix((w.ravel(), (rows, cols.ravel())), shape=(wl.size, fine.size))
 
 
-def _with_slit(spectra, stack, layer, window, start_material, bandwidth_nm, slit):
-    """The spectra with the slit's fine grid and matrix (see the module notes); refuses a grid too fine."""
+def _with_slit(spectra, stack, layer, window, film_material, bandwidth_nm, slit, film_range=None):
+    """The spectra with the slit's fine grid and matrix (see the module notes); refuses a grid too fine.
+
+    The fine grid reaches the slit's half-width beyond each spectrum's ends where every medium has data (the
+    reading at a band's end holds light from beyond it); ``film_range`` is where the film may be evaluated (None:
+    anywhere, for a model built to cover the grid)."""
+    half = bandwidth_nm * (GAUSSIAN_CUT_FWHM if slit == "gaussian" else 1.0)
+    others = [stack.ambient, stack.substrate] + [l.material for i, l in enumerate(stack.layers) if i != layer]
+    ranges = [m.range_nm for m in others if m.range_nm is not None] + ([film_range] if film_range else [])
+    span = (max([r[0] for r in ranges], default=0.0), min([r[1] for r in ranges], default=np.inf))
     out = []
     for s in spectra:
-        lo = float(s.wl[0])
-        opd = sum(float(l.material.nk([lo]).real[0]) * (window[1] if i == layer else l.thickness_nm)
+        lo, hi = max(float(s.wl[0]) - half, span[0], 1e-3), min(float(s.wl[-1]) + half, span[1])
+        opd = sum(float(l.material.nk([s.wl[0]]).real[0]) * (window[1] if i == layer else l.thickness_nm)
                   for i, l in enumerate(stack.layers))
-        opd += (SLIT_INDEX_MARGIN - 1.0) * float(start_material.nk([lo]).real[0]) * window[1]
+        opd += (SLIT_INDEX_MARGIN - 1.0) * float(film_material.nk([s.wl[0]]).real[0]) * window[1]
         period = lo * lo / (2.0 * max(opd, 1e-9))                     # fringe period in λ (Born & Wolf 7.5.1)
         step = min(period / SLIT_SAMPLES_PER_FRINGE, bandwidth_nm / SLIT_SAMPLES_PER_FWHM)
-        count = int(np.ceil((s.wl[-1] - lo) / step)) + 1
+        count = int(np.ceil((hi - lo) / step)) + 1
         if count > MAX_SLIT_POINTS:
             raise InputError(f"Applying a {bandwidth_nm:g} nm bandwidth to fringes {period:.3g} nm apart over "
-                             f"{lo:g}-{s.wl[-1]:g} nm needs {count} model wavelengths, more than the fit computes "
+                             f"{s.wl[0]:g}-{s.wl[-1]:g} nm needs {count} model wavelengths, more than the fit computes "
                              f"({MAX_SLIT_POINTS}); narrow the thickness window, the wavelength range, or give "
                              "bandwidth_nm=0 when the fringes are much wider than the bandwidth.")
-        fine = np.linspace(lo, float(s.wl[-1]), max(count, 2))
+        fine = np.linspace(lo, hi, max(count, 2))
         out.append(_Spectrum(s.wl, s.R, s.angle, fine, slit_matrix(s.wl, fine, bandwidth_nm, slit)))
     return out
 
@@ -476,8 +485,9 @@ def _evaluate(st, film, specs, groups, d, sigma, polarization):
     return out
 
 
-def _start(family: _Model, start: Material, band, model: str):
-    """The model's parameters for the stack's own layer material: read, or fitted to its n and k."""
+def _start(family: _Model, start: Material, band, model: str, given=()):
+    """The model's parameters for the stack's own layer material: read, or fitted to its n and k (``given``: the
+    names whose bounds the caller set)."""
     p = family.read(start, band)
     if p is not None:
         p = np.asarray(p, dtype=float)
@@ -485,6 +495,10 @@ def _start(family: _Model, start: Material, band, model: str):
                if not lo <= v <= hi]
         if bad:
             nm, v, lo, hi = bad[0]
+            if nm in given:
+                raise InputError(f"The starting {model} parameter {nm} = {v:g} lies outside the bounds you gave "
+                                 f"({lo:g} to {hi:g}); widen bounds[{nm!r}] to include it, or start from a material "
+                                 f"whose {nm} lies inside them.")
             raise InputError(f"The starting {model} parameter {nm} = {v:g} lies outside the range the fit searches "
                              f"({lo:g} to {hi:g}); start from a material whose {nm} lies inside it.")
         return p
@@ -586,7 +600,10 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     band = (min(s.wl[0] for s in spectra), max(s.wl[-1] for s in spectra))
     start_material = stack.layers[layer].material
     if bandwidth_nm > 0:
-        spectra = _with_slit(spectra, stack, layer, window, start_material, bandwidth_nm, slit)
+        spectra = _with_slit(spectra, stack, layer, window, start_material, bandwidth_nm, slit,
+                             start_material.range_nm if model == "fixed" else None)
+    # the fitted model is defined wherever it is evaluated: the band, and a slit's reach beyond it
+    model_band = (min(s.fine[0] for s in spectra), max(s.fine[-1] for s in spectra))
     coarse = [_comb(s) for s in spectra]
     given = stack
     stack = _frozen(stack, layer, [g for s in spectra + coarse for g in (s.wl, s.fine)])
@@ -629,14 +646,14 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
 
     hosts = [start_material] if family is None else None
     if family is not None:
-        p_start = _start(family, start_material, band, model)
+        p_start = _start(family, start_material, model_band, model, tuple(bounds or ()))
         hosts = _draws(family, p_start, SAMPLES_PER_PARAMETER * n_mat)
     spread_start = float(np.clip(SPREAD_START_WAVES * band[0] / float(start_material.nk([band[0]]).real[0]),
                                  *spread_hi))
     rough_start = float(np.clip(ROUGHNESS_START_NM, *rough_hi))
 
     def unpack(p):
-        mat = family.build(p[i_mat], band) if family else start_material
+        mat = family.build(p[i_mat], model_band) if family else start_material
         rough = float(p[i_rough]) if roughness else None
         sigma = float(p[i_spread]) if spread else None
         sc = p[i_sc] if free_scale else np.ones(n_spec)
@@ -681,7 +698,7 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
         candidates = [(0, (t,)) for t, _ in thickness_fit.minima[:CANDIDATES_REFINED]]
     else:
         candidates = _scan_candidates(stack, layer, hosts, window, coarse, polarization, free_scale, free_offset,
-                                      family, band, each, say)
+                                      family, model_band, each, say)
     if not candidates:
         raise InputError(f"No starting {model} material gives a valid index over {band[0]:g}-{band[1]:g} nm; start "
                          "from a material with data over the whole band, or choose another model.")
