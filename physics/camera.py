@@ -522,10 +522,10 @@ class CameraCalibration:
                              f"{CALIBRATION_FORMAT!r}).")
         _version(d, "camera calibration")
         model = d.get("model")
-        if model not in MODELS:
+        if not isinstance(model, str) or model not in MODELS:
             raise InputError(f"The saved calibration's model {model!r} is not one of {', '.join(MODELS)}.")
         kind = d.get("kind")
-        if kind not in ("reference", "target"):
+        if not isinstance(kind, str) or kind not in ("reference", "target"):
             raise InputError(f"The saved calibration's kind {kind!r} is not 'reference' or 'target'.")
         terms = MODELS[model][2]
         matrix = _float_array(d, "matrix", (3, terms), minimum=-1e6, maximum=1e6)
@@ -772,7 +772,7 @@ def _illuminant_name(illuminant):
 
 
 def _check_model(model):
-    if model not in MODELS:
+    if not isinstance(model, str) or model not in MODELS:
         raise InputError(f"model must be one of {', '.join(repr(m) for m in MODELS)}; got {model!r}.")
 
 
@@ -954,7 +954,7 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
                              "the calibration's lamp, or calibrate under this one.")
     if flat is not None:
         check_flat(flat, photo)
-    if denoise is not None and denoise not in DENOISE_FILTERS:
+    if denoise is not None and (not isinstance(denoise, str) or denoise not in DENOISE_FILTERS):
         raise InputError(f"denoise must be None or one of {', '.join(repr(k) for k in DENOISE_FILTERS)}; got {denoise!r}.")
     lin = linear_rgb(photo)[y0:y1, x0:x1]
     dark = calibration.dark if calibration is not None else None
