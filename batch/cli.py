@@ -2,8 +2,8 @@
 
 Usage::
 
-    python -m batch PHOTOS_DIR --stack STACK.json|PRESET_NAME --box x0 y0 x1 y1
-        [--layer 0] [--window 0 1000] [--reference substrate|0.18] [--illuminant D65]
+    python -m batch PHOTOS_DIR --stack STACK.json|PRESET_NAME (--box x0 y0 x1 y1 | --calibration NAME)
+        [--library FOLDER] [--calibration-version N] [--layer 0] [--window 0 1000] [--reference substrate|0.18] [--illuminant D65]
         [--angle 0] [--nominal NM] [--max-delta-e 6] [--out OUT_DIR]
         [--scheduler tcp://host:port] [--workers N] [--pattern "*.jpg,*.png,..."] [--quiet]
 
@@ -14,6 +14,15 @@ loads the photo from its path, computes :func:`physics.thickness_map`, writes
 ``<stem>_thickness.png`` (the map with a colour bar) to the output folder, and
 returns one summary row, so no image travels between processes. ``summary.csv``
 in the output folder lists every photo.
+
+``--calibration NAME`` reads a camera calibration (and its flat field) saved in the lab library
+(``camera_calibrations``, see ``views/camera_calibration.py``) from the folder the page uses:
+``--library``, else ``FRINGEGAUGE_LIBRARY``, else ``./lab-library``. Its metadata must be signed
+with the library key (``FRINGEGAUGE_LIBRARY_KEY_FILE`` or its default), as for the page. The maps
+then use it instead of the box's gains. The summary's ``uncertainty_median_nm`` and
+``uncertainty_p95_nm`` columns give the median and 95th percentile of each map's per-pixel
+thickness uncertainty (from the colour residual and the colour path's slope; with a calibration its
+own ΔE00, with the box's gains one just-noticeable difference), ``calibration`` its name and version.
 
 A photo that cannot be used (unreadable file, box outside the image, clipped or
 dark box, ...) gets status ``error`` and its message in the summary; the others
@@ -54,7 +63,9 @@ DEFAULT_PATTERNS = ("*.jpg", "*.jpeg", "*.png", "*.tif", "*.tiff")
 SUMMARY_FIELDS = ("file", "status", "message", "mean_nm", "std_nm", "min_nm", "max_nm", "uniformity",
                   "valid_fraction", "gains_r", "gains_g", "gains_b", "seconds",
                   # robust statistics, after the first columns so that readers by position keep working
-                  "median_nm", "p_low_nm", "p_high_nm", "uniformity_robust", "order_outlier_fraction")
+                  "median_nm", "p_low_nm", "p_high_nm", "uniformity_robust", "order_outlier_fraction",
+                  # per-pixel thickness uncertainty, and the camera calibration used (--calibration)
+                  "uncertainty_median_nm", "uncertainty_p95_nm", "calibration")
 #: Default output folder, inside the photo folder.
 OUT_SUBDIR = "thickness_maps"
 #: Said on every summary and figure.
@@ -67,7 +78,12 @@ _STAT_KEYS = ("mean_nm", "std_nm", "min_nm", "max_nm", "uniformity", "valid_frac
 #: Decimal places of each numeric column in summary.csv.
 _CSV_DECIMALS = {"mean_nm": 2, "std_nm": 2, "min_nm": 2, "max_nm": 2, "uniformity": 4, "valid_fraction": 4,
                  "gains_r": 5, "gains_g": 5, "gains_b": 5, "seconds": 2, "median_nm": 2, "p_low_nm": 2,
-                 "p_high_nm": 2, "uniformity_robust": 4, "order_outlier_fraction": 4}
+                 "p_high_nm": 2, "uniformity_robust": 4, "order_outlier_fraction": 4, "uncertainty_median_nm": 2,
+                 "uncertainty_p95_nm": 2}
+#: The library kind ``--calibration`` names (library.store.KINDS).
+CALIBRATION_KIND = "camera_calibrations"
+#: Environment variable naming the lab library folder (as serve.py sets it for the page).
+LIBRARY_ENV = "FRINGEGAUGE_LIBRARY"
 
 
 # ---------------------------------------------------------------------- settings shipped to workers
@@ -95,6 +111,10 @@ class PhotoSettings:
     angle_deg : float
     nominal_nm : float or None
     max_delta_e : float
+    calibration_text : str or None
+        A lab-library camera calibration's text (with its flat field); None = the box's gains.
+    calibration_name : str
+        Its name and version, for the summary.
     """
 
     stack_text: str
@@ -108,6 +128,20 @@ class PhotoSettings:
     angle_deg: float
     nominal_nm: float | None
     max_delta_e: float
+    calibration_text: str | None = None
+    calibration_name: str = ""
+
+
+@functools.lru_cache(maxsize=4)
+def _calibration_from_text(text: str):
+    """(CameraCalibration, FlatField or None) of a library camera calibration's text, parsed once per worker."""
+    from physics import camera
+    from physics.stackfile import read_json_document
+
+    data = read_json_document(text, "camera calibration", 10**7)
+    flat = data.get("flat_field")
+    return camera.CameraCalibration.from_dict(data["calibration"]), (
+        None if flat is None else camera.FlatField.from_dict(flat))
 
 
 @functools.lru_cache(maxsize=4)
@@ -119,7 +153,7 @@ def _stack_from_text(text: str):
 
 
 def _empty_row(file: str) -> dict:
-    return {key: (file if key == "file" else "" if key in ("status", "message") else math.nan)
+    return {key: (file if key == "file" else "" if key in ("status", "message", "calibration") else math.nan)
             for key in SUMMARY_FIELDS}
 
 
@@ -175,11 +209,18 @@ def process_photo(photo_path: str, out_stem: str, out_dir: str, settings: PhotoS
         stack = _stack_from_text(settings.stack_text)   # once per worker: not counted in "seconds"
     except Exception as exc:
         return _error_row(name, f"the worker cannot read the stack: {exc}")
+    try:
+        camera = {}
+        if settings.calibration_text is not None:
+            cal, flat = _calibration_from_text(settings.calibration_text)
+            camera = {"calibration": cal, "flat_field": flat}
+    except Exception as exc:
+        return _error_row(name, f"the worker cannot read the camera calibration: {exc}")
     started = time.perf_counter()
     try:
         tm = thickness_map(photo_path, stack, settings.layer, settings.window, settings.box, settings.illuminant,
                            angle_deg=settings.angle_deg, reference=settings.reference,
-                           nominal_nm=settings.nominal_nm, max_delta_e=settings.max_delta_e)
+                           nominal_nm=settings.nominal_nm, max_delta_e=settings.max_delta_e, **camera)
         values = np.asarray(tm.thickness_nm, dtype=np.float32)
         png = colorbar_png(values, label="thickness (nm)", title=_figure_title(name, settings),
                            footer=_figure_footer(tm.message, settings), origin="upper",
@@ -198,6 +239,9 @@ def process_photo(photo_path: str, out_stem: str, out_dir: str, settings: PhotoS
     row = _empty_row(name)
     row.update(status="ok", message=tm.message, **{k: float(tm.stats[k]) for k in _STAT_KEYS})
     row.update(gains_r=float(tm.gains[0]), gains_g=float(tm.gains[1]), gains_b=float(tm.gains[2]))
+    row.update(uncertainty_median_nm=float(tm.stats.get("median_uncertainty_nm", math.nan)),
+               uncertainty_p95_nm=float(tm.stats.get("p95_uncertainty_nm", math.nan)))
+    row["calibration"] = settings.calibration_name
     row["seconds"] = time.perf_counter() - started
     return row
 
@@ -209,6 +253,8 @@ def _figure_title(name: str, s: PhotoSettings) -> str:
 def _figure_footer(message: str, s: PhotoSettings) -> str:
     box = "no calibration box" if s.box is None else (
         f"box {' '.join(str(v) for v in s.box)} = {_reference_text(s.reference)}")
+    if s.calibration_text is not None:
+        box = f"camera calibration {s.calibration_name}"
     return (f"{message} Window {s.window[0]:g}-{s.window[1]:g} nm, {s.illuminant}, {s.angle_deg:g}°, {box}, "
             f"max ΔE00 {s.max_delta_e:g}. Grey = no match. Thickness {NOT_METROLOGY}.")
 
@@ -384,6 +430,7 @@ def _summary_header(sf, s: PhotoSettings, photos_dir: Path, n: int) -> list[str]
         f"layer: {s.layer}; window: {s.window[0]:g}-{s.window[1]:g} nm"
         + ("" if s.nominal_nm is None else f"; nominal: {s.nominal_nm:g} nm"),
         f"box: {box}",
+        *([f"camera calibration: {s.calibration_name} (lab library)"] if s.calibration_text is not None else []),
         f"illuminant: {s.illuminant}; viewing angle: {s.angle_deg:g} deg; max delta E00: {s.max_delta_e:g}",
         f"thickness {NOT_METROLOGY}",
     ]
@@ -466,7 +513,8 @@ def _distribute(client, jobs: list[tuple], rows: list[dict], progress: bool) -> 
 def run_batch(photos_dir, stack, *, layer: int = 0, window=(0, 1000), box=None, reference="substrate",
               illuminant: str = "D65", angle_deg: float = 0.0, nominal_nm: float | None = None,
               max_delta_e: float = 6.0, out_dir=None, scheduler: str | None = None, workers: int = 2,
-              patterns=DEFAULT_PATTERNS, progress: bool = True) -> list[dict]:
+              patterns=DEFAULT_PATTERNS, progress: bool = True, calibration: str | None = None,
+              calibration_version: int | None = None, library=None) -> list[dict]:
     """Thickness maps of every photo in a folder, computed on a Dask cluster.
 
     Parameters
@@ -503,6 +551,13 @@ def run_batch(photos_dir, stack, *, layer: int = 0, window=(0, 1000), box=None, 
         File-name patterns (comma-separated in a string), matched case-insensitively.
     progress : bool
         Show a progress bar on stderr.
+    calibration : str, optional
+        Name of a camera calibration saved in the lab library (``camera_calibrations``); the maps use
+        it (and its flat field) instead of the box's gains, and gain an uncertainty.
+    calibration_version : int, optional
+        Its version; default the newest.
+    library : str or Path, optional
+        The lab library folder; default ``FRINGEGAUGE_LIBRARY``, else ``./lab-library`` (as the page).
 
     Returns
     -------
@@ -532,6 +587,11 @@ def run_batch(photos_dir, stack, *, layer: int = 0, window=(0, 1000), box=None, 
         raise InputError(f"scheduler is an address such as tcp://127.0.0.1:8786; got {scheduler!r}.")
     sf = _resolve_stack(stack)
     settings = _check_settings(sf, layer, window, box, reference, illuminant, angle_deg, nominal_nm, max_delta_e)
+    if calibration is not None:
+        import dataclasses
+
+        text, label = load_camera_calibration(calibration, calibration_version, library)
+        settings = dataclasses.replace(settings, calibration_text=text, calibration_name=label)
     photos = find_photos(photos_dir, patterns)
     if not photos:
         raise InputError(f"No photo in {str(photos_dir)!r} matches {', '.join(_parse_patterns(patterns))}; "
@@ -560,6 +620,53 @@ def run_batch(photos_dir, stack, *, layer: int = 0, window=(0, 1000), box=None, 
                 for r, j in zip(rows, jobs)]
         _write_summary(out / "summary.csv", done, header)
     return done
+
+
+def library_folder(library=None) -> Path:
+    """The lab library folder: ``library``, else ``FRINGEGAUGE_LIBRARY``, else ``./lab-library``, as the page
+    finds it (views.library.library_from_env)."""
+    from library.store import DEFAULT_ROOT
+
+    return Path(library) if library not in (None, "") else Path(os.environ.get(LIBRARY_ENV, "").strip() or DEFAULT_ROOT)
+
+
+def load_camera_calibration(name, version=None, library=None) -> tuple[str, str]:
+    """(text, "name vN") of a camera calibration in the lab library, checked as the page checks it.
+
+    Raises InputError with a sentence: an unknown name (with the names there are), a corrupt or
+    hand-made file, a library without a key, a folder that does not exist.
+    """
+    from library.store import Library, ItemMissing, error_text, validate_camera_calibration
+    from physics.errors import InputError
+
+    if not isinstance(name, str) or not name.strip():
+        raise InputError(f"calibration is the name of a camera calibration in the lab library; got {name!r}.")
+    root = library_folder(library)
+    if not root.is_dir():
+        raise InputError(f"The lab library folder {str(root)!r} does not exist; give --library FOLDER (the folder "
+                         "the page's server uses) or set FRINGEGAUGE_LIBRARY.")
+    lib = Library(root)
+    try:
+        text = lib.load(CALIBRATION_KIND, name, version)
+    except ItemMissing:
+        try:
+            names = sorted({e.name for e in lib.list(CALIBRATION_KIND)})
+        except InputError:
+            names = []
+        there = (f"the library holds {', '.join(repr(n) for n in names[:12])}" + (" …" if len(names) > 12 else "")
+                 if names else "the library holds no camera calibration yet (save one on the page)")
+        what = f"version {version} of " if version is not None else ""
+        raise InputError(f"There is no {what}camera calibration named {name!r} in {str(root)!r}; {there}.") from None
+    except InputError as exc:
+        raise InputError(error_text(exc)) from None
+    try:
+        validate_camera_calibration(text)
+    except InputError as exc:
+        raise InputError(f"The camera calibration {name!r} cannot be used: {exc}") from None
+    chosen = [e for e in lib.list(CALIBRATION_KIND) if e.name.lower() == name.strip().lower()
+              and (version is None or e.version == version)]
+    label = f"{chosen[0].name} v{max(e.version for e in chosen)}" if chosen else name.strip()
+    return text, label
 
 
 # ---------------------------------------------------------------------- command line
@@ -606,8 +713,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--layer", type=int, default=0, help="index of the measured layer, 0 = top (default 0)")
     p.add_argument("--window", type=float, nargs=2, default=(0.0, 1000.0), metavar=("LO", "HI"),
                    help="thickness window searched, nm (default 0 1000)")
-    p.add_argument("--box", type=int, nargs=4, required=True, metavar=("X0", "Y0", "X1", "Y1"),
-                   help="calibration box in pixels, x right, y down, ends exclusive")
+    p.add_argument("--box", type=int, nargs=4, default=None, metavar=("X0", "Y0", "X1", "Y1"),
+                   help="calibration box in pixels, x right, y down, ends exclusive (needed without --calibration)")
+    p.add_argument("--calibration", default=None, metavar="NAME",
+                   help="a camera calibration saved in the lab library, by name: used instead of the box's gains, "
+                        "and the summary gains the per-pixel uncertainty")
+    p.add_argument("--calibration-version", type=_positive_int, default=None, metavar="N",
+                   help="version of that calibration (default the newest)")
+    p.add_argument("--library", default=None, metavar="FOLDER",
+                   help=f"the lab library folder (default ${LIBRARY_ENV}, else ./lab-library, as the page)")
     p.add_argument("--reference", type=_reference_arg, default="substrate", metavar="substrate|R",
                    help="what the box shows: bare substrate (default) or a grey card of reflectance R, e.g. 0.18")
     p.add_argument("--illuminant", default="D65", help="lamp the photos were taken under (default D65)")
@@ -650,8 +764,14 @@ def main(argv=None) -> int:
         return int(exc.code) if isinstance(exc.code, int) else 2
     from physics.errors import InputError
 
+    if args.box is None and args.calibration is None:
+        print(f"{_PROG}: error: give a calibration box (--box X0 Y0 X1 Y1 over bare substrate) or a camera "
+              "calibration from the lab library (--calibration NAME).", file=sys.stderr)
+        return 2
     try:
-        rows = run_batch(args.photos_dir, args.stack, layer=args.layer, window=tuple(args.window), box=tuple(args.box),
+        rows = run_batch(args.photos_dir, args.stack, layer=args.layer, window=tuple(args.window),
+                         box=None if args.box is None else tuple(args.box), calibration=args.calibration,
+                         calibration_version=args.calibration_version, library=args.library,
                          reference=args.reference, illuminant=args.illuminant, angle_deg=args.angle,
                          nominal_nm=args.nominal, max_delta_e=args.max_delta_e, out_dir=args.out,
                          scheduler=args.scheduler, workers=args.workers, patterns=args.pattern,
