@@ -59,3 +59,33 @@ def test_curves_and_bounds():
     assert "eps_inf" in parameters_at_bounds(at_floor)
     fixed = fit_film(WL, R, Stack([Layer("SiO2", 0.0)], si, ambient=1.0), model="fixed", thickness_nm=(0, 1000))
     assert nk_sigma(fixed, WL) is None and parameters_at_bounds(fixed) == ()
+
+
+def test_sampled_band_of_an_urbach_tail_is_its_exact_percentiles():
+    """k = k₀·exp(s·(E − E₀)) with only the slope s uncertain (σ_s) is monotonic in s, so its central 68 % interval is
+    exactly k at s ± σ_s: exp(∓σ_s·|E − E₀|) times k below the band edge. The sampled band finds it (200 draws put
+    each percentile within ~0.1σ_s, JCGM 101:2008 sec. 7.2); the linear band k(1 ± σ_s|E − E₀|) is too narrow
+    above and crosses zero below."""
+    from physics import CauchyMaterial
+    from physics.filmcurves import nk_band
+    from physics.filmfit import FilmFitResult
+    from physics.materials import HC_EV_NM
+
+    names = ("thickness_nm", "A", "B_um2", "C_um4", "k_amplitude", "k_exponent_per_ev")
+    values = dict(zip(names, (300.0, 1.9, 0.01, 0.0, 0.05, 4.0)))
+    sigmas = dict(zip(names, (1.0, 0.0, 0.0, 0.0, 0.0, 0.8)))
+    band = (400.0, 1000.0)
+    mat = CauchyMaterial(1.9, 0.01, 0.0, range_nm=band, k_amplitude=0.05, k_exponent_per_ev=4.0, k_band_edge_nm=400.0)
+    r = FilmFitResult(300.0, 1.0, mat, values, sigmas, np.eye(len(names)), names, None, None, "",
+                      model="cauchy-urbach")
+    wl = np.array([500.0, 700.0, 900.0])
+    de = HC_EV_NM / wl - HC_EV_NM / band[0]                                # E − E₀ < 0 below the edge
+    n_lo, n_hi, k_lo, k_hi = nk_band(r, wl)
+    k = mat.nk(wl).imag
+    s_hi, s_lo = np.log(k_hi / k) / de, np.log(k_lo / k) / de               # the slopes the band ends stand for
+    np.testing.assert_allclose(s_hi, -0.8, atol=0.3 * 0.8)
+    np.testing.assert_allclose(s_lo, 0.8, atol=0.3 * 0.8)
+    linear = k * (1 + 0.8 * np.abs(de))
+    assert np.all(k_hi > linear) and np.all(k_hi[1:] > 1.3 * linear[1:]) and np.all(k_lo > 0)
+    assert np.all(k[1:] * (1 - 0.8 * np.abs(de[1:])) < 0)
+    np.testing.assert_allclose([n_lo, n_hi], [mat.nk(wl).real] * 2, atol=1e-12)     # n has no uncertainty here
