@@ -166,6 +166,33 @@ def test_the_fitted_film_downloads_with_its_parameters(section, nitride_csv):
     text = section.film._nk_csv().getvalue()
     assert "not certified metrology" in text and "nitride_invented.csv" in text and "k_exponent_per_ev" in text
     rows = [l.split(",") for l in text.splitlines() if l and not l.startswith("#")]
-    assert rows[0] == ["wavelength_nm", "n", "sigma_n", "k", "sigma_k"] and len(rows) == 201
+    assert rows[0] == ["wavelength_nm", "n", "sigma_n", "k", "sigma_k", "n_lo68", "n_hi68", "k_lo68", "k_hi68"]
+    assert len(rows) == 201
+    k, k_lo, k_hi = (np.array([float(r[i]) for r in rows[1:]]) for i in (3, 7, 8))
+    assert np.all(k_lo >= 0) and np.all(k_lo <= k + 1e-12) and np.all(k_hi >= k - 1e-12)    # the sampled band
     spec = json.loads(text.split("stores it: ")[1].splitlines()[0])
     assert spec["kind"] == "cauchy" and len(spec["urbach"]) == 3
+
+
+def test_two_term_sellmeier_and_the_instrument_bandwidth_on_the_page(section, nitride_csv):
+    """The two-term Sellmeier is offered; a bandwidth typed on the page reaches the fit and is said in the verdict;
+    a bandwidth out of range is refused beside its field; progress reaches the bar."""
+    csv, n633 = nitride_csv
+    assert "sellmeier-2" in section.film_model.options.values()
+    section.film.bandwidth.input.value = "2"
+    section.film.slit.value = "triangular"
+    told = []
+    section._show_progress = lambda job, f, text: told.append(f)
+    _fit(section, csv, model="sellmeier-2")
+    assert "Sellmeier B₂" in section.details.object
+    assert "2 nm triangular slit" in section.verdict.object
+    n, _ = _shown(section, r"n = ([\d.]+) ± ([\d.]+), k = 0 \(a transparent model\)\s+at 633 nm")
+    assert abs(n - n633) < 0.01
+    assert section.film.result.bandwidth_nm == 2.0 and section.film.result.slit == "triangular"
+    assert told and max(told) == 1.0
+    section.film.bandwidth.input.value = "80"
+    assert not section.run_fit(sync=True)
+    assert section.film.bandwidth.message.visible and "50" in section.film.bandwidth.message.object
+    fields = {f.key: f for f in section.link_fields()}
+    assert fields["s_bw"].write("1.5") is None and section.film.bandwidth.input.value == "1.5"
+    assert fields["s_slit"].write("gaussian") is None and section.film.slit.value == "gaussian"

@@ -35,6 +35,7 @@ def shared():
     tabs["Spectrum → thickness"].win_hi.input.value = "1500"
     tabs["Spectrum → thickness"].free_scale.value = True
     tabs["Spectrum → thickness"].value_unit.value = "percent"
+    tabs["Spectrum → thickness"].film_bandwidth.input.value = "2.5"
     g = tabs["Gratings"]
     g.density.input.value = "600"
     g.order.input.value = "2"
@@ -54,6 +55,7 @@ def test_link_brings_back_every_tab_and_the_open_tab(shared):
     assert other.tabs["Colour → thickness"].nominal.input.value == "240"
     fit = other.tabs["Spectrum → thickness"]
     assert (fit.win_hi.input.value, fit.free_scale.value, fit.value_unit.value) == ("1500", True, "percent")
+    assert fit.film_bandwidth.input.value == "2.5"
     g = other.tabs["Gratings"]
     assert g.settings == link.tabs["Gratings"].settings and g.settings.lines_per_mm == 600 and g.settings.order == 2
     assert g.scale.value == "log"

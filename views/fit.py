@@ -24,7 +24,6 @@ from bokeh.plotting import figure
 
 from physics import InputError, Stack, read_spectrum, reflectance_from_counts
 from physics.errors import WavelengthRangeError
-from physics.filmcurves import fit_film_curves
 from physics.fit import (BIN_POINTS_PER_FRINGE, COUNTS_ABOVE, MAX_FRACTION, MAX_SPECTRUM_BYTES,
                          fit_thickness_reporting, read_spectrum_table)
 
@@ -33,7 +32,7 @@ from . import workers
 from .limits import JobCancelled, Limits, heavy_job, post_to_page, served, session_key
 from .uploads import COMPACT, CappedDropper, UploadReader
 from .explorer import Field, TickBox, _esc, _fmt, _label, field_pair
-from .fit_film import FilmModelEditor, page_text as film_page_text, settings_key
+from .fit_film import BANDWIDTH_MAX_NM, FilmModelEditor, fit_film_reporting, page_text as film_page_text, settings_key
 from .inverse import _locked, locked
 from .state import THICKNESS_LIMITS_NM, parse_number
 from .urlstate import widget_fields
@@ -75,7 +74,9 @@ LINK_FIELDS = (("s_ref", "Reference", "ref_mode", "choice"),
                ("s_wlto", "Use wavelengths to", "wl_hi", "text"),
                ("s_model", "Film model", "film_model", "choice"),
                ("s_rough", "Surface roughness", "film_roughness", "tick"),
-               ("s_spread", "Thickness spread", "film_spread", "tick"))
+               ("s_spread", "Thickness spread", "film_spread", "tick"),
+               ("s_bw", "Instrument bandwidth", "film_bandwidth", "text", (0.0, BANDWIDTH_MAX_NM)),
+               ("s_slit", "Slit shape", "film_slit", "choice"))
 
 
 #: Wavelengths (nm) the spectrum figure spans before a spectrum arrives (the visible band and a little more).
@@ -152,6 +153,7 @@ class SpectrumFitSection:
                                             css_classes=["fg-fit-run"])
         self.film = FilmModelEditor(self)
         self.film_model, self.film_roughness, self.film_spread = self.film.model, self.film.roughness, self.film.spread
+        self.film_bandwidth, self.film_slit = self.film.bandwidth, self.film.slit
         self.fit_msg = Field("")
         self.status = pn.pane.HTML("", css_classes=["fg-status"], margin=(0, 5))
         self.progress = pn.indicators.Progress(value=0, max=100, width=300, visible=False, margin=(6, 5),
@@ -597,8 +599,8 @@ class SpectrumFitSection:
 
     def _start_progress(self, job, film: bool = False):
         self.fit_button.disabled = True
-        self.progress.value = -1 if film else 0            # -1: the bar runs without a fraction
-        self.progress.active = film
+        self.progress.value = 0
+        self.progress.active = False
         self.progress.visible = self.cancel_button.visible = True
         self.status.object = "Fitting the film model…" if film else "Fitting…"
 
@@ -650,7 +652,7 @@ class SpectrumFitSection:
             channel = workers.LocalChannel(partial(self._show_progress, job), gone)
             try:
                 with heavy_job(kind, size, session, limits):
-                    out = (fit_film_curves(**args) if film else
+                    out = (fit_film_reporting(channel, **args) if film else
                            fit_thickness_reporting(channel, **args, max_grid_points=limits.max_grid_points)), None
             except InputError as exc:
                 out = None, exc
@@ -663,16 +665,12 @@ class SpectrumFitSection:
             limits = Limits.from_env()
             try:
                 with heavy_job(kind, size, session, limits):
-                    if film:                        # no progress to report: cancel drops the result when it comes
-                        result = await workers.run_in_worker(limits.max_jobs_server, partial(fit_film_curves, **args),
-                                                             cancelled=gone)
-                    else:
-                        channel = await workers.new_channel()
-                        result = await workers.run_in_worker(
-                            limits.max_jobs_server, partial(fit_thickness_reporting, **args,
-                                                            max_grid_points=limits.max_grid_points),
-                            channel=channel, cancelled=gone,
-                            on_progress=lambda f, text: post_to_page(doc, partial(self._show_progress, job, f, text)))
+                    channel = await workers.new_channel()
+                    job_fn = (partial(fit_film_reporting, **args) if film else
+                              partial(fit_thickness_reporting, **args, max_grid_points=limits.max_grid_points))
+                    result = await workers.run_in_worker(
+                        limits.max_jobs_server, job_fn, channel=channel, cancelled=gone,
+                        on_progress=lambda f, text: post_to_page(doc, partial(self._show_progress, job, f, text)))
                 out = result, None
             except InputError as exc:
                 out = None, exc

@@ -17,13 +17,20 @@ from bokeh.models import ColumnDataSource, Legend, LegendItem, LinearAxis, Range
 from bokeh.plotting import figure
 
 from physics import InputError
+from physics.filmcurves import fit_film_curves
+from physics.filmfit import BANDWIDTH_MAX_NM
 
-from .explorer import TickBox, _esc, _label
+from .explorer import Field, TickBox, _esc, _label
+from .state import parse_number
 
 #: The film models offered, in the page's words, and the fit_film model each runs.
 FILM_MODELS = {"fixed constants (the stack's material)": "fixed", "Cauchy (transparent)": "cauchy",
                "Cauchy + Urbach absorption tail": "cauchy-urbach", "Sellmeier, one term (transparent)": "sellmeier",
-               "Tauc-Lorentz (absorbing, amorphous)": "tauc-lorentz"}
+               "Sellmeier, two terms (transparent)": "sellmeier-2", "Tauc-Lorentz (absorbing, amorphous)": "tauc-lorentz"}
+#: Slit shapes offered for the instrument's bandwidth, in the page's words, and the fit_film slit each is.
+SLIT_SHAPES = {"Gaussian (array spectrometer)": "gaussian", "triangular (scanning monochromator)": "triangular"}
+#: Models whose k is 0 everywhere.
+TRANSPARENT_MODELS = ("cauchy", "sellmeier", "sellmeier-2")
 #: Wavelength at which n and k are quoted (nm): the helium-neon line, where film indices are commonly quoted
 #: (common practice); the band's middle when the spectrum does not reach it.
 QUOTE_WAVELENGTH_NM = 633.0
@@ -38,6 +45,7 @@ PARAMETER_LABELS = {
     "A": ("Cauchy A", "", 1.0), "B_um2": ("Cauchy B", "µm²", 1.0), "C_um4": ("Cauchy C", "µm⁴", 1.0),
     "k_amplitude": ("k at the band's short end", "", 1.0), "k_exponent_per_ev": ("Urbach slope", "1/eV", 1.0),
     "B1": ("Sellmeier B₁", "", 1.0), "C1_um2": ("Sellmeier C₁", "µm²", 1.0),
+    "B2": ("Sellmeier B₂", "", 1.0), "C2_um2": ("Sellmeier C₂", "µm²", 1.0),
     "eps_inf": ("ε∞", "", 1.0), "gap_ev": ("Tauc gap Eg", "eV", 1.0), "amplitude_ev": ("amplitude A", "eV", 1.0),
     "center_ev": ("peak energy E₀", "eV", 1.0), "broadening_ev": ("broadening C", "eV", 1.0),
     "roughness_nm": ("surface roughness layer", "nm", 1.0), "spread_nm": ("thickness spread σ in the spot", "nm", 1.0),
@@ -59,7 +67,7 @@ def page_text(message: str) -> str:
     for api, page in PAGE_WORDS:
         message = message.replace(api, page)
     for name, (label, _, _) in PARAMETER_LABELS.items():
-        if "_" in name or name in ("B1",):                      # names that are no everyday word
+        if "_" in name or name in ("B1", "B2"):                 # names that are no everyday word
             message = re.sub(rf"\b{name}\b", label, message)
     return message
 
@@ -73,6 +81,19 @@ def value_text(value: float, sigma: float) -> tuple[str, str]:
     if abs(value) >= 1e5 or (value != 0 and abs(value) < 1e-3 and digits > 6):
         return f"{value:.3e}", f"{sigma:.2g}"
     return f"{value:.{digits}f}", f"{sigma:.{digits}f}" if digits else f"{sigma:.0f}"
+
+
+def _band(c):
+    """(n_lo, n_hi, k_lo, k_hi) of fitted curves: the sampled 68 % band, or the curves themselves when there is none."""
+    if c.n_lo is None:
+        return c.n, c.n, c.k, c.k
+    return c.n_lo, c.n_hi, c.k_lo, c.k_hi
+
+
+def fit_film_reporting(reporter, **kwargs):
+    """:func:`physics.filmcurves.fit_film_curves` (``**kwargs``) telling ``reporter.report(fraction, text)`` how far
+    it has come (a worker's progress channel, whose ``report`` raises to stop the fit)."""
+    return fit_film_curves(**kwargs, progress=reporter.report)
 
 
 def settings_key(state) -> tuple:
@@ -94,6 +115,10 @@ class FilmModelEditor:
                                        margin=(2, 5), css_classes=["fg-fit-model"])
         self.roughness = TickBox("Surface roughness (50 % void top layer)")
         self.spread = TickBox("Thickness spread in the spot")
+        self.bandwidth = Field("Instrument bandwidth, FWHM (nm)", width=140, css="fg-fit-bandwidth")
+        self.bandwidth.set_text("0")
+        self.slit = pn.widgets.Select(label="Slit shape", options=SLIT_SHAPES, value="gaussian", width=150,
+                                      margin=(2, 5), css_classes=["fg-fit-slit"])
         self.hint = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "11px", "color": "#555"})
         self.use_button = pn.widgets.Button(label="Use this fitted film", color="success", width=200, margin=(4, 5),
                                             visible=False, css_classes=["fg-fit-use-film"])
@@ -123,37 +148,69 @@ class FilmModelEditor:
         self.model.param.watch(lambda e: self._show_hint(), "value")
         self.roughness.param.watch(lambda e: self._show_hint(), "value")
         self.spread.param.watch(lambda e: self._show_hint(), "value")
+        self.bandwidth.input.param.watch(lambda e: self._check_bandwidth(), "value")
         self._show_hint()
 
     # ------------------------------------------------------------------ controls
     def active(self) -> bool:
-        """True when "Fit" fits a film model (n and k, or roughness, or a spread), not the thickness alone."""
-        return self.model.value != "fixed" or bool(self.roughness.value) or bool(self.spread.value)
+        """True when "Fit" fits a film model (n and k, or roughness, or a spread, or through a bandwidth), not the
+        thickness alone."""
+        return (self.model.value != "fixed" or bool(self.roughness.value) or bool(self.spread.value)
+                or self._bandwidth_text() != 0.0)
+
+    def _bandwidth_text(self):
+        """The bandwidth typed (nm), or None when it does not read as one."""
+        try:
+            return parse_number(self.bandwidth.input.value.strip() or "0", "Instrument bandwidth", 0.0,
+                                BANDWIDTH_MAX_NM, "nm")
+        except InputError:
+            return None
+
+    def _check_bandwidth(self):
+        """Say beside the bandwidth field, as soon as it changes, whether its text reads as a bandwidth."""
+        try:
+            parse_number(self.bandwidth.input.value.strip() or "0", "Instrument bandwidth", 0.0, BANDWIDTH_MAX_NM, "nm")
+        except InputError as exc:
+            self.bandwidth.show_error(str(exc))
+        else:
+            self.bandwidth.show_error(None)
+        self._show_hint()
 
     def _show_hint(self):
         s = self.section
+        bw = self._bandwidth_text()
+        slit_note = (f" The model is read through the instrument's {bw:g} nm slit." if bw else "")
         if self.model.value == "fixed" and not (self.roughness.value or self.spread.value):
-            self.hint.object = "The layer keeps the stack's optical constants; only its thickness is fitted."
+            self.hint.object = "The layer keeps the stack's optical constants; only its thickness is fitted." + slit_note
             label = "Fit thickness"
         else:
             what = "its n and k" if self.model.value != "fixed" else "the stack's n and k for it"
             self.hint.object = (f"The unknown layer's thickness and {what} are fitted together"
                                 + (", with a surface roughness layer" if self.roughness.value else "")
                                 + (" and a thickness spread" if self.spread.value else "")
-                                + ". It fits one unknown layer: leave “Second unknown layer” at (none).")
+                                + ". It fits one unknown layer: leave “Second unknown layer” at (none)." + slit_note)
             label = "Fit thickness and film"
         if hasattr(s, "fit_button"):
             s.fit_button.label = label
 
     def controls(self):
         return pn.Column(pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Film model</h3>"),
-                         self.model, self.roughness, self.spread, self.hint, margin=0)
+                         self.model, self.roughness, self.spread,
+                         pn.Row(self.bandwidth.input, self.slit, margin=0), self.bandwidth.message, self.hint,
+                         margin=0)
 
     def request(self, args: dict) -> dict:
         """fit_film's arguments from the thickness fit's; raises ValueError with the sentence for the page."""
         if "second_layer" in args:
             raise ValueError("A film-model fit finds one unknown layer: choose “(none)” under “Second unknown "
                              "layer”, or the film model “fixed constants” to fit two thicknesses.")
+        try:
+            bandwidth = parse_number(self.bandwidth.input.value.strip() or "0", "Instrument bandwidth", 0.0,
+                                     BANDWIDTH_MAX_NM, "nm")
+        except InputError as exc:
+            self.bandwidth.show_error(str(exc))
+            raise ValueError(f"Instrument bandwidth: {exc}") from None
+        self.bandwidth.show_error(None)
         wl, R = np.asarray(args["wavelength_nm"]), np.asarray(args["reflectance"])
         rng = args.get("wavelength_range_nm")
         if rng is not None:
@@ -168,7 +225,8 @@ class FilmModelEditor:
         return dict(wavelength_nm=wl, reflectance=R, stack=args["stack"], layer=args["layer"],
                     model=self.model.value, thickness_nm=args["thickness_nm"], angle_deg=args["angle_deg"],
                     polarization=args["polarization"], roughness=bool(self.roughness.value),
-                    spread=bool(self.spread.value), free_scale=args["free_scale"], free_offset=args["free_offset"])
+                    spread=bool(self.spread.value), free_scale=args["free_scale"], free_offset=args["free_offset"],
+                    bandwidth_nm=bandwidth, slit=self.slit.value)
 
     # ------------------------------------------------------------------ result
     def clear(self):
@@ -219,7 +277,7 @@ class FilmModelEditor:
                  + (f"fitted with the film model {_esc(model)}, starting from {_esc(old)}" if r.model != "fixed" else
                     f"{_esc(old)}, optical constants as in the stack")]
         nk_text = f"n = {' ± '.join(value_text(n, sn)) if np.isfinite(sn) else f'{n:.4f}'}"
-        if k == 0 and r.model in ("cauchy", "sellmeier"):
+        if k == 0 and r.model in TRANSPARENT_MODELS:
             nk_text += ", k = 0 (a transparent model)"
         else:
             nk_text += f", k = {' ± '.join(value_text(k, sk)) if np.isfinite(sk) and sk > 0 else f'{k:.3g}'}"
@@ -233,6 +291,8 @@ class FilmModelEditor:
             lines.append("thickness spread across the spot σ = " + " ± ".join(value_text(r.spread_nm,
                                                                                       r.uncertainties["spread_nm"]))
                          + " nm")
+        if r.bandwidth_nm:
+            lines.append(f"model read through the instrument's {r.bandwidth_nm:g} nm {r.slit} slit (FWHM)")
         free = len(r.parameter_names)
         lines.append(f"rms residual {100 * r.rms:.3g} % over {r.n_points} points, {free} free parameters")
         if r.message:
@@ -261,28 +321,26 @@ class FilmModelEditor:
                 "<tr><th style='text-align:left'>fitted parameter</th><th>value</th><th>1σ</th><th></th></tr>"
                 + "".join(rows) + "</table>"
                 f"<div style='font-size:11px;color:#555'>Fitted over {band}; the ± are 1σ from the fit's curvature "
-                "scaled by its residual; the n and k bands in the plot propagate them linearly.</div>")
+                "scaled by its residual; the n and k bands in the plot hold the central 68 % of n and k over 200 "
+                "parameter sets drawn from the fit's covariance (an absorption tail's band is lopsided).</div>")
 
     def _draw_nk(self, c, r):
-        zero = np.zeros_like(c.n)
-        sn = c.sigma_n if c.sigma_n is not None else zero
-        sk = c.sigma_k if c.sigma_k is not None else zero
-        self.nk_src.data = dict(wl=c.nk_wavelength_nm, n=c.n, n_lo=c.n - sn, n_hi=c.n + sn, k=c.k,
-                                k_lo=np.clip(c.k - sk, 0.0, None), k_hi=c.k + sk)
+        n_lo, n_hi, k_lo, k_hi = _band(c)
+        self.nk_src.data = dict(wl=c.nk_wavelength_nm, n=c.n, n_lo=n_lo, n_hi=n_hi, k=c.k, k_lo=k_lo, k_hi=k_hi)
         wl = np.asarray(c.nk_wavelength_nm, dtype=float)
         if wl.size > 1:
             self.nk_fig.x_range.start, self.nk_fig.x_range.end = float(wl.min()), float(wl.max())
-        lo, hi = float(np.min(c.n - sn)), float(np.max(c.n + sn))
+        lo, hi = float(np.min(n_lo)), float(np.max(n_hi))
         pad = max(0.05 * (hi - lo), 0.01)
         self.nk_fig.y_range.start, self.nk_fig.y_range.end = lo - pad, hi + pad
-        k_top = float(np.max(c.k + sk))
+        k_top = float(np.max(k_hi))
         self.nk_fig.extra_y_ranges["k"].start = 0.0
         self.nk_fig.extra_y_ranges["k"].end = k_top * 1.1 if k_top > 0 else 0.01
         absorbing = bool(np.any(c.k > 0))
         for part in self._k_parts:
             part.visible = absorbing
         self._legend.items = self._legend_items if absorbing else self._legend_items[:1]
-        self.nk_fig.title.text = (NK_TITLE + (" (shaded: ±1σ)" if c.sigma_n is not None else "")
+        self.nk_fig.title.text = (NK_TITLE + (" (shaded: central 68 %)" if c.sigma_n is not None else "")
                                   + ("" if absorbing else "; k = 0 everywhere (a transparent model)"))
         self.nk_fig.visible = True
 
@@ -298,18 +356,22 @@ class FilmModelEditor:
                  f"# spectrum file: {info.get('sample_file', '')}; {c.wavelength_nm[0]:g}-{c.wavelength_nm[-1]:g} nm, "
                  f"{r.n_points} points; angle_deg {a['angle_deg']:g}; polarization {a['polarization']}",
                  f"# layer {a['layer'] + 1}, film model: {r.model}; rms residual (fraction): {r.rms:.6g}; "
-                 f"quality: {r.quality}"]
+                 f"quality: {r.quality}"
+                 + (f"; instrument bandwidth {r.bandwidth_nm:g} nm FWHM, {r.slit} slit" if r.bandwidth_nm else "")]
         lines += [f"# {name}: {r.parameters[name]:.10g} +/- {r.uncertainties[name]:.3g} (1 sigma)"
                   for name in r.parameter_names]
         if r.message:
             lines.append(f"# note: {page_text(r.message)}")
         lines.append("# material as a stack file stores it: " + json.dumps(r.material.spec(), ensure_ascii=False))
-        lines.append("wavelength_nm,n,sigma_n,k,sigma_k")
+        lines.append("# sigma: linear 1 sigma; lo68, hi68: the central 68 % of 200 parameter sets drawn from the "
+                     "fit's covariance")
+        lines.append("wavelength_nm,n,sigma_n,k,sigma_k,n_lo68,n_hi68,k_lo68,k_hi68")
         zero = np.zeros_like(c.n)
         sn = c.sigma_n if c.sigma_n is not None else zero
         sk = c.sigma_k if c.sigma_k is not None else zero
-        lines += [f"{w:.6g},{n:.8g},{a_:.3g},{k:.8g},{b:.3g}" for w, n, a_, k, b in zip(c.nk_wavelength_nm, c.n, sn,
-                                                                                          c.k, sk)]
+        band = _band(c)
+        lines += [f"{w:.6g},{n:.8g},{a_:.3g},{k:.8g},{b:.3g},{nl:.8g},{nh:.8g},{kl:.8g},{kh:.8g}"
+                  for w, n, a_, k, b, nl, nh, kl, kh in zip(c.nk_wavelength_nm, c.n, sn, c.k, sk, *band)]
         return io.StringIO("\n".join(lines) + "\n")
 
     # ------------------------------------------------------------------ use it
