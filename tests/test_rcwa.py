@@ -194,3 +194,15 @@ def test_bad_input_gets_a_sentence(kw, words):
 def test_wavelength_outside_the_material_data_is_refused():
     with pytest.raises(InputError, match="no data at 150 nm"):
         G.rigorous_efficiency([150.0, 500.0], 600.0, 1, material="Ag")
+
+
+# ---------------------------------------------------------------------- band mean (the planner's figure)
+def test_band_efficiency_is_the_mean_over_the_band():
+    kw = dict(profile="lamellar", depth_nm=120.0, material="SiO2", kind="transmission")
+    mean = G.band_efficiency((500.0, 700.0), 600.0, 1, 10.0, samples=5, **kw)
+    curve = G.rigorous_efficiency(np.linspace(500.0, 700.0, 5), 600.0, 1, 10.0, **kw)
+    assert mean == pytest.approx(float(curve.mean()), abs=1e-12) and 0 < mean < 1
+    with pytest.raises(InputError, match="samples"):
+        G.band_efficiency((500.0, 700.0), 600.0, 1, samples=1, **kw)
+    with pytest.raises(InputError, match="short < long"):
+        G.band_efficiency((700.0, 500.0), 600.0, 1, **kw)

@@ -32,6 +32,7 @@ from PIL import Image
 from physics import InputError
 from physics import grating as gr
 from physics.color import srgb_to_hex
+from physics import gratingfile as gf_rigorous
 from physics.gratingfile import (LIMITS, GratingFile, dump_grating_file, list_grating_presets, load_grating_file,
                                 load_grating_preset)
 
@@ -512,8 +513,16 @@ def _markdown_bold(text: str) -> str:
 #: (a few nm wide) and about a second of solver time for a lamellar groove.
 RIGOROUS_SAMPLES = 101
 #: Groove profiles and materials offered for the rigorous curve (physics.material names).
-RIGOROUS_PROFILES = ("lamellar", "sinusoidal", "blazed")
-RIGOROUS_MATERIALS = ("Al", "Ag", "Au", "SiO2")
+RIGOROUS_PROFILES, RIGOROUS_MATERIALS, RIGOROUS_POLARIZATIONS = (gf_rigorous.RIGOROUS_PROFILES,
+                                                                 gf_rigorous.RIGOROUS_MATERIALS,
+                                                                 gf_rigorous.RIGOROUS_POLARIZATIONS)
+#: Link keys of the rigorous settings: (key, RigorousSettings parameter, label).
+LINK_RIGOROUS_KEYS = (("g_rprofile", "profile", "Rigorous profile"), ("g_rdepth", "depth_nm", "Rigorous depth"),
+                      ("g_rmat", "material", "Rigorous material"), ("g_rpol", "polarization", "Rank by polarization"))
+#: Planner candidates whose band efficiency is computed rigorously, those with the best scalar
+#: estimate first: each costs about a tenth of a curve (gr.PLAN_EFFICIENCY_SAMPLES wavelengths), so
+#: eight stay within a few seconds; the others keep their scalar rank.
+PLAN_RIGOROUS_MAX = 8
 RIGOROUS_NOTE = ("Rigorous: Maxwell's equations solved for the groove (coupled waves), absolute efficiency "
                  "of an ideal grating (no surface roughness or oxide). Scalar: the page's sawtooth/rectangle "
                  "estimate, relative to its peak.")
@@ -525,11 +534,13 @@ class RigorousSettings(param.Parameterized):
 
     profile = param.Selector(default="blazed", objects=list(RIGOROUS_PROFILES),
                              doc="Groove shape; sinusoidal and blazed grooves are cut into a staircase.")
-    depth_nm = param.Number(default=None, allow_None=True, bounds=(1.0, 5000.0),
+    depth_nm = param.Number(default=None, allow_None=True, bounds=gf_rigorous.RIGOROUS_DEPTH_NM,
                             doc="Groove depth peak to valley (nm); empty: 100 nm, or the right-angle apex "
                                 "depth for blazed grooves.")
     material = param.Selector(default="Al", objects=list(RIGOROUS_MATERIALS),
                               doc="Grating material (and substrate); air above.")
+    polarization = param.Selector(default="unpolarized", objects=list(RIGOROUS_POLARIZATIONS),
+                                  doc="Polarization the planner ranks gratings by (the curve shows all three).")
 
 
 def compute_rigorous(s: GratingSettings, profile: str, depth_nm, material: str, channel=None) -> dict:
@@ -580,6 +591,43 @@ def compute_rigorous(s: GratingSettings, profile: str, depth_nm, material: str, 
                 slices=detail["TE"].slices, settings=(s, profile, depth_nm, material))
 
 
+def plan_scalar_efficiency(s: GratingSettings, design) -> float:
+    """Mean scalar groove efficiency (relative) of a planner design's order over the band."""
+    wl = np.linspace(*s.band, gr.PLAN_EFFICIENCY_SAMPLES)
+    eff = np.asarray(gr.groove_efficiency(wl, design.lines_per_mm, design.order, s.groove, s.duty_cycle, s.blaze,
+                                          incidence_deg=design.incidence_deg), dtype=float) * np.ones_like(wl)
+    live = np.isfinite(gr.diffraction_angle_deg(wl, design.lines_per_mm, design.order, design.incidence_deg))
+    return float(np.mean(np.where(live, eff, 0.0)))
+
+
+def compute_plan_efficiency(s: GratingSettings, designs, profile: str, depth_nm, material: str,
+                            polarization: str = "unpolarized", channel=None) -> dict:
+    """Mean rigorous efficiency over the band of the planner's designs, at most :data:`PLAN_RIGOROUS_MAX`
+    of them (the best scalar estimates first), each at its own incidence angle.
+
+    Returns {"rigorous": {(lines/mm, order): mean or an error sentence}, "scalar": {(lines/mm, order):
+    mean}, "computed": count, "total": count, "settings": what it was computed for}.
+    """
+    scalar = {(d.lines_per_mm, d.order): plan_scalar_efficiency(s, d) for d in designs}
+    chosen = sorted(designs, key=lambda d: (-scalar[(d.lines_per_mm, d.order)], d.resolution_nm))[:PLAN_RIGOROUS_MAX]
+    out = {}
+    for i, d in enumerate(chosen):
+        if channel is not None:
+            channel.report(i / max(1, len(chosen)), f"{d.lines_per_mm:g} lines/mm, order {d.order:+d} "
+                                                    f"({i + 1} of {len(chosen)})…")
+        try:
+            out[(d.lines_per_mm, d.order)] = gr.band_efficiency(
+                s.band, d.lines_per_mm, d.order, d.incidence_deg, polarization=polarization, profile=profile,
+                depth_nm=depth_nm, duty_cycle=s.duty_cycle, blaze_angle_deg=s.blaze_angle_deg if profile == "blazed"
+                else None, material=material, kind=s.kind)
+        except InputError as exc:
+            out[(d.lines_per_mm, d.order)] = str(exc)
+    if channel is not None:
+        channel.report(1.0, "done")
+    return dict(rigorous=out, scalar=scalar, computed=len(chosen), total=len(designs),
+                settings=(s, profile, depth_nm, material, polarization))
+
+
 def _footer() -> str:
     return (f"fringegauge {date.today().isoformat()} · computed colours (scalar groove efficiency), approximate · "
             "never look at a laser or the sun along a diffracted order")
@@ -604,6 +652,8 @@ class GratingSection:
         self.plan_rejected = []
         self.rigorous = None            # the last rigorous efficiency curve shown (compute_rigorous's dict)
         self._rigorous_job = 0
+        self.plan_efficiency = None     # the planner's last rigorous ranking (compute_plan_efficiency's dict)
+        self._plan_job = 0
         self.generation = 0
         self.timings_ms = {}
         self.on_change = []             # callables run after the settings change (the page address follows)
@@ -1010,7 +1060,36 @@ class GratingSection:
         return spec
 
     def link_keys(self) -> set[str]:
-        return set(self._link_spec()) | {"g_preset", "g_name", "g_n", "g_scale"}
+        return set(self._link_spec()) | {"g_preset", "g_name", "g_n", "g_scale"} | {k for k, *_ in LINK_RIGOROUS_KEYS}
+
+    def rigorous_dict(self) -> dict:
+        """The rigorous settings as a grating file's "rigorous" object (depth None: the default)."""
+        st = self.rigorous_state
+        return {"profile": st.profile, "depth_nm": st.depth_nm, "material": st.material,
+                "polarization": st.polarization}
+
+    def apply_rigorous(self, values: dict) -> None:
+        """Set the rigorous settings (already checked: a grating file's "rigorous" object) and their widgets."""
+        st = self.rigorous_state
+        st.param.update(**{k: values[k] for k in ("profile", "depth_nm", "material", "polarization") if k in values})
+        self.rig_depth.value = "" if st.depth_nm is None else f"{st.depth_nm:g}"
+
+    def _apply_rigorous_link(self, items: dict, said) -> None:
+        values = {}
+        for short, key, label in LINK_RIGOROUS_KEYS:
+            if short not in items:
+                continue
+            text = str(items[short])[:200].strip()
+            try:
+                if key == "depth_nm":
+                    values[key] = None if text == "" else parse_number(text, label, *gf_rigorous.RIGOROUS_DEPTH_NM,
+                                                                       "nm")
+                else:
+                    values[key] = _link_choice(text, RigorousSettings.param[key].objects)
+            except InputError as exc:
+                said(short, label, str(exc))
+        if values:
+            self.apply_rigorous(values)
 
     def link_state(self) -> dict[str, str]:
         """{link key: text} of the settings, the preset or grating they came from, and the line-shape view."""
@@ -1020,6 +1099,9 @@ class GratingSection:
             v = getattr(s, key)
             out[short] = f"{v:.10g}" if isinstance(v, float) else str(v)
         out["g_n"], out["g_scale"] = str(self.n_slits.value), str(self.scale.value)
+        for short, key, _label in LINK_RIGOROUS_KEYS:
+            v = getattr(self.rigorous_state, key)
+            out[short] = "" if v is None else f"{v:.10g}" if isinstance(v, float) else str(v)
         return out
 
     def apply_link_state(self, items: dict) -> list[str]:
@@ -1069,13 +1151,18 @@ class GratingSection:
                     said(short, label, f"give one of {', '.join(str(v) for v in widget.options.values())}")
                 else:
                     widget.value = match
+        if "g_preset" in items and origin is not None and origin[0] == items["g_preset"]:
+            rig = load_grating_preset(items["g_preset"]).rigorous
+            if rig is not None:
+                self.apply_rigorous(rig)
+        self._apply_rigorous_link(items, said)
         self._sync_fields()
         return errors
 
     def file_text(self, name: str | None = None) -> str:
         """The current grating as the text of a grating file (``name`` replaces its name). A grating changed
         since its preset or file was loaded is named "… (changed)" and carries no scenario."""
-        gf = self.settings.to_file()
+        gf = replace(self.settings.to_file(), rigorous=self.rigorous_dict())
         if self.modified():
             gf = replace(gf, name=f"{gf.name} (changed)"[:200], scenario="")
         if name:
@@ -1088,13 +1175,18 @@ class GratingSection:
         new = GratingSettings.from_file(gf, self.settings)
         self._compute(new)                              # raises InputError before anything changes
         self._origin = (None, new)
+        if gf.rigorous is not None:
+            self.apply_rigorous(gf.rigorous)
         self._take(None, new)
         self._sync_fields()
         return gf.name
 
     def load_preset(self, stem: str) -> None:
         """Show one shipped grating preset (its order and lamp keep the current choice)."""
-        new = GratingSettings.from_file(load_grating_preset(stem), self.settings)
+        preset = load_grating_preset(stem)
+        new = GratingSettings.from_file(preset, self.settings)
+        if preset.rigorous is not None:
+            self.apply_rigorous(preset.rigorous)
         if self._take(None, new):
             self._origin = (stem, new)
             self._sync_fields()
@@ -1347,17 +1439,39 @@ class GratingSection:
         self.strip_fig.title.text = (f"Colour seen at each viewing angle: {s.lines_per_mm:g} lines/mm, lamp "
                                      f"{s.illuminant} at α = {s.incidence_deg:g}°")
 
+    def _plan_ranking(self):
+        """(designs in the order shown, the current rigorous ranking or None, scalar means by design)."""
+        s, plan, eff = self.shown, list(self.plan or []), self.plan_efficiency
+        current = (eff is not None and eff["settings"] == (s, *self._rigorous_request_quiet(),
+                                                           self.rigorous_state.polarization)
+                   and set(eff["scalar"]) == {(d.lines_per_mm, d.order) for d in plan})
+        scalar = eff["scalar"] if current else {(d.lines_per_mm, d.order): plan_scalar_efficiency(s, d) for d in plan}
+        if not current:
+            return plan, None, scalar
+
+        def rank(d):
+            r = eff["rigorous"].get((d.lines_per_mm, d.order))
+            computed = isinstance(r, float)
+            return (0 if computed else 1 if r is None else 2, -(r if computed else scalar[(d.lines_per_mm, d.order)]))
+        return sorted(plan, key=rank), eff, scalar
+
     def _draw_plan(self):
-        s, plan = self.shown, self.plan
+        s = self.shown
+        plan, eff, scalar = self._plan_ranking()
+        pol = self.rigorous_state.polarization
         head = ["lines/mm", "order", "incidence α (°)", "β range", "spread (mm)", "fill", "nm/pixel",
-                "resolution (nm)", "free spectral range (nm)"]
+                "resolution (nm)", "free spectral range (nm)", "scalar efficiency (band mean, relative)",
+                f"rigorous efficiency (band mean, {pol}, absolute)"]
         rows = []
         for d in plan:
+            r = eff["rigorous"].get((d.lines_per_mm, d.order)) if eff is not None else None
+            rig = (f"<b>{r:.3f}</b>" if isinstance(r, float) else
+                   f"<span title='{_esc(r)}'>not computed (see tooltip)</span>" if isinstance(r, str) else "—")
             mark = " ◀ current density" if abs(d.lines_per_mm - s.lines_per_mm) < 1e-9 else ""
             rows.append((f"<b>{d.lines_per_mm:g}</b>{mark}", f"{d.order:+d}", f"{d.incidence_deg:.1f}",
                          f"{_deg(d.beta_range_deg[0], 1)} … {_deg(d.beta_range_deg[1], 1)}", f"{d.spread_mm:.1f}",
                          f"{100 * d.fill_fraction:.0f}%", f"{d.nm_per_pixel:.3f}", f"{d.resolution_nm:.2f}",
-                         f"{d.free_spectral_range_nm:.0f}"))
+                         f"{d.free_spectral_range_nm:.0f}", f"{scalar[(d.lines_per_mm, d.order)]:.2f}", rig))
             if d.filter_edges_nm:
                 rows[-1] = rows[-1] + (f"stepped, edges {', '.join(f'{e:.0f}' for e in d.filter_edges_nm)} nm",)
             else:
@@ -1380,8 +1494,20 @@ class GratingSection:
             f"<h4 style='margin:4px 0'>Spectrometer planning: {what}</h4>{body}{dropped}"
             f"<div style='font-size:12px;color:#555;margin-top:3px'>{s.deviation_deg:g}° between incident and "
             "diffracted beams at the band centre (the Deviation setting, also used by the blaze read-out), flat "
-            "detector; resolution = 3 pixels of the reciprocal linear dispersion; best resolution first. A band "
-            f"wider than one free spectral range is kept when a stepped long-pass filter clears it for {source}.</div>")
+            "detector; resolution = 3 pixels of the reciprocal linear dispersion. A band "
+            f"wider than one free spectral range is kept when a stepped long-pass filter clears it for {source}."
+            f" {self._plan_order_text(eff)}</div>")
+
+    def _plan_order_text(self, eff) -> str:
+        if eff is None:
+            return (f"Best resolution first. 'Rank by rigorous efficiency' solves the groove (the profile, depth and "
+                    f"material of the rigorous curve below) for up to {PLAN_RIGOROUS_MAX} designs, those with the "
+                    f"best scalar estimate first, at {gr.PLAN_EFFICIENCY_SAMPLES} wavelengths across the band each.")
+        rest = eff["total"] - eff["computed"]
+        return (f"Ranked by rigorous efficiency (mean {self.rigorous_state.polarization} absolute efficiency of the "
+                f"order over the band, {gr.PLAN_EFFICIENCY_SAMPLES} wavelengths) for the {eff['computed']} of "
+                f"{eff['total']} designs with the best scalar estimate"
+                + (f"; the other {rest} follow by their scalar estimate" if rest else "") + ".")
 
     # ------------------------------------------------------------------ rigorous efficiency (on request)
     def _build_rigorous(self):
@@ -1426,6 +1552,29 @@ class GratingSection:
         self.rig_fig = f
         self.rig_holder = RangeHolder(f, x=(400.0, 700.0), y=(0.0, 1.0))     # an empty figure still has a range
         self.rig_button.on_click(lambda e: self.compute_rigorous())
+        self.rig_depth.param.watch(self._on_rig_depth, "value")
+        self.rig_pol = pn.widgets.Select.from_param(st.param.polarization, name="Rank by", width=120, margin=(2, 5))
+        self.plan_button = pn.widgets.Button(label="Rank by rigorous efficiency", color="primary", width=220,
+                                             margin=(20, 5, 2, 5), css_classes=["fg-plan-rank"])
+        self.plan_progress = pn.indicators.Progress(value=0, max=100, width=200, visible=False, margin=(24, 5, 2, 5))
+        self.plan_status = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "12px", "color": "#444"},
+                                        sizing_mode="stretch_width", css_classes=["fg-plan-status"])
+        self.plan_button.on_click(lambda e: self.rank_plan())
+        st.param.watch(self._rigorous_changed, ["profile", "depth_nm", "material", "polarization"])
+
+    def _on_rig_depth(self, _event):
+        try:
+            self._rigorous_request()               # a valid typed depth goes into the declared state at once
+        except InputError as exc:
+            self._rigorous_error(exc)
+        else:
+            self.rig_status.object = ""
+
+    def _rigorous_changed(self, *_):
+        """A rigorous setting changed: the planner's ranking may be stale, and the page address follows."""
+        if self.plan is not None:
+            self._draw_plan()
+        self._changed()
 
     def _rigorous_request(self):
         """(profile, depth_nm, material) from the widgets; raises InputError for a bad depth."""
@@ -1454,40 +1603,65 @@ class GratingSection:
         except InputError as exc:
             self._rigorous_error(exc)
             return False
-        self._rigorous_job += 1
-        job = self._rigorous_job
-        s = self.shown
-        doc = pn.state.curdoc
-        live = served(doc)
-        session = session_key(self)
         self.rig_button.disabled = True
         self.rig_progress.visible, self.rig_progress.value = True, 0
         self.rig_status.object = "computing the rigorous efficiency (about a second)…"
+        return self._run_job("_rigorous_job", RIGOROUS_SAMPLES, partial(compute_rigorous, self.shown, profile, depth,
+                                                                        material),
+                             self._rigorous_progress, self._rigorous_done, sync)
+
+    def rank_plan(self, sync: bool = False) -> bool:
+        """Rank the planner's designs by rigorous efficiency over the band (at most PLAN_RIGOROUS_MAX of them;
+        in a worker process when served). Returns True when a computation was started (or done)."""
+        try:
+            profile, depth, material = self._rigorous_request()
+        except InputError as exc:
+            self.plan_status.object = f"<span style='color:#b00020'>{_esc(str(exc))}</span>"
+            return False
+        if not self.plan:
+            self.plan_status.object = "No design to rank: the planner has found none for these settings."
+            return False
+        self.plan_button.disabled = True
+        self.plan_progress.visible, self.plan_progress.value = True, 0
+        self.plan_status.object = "computing the rigorous efficiency of the designs…"
+        fn = partial(compute_plan_efficiency, self.shown, list(self.plan), profile, depth, material,
+                     self.rigorous_state.polarization)
+        return self._run_job("_plan_job", gr.PLAN_EFFICIENCY_SAMPLES * min(len(self.plan), PLAN_RIGOROUS_MAX), fn,
+                             self._plan_progress, self._plan_done, sync)
+
+    def _run_job(self, counter: str, size: int, fn, on_progress, on_done, sync: bool) -> bool:
+        """Run ``fn(channel)`` in a worker process when served (here otherwise, or with ``sync``), as job
+        number ``self.<counter>`` + 1: progress goes to ``on_progress(job, fraction, text)``, the result or
+        an InputError with a sentence to ``on_done(job, out)``. A newer job of the same counter supersedes."""
+        setattr(self, counter, getattr(self, counter) + 1)
+        job = getattr(self, counter)
+        doc = pn.state.curdoc
+        live = served(doc)
+        session = session_key(self)
 
         def gone():
-            return job != self._rigorous_job or (live and not served(doc))
+            return job != getattr(self, counter) or (live and not served(doc))
 
         if sync or not live:
-            channel = workers.LocalChannel(partial(self._rigorous_progress, job), gone)
+            channel = workers.LocalChannel(partial(on_progress, job), gone)
             try:
-                with heavy_job("grating_efficiency", RIGOROUS_SAMPLES, session):
-                    out = compute_rigorous(s, profile, depth, material, channel)
+                with heavy_job("grating_efficiency", size, session):
+                    out = fn(channel)
             except InputError as exc:
                 out = exc
             except JobCancelled:
                 return True
-            self._rigorous_done(job, out)
+            on_done(job, out)
             return True
 
         async def run():
             limits = Limits.from_env()
             try:
-                with heavy_job("grating_efficiency", RIGOROUS_SAMPLES, session, limits):
+                with heavy_job("grating_efficiency", size, session, limits):
                     channel = await workers.new_channel()
                     out = await workers.run_in_worker(
-                        limits.max_jobs_server, partial(compute_rigorous, s, profile, depth, material),
-                        channel=channel, cancelled=gone,
-                        on_progress=lambda f, text: post_to_page(doc, partial(self._rigorous_progress, job, f, text)))
+                        limits.max_jobs_server, fn, channel=channel, cancelled=gone,
+                        on_progress=lambda f, text: post_to_page(doc, partial(on_progress, job, f, text)))
             except InputError as exc:
                 out = exc
             except JobCancelled:
@@ -1498,9 +1672,26 @@ class GratingSection:
             except Exception:  # never lose the session to one failed computation
                 log.exception("grating efficiency failed")
                 out = InputError("The rigorous efficiency failed unexpectedly; the server log has the details.")
-            post_to_page(doc, partial(self._rigorous_done, job, out))
+            post_to_page(doc, partial(on_done, job, out))
         pn.state.execute(run)
         return True
+
+    def _plan_progress(self, job, fraction, text):
+        if job == self._plan_job:
+            self.plan_progress.value = int(round(100 * fraction))
+            self.plan_status.object = f"ranking by rigorous efficiency: {_esc(text)}"
+
+    def _plan_done(self, job, out):
+        if job != self._plan_job:
+            return
+        self.plan_button.disabled = False
+        self.plan_progress.visible = False
+        if isinstance(out, Exception):
+            self.plan_status.object = f"<span style='color:#b00020'>{_esc(str(out))}</span>"
+            return
+        self.plan_efficiency = out
+        self.plan_status.object = ""
+        self._draw_plan()
 
     def _rigorous_progress(self, job, fraction, text):
         if job == self._rigorous_job:
@@ -1734,6 +1925,8 @@ class GratingSection:
             pn.pane.Bokeh(self.rig_fig, sizing_mode="stretch_width"),
             self.rig_text,
             _rule(),
+            pn.Row(self.rig_pol, self.plan_button, self.plan_progress, margin=0),
+            self.plan_status,
             self.plan_html,
             self.caution_end,
             sizing_mode="stretch_both", scroll=True, margin=(0, 5))
