@@ -20,6 +20,12 @@ The shipped grating presets (``presets/gratings/*.json``) use this format; versi
       "pixel_pitch_um": 14
     }
 
+An optional ``"rigorous"`` object holds the groove the rigorous efficiency is solved for:
+``{"profile": "blazed", "depth_nm": null, "material": "Al", "polarization": "unpolarized"}``
+(profile one of :data:`RIGOROUS_PROFILES`, depth in nm or null for the default, material one of
+:data:`RIGOROUS_MATERIALS`, polarization one of :data:`RIGOROUS_POLARIZATIONS`); the duty cycle
+and kind are the file's own fields. Files without it read as before.
+
 Angles follow :mod:`physics.grating` (m·λ = d·(sin α + sin β), degrees from the grating
 normal). ``presets/README.md`` lists every field with its type and range (the "Gratings"
 section); :data:`LIMITS` holds the ranges, and the page checks typed values against the same
@@ -42,7 +48,8 @@ from .stackfile import (_check_fields, _fail, _got, _number, _string, load_shipp
 
 __all__ = ["GratingFile", "grating_from_dict", "load_grating_file", "load_grating_preset", "dump_grating_file",
            "list_grating_presets", "FORMAT", "VERSION", "LIMITS", "KINDS", "GROOVES",
-           "MAX_FILE_BYTES", "GRATING_PRESET_DIR"]
+           "MAX_FILE_BYTES", "GRATING_PRESET_DIR", "RIGOROUS_PROFILES", "RIGOROUS_MATERIALS",
+           "RIGOROUS_POLARIZATIONS", "RIGOROUS_DEPTH_NM"]
 
 #: Value of the "format" field.
 FORMAT = "fringegauge-grating"
@@ -72,10 +79,18 @@ LIMITS = {
     "pixel_pitch_um": (0.1, 1000.0, "µm"),
 }
 
+#: The optional "rigorous" object: groove profiles, materials (physics.material names) and polarizations
+#: the page offers for the rigorous efficiency, and the depth range (nm, both ends allowed).
+RIGOROUS_PROFILES = ("lamellar", "sinusoidal", "blazed")
+RIGOROUS_MATERIALS = ("Al", "Ag", "Au", "SiO2")
+RIGOROUS_POLARIZATIONS = ("unpolarized", "TE", "TM")
+RIGOROUS_DEPTH_NM = (1.0, 5000.0)
+_RIGOROUS_FIELDS = ("profile", "depth_nm", "material", "polarization")
+
 _FIELDS = ("format", "version", "name", "scenario", "lines_per_mm", "kind", "groove", "blaze_angle_deg",
            "duty_cycle", "incidence_deg", "band_nm", "focal_length_mm", "illuminated_width_mm",
-           "detector_length_mm", "pixel_pitch_um")
-_REQUIRED = tuple(f for f in _FIELDS if f not in ("name", "scenario"))
+           "detector_length_mm", "pixel_pitch_um", "rigorous")
+_REQUIRED = tuple(f for f in _FIELDS if f not in ("name", "scenario", "rigorous"))
 
 
 @dataclass(frozen=True)
@@ -95,6 +110,21 @@ class GratingFile:
     illuminated_width_mm: float
     detector_length_mm: float
     pixel_pitch_um: float
+    rigorous: dict | None = None    #: {"profile", "depth_nm" (None: default), "material", "polarization"} or None
+
+
+def _rigorous(data) -> dict:
+    """Check the optional "rigorous" object; every field is required in it."""
+    if not isinstance(data, dict):
+        _fail("rigorous", f"must be an object {{\"profile\": ..., \"depth_nm\": ..., \"material\": ..., "
+                          f"\"polarization\": ...}}, got {_got(data)}.")
+    _check_fields("rigorous", data, _RIGOROUS_FIELDS, _RIGOROUS_FIELDS)
+    depth = data["depth_nm"]
+    if depth is not None:
+        depth = _number("rigorous.depth_nm", depth, *RIGOROUS_DEPTH_NM, "nm")
+    return {"profile": _choice("rigorous.profile", data["profile"], RIGOROUS_PROFILES), "depth_nm": depth,
+            "material": _choice("rigorous.material", data["material"], RIGOROUS_MATERIALS),
+            "polarization": _choice("rigorous.polarization", data["polarization"], RIGOROUS_POLARIZATIONS)}
 
 
 def _limited(where: str, value) -> float:
@@ -154,7 +184,8 @@ def grating_from_dict(data) -> GratingFile:
         focal_length_mm=_limited("focal_length_mm", data["focal_length_mm"]),
         illuminated_width_mm=_limited("illuminated_width_mm", data["illuminated_width_mm"]),
         detector_length_mm=_limited("detector_length_mm", data["detector_length_mm"]),
-        pixel_pitch_um=_limited("pixel_pitch_um", data["pixel_pitch_um"]))
+        pixel_pitch_um=_limited("pixel_pitch_um", data["pixel_pitch_um"]),
+        rigorous=_rigorous(data["rigorous"]) if "rigorous" in data else None)
 
 
 def load_grating_file(content: bytes | str) -> GratingFile:
@@ -184,6 +215,8 @@ def dump_grating_file(gf: GratingFile) -> str:
             "incidence_deg": gf.incidence_deg, "band_nm": list(gf.band_nm),
             "focal_length_mm": gf.focal_length_mm, "illuminated_width_mm": gf.illuminated_width_mm,
             "detector_length_mm": gf.detector_length_mm, "pixel_pitch_um": gf.pixel_pitch_um}
+    if gf.rigorous is not None:
+        data["rigorous"] = {k: gf.rigorous.get(k) for k in _RIGOROUS_FIELDS}
     text = json.dumps(data, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
     load_grating_file(text)
     return text

@@ -189,3 +189,38 @@ def test_fuzz_one_field_of_a_valid_file(field, value):
 @given(st.binary(max_size=2000))
 def test_fuzz_arbitrary_bytes(content):
     _load_any(content)
+
+
+# ---------------------------------------------------------------------- the optional "rigorous" object
+def _with_rigorous(rig):
+    import json
+    from physics.gratingfile import dump_grating_file, load_grating_preset
+    data = json.loads(dump_grating_file(load_grating_preset("optical_disc_track")))
+    data["rigorous"] = rig
+    return json.dumps(data)
+
+
+def test_rigorous_object_reads_and_writes_back():
+    from dataclasses import replace
+    from physics.gratingfile import dump_grating_file, load_grating_file, load_grating_preset
+    old = load_grating_preset("optical_disc_track")
+    assert old.rigorous is None and "rigorous" not in dump_grating_file(old)      # old files are unchanged
+    rig = {"profile": "sinusoidal", "depth_nm": 90.0, "material": "Au", "polarization": "TM"}
+    gf = load_grating_file(_with_rigorous(rig))
+    assert gf.rigorous == rig and load_grating_file(dump_grating_file(gf)) == gf
+    gf = replace(gf, rigorous=dict(rig, depth_nm=None))
+    assert load_grating_file(dump_grating_file(gf)).rigorous["depth_nm"] is None
+
+
+@pytest.mark.parametrize("rig, words", [
+    ("blazed", "rigorous: must be an object"),
+    ({"profile": "blazed", "depth_nm": None, "material": "Al"}, "rigorous.polarization: missing"),
+    ({"profile": "wavy", "depth_nm": None, "material": "Al", "polarization": "TE"}, "rigorous.profile"),
+    ({"profile": "blazed", "depth_nm": 0.0, "material": "Al", "polarization": "TE"}, "rigorous.depth_nm"),
+    ({"profile": "blazed", "depth_nm": None, "material": "Pt", "polarization": "TE"}, "rigorous.material"),
+    ({"profile": "blazed", "depth_nm": None, "material": "Al", "polarization": "TE", "x": 1}, "unknown field"),
+])
+def test_bad_rigorous_object_gets_a_sentence(rig, words):
+    from physics.gratingfile import load_grating_file
+    with pytest.raises(InputError, match=words):
+        load_grating_file(_with_rigorous(rig))
