@@ -98,9 +98,29 @@ class JobOutOfMemory(WorkerLost):
     """A job needed more address space than :func:`worker_memory_bytes`; its worker was replaced."""
 
 
+#: Threads each BLAS/OpenMP library may start in a worker process: the server runs up to
+#: ``max_jobs_server`` workers on a few cores and the numerics' matrices are small, so more threads per
+#: process only oversubscribe the cores. Set in the environment the forkserver starts with (it imports
+#: numpy before any worker runs); a value already in the environment is kept.
+WORKER_BLAS_THREADS = "1"
+_BLAS_THREAD_VARS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
 def _context():
     """Worker processes start from a clean server process, never by forking the threaded web server."""
+    for var in _BLAS_THREAD_VARS:
+        os.environ.setdefault(var, WORKER_BLAS_THREADS)
     return multiprocessing.get_context("forkserver")
+
+
+def _share_cores() -> None:
+    """Give this worker its share of the cores: the rigorous grating solver's own threads
+    (``FRINGEGAUGE_SOLVER_THREADS``, unless set) are the cores over ``max_jobs_server``, at least 1."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        cores = os.cpu_count() or 1
+    os.environ.setdefault("FRINGEGAUGE_SOLVER_THREADS", str(max(1, cores // max(1, Limits.from_env().max_jobs_server))))
 
 
 def worker_memory_bytes(limits: Limits | None = None) -> int:
@@ -135,6 +155,7 @@ def _init_worker(memory_bytes: int) -> None:
         resource.setrlimit(resource.RLIMIT_AS, (soft, hard))
     except (ImportError, AttributeError, ValueError, OSError):    # not Linux: no limit
         pass
+    _share_cores()
     import physics.fit  # noqa: F401  (import the numerics once per worker, not per job)
     import physics.inverse  # noqa: F401
 
