@@ -149,6 +149,11 @@ TAUC_LORENTZ_RANGES = {"eps_inf": (EPS_INF_MIN, 100.0, ""), "gap_ev": (0.0, 50.0
                        "amplitude_ev": (0.0, 10_000.0, "eV"), "center_ev": (0.0, 50.0, "eV"),
                        "broadening_ev": (0.0, 50.0, "eV")}
 _POSITIVE = ("amplitude_ev", "center_ev", "broadening_ev")
+#: Sellmeier terms, n² = 1 + Σ Bᵢλ²/(λ² − Cᵢ) (λ in µm, Cᵢ in µm²): one or two for a fitted film, three in glass
+#: catalogues; Bᵢ >= 0 (an oscillator strength) and Cᵢ >= 0 (a resonance wavelength squared), each at most the
+#: upper end given (an infrared term of a database page reaches B ≈ 4e4 at C ≈ 1.5e6 µm²: Luke et al. 2015).
+MAX_SELLMEIER_TERMS = 6
+SELLMEIER_RANGES = {"B": (0.0, 1e7, ""), "C": (0.0, 1e8, "µm²")}
 #: Wavelengths across a dispersion model's range at which a file's model is evaluated once when read:
 #: an Urbach tail or Tauc-Lorentz parameters that give no usable index anywhere in the range are refused
 #: there, naming the field, not later in a view.
@@ -306,6 +311,10 @@ def _material_description(where: str, d: dict, depth: int = 0) -> dict:
             if not isinstance(value, str) or value not in EMA_RULES:
                 _fail(w, f"must be one of {', '.join(repr(r) for r in EMA_RULES)} (a string), got {_got(value)}.")
             out[key] = value
+        elif kind == "sellmeier" and key in SELLMEIER_RANGES:
+            lo, hi, unit = SELLMEIER_RANGES[key]
+            out[key] = [_number(f"{w}[{i}]", x, lo, hi, unit)
+                        for i, x in enumerate(_number_list(w, value, 1, MAX_SELLMEIER_TERMS))]
         elif kind == "constant":             # n, k
             out[key] = _number(w, value)
         else:                                # B, C, wavelength_nm, n, k of sellmeier/table
@@ -319,6 +328,17 @@ def _probe(m: Material) -> None:
         m.nk(np.geomspace(*m.range_nm, PROBE_POINTS))
 
 
+def _sellmeier_poles(where: str, spec: dict) -> None:
+    """Refuse a Sellmeier term whose resonance, λ = √Cᵢ, lies inside the material's range (n is infinite there)."""
+    lo, hi = spec.get("range_nm", (300.0, 2500.0))
+    for i, c in enumerate(spec["C"]):
+        pole_nm = 1000.0 * np.sqrt(c)
+        if lo <= pole_nm <= hi:
+            _fail(f"{where}.C[{i}]", f"puts a resonance at {pole_nm:.4g} nm, inside the range {lo:g}-{hi:g} nm where "
+                                     "the index is used; give range_nm on one side of it, or a C whose square root "
+                                     "(µm) lies outside the range.")
+
+
 def _material(where: str, value, depth: int = 0) -> Material:
     """A material from a file field (string or description object), errors prefixed by ``where``."""
     probe = False
@@ -327,7 +347,9 @@ def _material(where: str, value, depth: int = 0) -> Material:
         spec = value
     elif isinstance(value, dict):
         spec = _material_description(where, value, depth)
-        probe = spec["kind"] in ("tauc-lorentz", "effective-medium") or "urbach" in spec
+        probe = spec["kind"] in ("tauc-lorentz", "effective-medium", "sellmeier") or "urbach" in spec
+        if spec["kind"] == "sellmeier":
+            _sellmeier_poles(where, spec)
     else:
         _fail(where, f"must be a material name or page as a string (e.g. \"SiO2\", "
                      f"\"main/Si/Green-2008\", \"1.46\") or a material description object "

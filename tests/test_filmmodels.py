@@ -161,3 +161,31 @@ def test_cauchy_urbach_tail():
     np.testing.assert_array_equal(back.nk([400.0, 600.0]), m.nk([400.0, 600.0]))
     with pytest.raises(InputError, match="k_amplitude"):
         CauchyMaterial(1.9, k_amplitude=-0.1)
+
+
+@pytest.mark.parametrize("desc, words", [
+    ({"kind": "sellmeier", "B": [-1.0], "C": [0.01]}, r"B\[0\]: -1 is out of range"),
+    ({"kind": "sellmeier", "B": [1.0] * 7, "C": [0.01] * 7}, "give 1 to 6"),
+    ({"kind": "sellmeier", "B": [1.0], "C": [-0.01]}, r"C\[0\]: -0.01 µm² is out of range"),
+    ({"kind": "sellmeier", "B": [2.0, 1.0], "C": [0.3, 0.001]}, r"C\[0\]: puts a resonance at 547.7 nm"),
+    ({"kind": "sellmeier", "B": [2.0, 1.0], "C": [0.05]}, "same, non-zero length"),
+])
+def test_sellmeier_in_a_stack_file_is_bounded(desc, words):
+    from physics.stackfile import stack_from_dict
+    doc = {"format": "fringegauge-stack", "version": 1, "ambient": "1.0", "substrate": "Si",
+           "layers": [{"material": desc, "thickness_nm": 100.0}]}
+    with pytest.raises(InputError, match=words):
+        stack_from_dict(doc)
+
+
+def test_two_term_sellmeier_round_trips_through_a_stack_file():
+    """The form of Luke et al., Opt. Lett. 40, 4823 (2015) for Si3N4 (a UV and an infrared term): n(633 nm) as the
+    refractiveindex.info main/Si3N4/Luke page gives it (2.0394, its formula 1 with these coefficients)."""
+    from physics.stackfile import stack_from_dict, stack_to_dict
+    desc = {"kind": "sellmeier", "B": [3.0249, 40314.0], "C": [0.1353406 ** 2, 1239.842 ** 2]}
+    st = stack_from_dict({"format": "fringegauge-stack", "version": 1, "ambient": "1.0", "substrate": "Si",
+                          "layers": [{"material": desc, "thickness_nm": 100.0}]}).stack
+    m = st.layers[0].material
+    assert float(m.nk(633.0).real) == pytest.approx(float(material("main/Si3N4/Luke").nk(633.0).real), abs=1e-4)
+    back = stack_from_dict(stack_to_dict(st)).stack.layers[0].material
+    np.testing.assert_allclose(back.nk(np.linspace(400, 1000, 7)), m.nk(np.linspace(400, 1000, 7)), rtol=1e-14)
