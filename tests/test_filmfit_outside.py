@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 import outside_pipeline as op
-from physics import CauchyMaterial, InputError, Layer, Stack, fit_film, material
-from physics.filmfit import FitCancelled, slit_matrix
+from physics import CauchyMaterial, FitCancelled, InputError, Layer, Stack, fit_film, material
+from physics.filmfit import slit_matrix
 from physics.stackfile import stack_from_dict
 
 WL = np.linspace(400.0, 1000.0, 300)
