@@ -6,6 +6,7 @@ fab's step wafer would be measured on an instrument), rendered through a made-up
 of the channels and a dark level) so that the quick gains cannot read it and a calibration can.
 """
 
+import csv
 import io
 import json
 
@@ -85,7 +86,7 @@ def test_drawn_boxes_get_rows_and_the_fit_shows_residuals_per_box(section):
     cal = section.camcal.fit()
     assert cal is not None, section.camcal.fit_msg.object
     table = section.camcal.residuals.object
-    assert table.count("<tr>") == len(STEPS_NM) + 1 and "ΔE00" in table and "residual (nm)" in table
+    assert table.count("<tr>") == len(STEPS_NM) + 1 and "ΔE00" in table and "map − known (nm)" in table
     assert len(cal.residual_delta_e) == len(STEPS_NM)
     assert section.camcal.fit_msg.alert_type == "success"
     assert section.camcal.active is cal and "In use" in section.camcal.active_info.object
@@ -95,6 +96,14 @@ def test_drawn_boxes_get_rows_and_the_fit_shows_residuals_per_box(section):
     section.start_map(sync=True)
     assert section.result is not None, section.map_msg.object
     assert section.camcal.unc_row.visible and "uncertainty" in section.stats.object
+    assert "camera calibration fitted on this page (steps.png)" in section.stats.object
+    text = section._stats_csv().getvalue()
+    rows = [r for r in csv.reader(io.StringIO(text)) if r and not r[0].startswith("#")]
+    assert rows[0][-2:] == ["median_uncertainty_nm", "p95_uncertainty_nm"] and float(rows[1][-1]) > 0
+    assert "# camera calibration: fitted on this page (steps.png)" in text
+    # a picked point is read through the calibration too: the 190 nm step
+    cands = section.pick_box(boxes[3])
+    assert cands is not None and any(abs(c.thickness_nm - STEPS_NM[3]) < 5 for c in cands.possible)
 
 
 def test_a_box_csv_fills_the_table_and_a_bad_row_is_named(section):

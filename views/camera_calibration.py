@@ -58,7 +58,7 @@ LIBRARY_KIND = "camera_calibrations"
 MODELS = {"3x3 matrix + dark offset": "matrix", "root-polynomial (needs more boxes)": "root-polynomial"}
 #: Denoising offered before a calibrated map (keys of physics.camera.DENOISE_FILTERS): a median filter keeps
 #: a step's edge where it is and removes pixel noise.
-DENOISE = {"none": None, "median 3 x 3 px": "median3", "median 5 x 5 px": "median", "median 7 x 7 px": "median7"}
+DENOISE = {"none": "none", "median 3 x 3 px": "median3", "median 5 x 5 px": "median", "median 7 x 7 px": "median7"}
 #: Width of the section (px), the photo column's.
 COLUMN_PX = 330
 #: Photo files a flat field may come from (the photo drop zone's, with camera RAW where it is read).
@@ -86,7 +86,7 @@ class CameraCalibrationSettings(param.Parameterized):
     lamp = param.String(default="", doc="Lamp or illumination of the station.")
     objective = param.String(default="", doc="Objective or lens of the station.")
     na = param.Number(default=None, allow_None=True, bounds=(0.0, 1.7), doc="Numerical aperture of the objective.")
-    denoise = param.Selector(default=None, objects=DENOISE, doc="Edge-preserving filter on the photo before matching.")
+    denoise = param.Selector(default="none", objects=DENOISE, doc="Edge-preserving filter on the photo before matching.")
 
 
 # ---------------------------------------------------------------------- CSV files (plain functions)
@@ -246,11 +246,11 @@ class CameraCalibrationPanel:
                                                              css_classes=["fg-cal-source"])
         self.model = pn.widgets.Select.from_param(st.param.model, name="Model", width=COLUMN_PX - 10,
                                                   css_classes=["fg-cal-model"])
-        self.camera = pn.widgets.TextInput.from_param(st.param.camera, name="Camera", width=155,
+        self.camera = pn.widgets.TextInput.from_param(st.param.camera, name="Camera", width=150,
                                                       placeholder="e.g. line-3 scope camera", css_classes=["fg-cal-camera"])
-        self.lamp = pn.widgets.TextInput.from_param(st.param.lamp, name="Lamp", width=155, placeholder="e.g. halogen 3200 K",
+        self.lamp = pn.widgets.TextInput.from_param(st.param.lamp, name="Lamp", width=150, placeholder="e.g. halogen 3200 K",
                                                     css_classes=["fg-cal-lamp"])
-        self.objective = pn.widgets.TextInput.from_param(st.param.objective, name="Objective", width=155,
+        self.objective = pn.widgets.TextInput.from_param(st.param.objective, name="Objective", width=150,
                                                          placeholder="e.g. 5x", css_classes=["fg-cal-objective"])
         self.na = pn.widgets.FloatInput.from_param(st.param.na, name="NA", width=80, step=0.05,
                                                    css_classes=["fg-cal-na"])
@@ -284,7 +284,7 @@ class CameraCalibrationPanel:
                                              visible=False)
         self.fit_button = pn.widgets.Button(label="Fit calibration", color="primary", width=160, margin=(6, 5),
                                             css_classes=["fg-cal-fit"])
-        self.fit_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(4, 5), width=COLUMN_PX,
+        self.fit_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(4, 5), width=COLUMN_PX - 10,
                                      css_classes=["fg-cal-fit-msg"])
         self.residuals = pn.pane.HTML("", margin=(0, 5), width=COLUMN_PX, css_classes=["fg-cal-residuals"])
         self.active_info = pn.pane.HTML("", margin=(2, 5), width=COLUMN_PX, styles={"font-size": "12px"},
@@ -644,8 +644,9 @@ class CameraCalibrationPanel:
         self.residuals.object = residual_table(cal, kind, known, self.target.names if self.target else ())
         de = np.asarray(getattr(cal, "residual_delta_e", []), dtype=float)
         worst = f"; worst box ΔE00 {np.nanmax(de):.2f}" if de.size else ""
-        self.fit_msg.object = (f"Fitted from {len(self.boxes)} boxes ({_model_label(self.settings.model)}){worst}. "
-                               "It is now used for maps of this and later photos; save it to the library to keep it.")
+        self.fit_msg.object = _esc(f"Fitted: {cal.message or f'{len(self.boxes)} boxes{worst}.'} It is now used for "
+                                   "maps of this photo and later ones of the same size; save it to the library to "
+                                   "keep it.")
         self.fit_msg.alert_type, self.fit_msg.visible = "success", True
         self.use(cal, cal.flat_field, f"{FITTED_HERE} ({self.sec.photo_name})")
         return cal
@@ -661,6 +662,9 @@ class CameraCalibrationPanel:
         """Make ``cal`` (with the flat field ``flat``, or None) the calibration of the next maps."""
         self.active, self.active_flat, self.active_label = cal, flat, label
         self.settings.method = "calibrated"
+        reading = self.sec.reading
+        if reading.reading == "uncalibrated camera":         # the colours now come from a calibrated camera
+            reading.reading = "calibrated camera"
         self._show_active()
 
     def _size_refusal(self):
@@ -702,7 +706,20 @@ class CameraCalibrationPanel:
         refusal = self._size_refusal()
         if refusal:
             raise InputError(refusal)
-        return {"calibration": self.active, "flat_field": self.active_flat, "denoise": self.settings.denoise}
+        denoise = None if self.settings.denoise == "none" else self.settings.denoise
+        return {"calibration": self.active, "flat_field": self.active_flat, "denoise": denoise}
+
+    def box_lab(self, box):
+        """Mean CIELAB of a box of the open photo through the calibration in use (and its flat field), or None
+        when the quick gains are chosen. InputError (a sentence) when it cannot be used on this photo."""
+        args = self.map_arguments()
+        if not args:
+            return None
+        from physics.camera import linear_rgb
+        x0, y0, x1, y1 = box
+        cal, flat = args["calibration"], args["flat_field"]
+        lab = cal.lab_from_linear(linear_rgb(self.sec.photo)[y0:y1, x0:x1], flat, box if flat is not None else None)
+        return np.asarray(lab, dtype=float).reshape(-1, 3).mean(axis=0)
 
     # ------------------------------------------------------------------ the map's uncertainty
     def show_map(self, result, step: int) -> list:
@@ -726,8 +743,9 @@ class CameraCalibrationPanel:
                                 f"is on the colour path there: median ± {p50:.1f} nm, 95 % of pixels within ± "
                                 f"{p95:.1f} nm. Grey: no match. {NOT_METROLOGY}")
         self.unc_row.visible = True
-        return [("uncertainty (median, P95)", f"± {p50:.1f} nm, ± {p95:.1f} nm"),
-                ("colour read with", _esc(self.active_label or "camera calibration"))]
+        read = (f"camera calibration {self.active_label} (the box's gains are not used)"
+                if result.stats.get("calibrated") else "the calibration box's gains (quick)")
+        return [("uncertainty (median, P95)", f"± {p50:.1f} nm, ± {p95:.1f} nm"), ("colour read with", _esc(read))]
 
     # ------------------------------------------------------------------ the lab library
     def _library(self):
@@ -801,8 +819,10 @@ class CameraCalibrationPanel:
         self.load_button.disabled = not entries
         skipped = (f" {len(problems)} file(s) in the folder were skipped (corrupt, hand-made or not written by this "
                    "server); the Lab library tab lists why." if problems else "")
-        if say or problems:
-            self._lib_say(f"{len(entries)} saved calibration(s).{skipped}", "#8a4b00" if problems else "#444")
+        if say or problems or not entries:
+            self._lib_say((f"{len(entries)} saved calibration(s)." if entries else
+                           "No camera calibration is saved in the lab library yet.") + skipped,
+                          "#8a4b00" if problems else "#444")
 
     def load_selected(self) -> bool:
         """Load the calibration chosen in the picker onto the page; a corrupt one is a sentence, nothing changes."""
@@ -830,7 +850,7 @@ class CameraCalibrationPanel:
         """The section: the choice of method, ``quick`` (the bare-substrate box's widgets) and the calibration."""
         self.quick_part = quick
         self.calibrated_part = pn.Column(
-            self.intro, self.photo_info, _label("Calibrate from"), self.source, self.howto, self.box_drop,
+            self.intro, _label("Calibrate from"), self.source, self.howto, self.box_drop,
             self.box_msg.message, self.target_drop, self.builtin_button, self.target_msg.message, self.target_info,
             self.rows,
             pn.Row(self.undo_box, self.clear_boxes, margin=0), self.model,
@@ -844,7 +864,8 @@ class CameraCalibrationPanel:
             margin=0, width=COLUMN_PX + 10, css_classes=["fg-cal-section"])
         self._show_parts()
         self.refresh_list()
-        return pn.Column(pn.pane.HTML("<b>Camera calibration</b>", margin=(6, 5, 0, 5)), self.method, quick,
+        return pn.Column(pn.pane.HTML("<b>Camera calibration</b>", margin=(6, 5, 0, 5)), self.photo_info, self.method,
+                         quick,
                          self.calibrated_part, margin=0, css_classes=["fg-camera-calibration"])
 
 
@@ -854,12 +875,12 @@ def residual_table(cal, kind: str, known, patches=()) -> str:
     nm = getattr(cal, "residual_nm", None)
     nm = None if nm is None else np.asarray(nm, dtype=float).ravel()
     head = "<tr><th>box</th><th>" + ("known (nm)" if kind == "reference" else "patch") + "</th><th>ΔE00</th>" \
-           + ("<th>residual (nm)</th>" if nm is not None else "") + "</tr>"
+           + ("<th>map − known (nm)</th>" if nm is not None else "") + "</tr>"
     body = ""
     for i, d in enumerate(de):
         what = (f"{known[i]:g}" if kind == "reference" and i < len(known) else
                 _esc(patches[i]) if i < len(patches) else "")
-        r = f"<td>{nm[i]:+.1f}</td>" if nm is not None and i < nm.size and np.isfinite(nm[i]) else \
+        r = f"<td>{round(float(nm[i]), 1) + 0.0:+.1f}</td>" if nm is not None and i < nm.size and np.isfinite(nm[i]) else \
             ("<td>—</td>" if nm is not None else "")
         body += f"<tr><td>{i + 1}</td><td>{what}</td><td>{d:.2f}</td>{r}</tr>"
     return ("<div style='font-size:11px;color:#555'>Residual per box after the fit (ΔE00 ≤ 2: hard to see, common "

@@ -668,14 +668,15 @@ class ColourToThickness:
         W, H = self.photo.width, self.photo.height
         x0, y0, x1, y1 = (int(round(v)) for v in box)
         box = (max(0, x0), max(0, y0), min(W, x1), min(H, y1))
+        s = self.ex.state
         try:
-            gains = self._gains()
-            lin = box_mean_linear(self.photo, box) * gains
+            lab = self.camcal.box_lab(box)                # with the camera calibration in use, if chosen
+            if lab is None:
+                lab = _lab_from_linear(box_mean_linear(self.photo, box) * self._gains(), s.illuminant_spec(),
+                                       s.observer)
         except (InputError, _Stop) as exc:
             self.photo_msg.show_error(str(exc))
             return None
-        s = self.ex.state
-        lab = _lab_from_linear(lin, s.illuminant_spec(), s.observer)
         cands = self.find_candidates(None, lab=lab)
         self._mark_pick(box, cands)
         return cands
@@ -900,16 +901,18 @@ class ColourToThickness:
                   f"# illuminant {s.illuminant}, observer {s.observer} deg, angle {s.angle_deg:g} deg, "
                   f"colour reading error {st.get('reading_error_de', 0):g} dE00\n"
                   f"# calibration box: {self.calib_box}; region: {self.roi}\n"
-                  f"# {self.result_label}\n")
+                  + (f"# camera calibration: {self.camcal.active_label}\n" if st.get("calibrated") else "")
+                  + f"# {self.result_label}\n")
         w = csv.writer(out)
         p0, p1 = ROBUST_PERCENTILES
         w.writerow(["mean_nm", "std_nm", "min_nm", "max_nm", "uniformity", "valid_fraction", "pixels",
                     "gain_r", "gain_g", "gain_b", "median_nm", f"p{p0:g}_nm", f"p{p1:g}_nm", "uniformity_robust",
-                    "order_outliers"])
+                    "order_outliers", "median_uncertainty_nm", "p95_uncertainty_nm"])
         w.writerow([f"{st['mean_nm']:.3f}", f"{st['std_nm']:.3f}", f"{st['min_nm']:.3f}", f"{st['max_nm']:.3f}",
                     f"{st['uniformity']:.5f}", f"{st['valid_fraction']:.5f}", st["pixels"],
                     f"{g[0]:.5f}", f"{g[1]:.5f}", f"{g[2]:.5f}", f"{st['median_nm']:.3f}", f"{st['p_low_nm']:.3f}",
-                    f"{st['p_high_nm']:.3f}", f"{st['uniformity_robust']:.5f}", st["order_outliers"]])
+                    f"{st['p_high_nm']:.3f}", f"{st['uniformity_robust']:.5f}", st["order_outliers"],
+                    *(f"{st.get(k, float('nan')):.3f}" for k in ("median_uncertainty_nm", "p95_uncertainty_nm"))])
         if self.tools.sites is not None:
             ws = self.tools.settings
             out.write(f"# {ws.pattern} sites inside a {ws.edge_exclusion_mm:g} mm edge exclusion, mm from the wafer "
