@@ -215,17 +215,21 @@ def _legendre_design(u, v, degree):
     return np.stack(cols, axis=1)
 
 
-def _interp_matrix(start, stop, size, nodes):
-    """(stop - start, nodes) bilinear weights of pixel centres start..stop-1 of a side of ``size`` pixels
-    between ``nodes`` grid nodes spread evenly over pixel centres 0..size-1."""
+def _interp_weights(start, stop, size, nodes):
+    """(i0, w1): pixel centres start..stop-1 of a side of ``size`` pixels lie between grid nodes i0 and i0 + 1
+    (``nodes`` nodes spread evenly over pixel centres 0..size-1) with weight w1 on i0 + 1 (bilinear)."""
     pos = np.arange(start, stop, dtype=np.float64) * (nodes - 1) / max(size - 1, 1)
     i0 = np.clip(np.floor(pos).astype(int), 0, nodes - 2)
-    w1 = pos - i0
-    out = np.zeros((pos.size, nodes))
-    rows = np.arange(pos.size)
-    out[rows, i0] = 1.0 - w1
-    out[rows, i0 + 1] += w1
-    return out
+    return i0, (pos - i0).astype(np.float32)
+
+
+def _lerp(values, i0, w1, axis):
+    """Linear interpolation of ``values`` along ``axis`` at (i0, w1) from :func:`_interp_weights`."""
+    a, b = np.take(values, i0, axis=axis), np.take(values, i0 + 1, axis=axis)
+    shape = [1] * values.ndim
+    shape[axis] = -1
+    w = w1.reshape(shape)
+    return a + (b - a) * w
 
 
 @dataclass(frozen=True, eq=False)
@@ -251,19 +255,22 @@ class FlatField:
     level: np.ndarray
     degree: int = FLAT_POLY_DEGREE
 
+    def _divisor_columns(self, dark, box):
+        """(rows (i0, w1), (nodes, w, 3) float32 node rows interpolated to the box's columns, box): the divisor
+        (f * level - dark) / (level - dark) is these node rows interpolated to the box's rows (bilinear
+        interpolation is linear, so the nodes are scaled first)."""
+        x0, y0, x1, y1 = box if box is not None else (0, 0, self.width, self.height)
+        gh, gw = self.grid.shape[:2]
+        d = np.zeros(3) if dark is None else np.asarray(dark, dtype=float)
+        nodes = ((self.grid * self.level - d) / (self.level - d)).astype(np.float32)     # (gh, gw, 3)
+        cols = _lerp(nodes, *_interp_weights(x0, x1, self.width, gw), axis=1)           # (gh, w, 3)
+        return _interp_weights(y0, y1, self.height, gh), cols, (x0, y0, x1, y1)
+
     def gain(self, dark=None, box=None) -> np.ndarray:
         """(h, w, 3) float32 divisor (f * level - dark) / (level - dark) over ``box`` (x0, y0, x1, y1;
         default the whole photo), with ``dark`` (3,) linear (default 0)."""
-        x0, y0, x1, y1 = box if box is not None else (0, 0, self.width, self.height)
-        gh, gw = self.grid.shape[:2]
-        ry = _interp_matrix(y0, y1, self.height, gh)
-        rx = _interp_matrix(x0, x1, self.width, gw)
-        d = np.zeros(3) if dark is None else np.asarray(dark, dtype=float)
-        out = np.empty((y1 - y0, x1 - x0, 3), dtype=np.float32)
-        for c in range(3):
-            f = ry @ self.grid[:, :, c] @ rx.T
-            out[:, :, c] = (f * self.level[c] - d[c]) / (self.level[c] - d[c])
-        return out
+        (i0, w1), cols, _ = self._divisor_columns(dark, box)
+        return _lerp(cols, i0, w1, axis=0)
 
     def apply(self, linear_rgb, dark=None, box=None) -> np.ndarray:
         """Dark-subtracted, flat-fielded values (linear_rgb - dark) / gain(dark), float32 (h, w, 3).
@@ -287,7 +294,13 @@ class FlatField:
             raise InputError(f"The image part is {rgb.shape[1]} x {rgb.shape[0]} pixels but the box is "
                              f"{x1 - x0} x {y1 - y0}.")
         d = np.zeros(3, dtype=np.float32) if dark is None else np.asarray(dark, dtype=np.float32)
-        return ((rgb - d) / self.gain(dark, (x0, y0, x1, y1))).astype(np.float32)
+        (i0, w1), cols, _ = self._divisor_columns(dark, (x0, y0, x1, y1))
+        out = np.empty(rgb.shape, dtype=np.float32)
+        rows = max(1, APPLY_CHUNK_PIXELS // 8 // max(rgb.shape[1], 1))      # row bands that stay in cache
+        for a in range(0, rgb.shape[0], rows):
+            g = _lerp(cols, i0[a:a + rows], w1[a:a + rows], axis=0)
+            np.divide(rgb[a:a + rows] - d, g, out=out[a:a + rows])
+        return out
 
     def to_dict(self) -> dict:
         """Plain JSON types: the coarse grid (about 33 x 33 x 3 numbers), the level and the size."""
@@ -938,8 +951,8 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
 
     Returns
     -------
-    (values (h*w, 3), calibrated) : CIELAB when ``calibrated`` (True with a calibration), else the
-    prepared linear RGB (float64), for the sRGB route.
+    (values (h*w, 3), calibrated) : CIELAB (float32) when ``calibrated`` (True with a calibration), else
+    the prepared linear RGB (float64), for the sRGB route.
     """
     say = progress or (lambda f, t: None)
     x0, y0, x1, y1 = roi
@@ -970,13 +983,26 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
     flat_lin = lin.reshape(-1, 3)
     if calibration is None:
         return flat_lin.astype(np.float64), False
-    from .color import xyz_to_lab
-    out = np.empty(flat_lin.shape, dtype=np.float64)
-    for s in range(0, flat_lin.shape[0], APPLY_CHUNK_PIXELS):
-        say(0.27 + 0.08 * s / max(flat_lin.shape[0], 1), "applying the camera calibration")
-        xyz = _apply(flat_lin[s:s + APPLY_CHUNK_PIXELS], calibration.matrix, calibration.model)
-        out[s:s + APPLY_CHUNK_PIXELS] = xyz_to_lab(_positive(xyz), calibration.illuminant, calibration.observer)
-    return out, True
+    say(0.3, "applying the camera calibration")
+    return _lab_of_prepared(flat_lin, calibration), True
+
+
+def _lab_of_prepared(q, calibration) -> np.ndarray:
+    """float32 (n, 3) CIELAB of dark-subtracted, flat-fielded camera RGB (n, 3) through the calibration."""
+    from .color import illuminant_white_xyz, xyz_to_lab
+    white = illuminant_white_xyz(calibration.illuminant, calibration.observer)
+    try:                                                  # the fast float32 CIELAB of the colour table
+        from .colourtable import lab_from_linear, lab_from_xyz
+    except ImportError:                                   # pragma: no cover - before that module is present
+        lab_from_linear = lab_from_xyz = None
+    if lab_from_linear is not None and calibration.model == "matrix":
+        return lab_from_linear(q, calibration.matrix, white)
+    out = np.empty(q.shape, dtype=np.float32)
+    for s in range(0, q.shape[0], APPLY_CHUNK_PIXELS):
+        xyz = _positive(_apply(q[s:s + APPLY_CHUNK_PIXELS], calibration.matrix, calibration.model))
+        out[s:s + APPLY_CHUNK_PIXELS] = (lab_from_xyz(xyz, white) if lab_from_xyz is not None
+                                         else xyz_to_lab(xyz, calibration.illuminant, calibration.observer))
+    return out
 
 
 # ---------------------------------------------------------------------- targets
