@@ -64,7 +64,7 @@ Give ``dark=`` (3 linear values, e.g. from a lens-cap frame) to fix it instead.
 A calibration needs boxes that constrain it: at least :data:`MIN_BOXES` per model (the model's
 terms, one for the dark offset, one to spare so a residual means something), and colours that are
 not (nearly) collinear: the design matrix ``[expansion(q), 1]`` with unit-norm columns must have
-full rank and a condition number at most :data:`MAX_CONDITION`.
+full rank and a condition number at most :data:`MAX_CONDITION` (per model).
 
 References
 ----------
@@ -105,10 +105,12 @@ MODELS = {"matrix": ("Cheung 2004", {"terms": 3}, 3),
           "root-polynomial": ("Finlayson 2015", {"degree": 2, "root_polynomial_expansion": True}, 6)}
 #: Fewest boxes per model: its terms, one for the dark offset, one to spare (a residual that can be non-zero).
 MIN_BOXES = {name: terms + 2 for name, (_, _, terms) in MODELS.items()}
-#: Largest condition number of the design matrix [expansion(q), 1] (unit-norm columns) accepted: beyond it
-#: the boxes' colours are so nearly collinear that the fit amplifies their noise over a hundredfold
-#: (our own choice; a well spread set of oxide steps gives 10-60).
-MAX_CONDITION = 300.0
+#: Largest condition number of the design matrix [expansion(q), 1] (unit-norm columns) accepted per model:
+#: beyond it the boxes' colours are so nearly collinear that the fit amplifies their noise too much (our own
+#: choice: five well spread oxide steps give 10-60 for the matrix). The root-polynomial's terms are correlated
+#: by construction (√RG lies near (R+G)/2 for colours near grey), so the same boxes give it about ten times
+#: more: eight oxide steps 0-470 nm give about 900, a 24-patch colour chart about 120.
+MAX_CONDITION = {"matrix": 300.0, "root-polynomial": 3000.0}
 #: Relative singular value below which a design direction counts as missing (rank deficiency).
 RANK_RTOL = 1e-6
 #: Allowed range of a fitted dark offset (linear light): a little below zero (noise around a black
@@ -731,12 +733,13 @@ def _design_check(q, model, n_boxes):
     s = np.linalg.svd(X, compute_uv=False)
     rank = int(np.sum(s > RANK_RTOL * s[0]))
     cond = float(s[0] / s[-1]) if s[-1] > 0 else float("inf")
-    if rank < X.shape[1] or cond > MAX_CONDITION:
+    if rank < X.shape[1] or cond > MAX_CONDITION[model]:
         more = max(1, X.shape[1] - rank)
+        other = " (or use the matrix model)" if model != "matrix" else ""
         raise InputError(f"The {n_boxes} boxes' colours are too alike to fix a {model} calibration (they span "
                          f"{rank} of its {X.shape[1]} directions; condition number {cond:.3g}, at most "
-                         f"{MAX_CONDITION:g} allowed): add at least {more + 1} boxes of clearly different colour, "
-                         "such as thicker steps or other hues, rather than more boxes of the same colours.")
+                         f"{MAX_CONDITION[model]:g} allowed): add at least {more + 1} boxes of clearly different colour, "
+                         f"such as thicker steps or other hues, rather than more boxes of the same colours{other}.")
     return cond
 
 
@@ -967,6 +970,10 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
                              "the calibration's lamp, or calibrate under this one.")
     if flat is not None:
         check_flat(flat, photo)
+        if calibration is not None and calibration.flat_field is None:
+            raise InputError("This camera calibration was made without a flat field, so its colours are those of "
+                             "the uncorrected field: map without a flat field, or make the calibration again with "
+                             "the flat field.")
     if denoise is not None and (not isinstance(denoise, str) or denoise not in DENOISE_FILTERS):
         raise InputError(f"denoise must be None or one of {', '.join(repr(k) for k in DENOISE_FILTERS)}; got {denoise!r}.")
     lin = linear_rgb(photo)[y0:y1, x0:x1]

@@ -206,6 +206,14 @@ def test_option_refusals(kwargs, words):
         calibrate_from_reference(img, boxes, STEPS, OXIDE, **kwargs)
 
 
+def test_calibration_without_flat_field_refuses_one(flat):
+    img, boxes = _reference_photo()
+    plain = calibrate_from_reference(img, boxes, STEPS, OXIDE)
+    assert plain.flat_field is None
+    with pytest.raises(InputError, match="made without a flat field"):
+        thickness_map(img, OXIDE, calibration=plain, flat_field=flat)
+
+
 def test_map_refuses_another_lamp_and_a_bad_filter(cal):
     img, _ = _reference_photo()
     with pytest.raises(InputError, match="lamp D65"):
