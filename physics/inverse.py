@@ -706,8 +706,9 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     calibration : physics.camera.CameraCalibration, optional
         The station's camera calibration (made on photos of this size, under this illuminant and observer):
         pixels are read as linear light, flat-fielded, and turned into XYZ by it instead of the sRGB decode
-        and ``reference_box`` gains; they are then compared with the path's unclipped colours. Its own flat
-        field is used unless ``flat_field`` is given.
+        and ``reference_box`` gains (``reference_box`` is then not used); they are then compared with the
+        path's unclipped colours. Its own flat field is used unless ``flat_field`` is given (a newer flat
+        field of the same station); one made without a flat field refuses one.
     flat_field : physics.camera.FlatField, optional
         Divides out the lamp's fall-off across the field (with the calibration's dark offset, when given)
         before the gains or the calibration; colours are then matched per pixel.
