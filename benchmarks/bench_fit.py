@@ -1,6 +1,6 @@
 """Speed of the thickness fit, beside a brute-force reference computed in the same run.
 
-Run:  python benchmarks/bench_fit.py
+Run:  python benchmarks/bench_fit.py          (everything; "film": cases 3-5 only; "map": case 5 only)
 
 1. One unknown layer: thermal oxide on silicon, window 0-3000 nm, 250 wavelengths 400-1000 nm,
    Gaussian noise sigma 0.003 (seeded), ten spectra with thicknesses spread over the window.
@@ -26,6 +26,13 @@ Both thickness accuracies (fit vs truth, brute force vs truth) are printed besid
    three thicknesses. Goal: <= 3 s. Reference: brute force with eps_inf every 0.02 (1-3), Eg every
    0.05 eV (3-6), A every 2 eV (20-300), E0 every 0.1 eV (5-12), C every 0.05 eV (0.5-4), extrapolated
    in the same way.
+5. Wafer map sharing one dispersion (``fit_film(..., thickness_per_spectrum=True)``): 25 points of an invented
+   nitride-like Cauchy film on silicon, thicknesses 450-560 nm across the wafer, 500 wavelengths 400-1000 nm,
+   noise sigma 0.002, one fit over 25 thicknesses + A, B, C. Goal: <= 10 s, with progress. Figures: the time,
+   the number of progress reports, the largest thickness error and the n(633) error; beside it (same run) the
+   brute force over the same parameters, (A, B, C) grid of case 3 x every 0.5 nm of 0-2000 nm for each of the
+   25 points (time per material measured, multiplied out), and 25 separate one-point fits (each its own
+   dispersion: the map without the shared index). Then the same at the cap, 50 points.
 """
 
 from __future__ import annotations
@@ -55,6 +62,7 @@ FILM_WINDOW = (0.0, 2000.0)
 FILM_STEP_NM = 0.5
 GOAL_CAUCHY_S = 1.0
 GOAL_TL_S = 3.0
+GOAL_MAP_S = 10.0
 #: Brute-force axes (lo, hi, step) of the film models' parameters, beside the thickness.
 CAUCHY_AXES = ((1.3, 2.6, 0.002), (0.0, 0.04, 0.0005), (0.0, 0.002, 0.0001))
 TL_AXES = ((1.0, 3.0, 0.02), (3.0, 6.0, 0.05), (20.0, 300.0, 2.0), (5.0, 12.0, 0.1), (0.5, 4.0, 0.05))
@@ -208,6 +216,37 @@ def film_case(name, truth, thicknesses, model, axes, build, goal, local_axes=Non
     print(f"goal {name} <= {goal:g} s:", "met" if t_fit <= goal else "NOT met")
 
 
+def film_map_case(points, goal=None):
+    si = load_preset("thermal_oxide_on_silicon").stack.substrate
+    truth = CauchyMaterial(1.98, 0.018, 0.0003)
+    start = Stack([Layer(CauchyMaterial(1.6, 0.005), 0.0)], si, ambient=1.0)
+    ds = np.linspace(450.0, 560.0, points)
+    rng = np.random.default_rng(500)
+    spectra = [Stack([Layer(truth, d)], si, ambient=1.0).reflectance(FILM_WL) + rng.normal(0.0, FILM_SIGMA, FILM_WL.size)
+               for d in ds]
+    told = []
+    r, t = timed(lambda: fit_film([FILM_WL] * points, spectra, start, model="cauchy", thickness_nm=FILM_WINDOW,
+                                  thickness_per_spectrum=True, progress=lambda f, text: told.append(f)))
+    d_err = float(np.max(np.abs(np.array(r.thicknesses_nm) - ds)))
+    n_err = abs(float(r.n_at(633.0)) - float(truth.nk(633.0).real))
+    samples = [CauchyMaterial(*[lo + (hi - lo) * f for lo, hi, _ in CAUCHY_AXES]) for f in (0.3, 0.5, 0.7)]
+    t_bf = film_brute_force_seconds(start, samples, spectra[0]) * np.prod([axis_count(*a) for a in CAUCHY_AXES]) * points
+    label = f"map of {points} points: brute force (A, B, C) x d per point (extrapolated)"
+    print(f"{label:62s} {t_bf:10.3g} {'1.0':>9s}")
+    if goal is not None:
+        singles, t_single = [], 0.0
+        for d, R in zip(ds, spectra):
+            one, ts = timed(lambda: fit_film(FILM_WL, R, start, model="cauchy", thickness_nm=FILM_WINDOW))
+            singles.append(abs(one.thickness_nm - d))
+            t_single += ts
+        print(f"{f'map of {points} points: {points} separate one-point fits':62s} {t_single:10.3f} "
+              f"{t_bf / t_single:9.2e}x {max(singles):13.3f}")
+    print(f"{f'map of {points} points: one joint fit, shared dispersion':62s} {t:10.3f} {t_bf / t:9.2e}x {d_err:13.3f}"
+          f"   |n(633) err| {n_err:.4f}; {len(told)} progress reports")
+    if goal is not None:
+        print(f"goal map of {points} points <= {goal:g} s with progress:", "met" if t <= goal and told else "NOT met")
+
+
 def film_cases():
     print(f"film fits: {FILM_WL.size} wavelengths {FILM_WL[0]:g}-{FILM_WL[-1]:g} nm, noise sigma {FILM_SIGMA:g}, window "
           f"{FILM_WINDOW[0]:g}-{FILM_WINDOW[1]:g} nm; brute force thickness step {FILM_STEP_NM:g} nm")
@@ -217,10 +256,15 @@ def film_cases():
               local_axes=((1.98, 0.01, 0.002), (0.018, 0.002, 0.0005), (0.0003, 0.0002, 0.0001)))
     film_case("Tauc-Lorentz + d", TaucLorentzMaterial(1.2, 4.5, 60.0, 8.0, 3.0), [150.0, 500.0, 1100.0],
               "tauc-lorentz", TL_AXES, lambda p: TaucLorentzMaterial(*p), GOAL_TL_S)
+    film_map_case(25, GOAL_MAP_S)
+    film_map_case(50)
 
 
 if __name__ == "__main__":
     if sys.argv[1:] == ["film"]:
         film_cases()
+    elif sys.argv[1:] == ["map"]:
+        film_map_case(25, GOAL_MAP_S)
+        film_map_case(50)
     else:
         main()

@@ -154,11 +154,11 @@ START_NFEV = 30
 #: misfit, so the optimizer steps back.
 INVALID_RESIDUAL = 10.0
 #: Most spectra in one joint fit. Time grows in proportion to the spectra (each adds its points to every model
-#: evaluation; with thickness_per_spectrum the grouped Jacobian keeps the evaluations per step constant), and
-#: memory as the Jacobian, (all points) x (parameters): with thickness_per_spectrum the parameters grow with
-#: the spectra, so 50 spectra of MAX_FIT_POINTS points each and their 3 per-point parameters are a
-#: 100 000 x 160 Jacobian of 128 MB at most. 49 sites is the largest common wafer map (a 7 x 7 grid); a
-#: 25-site map of 500 points fits in a few seconds (benchmarks/bench_fit.py).
+#: evaluation; with thickness_per_spectrum the grouped Jacobian keeps the evaluations per step constant, and
+#: LSMR's work per step grows with the Jacobian's non-zeros, (all points) x (shared + 3)), and so does memory:
+#: the Jacobian is kept sparse, so 50 spectra of MAX_FIT_POINTS points are about 100 000 x 8 non-zeros (6 MB)
+#: where a dense one would be 100 000 x 160 (128 MB). 49 sites is the largest common wafer map (a 7 x 7 grid);
+#: 25 and 50 sites of 500 points fit in 3-6 s on a busy 2-core machine (benchmarks/bench_fit.py).
 MAX_SPECTRA = 50
 #: Spectra on which the starting materials of a thickness_per_spectrum fit are ranked, evenly picked: the
 #: ranking only chooses which materials all points are scanned with.
@@ -870,10 +870,8 @@ def _finish(residual, p0, lower, upper, first=False, col_groups=None):
         return least_squares(residual, p0, bounds=(lower, upper), x_scale="jac", method="trf", xtol=tol, ftol=tol,
                              max_nfev=FIRST_NFEV if first else FINAL_NFEV)
     jac = _grouped_jacobian(residual, col_groups, np.asarray(upper, dtype=float))
-    sol = least_squares(residual, p0, jac=jac, bounds=(lower, upper), x_scale="jac", method="trf", xtol=tol,
-                        ftol=tol, max_nfev=FIRST_NFEV if first else FINAL_NFEV, tr_solver="lsmr")
-    sol.jac = sol.jac.toarray()      # (points, parameters): the covariance needs JᵀJ, small
-    return sol
+    return least_squares(residual, p0, jac=jac, bounds=(lower, upper), x_scale="jac", method="trf", xtol=tol,
+                         ftol=tol, max_nfev=FIRST_NFEV if first else FINAL_NFEV, tr_solver="lsmr")
 
 
 def _comb(s: _Spectrum) -> _Spectrum:
@@ -944,7 +942,8 @@ def _result(sol, names, layout, model, n, thickness_fit, window) -> FilmFitResul
     i_d, unpack = layout
     p, J = sol.x, sol.jac
     ssr = float(np.sum(sol.fun ** 2))
-    cov = np.linalg.pinv(J.T @ J) * (ssr / max(n - p.size, 1))
+    jtj = J.T @ J                                    # sparse for a wafer map: only the (p, p) product is dense
+    cov = np.linalg.pinv(jtj.toarray() if sparse.issparse(jtj) else jtj) * (ssr / max(n - p.size, 1))
     sig = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     with np.errstate(divide="ignore", invalid="ignore"):
         corr = cov / np.outer(sig, sig)
