@@ -222,17 +222,22 @@ class FilmFitCurves:
     k_hi: np.ndarray | None = None
 
 
+#: A roughness layer or thickness spread below this (nm) is at its floor, 0: the data want none (a spread's effect
+#: is quadratic in σ, so at 0 its 1σ from the curvature is meaningless).
+AT_ZERO_NM = 1e-3
+
+
 def parameters_at_bounds(result: FilmFitResult) -> tuple:
     """Names of the dispersion parameters of ``result`` that ended at a bound of their model (the data wanted
-    a value beyond it, or do not fix it); their ±1σ says little."""
+    a value beyond it, or do not fix it), and a roughness or spread that ended at 0; their ±1σ says little."""
     family = _MODELS.get(result.model)
-    if family is None:
-        return ()
     out = []
-    for name, lo, hi in zip(family.names, family.lower, family.upper):
+    for name, lo, hi in zip(family.names, family.lower, family.upper) if family is not None else ():
         v, tol = result.parameters[name], AT_BOUND_FRACTION * (hi - lo)
         if v - lo <= tol or hi - v <= tol:
             out.append(name)
+    out += [name for name in ("roughness_nm", "spread_nm") if name in result.parameters
+            and result.parameters[name] <= AT_ZERO_NM]
     return tuple(out)
 
 

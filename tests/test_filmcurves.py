@@ -59,6 +59,8 @@ def test_curves_and_bounds():
     assert "eps_inf" in parameters_at_bounds(at_floor)
     fixed = fit_film(WL, R, Stack([Layer("SiO2", 0.0)], si, ambient=1.0), model="fixed", thickness_nm=(0, 1000))
     assert nk_sigma(fixed, WL) is None and parameters_at_bounds(fixed) == ()
+    no_spread = dataclasses.replace(fixed, parameters=fixed.parameters | {"spread_nm": 0.0}, spread_nm=0.0)
+    assert parameters_at_bounds(no_spread) == ("spread_nm",)
 
 
 def test_sampled_band_of_an_urbach_tail_is_its_exact_percentiles():
