@@ -291,18 +291,22 @@ def converged_orders(wavelength_nm, period_nm, incidence_deg, thickness_nm, inte
                      kind, tol=CONVERGENCE_TOL, *, backend="fmm"):
     """(R, T, harmonics, converged, change): :func:`solve_orders` with the harmonic count chosen.
 
-    The count starts above every propagating order and doubles (:data:`HARMONIC_GROWTH`) while the
-    quoted efficiencies (``orders`` in ``kind``, every polarization) at :data:`CONVERGENCE_PROBES`
-    wavelengths spread over the curve change by ``tol`` or more; the count used is the last one
-    whose change to the next was below ``tol`` (an a-posteriori error estimate). The cap is
-    :func:`harmonic_cap` (a work bound: fewer harmonics for more slices); reaching it leaves
-    ``converged`` False and ``change`` the last change, and the curve is computed at the cap.
+    The count starts above every propagating order and doubles (:data:`HARMONIC_GROWTH`) up to the cap
+    :func:`harmonic_cap` (a work bound: fewer harmonics for more slices); each count is compared with
+    the next (the last with twice itself: the check may look beyond the cap, at
+    :data:`CONVERGENCE_PROBES` wavelengths only) on the quoted efficiencies (``orders`` in ``kind``,
+    every polarization), and the first count whose change is below ``tol`` is used (an a-posteriori
+    error estimate). If none is, the curve is computed at the cap with ``converged`` False and
+    ``change`` the last change.
     """
     wl = np.asarray(wavelength_nm, dtype=float).ravel()
     nk = np.broadcast_to(np.asarray(n_material, dtype=complex).ravel(), wl.shape)
     probe = np.unique(np.round(np.linspace(0, wl.size - 1, min(CONVERGENCE_PROBES, wl.size))).astype(int))
-    n = starting_harmonics(period_nm, float(wl.min()), incidence_deg, nk, orders)
-    cap = harmonic_cap(intervals, n)
+    start = starting_harmonics(period_nm, float(wl.min()), incidence_deg, nk, orders)
+    cap = harmonic_cap(intervals, start)
+    counts = [start]
+    while counts[-1] < cap:
+        counts.append(min(cap, int(np.ceil(counts[-1] * HARMONIC_GROWTH))))
     cols = np.asarray(orders, dtype=int)
 
     def quoted(h):
@@ -310,18 +314,16 @@ def converged_orders(wavelength_nm, period_nm, incidence_deg, thickness_nm, inte
                             backend=backend, threads=1)
         return (R if kind == "reflection" else T)[:, :, h + cols]
 
-    prev = quoted(n)
     converged, change = False, np.inf
-    while True:
-        nxt = min(cap, int(np.ceil(n * HARMONIC_GROWTH)))
-        if nxt <= n:
-            break
+    prev = quoted(counts[0])
+    for i, n in enumerate(counts):
+        nxt = counts[i + 1] if i + 1 < len(counts) else int(np.ceil(n * HARMONIC_GROWTH))
         cur = quoted(nxt)
         change = float(np.max(np.abs(cur - prev)))
         if change < tol:
             converged = True
             break
-        n, prev = nxt, cur
+        prev = cur
     R, T = solve_orders(wl, period_nm, incidence_deg, thickness_nm, intervals, nk, n, pols, backend=backend)
     return R, T, n, converged, change
 
