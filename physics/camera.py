@@ -787,6 +787,17 @@ def _illuminant_name(illuminant):
     return illuminant.strip()
 
 
+def _lamp_key(illuminant):
+    """The colour tables' key of a named lamp (aliases such as F2 / FL2 agree), None for a spectrum."""
+    from .color import _illuminant_values
+    return _illuminant_values(illuminant)[0] if isinstance(illuminant, str) else None
+
+
+def _observer_key(observer):
+    from .color import _observer
+    return _observer(observer)
+
+
 def _check_model(model):
     if not isinstance(model, str) or model not in MODELS:
         raise InputError(f"model must be one of {', '.join(repr(m) for m in MODELS)}; got {model!r}.")
@@ -963,8 +974,8 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
         if not isinstance(calibration, CameraCalibration):
             raise InputError(f"calibration must be a CameraCalibration; got {type(calibration).__name__}.")
         calibration.check_photo(photo)
-        if calibration.illuminant.strip().upper() != str(illuminant).strip().upper() or \
-                str(calibration.observer) != str(observer):
+        if _lamp_key(calibration.illuminant) != _lamp_key(illuminant) or \
+                _observer_key(calibration.observer) != _observer_key(observer):
             raise InputError(f"The calibration was made for lamp {calibration.illuminant} and observer "
                              f"{calibration.observer}°, but the map asks for {illuminant} and {observer}°: map under "
                              "the calibration's lamp, or calibrate under this one.")
