@@ -989,6 +989,17 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
         raise InputError(f"denoise must be None or one of {', '.join(repr(k) for k in DENOISE_FILTERS)}; got {denoise!r}.")
     lin = linear_rgb(photo)[y0:y1, x0:x1]
     dark = calibration.dark if calibration is not None else None
+    if calibration is not None and denoise is None:                  # band by band: no whole-image temporaries
+        h, w = lin.shape[:2]
+        out = np.empty((h * w, 3), dtype=np.float32)
+        rows = max(1, APPLY_CHUNK_PIXELS // max(w, 1))
+        for a in range(0, h, rows):
+            say(0.22 + 0.13 * a / max(h, 1), "applying the flat field and the camera calibration")
+            b = min(a + rows, h)
+            q = (flat.apply(lin[a:b], dark, (x0, y0 + a, x1, y0 + b)) if flat is not None
+                 else lin[a:b] - np.asarray(dark, dtype=np.float32))
+            out[a * w:b * w] = _lab_of_prepared(q.reshape(-1, 3), calibration)
+        return out, True
     if flat is not None:
         say(0.22, "dividing out the flat field")
         lin = flat.apply(lin, dark, (x0, y0, x1, y1))
