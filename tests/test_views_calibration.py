@@ -30,9 +30,16 @@ MIXING = np.array([[0.85, 0.12, 0.03], [0.08, 0.84, 0.08], [0.02, 0.15, 0.83]])
 DARK = 0.03
 
 
+@pytest.fixture(scope="module")
+def explorer():
+    """One film explorer for the module (its state is never changed here): a new one per test would double
+    the file's time."""
+    return FilmExplorer()
+
+
 @pytest.fixture()
-def section(tmp_path):
-    sec = ColourToThickness(FilmExplorer())
+def section(tmp_path, explorer):
+    sec = ColourToThickness(explorer)
     sec.panel()
     sec.camcal.library = Library(tmp_path / "lab")
     sec.win_hi.input.value = "500"
@@ -173,7 +180,7 @@ def test_save_and_load_round_trip_through_the_library(section, tmp_path):
     doc = validate_camera_calibration(text)
     assert doc["camera"] == "Line 3 scope" and doc["na"] == 0.15 and len(doc["date"]) == 10
     # a second page loads it from its picker
-    other = ColourToThickness(FilmExplorer())
+    other = ColourToThickness(section.ex)
     other.panel()
     other.camcal.library = cam.library
     other.camcal.refresh_list()
@@ -207,3 +214,92 @@ def test_a_corrupt_calibration_in_the_library_is_a_sentence(section, tmp_path):
     # the envelope's own check refuses a calibration that does not rebuild, with the field named
     with pytest.raises(InputError, match="calibration"):
         validate_camera_calibration(json.dumps(doc))
+
+
+def test_a_map_of_a_photo_of_another_size_is_refused_with_a_sentence(section):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    assert section.camcal.fit() is not None
+    other, _ = _reference_photo(section, height=60)
+    section.load_photo(other, "other.png")
+    section.start_map(sync=True)
+    assert section.result is None and section.map_msg.alert_type == "danger"
+    assert "made on a 192 x 40 px photo and this photo is 192 x 60 px" in section.map_msg.object
+    assert "192 x 40 px photo" in section.camcal.active_info.object       # said beside the calibration too
+
+
+def test_a_flat_field_is_used_by_the_fit_and_one_of_another_size_is_refused(section):
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    y, x = np.mgrid[:40, :192]
+    fall = 1.0 - 0.3 * (((x - 96) / 96) ** 2 + ((y - 20) / 96) ** 2)     # an invented lamp fall-off
+    bare = np.repeat(np.clip(fall[..., None] * 0.55, 0, 1), 3, axis=2)
+    assert section.camcal.load_flat(_png(bare ** (1 / 2.2)), "bare.png"), section.camcal.flat_msg.message.object
+    assert "bare.png, 192 x 40 px" in section.camcal.flat_info.object
+    cal = section.camcal.fit()
+    assert cal is not None and cal.flat_field is not None, section.camcal.fit_msg.object
+    assert "with a flat field" in section.camcal.active_info.object
+    assert section.camcal.load_flat(_png(np.full((30, 30, 3), 0.5)), "small.png")
+    assert section.camcal.fit() is None
+    assert "flat field (small.png, 30 x 30 px) is not the size of this photo" in section.camcal.fit_msg.object
+    section.camcal.drop_flat()
+    assert section.camcal.flat is None and section.camcal.fit() is not None
+
+
+def _target_photo():
+    """(PNG bytes, boxes) of colour-science's averaged 24-patch chart (6 x 4 patches of 20 px) through the
+    invented camera."""
+    from physics import camera
+    from physics.color import lab_to_xyz, xyz_to_srgb
+
+    target = camera.builtin_target()
+    srgb = np.clip(xyz_to_srgb(lab_to_xyz(target.lab, "D65", "2"), "D65", "2"), 0, 1)
+    lin = np.where(srgb <= 0.04045, srgb / 12.92, ((srgb + 0.055) / 1.055) ** 2.4)
+    patches = _camera(lin).reshape(4, 6, 3)
+    img = patches.repeat(20, axis=0).repeat(20, axis=1)
+    boxes = [(c * 20 + 4, r * 20 + 4, c * 20 + 16, r * 20 + 16) for r in range(4) for c in range(6)]
+    return _png(img), boxes, target
+
+
+def test_a_colour_target_fit_from_its_csv_and_missing_patches_refused(section):
+    data, boxes, target = _target_photo()
+    section.load_photo(data, "chart.png")
+    cam = section.camcal
+    cam.settings.source = "target"
+    rows = ["patch,L*,a*,b*"] + [f"{n},{L:.3f},{a:.3f},{b:.3f}" for n, (L, a, b) in zip(target.names, target.lab)]
+    short = ("\n".join(rows[:11]) + "\n").encode()                     # ten patches only
+    assert cam.load_target_csv(short, "chart.csv")
+    for b in boxes[:12]:
+        cam.add_box(b)
+    assert cam.fit() is None
+    assert "12 boxes but the target data list 10 patches: box 11 has no patch" in cam.fit_msg.object
+    assert "no patch in the target data" in str(cam.rows.objects[-1].objects[-1].object)
+    assert not cam.load_target_csv(b"patch,L*,a*,b*\nA1,50,1\n", "bad.csv")
+    assert "bad.csv: Row 2 of the target file" in cam.target_msg.message.object
+    assert cam.target_name == "chart.csv" and len(cam.target.names) == 10      # the target read before stays
+    assert cam.load_target_csv(("\n".join(rows) + "\n").encode(), "chart.csv")
+    cal = cam.fit()
+    assert cal is not None and cal.kind == "target", cam.fit_msg.object
+    assert cam.residuals.object.count("<tr>") == 13 and "dark skin" in cam.residuals.object
+    assert np.median(cal.residual_delta_e) < 2
+
+
+def test_the_lab_library_tab_lists_saves_and_loads_camera_calibrations(section):
+    from views.library import LibrarySection
+
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    cal = section.camcal.fit()
+    tab = LibrarySection(section.ex, section, library=section.camcal.library)
+    tab.kind.value = "camera_calibrations"
+    tab.name.set_text("Bench scope")
+    tab.user.set_text("cy")
+    assert tab.save_current(), tab.message.object
+    assert [e.name for e in tab.entries] == ["Bench scope"]
+    section.camcal.active = None
+    tab.select_file(tab.entries[0].file_name)
+    assert tab.load_selected(), tab.message.object
+    assert np.allclose(section.camcal.active.matrix, cal.matrix) and "Bench scope v1" in section.camcal.active_label

@@ -325,6 +325,10 @@ class CameraCalibrationPanel:
         self.unc_note = pn.pane.HTML("", margin=(5, 5), width=300, styles={"font-size": "12px"})
         self.unc_row = pn.Row(pn.pane.Bokeh(uf, sizing_mode="stretch_width"), self.unc_note, visible=False,
                               sizing_mode="stretch_width")
+        # The calibration's widgets and the uncertainty figure (about 120 Bokeh models) join the page only when
+        # first needed, so a tab that never uses them costs the event loop nothing more when it opens.
+        self.calibrated_holder = pn.Column(margin=0)
+        self.unc_holder = pn.Column(margin=0, sizing_mode="stretch_width")
 
         st.param.watch(_locked_call(lambda *e: self._show_parts()), ["method", "source"])
         self.clear_boxes.on_click(_locked_call(lambda e: self.remove_boxes()))
@@ -346,6 +350,9 @@ class CameraCalibrationPanel:
         cal, ref = self.calibrated(), self.settings.source == "reference"
         if self.calibrated_part is not None:
             self.calibrated_part.visible = cal
+            if cal and not self.calibrated_holder.objects:
+                self.calibrated_holder.objects = [self.calibrated_part]
+                self.refresh_list()                      # the library's calibrations, read when first needed
         if self.quick_part is not None:
             self.quick_part.visible = not cal
         self.box_drop.visible = self.box_msg.message.visible = ref
@@ -743,6 +750,8 @@ class CameraCalibrationPanel:
                                 f"is on the colour path there: median ± {p50:.1f} nm, 95 % of pixels within ± "
                                 f"{p95:.1f} nm. Grey: no match. {NOT_METROLOGY}")
         self.unc_row.visible = True
+        if not self.unc_holder.objects:
+            self.unc_holder.objects = [self.unc_row]
         read = (f"camera calibration {self.active_label} (the box's gains are not used)"
                 if result.stats.get("calibrated") else "the calibration box's gains (quick)")
         return [("uncertainty (median, P95)", f"± {p50:.1f} nm, ± {p95:.1f} nm"), ("colour read with", _esc(read))]
@@ -863,28 +872,32 @@ class CameraCalibrationPanel:
             self.picker, pn.Row(self.load_button, self.list_button, margin=0), self.lib_msg,
             margin=0, width=COLUMN_PX + 10, css_classes=["fg-cal-section"])
         self._show_parts()
-        self.refresh_list()
         return pn.Column(pn.pane.HTML("<b>Camera calibration</b>", margin=(6, 5, 0, 5)), self.photo_info, self.method,
                          quick,
-                         self.calibrated_part, margin=0, css_classes=["fg-camera-calibration"])
+                         self.calibrated_holder, margin=0, css_classes=["fg-camera-calibration"])
 
 
 def residual_table(cal, kind: str, known, patches=()) -> str:
-    """HTML table of a calibration's residual per box: ΔE00 and (reference sample) nm."""
-    de = np.asarray(getattr(cal, "residual_delta_e", []), dtype=float).ravel()
-    nm = getattr(cal, "residual_nm", None)
-    nm = None if nm is None else np.asarray(nm, dtype=float).ravel()
-    head = "<tr><th>box</th><th>" + ("known (nm)" if kind == "reference" else "patch") + "</th><th>ΔE00</th>" \
-           + ("<th>map − known (nm)</th>" if nm is not None else "") + "</tr>"
+    """HTML table of a calibration's residual per box: ΔE00, ΔE00 of the box predicted from the other boxes
+    (when the calibration has it) and, for a reference sample, the map's thickness minus the known one."""
+    de = np.asarray(cal.residual_delta_e, dtype=float).ravel()
+    held = np.asarray(getattr(cal, "holdout_delta_e", ()), dtype=float).ravel()
+    nm = np.asarray(cal.residual_nm, dtype=float).ravel() if kind == "reference" else np.zeros(0)
+    cols = ["box", "known (nm)" if kind == "reference" else "patch", "ΔE00"]
+    cols += ["ΔE00 left out"] * (held.size == de.size) + ["map − known (nm)"] * (nm.size == de.size)
     body = ""
     for i, d in enumerate(de):
-        what = (f"{known[i]:g}" if kind == "reference" and i < len(known) else
-                _esc(patches[i]) if i < len(patches) else "")
-        r = f"<td>{round(float(nm[i]), 1) + 0.0:+.1f}</td>" if nm is not None and i < nm.size and np.isfinite(nm[i]) else \
-            ("<td>—</td>" if nm is not None else "")
-        body += f"<tr><td>{i + 1}</td><td>{what}</td><td>{d:.2f}</td>{r}</tr>"
+        cells = [str(i + 1), f"{known[i]:g}" if kind == "reference" and i < len(known) else
+                 _esc(patches[i]) if i < len(patches) else "", f"{d:.2f}"]
+        if held.size == de.size:
+            cells.append(f"{held[i]:.2f}")
+        if nm.size == de.size:
+            cells.append(f"{round(float(nm[i]), 1) + 0.0:+.1f}" if np.isfinite(nm[i]) else "—")
+        body += "<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>"
+    head = "<tr>" + "".join(f"<th>{c}</th>" for c in cols) + "</tr>"
     return ("<div style='font-size:11px;color:#555'>Residual per box after the fit (ΔE00 ≤ 2: hard to see, common "
-            "practice)</div><table class='fg-cal-residual-table' style='font-size:12px;border-collapse:collapse' "
+            "practice; “left out”: the box predicted by a fit to the other boxes)</div>"
+            "<table class='fg-cal-residual-table' style='font-size:12px;border-collapse:collapse' "
             f"cellpadding='2'>{head}{body}</table>")
 
 

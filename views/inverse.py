@@ -958,7 +958,7 @@ class ColourToThickness:
                                              sizing_mode="stretch_width"), sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.tmap_fig, sizing_mode="stretch_width"),
                    pn.pane.Bokeh(self.conf_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width"),
-            self.camcal.unc_row,
+            self.camcal.unc_holder,
             pn.Row(pn.pane.Bokeh(self.hist_fig, sizing_mode="stretch_width"), self.stats, sizing_mode="stretch_width"),
             pn.Row(pn.pane.Bokeh(self.tools.prof_fig, sizing_mode="stretch_width"), self.tools.site_table,
                    sizing_mode="stretch_width"),
