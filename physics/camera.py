@@ -9,8 +9,8 @@ Public API
 ``flat_field(image) -> FlatField``
     From a photo of a uniform bare substrate: the field's fall-off per channel, smoothed (a 2-D
     Legendre polynomial of total degree :data:`FLAT_POLY_DEGREE` fitted to block means) and
-    normalized to mean 1. ``FlatField.apply(linear_rgb, dark=None)`` subtracts ``dark`` and divides
-    by it; ``FlatField.gain(dark=None, box=None)`` gives the (h, w, 3) divisor; ``to_dict()`` /
+    normalized to mean 1. ``FlatField.apply(linear_rgb, dark=None, box=None)`` subtracts ``dark`` and
+    divides by it (the whole photo, or its part ``box``); ``FlatField.gain(dark=None, box=None)`` gives the (h, w, 3) divisor; ``to_dict()`` /
     ``FlatField.from_dict()`` store it as a coarse grid of :data:`FLAT_GRID_NODES` x
     :data:`FLAT_GRID_NODES` nodes, bilinearly interpolated on apply. ``width``, ``height``.
 ``calibrate_from_reference(image, boxes, thickness_nm, stack, layer=0, *, illuminant="D65",
@@ -34,16 +34,26 @@ model="matrix", flat_field=None, dark=None, ...) -> CameraCalibration``
     ``colour_error_de``, ``condition_number``, ``kind`` ("reference"/"target"),
     ``flat_field`` (the FlatField it was made with, or None), metadata ``camera``, ``lamp``,
     ``objective``, ``objective_na`` (float or None), ``date`` (strings), ``message``.
-    ``xyz_from_linear(rgb, flat_field=None)`` applies it; ``lab_from_linear`` gives CIELAB;
-    ``to_dict()`` / ``CameraCalibration.from_dict()`` round-trip through plain JSON types.
+    ``xyz_from_linear(rgb, flat_field=None, box=None)`` applies it; ``lab_from_linear`` gives CIELAB;
+    ``check_photo(photo)`` refuses a photo of another size; ``with_metadata(**fields)`` sets camera,
+    lamp, objective, objective_na, date; ``to_dict()`` / ``CameraCalibration.from_dict()``
+    round-trip through plain JSON types (the flat field inside, about 20 kB in all).
 ``linear_rgb(photo)``
     float32 (H, W, 3) linear-light values of a photo, whatever its decode.
 ``read_target(source, *, illuminant="D65", observer="2") -> ColourTarget`` and
 ``builtin_target(name="BabelColor Average", *, illuminant="D65", observer="2") -> ColourTarget``
     ``ColourTarget.lab_of(names)`` gives the patches' CIELAB in the order named, refusing a
     missing patch with a sentence.
-``pixel_lab(photo, roi, calibration, flat_field, denoise, illuminant, observer)``
-    The per-pixel CIELAB :func:`physics.inverse.thickness_map` matches (used by it).
+``pixel_lab(photo, roi, calibration, flat_field, denoise, illuminant, observer, progress=None)``
+    The per-pixel CIELAB :func:`physics.inverse.thickness_map` matches (used by it; band by band, with
+    progress between bands). ``check_flat(flat, photo)`` refuses a flat field of another photo size.
+``DENOISE_FILTERS``
+    The edge-preserving filters ``thickness_map(denoise=...)`` offers: "median" (5 x 5), "median3",
+    "median7", each scipy.ndimage.median_filter per channel of the linear image.
+
+:func:`physics.inverse.thickness_map` takes ``calibration=``, ``flat_field=`` and ``denoise=``; its
+result's ``uncertainty_nm`` uses :attr:`CameraCalibration.colour_error_de` (formula in
+``physics.inverse._uncertainty_nm``).
 
 The model
 ---------
@@ -68,8 +78,7 @@ full rank and a condition number at most :data:`MAX_CONDITION` (per model).
 
 References
 ----------
-V. Cheung, S. Westland, C. Li, J. Hardeberg,
-D. Connah, "Characterization of trichromatic color cameras by using a new multispectral imaging
+V. Cheung, S. Westland, C. Li, J. Hardeberg, D. Connah, "Characterization of trichromatic color cameras by using a new multispectral imaging
 technique", J. Opt. Soc. Am. A 21, 1125 (2004) (polynomial colour correction); G. D. Finlayson,
 M. Mackiewicz, A. Hurlbert, "Color correction using root-polynomial regression", IEEE Trans. Image
 Process. 24, 1460 (2015); both as implemented in colour-science (``colour.characterisation``,
