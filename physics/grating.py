@@ -584,7 +584,8 @@ def rigorous_efficiency(wavelength_nm, lines_per_mm, order, incidence_deg=0.0, *
     References
     ----------
     M. G. Moharam and T. K. Gaylord, J. Opt. Soc. Am. 71, 811 (1981); M. G. Moharam et al.,
-    J. Opt. Soc. Am. A 12, 1068 (1995); the meent solver (:mod:`physics.rcwa`).
+    J. Opt. Soc. Am. A 12, 1068 (1995); L. Li, J. Opt. Soc. Am. A 13, 1870 (1996); the project's
+    Fourier modal method (:mod:`physics.fmm`), checked against the meent solver (:mod:`physics.rcwa`).
     """
     res = rigorous_efficiency_detail(wavelength_nm, lines_per_mm, order, incidence_deg, profile=profile,
                                      depth_nm=depth_nm, duty_cycle=duty_cycle, blaze_angle_deg=blaze_angle_deg,
