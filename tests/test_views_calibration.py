@@ -9,6 +9,7 @@ of the channels and a dark level) so that the quick gains cannot read it and a c
 import csv
 import io
 import json
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -303,3 +304,37 @@ def test_the_lab_library_tab_lists_saves_and_loads_camera_calibrations(section):
     tab.select_file(tab.entries[0].file_name)
     assert tab.load_selected(), tab.message.object
     assert np.allclose(section.camcal.active.matrix, cal.matrix) and "Bench scope v1" in section.camcal.active_label
+
+
+@pytest.fixture(scope="module")
+def saved_doc(explorer):
+    """The library text of a calibration fitted on the invented step sample."""
+    from physics import camera
+    from views.camera_calibration import calibration_file_text
+
+    data, boxes = _reference_photo(SimpleNamespace(ex=explorer))
+    cal = camera.calibrate_from_reference(data, boxes, list(STEPS_NM), explorer.state.stack, 0, window_nm=(0, 500))
+    text = calibration_file_text(cal, name="Scope")
+    assert validate_camera_calibration(text)["calibration"] == cal.to_dict()
+    return text
+
+
+@pytest.mark.parametrize("change", [
+    lambda d: d.update(calibration=[1, 2, 3]),
+    lambda d: d.update(calibration={"format": "fringegauge camera calibration", "version": 1, "model": ["x"]}),
+    lambda d: d["calibration"].update(matrix=[[1e308] * 3] * 3),
+    lambda d: d["calibration"].update(boxes=[[0, 0, 10**9, 5]]),
+    lambda d: d.update(flat_field={"format": "fringegauge flat field", "grid": "x" * 1000}),
+    lambda d: d.update(na="wide"),
+    lambda d: d.update(date="yesterday"),
+    lambda d: d.update(version=True),
+    lambda d: d.update(extra=1),
+    lambda d: d.pop("calibration"),
+])
+def test_hostile_camera_calibration_files_are_refused_with_a_sentence(saved_doc, change):
+    """What a hand-made or damaged library file may hold: each is an InputError naming the field, never a crash."""
+    doc = json.loads(saved_doc)
+    change(doc)
+    with pytest.raises(InputError) as info:
+        validate_camera_calibration(json.dumps(doc))
+    assert str(info.value).endswith((".", "fields calibration."))
