@@ -10,7 +10,8 @@ Public API
     From a photo of a uniform bare substrate: the field's fall-off per channel, smoothed (a 2-D
     Legendre polynomial of total degree :data:`FLAT_POLY_DEGREE` fitted to block means) and
     normalized to mean 1. ``FlatField.apply(linear_rgb, dark=None, box=None)`` subtracts ``dark`` and
-    divides by it (the whole photo, or its part ``box``); ``FlatField.gain(dark=None, box=None)`` gives the (h, w, 3) divisor; ``to_dict()`` /
+    divides by it (the whole photo, or its part ``box``); ``FlatField.gain(dark=None, box=None)``
+    gives the (h, w, 3) divisor; ``to_dict()`` /
     ``FlatField.from_dict()`` store it as a coarse grid of :data:`FLAT_GRID_NODES` x
     :data:`FLAT_GRID_NODES` nodes, bilinearly interpolated on apply. ``width``, ``height``.
 ``calibrate_from_reference(image, boxes, thickness_nm, stack, layer=0, *, illuminant="D65",
@@ -78,9 +79,9 @@ full rank and a condition number at most :data:`MAX_CONDITION` (per model).
 
 References
 ----------
-V. Cheung, S. Westland, C. Li, J. Hardeberg, D. Connah, "Characterization of trichromatic color cameras by using a new multispectral imaging
-technique", J. Opt. Soc. Am. A 21, 1125 (2004) (polynomial colour correction); G. D. Finlayson,
-M. Mackiewicz, A. Hurlbert, "Color correction using root-polynomial regression", IEEE Trans. Image
+V. Cheung, S. Westland, C. Li, J. Hardeberg, D. Connah, "Characterization of trichromatic color cameras
+by using a new multispectral imaging technique", J. Opt. Soc. Am. A 21, 1125 (2004) (polynomial colour
+correction); G. D. Finlayson, M. Mackiewicz, A. Hurlbert, "Color correction using root-polynomial regression", IEEE Trans. Image
 Process. 24, 1460 (2015); both as implemented in colour-science (``colour.characterisation``,
 BSD-3-Clause). CIE 015:2018 (CIELAB); CIE 142-2001 (CIEDE2000). Flat-field correction
 (dark-subtracted division by a uniform-scene frame) is common practice in imaging.
@@ -106,7 +107,8 @@ with warnings.catch_warnings():
                                          polynomial_expansion_Finlayson2015)
 
 __all__ = ["CameraCalibration", "FlatField", "ColourTarget", "calibrate_from_reference", "calibrate_from_target",
-           "flat_field", "read_target", "builtin_target", "linear_rgb", "pixel_lab", "check_flat", "MODELS", "MIN_BOXES",
+           "flat_field", "read_target", "builtin_target", "linear_rgb", "pixel_lab", "check_flat", "MODELS",
+           "MIN_BOXES",
            "DENOISE_FILTERS"]
 
 #: Calibration models: name -> (colour-science method, its keyword arguments, expansion terms).
@@ -405,8 +407,9 @@ def flat_field(image, *, degree: int = FLAT_POLY_DEGREE) -> FlatField:
     deviation = np.abs(means / np.maximum(fitted, 1e-12) - 1.0).max(axis=2)
     structured = deviation > FLAT_STRUCTURE_DEVIATION
     if structured.mean() > FLAT_MAX_STRUCTURE_FRACTION:
-        raise InputError(f"The flat-field photo is not uniform: {structured.mean():.0%} of its areas ({where(structured)}) "
-                         f"differ by more than {FLAT_STRUCTURE_DEVIATION:.0%} from a smooth fall-off. Photograph a clean, "
+        raise InputError(f"The flat-field photo is not uniform: {structured.mean():.0%} of its areas "
+                         f"({where(structured)}) differ by more than {FLAT_STRUCTURE_DEVIATION:.0%} from a smooth "
+                         "fall-off. Photograph a clean, "
                          "bare, unpatterned part of the substrate (or a uniform card) filling the field.")
     n = FLAT_GRID_NODES
     gv, gu = np.meshgrid(np.linspace(-1, 1, n), np.linspace(-1, 1, n), indexing="ij")
@@ -715,13 +718,13 @@ def _box_pixels(photo, boxes, flat):
         x0, y0, x1, y1 = _check_box(photo, box, f"calibration box {k + 1}")
         sat = float(_clipped(photo, y0, y1, x0, x1).mean())
         if sat > MAX_SATURATED_FRACTION:
-            raise InputError(f"Calibration box {k + 1} ({x0}, {y0}, {x1}, {y1}) is overexposed: {sat:.0%} of its pixels "
-                             "are clipped. Draw it on an area that is not blown out, or take the photo with less "
-                             "exposure.")
+            raise InputError(f"Calibration box {k + 1} ({x0}, {y0}, {x1}, {y1}) is overexposed: {sat:.0%} of its "
+                             "pixels are clipped. Draw it on an area that is not blown out, or take the photo with "
+                             "less exposure.")
         p = lin[y0:y1, x0:x1].reshape(-1, 3).astype(np.float64)
         if np.any(p.mean(axis=0) < MIN_BOX_LINEAR):
-            raise InputError(f"Calibration box {k + 1} ({x0}, {y0}, {x1}, {y1}) is too dark to read its colour; draw it "
-                             "on a lit area or expose the photo longer.")
+            raise InputError(f"Calibration box {k + 1} ({x0}, {y0}, {x1}, {y1}) is too dark to read its colour; "
+                             "draw it on a lit area or expose the photo longer.")
         checked.append((x0, y0, x1, y1))
         rgb.append(p)
         fs.append(flat.gain(None, (x0, y0, x1, y1)).reshape(-1, 3).astype(np.float64) if flat is not None else None)
@@ -735,7 +738,8 @@ def _design_check(q, model, n_boxes):
     if n_boxes < need:
         more = need - n_boxes
         raise InputError(f"A {model} calibration needs at least {need} boxes ({terms} colour terms, a dark offset and "
-                         f"one to check the fit); {n_boxes} given. Add at least {more} more box{'es' if more > 1 else ''} "
+                         f"one to check the fit); {n_boxes} given. Add at least {more} more "
+                         f"box{'es' if more > 1 else ''} "
                          "of clearly different colour, such as thicker or thinner steps.")
     X = np.column_stack([_expand(q, model), np.ones(n_boxes)])
     X = X / np.maximum(np.linalg.norm(X, axis=0), 1e-300)
@@ -747,7 +751,8 @@ def _design_check(q, model, n_boxes):
         other = " (or use the matrix model)" if model != "matrix" else ""
         raise InputError(f"The {n_boxes} boxes' colours are too alike to fix a {model} calibration (they span "
                          f"{rank} of its {X.shape[1]} directions; condition number {cond:.3g}, at most "
-                         f"{MAX_CONDITION[model]:g} allowed): add at least {more + 1} boxes of clearly different colour, "
+                         f"{MAX_CONDITION[model]:g} allowed): add at least {more + 1} boxes of clearly different "
+                         "colour, "
                          f"such as thicker steps or other hues, rather than more boxes of the same colours{other}.")
     return cond
 
@@ -908,7 +913,8 @@ def calibrate_from_reference(image, boxes, thickness_nm, stack, layer: int = 0, 
     worst = int(np.argmax(np.abs(res_nm)))
     message = (f"{model} calibration from {len(t)} boxes: ΔE00 {cal.rms_delta_e:.2f} RMS (largest "
                f"{cal.residual_delta_e.max():.2f}; each box predicted from the others: largest "
-               f"{cal.holdout_delta_e.max():.2f}); thickness residual {np.sqrt(np.mean(res_nm ** 2)):.1f} nm RMS, largest "
+               f"{cal.holdout_delta_e.max():.2f}); thickness residual {np.sqrt(np.mean(res_nm ** 2)):.1f} nm RMS, "
+               "largest "
                f"{res_nm[worst]:+.1f} nm at the {t[worst]:g} nm box.")
     return replace(cal, thickness_nm=t, residual_nm=res_nm, message=message)
 
@@ -995,7 +1001,8 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
                              "the uncorrected field: map without a flat field, or make the calibration again with "
                              "the flat field.")
     if denoise is not None and (not isinstance(denoise, str) or denoise not in DENOISE_FILTERS):
-        raise InputError(f"denoise must be None or one of {', '.join(repr(k) for k in DENOISE_FILTERS)}; got {denoise!r}.")
+        raise InputError(f"denoise must be None or one of {', '.join(repr(k) for k in DENOISE_FILTERS)}; "
+                         f"got {denoise!r}.")
     lin = linear_rgb(photo)[y0:y1, x0:x1]
     dark = calibration.dark if calibration is not None else None
     if calibration is not None and denoise is None:                  # band by band: no whole-image temporaries
@@ -1119,7 +1126,8 @@ def read_target(source, *, illuminant="D65", observer="2", patches=None) -> Colo
     for k, r in enumerate(rows[1:], start=2):
         cells = [c.strip() for c in r]
         if len(cells) != len(header) or any(c == "" for c in cells):
-            raise InputError(f"Row {k} of the target file has {sum(1 for c in cells if c)} of {len(header)} values: fill "
+            raise InputError(f"Row {k} of the target file has {sum(1 for c in cells if c)} of {len(header)} values: "
+                             "fill "
                              "every cell (a patch without data cannot be used; delete its row instead).")
         try:
             vals = [float(c) for c in cells[1:]]

@@ -166,7 +166,8 @@ def test_uncertainty_covers_the_errors(wedge_maps):
 
 
 def test_three_dn_noise_and_the_median_denoise(calibration):
-    # Measured at 3 DN (upper half of the photo): 0.78-0.79 within 5 nm per pixel, 0.994-0.995 after the 5 x 5 median (scipy.ndimage.median_filter).
+    # Measured at 3 DN (upper half of the photo): 0.78-0.79 within 5 nm per pixel, 0.994-0.995 after the 5 x 5
+    # median (scipy.ndimage.median_filter).
     # Required: the denoised map >= 0.95 and better than without.
     lin, truth = wedge_scene()
     img = shoot(lin, seed=11, noise_dn=3.0)
