@@ -120,6 +120,10 @@ def test_a_box_csv_fills_the_table_and_a_bad_row_is_named(section):
     assert section.camcal.load_box_csv(_csv(boxes, STEPS_NM), "steps.csv")
     assert [f.input.value for f in section.camcal.thickness_fields] == [f"{t:g}" for t in STEPS_NM]
     assert section.camcal.settings.method == "calibrated"
+    section.camcal.settings.source = "target"                           # the table shows patches, then again
+    assert section.camcal.thickness_fields == [] and "no patch in the target data" in section.camcal.rows.objects[1].objects[1].object
+    section.camcal.settings.source = "reference"                        # the thicknesses, as they were typed
+    assert [f.input.value for f in section.camcal.thickness_fields] == [f"{t:g}" for t in STEPS_NM]
     bad = _csv(boxes[:2], STEPS_NM[:2]) + b"10,5,4,30,100\n"
     assert not section.camcal.load_box_csv(bad, "bad.csv")
     msg = section.camcal.box_msg.message.object

@@ -235,6 +235,7 @@ class CameraCalibrationPanel:
         self.library = None                   # the lab library (library_from_env() when first needed)
         self.quick_part = self.calibrated_part = None      # made by panel()
         self._fit_job = 0
+        self._typed: list = []                # thicknesses typed, kept while the table shows target patches
         self._build()
 
     # ------------------------------------------------------------------ widgets
@@ -285,6 +286,8 @@ class CameraCalibrationPanel:
         self.fit_button = pn.widgets.Button(label="Fit calibration", color="primary", width=160, margin=(6, 5),
                                             css_classes=["fg-cal-fit"])
         self.fit_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(4, 5), width=COLUMN_PX - 10,
+                                     stylesheets=[".alert { box-sizing: border-box; padding: 6px 8px; "
+                                                  "overflow-wrap: anywhere; font-size: 13px; }"],
                                      css_classes=["fg-cal-fit-msg"])
         self.residuals = pn.pane.HTML("", margin=(0, 5), width=COLUMN_PX, css_classes=["fg-cal-residuals"])
         self.active_info = pn.pane.HTML("", margin=(2, 5), width=COLUMN_PX, styles={"font-size": "12px"},
@@ -330,7 +333,8 @@ class CameraCalibrationPanel:
         self.calibrated_holder = pn.Column(margin=0)
         self.unc_holder = pn.Column(margin=0, sizing_mode="stretch_width")
 
-        st.param.watch(_locked_call(lambda *e: self._show_parts()), ["method", "source"])
+        st.param.watch(_locked_call(lambda *e: self._show_parts()), "method")
+        st.param.watch(_locked_call(lambda *e: self._source_changed()), "source")
         self.clear_boxes.on_click(_locked_call(lambda e: self.remove_boxes()))
         self.undo_box.on_click(_locked_call(lambda e: self.remove_boxes(last=True)))
         self.forget_flat.on_click(_locked_call(lambda e: self.drop_flat()))
@@ -367,6 +371,14 @@ class CameraCalibrationPanel:
             self.sec.mode.value = "refbox"
         self._draw()
 
+    def _source_changed(self):
+        """Reference sample ↔ colour target: the table shows thicknesses or patches; typed thicknesses are kept."""
+        if self.thickness_fields:
+            self._typed = [f.input.value for f in self.thickness_fields]
+        self._rebuild_rows()
+        self._stale_fit()
+        self._show_parts()
+
     def _draw(self):
         data = dict(x=[], y=[], w=[], h=[], label=[])
         show = self.calibrated()
@@ -382,7 +394,7 @@ class CameraCalibrationPanel:
         """One row per box: its number and pixels, and (reference sample) its known thickness or (target) its
         patch."""
         ref = self.settings.source == "reference"
-        old = [f.input.value for f in self.thickness_fields]
+        old = [f.input.value for f in self.thickness_fields] or self._typed
         self.thickness_fields = []
         rows = []
         for i, (x0, y0, x1, y1) in enumerate(self.boxes):
@@ -447,6 +459,8 @@ class CameraCalibrationPanel:
 
     def remove_boxes(self, last: bool = False):
         self.boxes = self.boxes[:-1] if last else []
+        if not last:
+            self.thickness_fields, self._typed = [], []
         self._rebuild_rows()
         self._draw()
         self._stale_fit()
@@ -454,7 +468,7 @@ class CameraCalibrationPanel:
     def set_boxes(self, boxes, thicknesses=None):
         """Replace the boxes (and, for a reference sample, their known thicknesses in nm)."""
         self.boxes = [tuple(int(v) for v in b) for b in boxes]
-        self.thickness_fields = []
+        self.thickness_fields, self._typed = [], []
         self._rebuild_rows()
         for f, t in zip(self.thickness_fields, thicknesses or []):
             f.set_text(_fmt(float(t), 3))
