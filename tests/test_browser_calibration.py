@@ -1,5 +1,6 @@
 """The camera calibration in headless Chromium: open a photo of an invented step sample, enter its boxes and
-known thicknesses, fit, and read the residual per box."""
+known thicknesses (from a CSV, one corrected in the table after a refusal), fit in a worker, and read the
+residual per box."""
 
 import io
 from pathlib import Path
@@ -68,6 +69,14 @@ def test_enter_boxes_fit_and_read_the_residuals(tmp_path):
             win = pg.locator(".fg-win-hi input").first
             win.fill("500")
             win.press("Enter")
+            box4 = pg.locator(".fg-cal-t4 input").first
+            box4.fill("800")                                   # typed in the table: outside the window
+            box4.press("Enter")
+            pg.locator(".fg-cal-fit button").first.click()
+            pg.locator(".fg-cal-fit-msg").filter(has_text="Box 4: its known thickness 800 nm is outside").first \
+                .wait_for(timeout=30_000)
+            box4.fill("190")
+            box4.press("Enter")
             pg.locator(".fg-cal-fit button").first.click()
             table = pg.locator(".fg-cal-residuals").first
             table.get_by_text("map − known (nm)").wait_for(timeout=60_000)

@@ -686,6 +686,8 @@ class CameraCalibrationPanel:
         reading = self.sec.reading
         if reading.reading == "uncalibrated camera":         # the colours now come from a calibrated camera
             reading.reading = "calibrated camera"
+            self.sec.pick_info.object = (f"Colour read set to “calibrated camera” (reading error ΔE00 "
+                                         f"{reading.reading_error_de:g}): a camera calibration is in use.")
         self._show_active()
 
     def _size_refusal(self):
