@@ -285,6 +285,30 @@ def test_spectrum_fit_in_the_page(page, tmp_path):
     assert page.console_errors == []
 
 
+def test_film_fit_with_a_bandwidth_in_the_page(page, tmp_path):
+    """The film-model fit in its worker process: an invented nitride-like Cauchy film (n = 1.98 + 0.018/λ², λ in
+    µm) of 500 nm on silicon in percent, fitted with a Cauchy model through a 1 nm Gaussian slit."""
+    import numpy as np
+    from physics import CauchyMaterial, Layer, Stack, material
+
+    wl = np.linspace(400, 1000, 151)
+    R = Stack([Layer(CauchyMaterial(1.98, 0.018), 500.0)], material("Si"), ambient=1.0).reflectance(wl)
+    path = tmp_path / "nitride.csv"
+    path.write_text("Wavelength (nm);Reflectance (%)\n" + "\n".join(f"{w:.1f};{100 * r:.4f}" for w, r in zip(wl, R)))
+    page.get_by_text("Spectrum → thickness").click()
+    page.locator(".fg-fit-sample-file input[type=file]").first.set_input_files(str(path))
+    page.get_by_text("Reflectance read as percent").first.wait_for(timeout=30_000)
+    page.locator(".fg-fit-model select").first.select_option(label="Cauchy (transparent)")
+    box = page.locator(".fg-fit-bandwidth input").first
+    box.fill("1")
+    box.press("Enter")
+    page.get_by_text("read through the instrument's 1 nm slit").first.wait_for(timeout=30_000)     # the hint
+    page.locator(".fg-fit-run button").first.click()
+    page.get_by_text("instrument's 1 nm gaussian slit").first.wait_for(timeout=120_000)           # the verdict
+    page.get_by_text("fitted with the film model").first.wait_for(timeout=5_000)
+    assert page.console_errors == []
+
+
 #: The texts of the lab library's list: every <option> under the list widget, through shadow roots.
 LIBRARY_OPTIONS_JS = """() => {
   const out = [];
