@@ -61,8 +61,8 @@ MODELS = {"3x3 matrix + dark offset": "matrix", "root-polynomial (needs more box
 DENOISE = {"none": "none", "median 3 x 3 px": "median3", "median 5 x 5 px": "median", "median 7 x 7 px": "median7"}
 #: Width of the section (px), the photo column's.
 COLUMN_PX = 330
-#: Photo files a flat field may come from (the photo drop zone's, with camera RAW where it is read).
-PHOTO_TYPES = [".jpg", ".jpeg", ".png", ".tif", ".tiff", ".dng", ".nef", ".cr2", ".cr3", ".arw", ".raw"]
+#: Photo files a flat field may come from: those the colour tab's photo drop zone takes.
+PHOTO_TYPES = [".jpg", ".jpeg", ".png", ".tif", ".tiff"]
 #: Fallback label when the page gives no name to a calibration fitted here.
 FITTED_HERE = "fitted on this page"
 
