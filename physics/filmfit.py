@@ -645,6 +645,13 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
                          f"{POINTS_PER_PARAMETER * len(names)} spectrum points ({POINTS_PER_PARAMETER} each) and "
                          f"{n_points} were given: fix some (model='fixed', no roughness or spread, no free scale "
                          "or offset) or measure more points.")
+    own = 1 + int(free_scale) + int(free_offset)
+    short = [i for i, s in enumerate(spectra) if s.wl.size < POINTS_PER_PARAMETER * own] if each else []
+    if short:
+        raise InputError(f"Spectrum {short[0]} has {spectra[short[0]].wl.size} points for its own {own} free parameters "
+                         f"(thickness{', scale' if free_scale else ''}{', offset' if free_offset else ''}), fewer than "
+                         f"{POINTS_PER_PARAMETER * own} ({POINTS_PER_PARAMETER} each): measure more points there, or "
+                         "leave the scale and offset fixed.")
     _scan_grid(stack, layer, window, spectra[0].wl, spectra[0].angle, "thickness window")   # refuses a window too wide
 
     hosts = [start_material] if family is None else None

@@ -148,6 +148,8 @@ BASE = dict(wavelength_nm=WL, reflectance=np.full(WL.size, 0.3), stack=Stack([La
     (dict(slit="lorentzian"), "slit must be one of"),
     (dict(wavelength_nm=[WL[:12]] * 3, reflectance=[np.full(12, 0.3)] * 3, thickness_per_spectrum=True,
           free_scale=True, free_offset=True), "free parameters"),
+    (dict(wavelength_nm=[WL, WL[:12]], reflectance=[np.full(WL.size, 0.3), np.full(12, 0.3)],
+          thickness_per_spectrum=True, free_scale=True, free_offset=True), "Spectrum 1 has 12 points for its own 3"),
     (dict(model="fixed", stack=Stack([Layer(CauchyMaterial(1.5, range_nm=(500, 900)), 0.0)], "Si", ambient=1.0)),
      "have data only from 500 to 900 nm"),
     (dict(model="sellmeier", stack=Stack([Layer({"kind": "sellmeier", "B": [1.0], "C": [0.3]}, 0.0)], "Si",
