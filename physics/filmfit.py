@@ -48,8 +48,9 @@ thickness :data:`SLIT_INDEX_MARGIN` times the start's, and at least :data:`SLIT_
 FWHM), then convolved with the slit function and read at the measured wavelengths: R_meas(λ) =
 ∫ g(λ' − λ) R(λ') dλ' / ∫ g. The slit is "gaussian" (g = exp(−4 ln 2 x²/FWHM²), cut at
 :data:`GAUSSIAN_CUT_FWHM` FWHM either side) or "triangular" (g = 1 − |x|/FWHM for |x| < FWHM: the
-image of an entrance slit swept across an exit slit of the same width in a grating monochromator;
-Born & Wolf sec. 8.6.3; an array spectrometer's line is closer to Gaussian). The bandwidth is constant
+image of an entrance slit swept across an exit slit of the same width in a grating monochromator, the
+convolution of two equal rectangles: standard monochromator theory, stated from memory; an array
+spectrometer's line is closer to Gaussian). The bandwidth is constant
 in wavelength across the band (a grating instrument's is, to first order). The reading at the band's
 ends holds light from up to one slit half-width beyond them, so the fine grid reaches that far where
 every medium has data, and the fitted dispersion's range includes that reach; where a medium's data
@@ -74,8 +75,9 @@ from the curvature) and sec. 4.6 (Gauss-Hermite quadrature); P. Virtanen et al.,
 17, 261 (2020); D. E. Aspnes, Thin Solid Films 89, 249 (1982) (roughness as an effective medium);
 G. E. Jellison Jr. and F. A. Modine, Appl. Phys. Lett. 69, 371 (1996) (Tauc-Lorentz); A. R. Curtis,
 M. J. D. Powell and J. K. Reid, "On the estimation of sparse Jacobian matrices", J. Inst. Maths Applics
-13, 117 (1974) (grouped finite differences); M. Born and E. Wolf, Principles of Optics, 7th ed., sec. 8.6.3
-(the triangular instrument function of a slit spectrometer); W. Sellmeier, Ann. Phys. Chem. 219, 272 (1871).
+13, 117 (1974) (grouped finite differences); W. Sellmeier, Ann. Phys. Chem. 219, 272 (1871). The slit
+shapes are stated from memory (see the notes above); the Gaussian's damping of a cosine,
+exp(−(π·FWHM/P)²/(4 ln 2)), is its Fourier transform and is checked in the tests.
 """
 
 from __future__ import annotations
@@ -412,7 +414,7 @@ def slit_matrix(wavelength_nm, fine_nm, bandwidth_nm: float, slit: str = "gaussi
 
     References
     ----------
-    Born & Wolf, Principles of Optics, 7th ed., sec. 8.6.3 (a slit spectrometer's instrument function).
+    The module notes (the shapes; a Gaussian's Fourier transform gives the damping the tests check).
     """
     wl, fine = np.asarray(wavelength_nm, dtype=float), np.asarray(fine_nm, dtype=float)
     step = (fine[-1] - fine[0]) / max(fine.size - 1, 1)
