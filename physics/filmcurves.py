@@ -131,8 +131,8 @@ def _covariance(result: FilmFitResult, family):
 
 
 #: Parameter sets drawn for :func:`nk_band`: the 15.87th and 84.13th percentiles of 200 draws are known to about
-#: ±0.1σ (their standard error, sqrt(p(1 − p)/N)/φ(z) = 0.107σ at N = 200; JCGM 101:2008 sec. 7.2), plenty for a
-#: band drawn on a plot, at 200 model evaluations (a few ms each).
+#: ±0.1σ (a sample quantile's asymptotic standard error, sqrt(p(1 − p)/N)/φ(z) = 0.107σ at N = 200), plenty for a
+#: band drawn on a plot, at 200 evaluations of the dispersion alone (each well under a millisecond).
 BAND_DRAWS = 200
 #: Seed of the draws: the same fit always draws the same band.
 BAND_SEED = 633

@@ -66,8 +66,8 @@ def test_curves_and_bounds():
 def test_sampled_band_of_an_urbach_tail_is_its_exact_percentiles():
     """k = k₀·exp(s·(E − E₀)) with only the slope s uncertain (σ_s) is monotonic in s, so its central 68 % interval is
     exactly k at s ± σ_s: exp(∓σ_s·|E − E₀|) times k below the band edge. The sampled band finds it (200 draws put
-    each percentile within ~0.1σ_s, JCGM 101:2008 sec. 7.2); the linear band k(1 ± σ_s|E − E₀|) is too narrow
-    above and crosses zero below."""
+    each percentile within ~0.1σ_s, a sample quantile's standard error); the linear band k(1 ± σ_s|E − E₀|) is too
+    narrow above and crosses zero below."""
     from physics import CauchyMaterial
     from physics.filmcurves import nk_band
     from physics.filmfit import FilmFitResult
