@@ -598,6 +598,11 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     if roughness and layer != 0:
         raise InputError("A roughness layer sits on the stack's top surface: fit the top layer (layer=0) "
                          "with roughness=True, or leave roughness off for a buried layer.")
+    if progress is not None and not callable(progress):
+        raise InputError(f"progress must be a function of (fraction, text) or None; got {type(progress).__name__}.")
+    if cancel is not None and not (callable(cancel) or callable(getattr(cancel, "is_set", None))):
+        raise InputError(f"cancel must be a function returning True to stop, an object with is_set() (such as a "
+                         f"threading.Event) or None; got {type(cancel).__name__}.")
     say = _Reporter(progress, cancel)
     window = _window(thickness_nm, "thickness window")
     spectra = _spectra(wavelength_nm, reflectance, angle_deg, stack, layer, window)

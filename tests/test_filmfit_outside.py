@@ -146,6 +146,8 @@ BASE = dict(wavelength_nm=WL, reflectance=np.full(WL.size, 0.3), stack=Stack([La
     (dict(bounds={"gap_ev": (1, 2)}), "which model 'cauchy' does not fit here"),
     (dict(bandwidth_nm=80.0), "bandwidth_nm"),
     (dict(slit="lorentzian"), "slit must be one of"),
+    (dict(cancel=True), "cancel must be a function"),
+    (dict(progress="yes"), "progress must be a function"),
     (dict(wavelength_nm=[WL[:12]] * 3, reflectance=[np.full(12, 0.3)] * 3, thickness_per_spectrum=True,
           free_scale=True, free_offset=True), "free parameters"),
     (dict(wavelength_nm=[WL, WL[:12]], reflectance=[np.full(WL.size, 0.3), np.full(12, 0.3)],
