@@ -96,7 +96,7 @@ def test_drawn_boxes_get_rows_and_the_fit_shows_residuals_per_box(section):
     table = section.camcal.residuals.object
     assert table.count("<tr>") == len(STEPS_NM) + 1 and "ΔE00" in table and "map − known (nm)" in table
     assert len(cal.residual_delta_e) == len(STEPS_NM)
-    assert section.camcal.fit_msg.alert_type == "success"
+    assert section.camcal.fit_kind == "success"
     assert section.camcal.active is cal and "In use" in section.camcal.active_info.object
     # the map now uses the calibration and shows an uncertainty
     args = section.camcal.map_arguments()
@@ -164,7 +164,7 @@ def test_refusals_are_sentences_and_keep_what_was_there(section):
     section.camcal.remove_boxes()
     _draw(section, boxes[:2], STEPS_NM[:2])
     assert section.camcal.fit() is None
-    assert section.camcal.fit_msg.alert_type == "danger" and section.camcal.fit_msg.object.startswith("Not fitted")
+    assert section.camcal.fit_kind == "danger" and ">Not fitted: " in section.camcal.fit_msg.object
     # calibrated without a calibration in use: the map is refused with a sentence
     section.camcal.active = None
     section.start_map(sync=True)

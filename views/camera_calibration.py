@@ -285,10 +285,9 @@ class CameraCalibrationPanel:
                                              visible=False)
         self.fit_button = pn.widgets.Button(label="Fit calibration", color="primary", width=160, margin=(6, 5),
                                             css_classes=["fg-cal-fit"])
-        self.fit_msg = pn.pane.Alert("", alert_type="light", visible=False, margin=(4, 5), width=COLUMN_PX - 10,
-                                     stylesheets=[".alert { box-sizing: border-box; padding: 6px 8px; "
-                                                  "overflow-wrap: anywhere; font-size: 13px; }"],
-                                     css_classes=["fg-cal-fit-msg"])
+        self.fit_msg = pn.pane.HTML("", visible=False, margin=(4, 5), width=COLUMN_PX - 10,
+                                    css_classes=["fg-cal-fit-msg"])
+        self.fit_kind = "light"               # how the fit message is shown: light (working), danger, success
         self.residuals = pn.pane.HTML("", margin=(0, 5), width=COLUMN_PX, css_classes=["fg-cal-residuals"])
         self.active_info = pn.pane.HTML("", margin=(2, 5), width=COLUMN_PX, styles={"font-size": "12px"},
                                         css_classes=["fg-cal-active"])
@@ -622,7 +621,7 @@ class CameraCalibrationPanel:
         self._fit_job += 1
         job = self._fit_job
         self.fit_button.disabled = True
-        self.fit_msg.object, self.fit_msg.alert_type, self.fit_msg.visible = "Fitting …", "light", True
+        self._say_fit("Fitting …", "light")
         doc = pn.state.curdoc
         size = self.sec.photo.width * self.sec.photo.height
         session = session_key(self.sec.ex)
@@ -658,19 +657,25 @@ class CameraCalibrationPanel:
         self.fit_button.disabled = False
         if error:
             text = error if error.startswith("Not fitted") else f"Not fitted: {error}"
-            self.fit_msg.object = _esc(text) + (" The calibration in use is unchanged." if self.active else "")
-            self.fit_msg.alert_type, self.fit_msg.visible = "danger", True
+            self._say_fit(text + (" The calibration in use is unchanged." if self.active else ""), "danger")
             return None
         self.fitted = cal
         self.residuals.object = residual_table(cal, kind, known, self.target.names if self.target else ())
         de = np.asarray(getattr(cal, "residual_delta_e", []), dtype=float)
         worst = f"; worst box ΔE00 {np.nanmax(de):.2f}" if de.size else ""
-        self.fit_msg.object = _esc(f"Fitted: {cal.message or f'{len(self.boxes)} boxes{worst}.'} It is now used for "
-                                   "maps of this photo and later ones of the same size; save it to the library to "
-                                   "keep it.")
-        self.fit_msg.alert_type, self.fit_msg.visible = "success", True
+        self._say_fit(f"Fitted: {cal.message or f'{len(self.boxes)} boxes{worst}.'} It is now used for maps of this "
+                      "photo and later ones of the same size; save it to the library to keep it.", "success")
         self.use(cal, cal.flat_field, f"{FITTED_HERE} ({self.sec.photo_name})")
         return cal
+
+    def _say_fit(self, text: str, kind: str) -> None:
+        """The fit's outcome as a sentence in a coloured box (wrapped inside the column)."""
+        colours = {"light": ("#f4f4f4", "#333"), "danger": ("#f8d7da", "#721c24"), "success": ("#d4edda", "#155724")}
+        bg, fg = colours[kind]
+        self.fit_kind = kind
+        self.fit_msg.object = (f"<div role='status' style='background:{bg};color:{fg};border-radius:4px;padding:6px 8px;"
+                               f"font-size:13px;overflow-wrap:anywhere'>{_esc(text)}</div>")
+        self.fit_msg.visible = True
 
     def metadata(self) -> dict:
         """The station's fields as ``physics.camera`` takes them; the date is today's (UTC)."""
