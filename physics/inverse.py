@@ -43,7 +43,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
-from scipy.spatial import cKDTree
 
 from .appearance import color_map, interference_order
 from .colour_words import colour_word
@@ -636,9 +635,11 @@ class ThicknessMap:
 
 
 def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
+    from .colourtable import lab_from_linear               # the CIE formula in float32, fast on millions of pixels
+
     white = illuminant_white_xyz(illuminant, observer)
     M = np.linalg.inv(_xyz_to_linear_srgb_matrix(white.tobytes()))
-    return xyz_to_lab(lin @ M.T, illuminant, observer)
+    return lab_from_linear(lin, M, white)
 
 
 def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminant, observer, polarization, na,
@@ -860,10 +861,20 @@ def _box(box, W, H, name):
     return x0, y0, x1, y1
 
 
-def _unique_linear(rgb: np.ndarray, bit_depth: int):
-    """Distinct pixel codes, the pixel → code index, and each code's linear RGB (sRGB decode)."""
-    table = srgb_decode_table(bit_depth)
+#: A 16-bit region of more pixels than this is matched pixel by pixel: its codes are nearly all distinct, and
+#: sorting them to find the distinct ones costs more than the colour table's lookup it would save.
+UNIQUE_16BIT_MAX_PIXELS = 1 << 20
+
+
+def _unique_linear(rgb: np.ndarray, bit_depth: int, linear: bool = False):
+    """Distinct pixel codes, the pixel → code index, and each code's linear RGB (sRGB decode, or
+    code / max_code when ``linear``). A 16-bit region of more than :data:`UNIQUE_16BIT_MAX_PIXELS` pixels
+    keeps every pixel as its own code (the index is the identity)."""
+    table = (np.arange(2 ** bit_depth, dtype=np.float32) / np.float32(2 ** bit_depth - 1) if linear
+             else srgb_decode_table(bit_depth))
     flat = rgb.reshape(-1, 3)
+    if bit_depth == 16 and flat.shape[0] > UNIQUE_16BIT_MAX_PIXELS:
+        return flat, np.arange(flat.shape[0]), table[flat]
     if bit_depth == 8:
         quad = np.zeros((flat.shape[0], 4), dtype=np.uint8)            # R, G, B, 0 → one little-endian uint32
         quad[:, :3] = flat
@@ -879,49 +890,24 @@ def _unique_linear(rgb: np.ndarray, bit_depth: int):
         packed = (flat[:, 0].astype(np.uint64) << 32) | (flat[:, 1].astype(np.uint64) << 16) | flat[:, 2]
         codes, inverse = np.unique(packed, return_inverse=True)
         channels = np.stack([(codes >> 32) & 65535, (codes >> 16) & 65535, codes & 65535], axis=1).astype(np.int64)
-    lin = table[channels].astype(float)
+    lin = table[channels]
     return codes, inverse.ravel(), lin
 
 
 def _match(lab: np.ndarray, path: _Path):
     """Best match overall and best match of any other order, for each colour (by ΔE00).
 
-    Per order, a k-d tree gives the nearest path points in CIELAB (ΔE76); ΔE00 is then
-    evaluated only for the orders nearest by ΔE76 (:data:`ORDERS_COMPARED`), which holds the
-    best and the runner-up of any other order.
+    Returns ``(t1, de1, o1, t2, de2, o2)``: thickness (nm), ΔE00 and fringe order of the best path match,
+    and of the best match of another order (NaN, inf, 0 when the window holds one order). A lookup in the
+    path's cached :class:`physics.colourtable.ColourTable` (CIELAB cells holding the path minima that can
+    win in them, solved exactly and corrected to first order for each colour), whose cost per colour does
+    not depend on how many distinct colours a photo has. Measured against brute force (ΔE00 against every
+    path point) in ``benchmarks/bench_inverse.py``: the thickness is within one path step, or at a point as
+    good (within 0.02 ΔE00, on a flat stretch of the path), for about 99.9 % of a photo's matched colours.
     """
-    U = lab.shape[0]
-    ref = path.lab_display                                              # photos are gamut-clipped sRGB
-    orders = np.unique(path.order)
-    kk = KNN_PER_ORDER
-    all_idx = np.empty((orders.size, U, kk), dtype=np.int64)
-    all_d = np.empty((orders.size, U))
-    for k, o in enumerate(orders):
-        sel = np.flatnonzero(path.order == o)
-        tree = cKDTree(ref[sel])
-        dist, idx = tree.query(lab, k=min(kk, sel.size), workers=-1)
-        idx = idx.reshape(U, -1)
-        if idx.shape[1] < kk:                                           # a short order: repeat its points
-            idx = np.concatenate([idx, np.repeat(idx[:, -1:], kk - idx.shape[1], axis=1)], axis=1)
-        all_idx[k] = sel[idx]
-        all_d[k] = np.asarray(dist).reshape(U, -1)[:, 0]
-    n_cmp = min(ORDERS_COMPARED, orders.size)
-    near = np.argsort(all_d, axis=0)[:n_cmp]                            # (n_cmp, U) order positions
-    cols = np.arange(U)
-    idx = all_idx[near, cols[None, :]]                                  # (n_cmp, U, kk) path indices
-    de = delta_e_2000(ref[idx], lab[None, :, None, :])                  # (n_cmp, U, kk)
-    j = np.argmin(de, axis=2)
-    best_de = np.take_along_axis(de, j[..., None], axis=2)[..., 0]      # (n_cmp, U)
-    best_i = np.take_along_axis(idx, j[..., None], axis=2)[..., 0]
-    rank = np.argsort(best_de, axis=0)
-    i1 = best_i[rank[0], cols]
-    t1, de1, o1 = path.thickness_nm[i1], best_de[rank[0], cols], path.order[i1]
-    if n_cmp > 1:
-        i2 = best_i[rank[1], cols]
-        t2, de2, o2 = path.thickness_nm[i2], best_de[rank[1], cols], path.order[i2]
-    else:
-        t2, de2, o2 = np.full(U, np.nan), np.full(U, np.inf), np.zeros(U, dtype=int)
-    return t1, de1, o1, t2, de2, o2
+    from .colourtable import colour_table
+
+    return colour_table(path.lab_display, path.thickness_nm, path.order).match(lab)
 
 
 def _smooth_reference(T1, confident):
