@@ -342,3 +342,19 @@ def test_hostile_camera_calibration_files_are_refused_with_a_sentence(saved_doc,
     with pytest.raises(InputError) as info:
         validate_camera_calibration(json.dumps(doc))
     assert str(info.value).endswith((".", "fields calibration."))
+
+
+def test_the_calibration_settings_travel_in_the_link_and_a_bad_one_is_named():
+    from test_views_link import _page
+
+    link = _page()
+    cam = link.tabs["Colour → thickness"].get().camcal
+    cam.settings.param.update(method="calibrated", source="target", model="root-polynomial", na=0.15,
+                              denoise="median")
+    other = _page()
+    assert other.apply_link_state(link.query()) == []
+    back = other.tabs["Colour → thickness"].get().camcal.settings
+    assert (back.method, back.source, back.model, back.na, back.denoise) == (
+        "calibrated", "target", "root-polynomial", 0.15, "median")
+    errors = _page().apply_link_state("?c_cam_model=cubic&c_cam_na=3")
+    assert len(errors) == 2 and any("'c_cam_model'" in e and "root-polynomial" in e for e in errors)

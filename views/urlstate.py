@@ -350,7 +350,12 @@ COLOUR_TAB_LINK = (("c_colour", "Observed colour", "colour", "text"),
                    ("c_wafer", "Wafer diameter", "tools.settings.diameter_mm", "param"),
                    ("c_pixel", "Pixel size", "tools.settings.mm_per_px", "param"),
                    ("c_edge", "Edge exclusion", "tools.settings.edge_exclusion_mm", "param"),
-                   ("c_sites", "Sites", "tools.settings.pattern", "param"))
+                   ("c_sites", "Sites", "tools.settings.pattern", "param"),
+                   ("c_cam", "Camera calibration", "camcal.settings.method", "param"),
+                   ("c_cam_from", "Calibrate from", "camcal.settings.source", "param"),
+                   ("c_cam_model", "Calibration model", "camcal.settings.model", "param"),
+                   ("c_cam_na", "Objective NA", "camcal.settings.na", "param"),
+                   ("c_denoise", "Denoise", "camcal.settings.denoise", "param"))
 
 
 class _Fields:
