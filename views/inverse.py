@@ -673,7 +673,7 @@ class ColourToThickness:
             lab = self.camcal.box_lab(box)                # with the camera calibration in use, if chosen
             if lab is None:
                 lab = _lab_from_linear(box_mean_linear(self.photo, box) * self._gains(), s.illuminant_spec(),
-                                       s.observer)
+                                       s.observer).reshape(3)                   # one colour, whatever the shape
         except (InputError, _Stop) as exc:
             self.photo_msg.show_error(str(exc))
             return None
