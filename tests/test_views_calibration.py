@@ -358,3 +358,18 @@ def test_the_calibration_settings_travel_in_the_link_and_a_bad_one_is_named():
         "calibrated", "target", "root-polynomial", 0.15, "median")
     errors = _page().apply_link_state("?c_cam_model=cubic&c_cam_na=3")
     assert len(errors) == 2 and any("'c_cam_model'" in e and "root-polynomial" in e for e in errors)
+
+
+def test_under_a_per_user_login_the_calibration_is_saved_under_the_login(section, monkeypatch):
+    import views.library as vl
+
+    monkeypatch.setenv(vl.AUTH_ENV, "users")
+    monkeypatch.setattr(vl, "login_name", lambda: "jortiz")
+    data, boxes = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    _draw(section, boxes, STEPS_NM)
+    assert section.camcal.fit() is not None
+    section.camcal.save_name.value, section.camcal.save_user.value = "Scope", "someone else"
+    assert section.camcal.save()
+    e = section.camcal.library.list("camera_calibrations")[0]
+    assert (e.user, e.user_verified) == ("jortiz", True)

@@ -296,6 +296,9 @@ class CameraCalibrationPanel:
                                               css_classes=["fg-cal-save-name"], margin=(2, 5))
         self.save_user = pn.widgets.TextInput(label="Your name or initials", width=110, margin=(2, 5),
                                               css_classes=["fg-cal-save-user"])
+        from .library import VERIFIED_AUTH_MODES, auth_mode, login_name
+        if auth_mode() in VERIFIED_AUTH_MODES:            # saved under the login, as on the Lab library tab
+            self.save_user.param.update(value=login_name() or "", disabled=True, label="Saved under your login")
         self.save_button = pn.widgets.Button(label="Save calibration to library", color="light", width=210,
                                              margin=(4, 5), css_classes=["fg-cal-save"])
         self.picker = pn.widgets.Select(label="Saved calibrations", options={}, width=COLUMN_PX - 10, margin=(2, 5),
