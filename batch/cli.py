@@ -636,7 +636,8 @@ def load_camera_calibration(name, version=None, library=None) -> tuple[str, str]
     Raises InputError with a sentence: an unknown name (with the names there are), a corrupt or
     hand-made file, a library without a key, a folder that does not exist.
     """
-    from library.store import Library, ItemMissing, error_text, validate_camera_calibration
+    from library.store import (Library, ItemMissing, LibraryKeyError, error_text, load_or_create_key,
+                               validate_camera_calibration)
     from physics.errors import InputError
 
     if not isinstance(name, str) or not name.strip():
@@ -645,7 +646,13 @@ def load_camera_calibration(name, version=None, library=None) -> tuple[str, str]
     if not root.is_dir():
         raise InputError(f"The lab library folder {str(root)!r} does not exist; give --library FOLDER (the folder "
                          "the page's server uses) or set FRINGEGAUGE_LIBRARY.")
-    lib = Library(root)
+    try:                                  # the server's key, never a new one: a new key would trust nothing
+        key = load_or_create_key(library_root=root, create=False)
+    except LibraryKeyError as exc:
+        raise InputError(f"The lab library's key cannot be read, so its calibrations cannot be checked: {exc} Run the "
+                         "batch as the server's account, or set FRINGEGAUGE_LIBRARY_KEY_FILE to the server's key "
+                         "file.") from None
+    lib = Library(root, key=key)
     try:
         text = lib.load(CALIBRATION_KIND, name, version)
     except ItemMissing:

@@ -103,3 +103,12 @@ def test_a_hand_edited_calibration_is_refused_not_used(station, tmp_path):
     path.write_text(path.read_text().replace('"line-3 scope"', '"line-9 scope"'))
     with pytest.raises(InputError, match="cannot be loaded"):
         load_camera_calibration("Scope", library=tmp_path / "lab")
+
+
+def test_without_the_server_s_key_the_batch_refuses_and_makes_no_key(station, tmp_path, monkeypatch):
+    base, _ = station
+    missing = tmp_path / "keys" / "library.key"
+    monkeypatch.setenv("FRINGEGAUGE_LIBRARY_KEY_FILE", str(missing))
+    with pytest.raises(InputError, match="key cannot be read.*FRINGEGAUGE_LIBRARY_KEY_FILE"):
+        load_camera_calibration("Line 3 scope", library=base / "lab")
+    assert not missing.exists()
