@@ -34,7 +34,7 @@ model="matrix", flat_field=None, dark=None, ...) -> CameraCalibration``
     thickness), ``holdout_delta_e`` (each box predicted from the others), ``rms_delta_e``,
     ``colour_error_de``, ``condition_number``, ``kind`` ("reference"/"target"),
     ``flat_field`` (the FlatField it was made with, or None), metadata ``camera``, ``lamp``,
-    ``objective``, ``objective_na`` (float or None), ``date`` (strings), ``message``.
+    ``objective``, ``objective_na`` (float or None; also read as ``na``), ``date`` (strings), ``message``.
     ``xyz_from_linear(rgb, flat_field=None, box=None)`` applies it; ``lab_from_linear`` gives CIELAB;
     ``check_photo(photo)`` refuses a photo of another size; ``with_metadata(**fields)`` sets camera,
     lamp, objective, objective_na, date; ``to_dict()`` / ``CameraCalibration.from_dict()``
@@ -484,6 +484,11 @@ class CameraCalibration:
     @property
     def image_size(self) -> tuple:
         return int(self.width), int(self.height)
+
+    @property
+    def na(self) -> float | None:
+        """The objective's numerical aperture as recorded (``objective_na``; not a viewing cone of the map)."""
+        return self.objective_na
 
     @property
     def rms_delta_e(self) -> float:

@@ -120,6 +120,7 @@ def test_reference_calibration_recovers_the_camera(cal):
     assert cal.holdout_delta_e.shape == (5,)
     assert cal.image_size == (W, H) and cal.kind == "reference" and cal.flat_field is not None
     assert "calibration from 5 boxes" in cal.message
+    assert (cal.camera, cal.lamp, cal.objective, cal.na, cal.date) == ("cam A", "ring LED", "5x", 0.15, "2026-12-04")
 
 
 def test_calibrated_map_reads_a_wedge(cal):
