@@ -234,7 +234,7 @@ def parameters_at_bounds(result: FilmFitResult) -> tuple:
     out = []
     for name, lo, hi in zip(family.names, family.lower, family.upper) if family is not None else ():
         v, tol = result.parameters[name], AT_BOUND_FRACTION * (hi - lo)
-        if v - lo <= tol or hi - v <= tol:
+        if name not in result.fixed and (v - lo <= tol or hi - v <= tol):     # a held value is where it was put
             out.append(name)
     out += [name for name in ("roughness_nm", "spread_nm") if name in result.parameters
             and result.parameters[name] <= AT_ZERO_NM]

@@ -100,7 +100,7 @@ from .materials import CauchyMaterial, ConstantMaterial, HC_EV_NM, Material, Sel
 from .stack import Layer, Stack, _check_layer_index, _check_polarization, sweep
 
 __all__ = ["fit_film", "FilmFitResult", "FitCancelled", "MODELS", "SLITS", "CORRELATION_WARN", "POINTS_PER_PARAMETER",
-           "slit_matrix"]
+           "slit_matrix", "model_parameters", "PARAMETER_UNITS"]
 
 #: Dispersion models :func:`fit_film` fits ("fixed": optical constants as in the stack; "sellmeier" has one
 #: term, "sellmeier-2" two).
@@ -287,9 +287,99 @@ def _tauc_lorentz_model():
                   (1.0, 1.5, 20.0, 3.0, 0.5), (3.0, 6.0, 300.0, 12.0, 4.0), build, read)
 
 
+#: Unit of each dispersion parameter ("" for a pure number).
+PARAMETER_UNITS = {"A": "", "B_um2": "µm²", "C_um4": "µm⁴", "k_amplitude": "", "k_exponent_per_ev": "1/eV",
+                   "B1": "", "C1_um2": "µm²", "B2": "", "C2_um2": "µm²", "eps_inf": "", "gap_ev": "eV",
+                   "amplitude_ev": "eV", "center_ev": "eV", "broadening_ev": "eV"}
+
 _MODELS = {"cauchy": _cauchy_model(False), "cauchy-urbach": _cauchy_model(True), "sellmeier": _sellmeier_model(1),
            "sellmeier-2": _sellmeier_model(2),
            "tauc-lorentz": _tauc_lorentz_model()}
+
+
+def model_parameters(model: str) -> list[tuple[str, float, float, float, str]]:
+    """The dispersion parameters ``model`` fits: (name, generic start, lowest, highest, unit) each, in the order
+    :func:`fit_film` takes them. The start is the middle of the box the fit draws its starts from (a generic film of
+    that model, not any material's page); lowest and highest are the model's physical range (``bounds``, ``start``
+    and ``fixed`` of :func:`fit_film` must lie inside it). Model "fixed" has none (an empty list)."""
+    if model not in MODELS:
+        raise InputError(f"model must be one of {', '.join(MODELS)}; got {model!r}.")
+    family = _MODELS.get(model)
+    if family is None:
+        return []
+    return [(nm, 0.5 * (dlo + dhi), lo, hi, PARAMETER_UNITS.get(nm, ""))
+            for nm, lo, hi, dlo, dhi in zip(family.names, family.lower, family.upper, family.draw_lower,
+                                             family.draw_upper)]
+
+
+def _named(what: str, values, family, model):
+    """``values`` ({name: number}) checked: names of ``model``'s parameters, finite numbers; as floats."""
+    if values is None:
+        return {}
+    if not isinstance(values, dict):
+        raise InputError(f"{what} must be a dict of {{parameter name: value}}; got {type(values).__name__}.")
+    names = family.names if family else ()
+    unknown = [k for k in values if k not in names]
+    if unknown:
+        raise InputError(f"{what} names {', '.join(map(repr, unknown))}, which model {model!r} does not have; its "
+                         f"parameters are {', '.join(names) or 'none (fit a dispersion model to fix or start them)'}.")
+    return {k: float(require_finite(f"{what}[{k!r}]", v)) for k, v in values.items()}
+
+
+def _outside(what, model, nm, v, lo, hi, given):
+    """The sentence for a start or fixed value ``v`` of ``nm`` outside (``lo``, ``hi``): the bounds given
+    (``nm`` in ``given``) or the model's range."""
+    if nm in given:
+        return InputError(f"The {what} {model} parameter {nm} = {v:g} lies outside the bounds you gave "
+                          f"({lo:g} to {hi:g}); widen bounds[{nm!r}] to include it, or choose a value inside them.")
+    return InputError(f"The {what} {model} parameter {nm} = {v:g} lies outside the range the fit searches "
+                      f"({lo:g} to {hi:g}); choose a value inside it.")
+
+
+def _held(family: _Model, fixed: dict, model: str, given) -> _Model:
+    """``family`` with the parameters in ``fixed`` held at their values: its names, bounds and draws are the free
+    ones', and ``build``/``read`` fill in the held values."""
+    for i, nm in enumerate(family.names):
+        if nm in fixed and not family.lower[i] <= fixed[nm] <= family.upper[i]:
+            raise _outside("fixed", model, nm, fixed[nm], family.lower[i], family.upper[i], given)
+    free = [i for i, nm in enumerate(family.names) if nm not in fixed]
+    if not free:
+        raise InputError(f"Every parameter of the {model} model is fixed ({', '.join(family.names)}), so there is "
+                         "nothing of the film's optical constants left to fit: free at least one, or fit the "
+                         "thickness alone with model='fixed' and a layer material of these constants.")
+    full = np.array([fixed.get(nm, 0.0) for nm in family.names], dtype=float)
+    inner_build, inner_read = family.build, family.read
+
+    def build(p, band):
+        q = full.copy()
+        q[free] = p
+        return inner_build(q, band)
+
+    def read(m, band):
+        p = inner_read(m, band)
+        return None if p is None else tuple(np.asarray(p, dtype=float)[free])
+
+    pick = lambda v: tuple(v[i] for i in free)                                   # noqa: E731
+    return _Model(pick(family.names), pick(family.lower), pick(family.upper), pick(family.draw_lower),
+                  pick(family.draw_upper), build, read)
+
+
+def _with_held(result, i_mat, all_names, fixed):
+    """``result`` with the held parameters put back among the model's: in ``parameters`` at their values, with
+    uncertainty 0 and no correlation, and named in ``fixed``."""
+    names = list(result.parameter_names)
+    full = names[:i_mat[0]] + list(all_names) + names[i_mat[-1] + 1:]
+    old = [names.index(nm) if nm not in fixed else None for nm in full]
+    corr = np.eye(len(full))
+    for a, i in enumerate(old):
+        for b, j in enumerate(old):
+            if i is not None and j is not None:
+                corr[a, b] = result.correlation[i, j]
+    return dataclasses.replace(
+        result, parameter_names=tuple(full), correlation=corr,
+        parameters={nm: fixed[nm] if nm in fixed else result.parameters[nm] for nm in full},
+        uncertainties={nm: 0.0 if nm in fixed else result.uncertainties[nm] for nm in full},
+        fixed=tuple(nm for nm in all_names if nm in fixed))
 
 
 class FitCancelled(Exception):
@@ -323,6 +413,8 @@ class FilmFitResult:
         then the first spectrum's, and ``parameters`` holds ``thickness_nm[i]`` (and ``scale[i]``,
         ``offset[i]`` when free) for each spectrum i
     bandwidth_nm, slit : the instrument bandwidth (FWHM, nm) and slit shape the model was convolved with
+    fixed : names of the model parameters held at the values given (``fixed`` of :func:`fit_film`): in
+        ``parameters`` and ``parameter_names`` with uncertainty 0 and correlation 0 with every other parameter
     """
 
     thickness_nm: float
@@ -344,6 +436,7 @@ class FilmFitResult:
     thickness_uncertainties_nm: tuple = ()
     bandwidth_nm: float = 0.0
     slit: str = "gaussian"
+    fixed: tuple = ()
 
     def n_at(self, wavelength_nm) -> np.ndarray:
         """Refractive index n of the fitted film at vacuum wavelengths (nm)."""
@@ -490,10 +583,17 @@ def _evaluate(st, film, specs, groups, d, sigma, polarization):
     return out
 
 
-def _start(family: _Model, start: Material, band, model: str, given=()):
+def _start(family: _Model, start: Material, band, model: str, given=(), chosen=None):
     """The model's parameters for the stack's own layer material: read, or fitted to its n and k (``given``: the
-    names whose bounds the caller set)."""
+    names whose bounds the caller set; ``chosen``: {name: start} the caller set, in place of those)."""
     p = family.read(start, band)
+    if chosen:
+        if p is None:
+            p = _start(family, start, band, model)
+        p = np.array([chosen.get(nm, v) for nm, v in zip(family.names, p)], dtype=float)
+        for nm, v, lo, hi in zip(family.names, p, family.lower, family.upper):
+            if nm in chosen and not lo <= v <= hi:
+                raise _outside("starting", model, nm, v, lo, hi, given)
     if p is not None:
         p = np.asarray(p, dtype=float)
         bad = [(nm, v, lo, hi) for nm, v, lo, hi in zip(family.names, p, family.lower, family.upper)
@@ -539,7 +639,7 @@ def _grid_for(material, window, spectra):
 def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thickness_nm=(0, 3000), angle_deg=0.0,
              polarization="unpolarized", roughness=False, spread=False, free_scale=False,
              free_offset=False, thickness_per_spectrum=False, bandwidth_nm=0.0, slit="gaussian", bounds=None,
-             progress=None, cancel=None) -> FilmFitResult:
+             progress=None, cancel=None, fixed=None, start=None) -> FilmFitResult:
     """Fit a film's thickness and optical constants to measured reflectance.
 
     Parameters
@@ -565,6 +665,11 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     slit : {"gaussian", "triangular"}  shape of the slit function
     bounds : dict or None  narrower (lo, hi) for any model parameter, "roughness_nm" or "spread_nm", inside the
         model's own range; the start must lie inside them
+    fixed : dict or None  {model parameter name: value} held at the value, not fitted (reported with uncertainty 0
+        and named in ``FilmFitResult.fixed``); inside the model's range and the bounds given. Fixing the index of a
+        thin transparent film, whose n and d trade, narrows its thickness. At least one model parameter stays free
+    start : dict or None  {model parameter name: value} the fit starts from in place of the layer material's
+        (the global search still draws its other starts across the bounds); inside the bounds
     progress : callable(fraction, text) or None  told how far the fit has come; it may raise to stop the fit
     cancel : callable returning bool, or an object with ``is_set()`` (threading.Event), or None
 
@@ -604,6 +709,7 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
         raise InputError(f"cancel must be a function returning True to stop, an object with is_set() (such as a "
                          f"threading.Event) or None; got {type(cancel).__name__}.")
     say = _Reporter(progress, cancel)
+    held, chosen = _named("fixed", fixed, _MODELS.get(model), model), _named("start", start, _MODELS.get(model), model)
     window = _window(thickness_nm, "thickness window")
     spectra = _spectra(wavelength_nm, reflectance, angle_deg, stack, layer, window)
     n_spec, each = len(spectra), bool(thickness_per_spectrum)
@@ -619,6 +725,10 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
     stack = _frozen(stack, layer, [g for s in spectra + coarse for g in (s.wl, s.fine)])
     family = _MODELS.get(model)
     family = _bounded(family, bounds, model, roughness, spread) if family is not None or bounds else family
+    all_names = family.names if family else ()
+    if held:
+        family = _held(family, held, model, tuple(bounds or ()))
+    chosen = {k: v for k, v in chosen.items() if k not in held}           # a held value is its own start
     n_mat = len(family.names) if family else 0
 
     names, lower, upper = [], [], []
@@ -663,7 +773,7 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
 
     hosts = [start_material] if family is None else None
     if family is not None:
-        p_start = _start(family, start_material, model_band, model, tuple(bounds or ()))
+        p_start = _start(family, start_material, model_band, model, tuple(bounds or ()), chosen)
         hosts = _draws(family, p_start, SAMPLES_PER_PARAMETER * n_mat)
     spread_start = float(np.clip(SPREAD_START_WAVES * band[0] / float(start_material.nk([band[0]]).real[0]),
                                  *spread_hi))
@@ -770,6 +880,8 @@ def fit_film(wavelength_nm, reflectance, stack, layer=0, *, model="cauchy", thic
                               window, f"layer {layer + 1}")
     result = dataclasses.replace(result, quality=quality, message=(result.message + " " + note).strip(),
                                  bandwidth_nm=bandwidth_nm, slit=slit)
+    if held:
+        result = _with_held(result, i_mat, all_names, held)
     s2 = 2.0 * best.cost / max(n_points - best.x.size, 1)
     for rival in finals[1:]:
         delta = 2.0 * (rival.cost - best.cost) / s2
