@@ -34,6 +34,7 @@ from bokeh.palettes import Cividis256
 from bokeh.plotting import figure
 
 from physics import InputError
+from physics.camera import MIN_BOXES
 from physics.imageio import MAX_BYTES as MAX_PHOTO_BYTES, load_image
 
 from . import workers
@@ -55,7 +56,8 @@ BOX_COLOUR = "#ffa500"
 #: The item kind in the lab library (:data:`library.store.KINDS`).
 LIBRARY_KIND = "camera_calibrations"
 #: Models offered, labelled for the page (the values are physics.camera's ``model`` names).
-MODELS = {"3x3 matrix + dark offset": "matrix", "root-polynomial (needs more boxes)": "root-polynomial"}
+MODELS = {f"3x3 matrix + dark offset ({MIN_BOXES['matrix']} boxes or more)": "matrix",
+          f"root-polynomial ({MIN_BOXES['root-polynomial']} boxes or more)": "root-polynomial"}
 #: Denoising offered before a calibrated map (keys of physics.camera.DENOISE_FILTERS): a median filter keeps
 #: a step's edge where it is and removes pixel noise.
 DENOISE = {"none": "none", "median 3 x 3 px": "median3", "median 5 x 5 px": "median", "median 7 x 7 px": "median7"}
@@ -929,10 +931,6 @@ def _lamp_name(state):
     """The lamp a calibration is made for: the explorer's illuminant as physics.camera takes it (a name; a
     halogen or custom lamp is a spectrum, which physics.camera refuses with a sentence)."""
     return state.illuminant_spec()
-
-
-def _model_label(model: str) -> str:
-    return next((k for k, v in MODELS.items() if v == model), model)
 
 
 def _station_note(st) -> str:
