@@ -373,3 +373,13 @@ def test_under_a_per_user_login_the_calibration_is_saved_under_the_login(section
     assert section.camcal.save()
     e = section.camcal.library.list("camera_calibrations")[0]
     assert (e.user, e.user_verified) == ("jortiz", True)
+
+
+def test_a_raw_file_that_cannot_be_read_is_a_sentence_and_the_photo_stays(section):
+    data, _ = _reference_photo(section)
+    section.load_photo(data, "steps.png")
+    damaged = b"II*\x00" + bytes(range(256)) * 8                      # a TIFF-like camera RAW header, then noise
+    assert not section.load_photo(damaged, "frame.dng")
+    msg = section.photo_msg.message.object
+    assert section.photo_msg.message.visible and "frame.dng:" in msg and msg.rstrip("</div>").endswith(".")
+    assert section.photo_name == "steps.png" and section.photo.width == 192
