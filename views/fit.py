@@ -239,7 +239,7 @@ class SpectrumFitSection:
     # ------------------------------------------------------------------ link
     def link_fields(self):
         """The settings a share link carries (never the uploaded spectra), in the order they are applied."""
-        return widget_fields(self, LINK_FIELDS)
+        return widget_fields(self, LINK_FIELDS) + [self.film.params.link_field()]
 
     # ------------------------------------------------------------------ explorer state
     def _sync_layers(self):

@@ -13,14 +13,16 @@ import re
 
 import numpy as np
 import panel as pn
+import param
 from bokeh.models import ColumnDataSource, Legend, LegendItem, LinearAxis, Range1d
 from bokeh.plotting import figure
 
 from physics import InputError
 from physics.filmcurves import fit_film_curves
-from physics.filmfit import BANDWIDTH_MAX_NM
+from physics.filmfit import BANDWIDTH_MAX_NM, model_parameters
 
 from .explorer import Field, TickBox, _esc, _label
+from .urlstate import LinkField
 from .state import parse_number
 
 #: The film models offered, in the page's words, and the fit_film model each runs.
@@ -96,6 +98,205 @@ def fit_film_reporting(reporter, **kwargs):
     return fit_film_curves(**kwargs, progress=reporter.report)
 
 
+#: Link key of the parameter table's edits, and the longest text it takes (five rows of four numbers fit in 200).
+PARAMS_LINK_KEY = "s_fp"
+PARAMS_LINK_MAX = 400
+
+
+def _number_text(v: float) -> str:
+    return f"{v:.6g}"
+
+
+class _Mark(param.Parameterized):
+    """Changes whenever the parameter table's edits do (the page address follows its ``value``)."""
+
+    value = param.String(default="")
+
+
+class ParameterTable:
+    """The chosen model's dispersion parameters, one row each: free or held, start (or held value), lowest and
+    highest, checked as typed; the fitted value ± 1σ beside each row after a fit. Edits are kept per model, so
+    switching models and back loses nothing."""
+
+    ROWS = max(len(model_parameters(m)) for m in FILM_MODELS.values())
+
+    def __init__(self):
+        self.model = "fixed"
+        self.edits = {}                 # model -> {name: [free, start text, lowest text, highest text]}
+        self.fitted = {}                # name -> (value, 1σ, held) of the last fit of this model
+        self.fitted_model = None
+        self._loading = False
+        self.mark = _Mark()
+        style = {"font-size": "12px"}
+        self.names = [pn.pane.HTML("", width=112, margin=(4, 2), styles=style) for _ in range(self.ROWS)]
+        self.free = [pn.widgets.Checkbox(value=True, width=22, margin=(10, 2), css_classes=["fg-fp-free"])
+                     for _ in range(self.ROWS)]
+        self.cells = [[pn.widgets.TextInput(value="", width=62, margin=(2, 2), css_classes=[f"fg-fp-{kind}"])
+                       for kind in ("start", "lo", "hi")] for _ in range(self.ROWS)]
+        self.rows = [pn.Row(self.names[i], self.free[i], *self.cells[i], margin=0, visible=False)
+                     for i in range(self.ROWS)]
+        self.header = pn.pane.HTML(
+            "<div style='font-size:11px;color:#555;display:grid;grid-template-columns:114px 26px 66px 66px 66px'>"
+            "<span>parameter</span><span>free</span><span>start</span><span>lowest</span><span>highest</span>"
+            "</div>", margin=(4, 5, 0, 5))
+        self.note = pn.pane.HTML("", margin=(0, 5), styles={"font-size": "11px", "color": "#555"})
+        self.message = pn.pane.HTML("", margin=(0, 5), visible=False, css_classes=["fg-error", "fg-fp-message"],
+                                    styles={"font-size": "12px", "color": "#a61b1b"})
+        self.from_fit = pn.widgets.Button(label="Start from the fit", color="light", width=150, margin=(2, 5),
+                                          visible=False, css_classes=["fg-fp-from-fit"])
+        self.from_fit.on_click(lambda *_: self.start_from_fit())
+        for i in range(self.ROWS):
+            self.free[i].param.watch(lambda e: self._edited(), "value")
+            for w in self.cells[i]:
+                w.param.watch(lambda e: self._edited(), "value")
+        self.panel = pn.Column(self.header, *self.rows, self.message, self.from_fit, self.note, margin=0,
+                               visible=False, css_classes=["fg-fp-table"])
+
+    # ------------------------------------------------------------------ rows
+    def defaults(self, model=None):
+        """{name: [free, start, lowest, highest]} of ``model``'s generic start and physical range."""
+        return {nm: [True, _number_text(s), _number_text(lo), _number_text(hi)]
+                for nm, s, lo, hi, _ in model_parameters(model or self.model)}
+
+    def rows_of(self, model=None) -> dict:
+        model = model or self.model
+        return {nm: list(self.edits.get(model, {}).get(nm, row)) for nm, row in self.defaults(model).items()}
+
+    def show_model(self, model: str):
+        """Fill the rows with ``model``'s parameters (its edits kept from before, else its defaults)."""
+        self.model = model
+        rows = self.rows_of(model)
+        self._loading = True
+        try:
+            for i in range(self.ROWS):
+                self.rows[i].visible = i < len(rows)
+            for i, (nm, (free, start, lo, hi)) in enumerate(rows.items()):
+                self.free[i].value = free
+                for w, text in zip(self.cells[i], (start, lo, hi)):
+                    w.value = text
+        finally:
+            self._loading = False
+        self.panel.visible = bool(rows)
+        self._refresh()
+
+    def _edited(self):
+        if self._loading:
+            return
+        names = list(self.defaults())
+        self.edits[self.model] = {nm: [bool(self.free[i].value)] + [w.value for w in self.cells[i]]
+                                  for i, nm in enumerate(names)}
+        self._refresh()
+        self.mark.value = self.link_text() or ""
+
+    def _refresh(self):
+        names = list(self.defaults())
+        units = {nm: u for nm, _, _, _, u in model_parameters(self.model)}
+        for i, nm in enumerate(names):
+            label = PARAMETER_LABELS.get(nm, (nm,))[0]
+            unit = f" ({units[nm]})" if units[nm] else ""
+            fit = ""
+            if self.fitted_model == self.model and nm in self.fitted:
+                v, sd, held = self.fitted[nm]
+                fit = ("<br><span style='color:#1e6b2e'>held at " + f"{v:.4g}</span>" if held else
+                       "<br><span style='color:#1e6b2e'>fit " + " ± ".join(value_text(v, sd)) + "</span>")
+            self.names[i].object = f"{_esc(label)}{_esc(unit)}{fit}"
+        self.from_fit.visible = self.fitted_model == self.model and bool(self.fitted)
+        try:
+            self.values()
+        except ValueError as exc:
+            self.message.object, self.message.visible = _esc(str(exc)), True
+        else:
+            self.message.object, self.message.visible = "", False
+        held = [PARAMETER_LABELS.get(nm, (nm,))[0] for nm in names if not self.rows_of()[nm][0]]
+        self.note.object = (("Unticked: held at the start value, not fitted (" + ", ".join(held) + "). ")
+                            if held else "Untick a parameter to hold it at its start value. ") + \
+            "The search also tries starts spread between each lowest and highest."
+
+    def values(self):
+        """(fixed, start, bounds) for :func:`physics.fit_film` from the rows; raises ValueError with the sentence."""
+        fixed, start, bounds = {}, {}, {}
+        for (nm, s, lo, hi, unit), (free, *texts) in zip(model_parameters(self.model), self.rows_of().values()):
+            label = PARAMETER_LABELS.get(nm, (nm,))[0]
+            nums = []
+            for what, text in zip(("start" if free else "held value", "lowest", "highest"), texts):
+                try:
+                    v = float(text.strip().replace("−", "-"))
+                except ValueError:
+                    v = float("nan")
+                if not np.isfinite(v):
+                    raise ValueError(f"{label}: the {what} “{text.strip()[:20]}” is not a number; type one such "
+                                     f"as {_number_text(s)}.")
+                nums.append(v)
+            v, a, b = nums
+            if not lo <= a < b <= hi:
+                raise ValueError(f"{label}: lowest {a:g} and highest {b:g} must rise and lie inside the model's "
+                                 f"range, {lo:g} to {hi:g}{(' ' + unit) if unit else ''}.")
+            if not a <= v <= b:
+                raise ValueError(f"{label}: the {'start' if free else 'held value'} {v:g} lies outside lowest "
+                                 f"{a:g} to highest {b:g}; move it inside, or widen them.")
+            (start if free else fixed)[nm] = v
+            if (a, b) != (lo, hi):
+                bounds[nm] = (a, b)
+        if model_parameters(self.model) and not start:
+            raise ValueError("Every parameter is held, so there is nothing of the film's n and k to fit: tick at "
+                             "least one as free, or choose the film model “fixed constants”.")
+        return fixed, start, bounds
+
+    # ------------------------------------------------------------------ fit
+    def show_fit(self, result):
+        self.fitted_model = result.model
+        held = set(getattr(result, "fixed", ()))
+        self.fitted = {nm: (result.parameters[nm], result.uncertainties[nm], nm in held)
+                       for nm in self.defaults(result.model) if nm in result.parameters}
+        self._refresh()
+
+    def clear_fit(self):
+        self.fitted, self.fitted_model = {}, None
+        self._refresh()
+
+    def start_from_fit(self):
+        """Copy the fitted values into the starts of the free rows."""
+        if self.fitted_model != self.model:
+            return
+        for i, nm in enumerate(self.defaults()):
+            if nm in self.fitted and not self.fitted[nm][2]:
+                self.cells[i][0].value = _number_text(self.fitted[nm][0])
+
+    # ------------------------------------------------------------------ link
+    def link_text(self):
+        """The rows that differ from the defaults, as ``name=start/lowest/highest`` (``!name`` when held), joined
+        by ``;``; None when none do."""
+        default = self.defaults()
+        parts = [("" if row[0] else "!") + f"{nm}={'/'.join(t.strip() for t in row[1:])}"
+                 for nm, row in self.rows_of().items() if row != default[nm]]
+        return ";".join(parts) or None
+
+    def apply_link(self, text: str):
+        """Apply a link's rows; a sentence for the items not applied (the others are)."""
+        if len(text) > PARAMS_LINK_MAX:
+            return f"it is {len(text)} characters long, more than {PARAMS_LINK_MAX}"
+        rows, bad = self.rows_of(), []
+        for item in filter(None, text.split(";")):
+            nm, _, vals = item.partition("=")
+            held, nm = nm.startswith("!"), nm.lstrip("!")
+            texts = vals.split("/")
+            if nm not in rows or len(texts) != 3:
+                bad.append(item[:30])
+                continue
+            rows[nm] = [not held] + texts
+        self.edits[self.model] = rows
+        self.show_model(self.model)
+        self.mark.value = self.link_text() or ""
+        if bad:
+            names = ", ".join(self.defaults()) or "none"
+            return (f"{', '.join(bad)} is not name=start/lowest/highest of a parameter of this film model "
+                    f"({names})")
+        return None
+
+    def link_field(self) -> LinkField:
+        return LinkField(PARAMS_LINK_KEY, "Film model parameters", self.link_text, self.apply_link, self.mark)
+
+
 def settings_key(state) -> tuple:
     """The explorer settings a spectrum fit depends on: stack, unknown layer, angle, polarization."""
     return state.stack_json, state.swept_layer, state.angle_deg, state.polarization
@@ -145,6 +346,8 @@ class FilmModelEditor:
                               label_text_font_size="11px", margin=0, padding=2)
         f.add_layout(self._legend, "above")
         self.nk_fig = f
+        self.params = ParameterTable()
+        self.model.param.watch(lambda e: self.params.show_model(e.new), "value")
         self.model.param.watch(lambda e: self._show_hint(), "value")
         self.roughness.param.watch(lambda e: self._show_hint(), "value")
         self.spread.param.watch(lambda e: self._show_hint(), "value")
@@ -195,7 +398,7 @@ class FilmModelEditor:
 
     def controls(self):
         return pn.Column(pn.pane.HTML("<h3 style='margin:10px 5px 2px;font-size:15px'>Film model</h3>"),
-                         self.model, self.roughness, self.spread,
+                         self.model, self.params.panel, self.roughness, self.spread,
                          pn.Row(self.bandwidth.input, self.slit, margin=0), self.bandwidth.message, self.hint,
                          margin=0)
 
@@ -222,7 +425,14 @@ class FilmModelEditor:
         if wl.size > MAX_FILM_POINTS:
             pick = np.unique(np.linspace(0, wl.size - 1, MAX_FILM_POINTS).round().astype(int))
             wl, R = wl[pick], R[pick]
-        return dict(wavelength_nm=wl, reflectance=R, stack=args["stack"], layer=args["layer"],
+        extra = {}
+        if self.model.value != "fixed":
+            try:
+                fixed, start, bounds = self.params.values()
+            except ValueError as exc:
+                raise ValueError(f"Film model parameters: {exc}") from None
+            extra = dict(start=start, **({"fixed": fixed} if fixed else {}), **({"bounds": bounds} if bounds else {}))
+        return dict(**extra, wavelength_nm=wl, reflectance=R, stack=args["stack"], layer=args["layer"],
                     model=self.model.value, thickness_nm=args["thickness_nm"], angle_deg=args["angle_deg"],
                     polarization=args["polarization"], roughness=bool(self.roughness.value),
                     spread=bool(self.spread.value), free_scale=args["free_scale"], free_offset=args["free_offset"],
@@ -237,6 +447,7 @@ class FilmModelEditor:
         self.nk_src.data = dict(wl=[], n=[], n_lo=[], n_hi=[], k=[], k_lo=[], k_hi=[])
         self.nk_fig.visible = False
         self.section.scan_fig.visible = True
+        self.params.clear_fit()
 
     def show(self, result, curves, args, file_name: str):
         """Show a film fit: the verdict, the parameter table, the spectra and the n, k plot."""
@@ -255,6 +466,7 @@ class FilmModelEditor:
         s.draw_film_curves(curves, f"Measured ({file_name}) and fitted: "
                                    f"d = {' ± '.join(value_text(result.thickness_nm, result.uncertainty_nm))} nm")
         s.scan_fig.visible = False
+        self.params.show_fit(result)
         if fitted_model:
             self._draw_nk(curves, result)
         else:
@@ -293,8 +505,9 @@ class FilmModelEditor:
                          + " nm")
         if r.bandwidth_nm:
             lines.append(f"model read through the instrument's {r.bandwidth_nm:g} nm {r.slit} slit (FWHM)")
-        free = len(r.parameter_names)
-        lines.append(f"rms residual {100 * r.rms:.3g} % over {r.n_points} points, {free} free parameters")
+        free = len(r.parameter_names) - len(r.fixed)
+        lines.append(f"rms residual {100 * r.rms:.3g} % over {r.n_points} points, {free} free parameters"
+                     + (f" ({', '.join(PARAMETER_LABELS.get(p, (p,))[0] for p in r.fixed)} held)" if r.fixed else ""))
         if r.message:
             lines.append(f"⚠ {_esc(page_text(r.message))}")
         if c.at_bounds:
@@ -314,8 +527,11 @@ class FilmModelEditor:
             mark = ""
             if name in c.at_bounds:                 # the ± says little there: the value in full, the ± short
                 v, s, mark = f"{factor * r.parameters[name]:.4g}", f"{factor * r.uncertainties[name]:.2g}", " (at its limit)"
+            pm = f"± {s}"
+            if name in r.fixed:                     # held at the value given: no ±
+                v, pm = f"{factor * r.parameters[name]:.6g}", "held, not fitted"
             rows.append(f"<tr><td>{_esc(label)}{mark}</td><td style='text-align:right'>{v}</td>"
-                        f"<td>± {s}</td><td>{_esc(unit)}</td></tr>")
+                        f"<td>{pm}</td><td>{_esc(unit)}</td></tr>")
         band = f"{c.wavelength_nm[0]:g}–{c.wavelength_nm[-1]:g} nm"
         return ("<table class='fg-fit-table fg-fit-params' style='font-size:13px' cellpadding='2'>"
                 "<tr><th style='text-align:left'>fitted parameter</th><th>value</th><th>1σ</th><th></th></tr>"
@@ -358,7 +574,8 @@ class FilmModelEditor:
                  f"# layer {a['layer'] + 1}, film model: {r.model}; rms residual (fraction): {r.rms:.6g}; "
                  f"quality: {r.quality}"
                  + (f"; instrument bandwidth {r.bandwidth_nm:g} nm FWHM, {r.slit} slit" if r.bandwidth_nm else "")]
-        lines += [f"# {name}: {r.parameters[name]:.10g} +/- {r.uncertainties[name]:.3g} (1 sigma)"
+        lines += [f"# {name}: {r.parameters[name]:.10g} "
+                  + ("(held, not fitted)" if name in r.fixed else f"+/- {r.uncertainties[name]:.3g} (1 sigma)")
                   for name in r.parameter_names]
         if r.message:
             lines.append(f"# note: {page_text(r.message)}")
