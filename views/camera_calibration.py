@@ -34,6 +34,7 @@ from bokeh.palettes import Cividis256
 from bokeh.plotting import figure
 
 from physics import InputError
+from physics import imageio as _imageio
 from physics.camera import MIN_BOXES
 from physics.imageio import MAX_BYTES as MAX_PHOTO_BYTES, load_image
 
@@ -63,8 +64,11 @@ MODELS = {f"3x3 matrix + dark offset ({MIN_BOXES['matrix']} boxes or more)": "ma
 DENOISE = {"none": "none", "median 3 x 3 px": "median3", "median 5 x 5 px": "median", "median 7 x 7 px": "median7"}
 #: Width of the section (px), the photo column's.
 COLUMN_PX = 330
-#: Photo files a flat field may come from: those the colour tab's photo drop zone takes.
-PHOTO_TYPES = [".jpg", ".jpeg", ".png", ".tif", ".tiff"]
+#: Camera RAW file endings the photo reader takes (``physics.imageio.RAW_EXTENSIONS``; none where it reads no RAW).
+RAW_TYPES = list(getattr(_imageio, "RAW_EXTENSIONS", ()))
+#: Photo files the colour tab's photo drop zone and the flat-field drop zone take, and the words for them.
+PHOTO_TYPES = [".jpg", ".jpeg", ".png", ".tif", ".tiff", *RAW_TYPES]
+PHOTO_KINDS_TEXT = "JPEG, PNG or TIFF, 8 or 16 bit" + (", or camera RAW / DNG" if RAW_TYPES else "")
 #: Fallback label when the page gives no name to a calibration fitted here.
 FITTED_HERE = "fitted on this page"
 

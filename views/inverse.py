@@ -39,7 +39,7 @@ from .figures import RangeHolder
 from .colour_answer import (CUSTOM_READING, READING_PRESETS, ColourReading, _searched_stack_text,  # noqa: F401
                             _tolerance_verdict, _viewing_text)
 from .photo_reading import PhotoReading
-from .camera_calibration import CameraCalibrationPanel, photo_decoding_text
+from .camera_calibration import PHOTO_KINDS_TEXT, RAW_TYPES, CameraCalibrationPanel, photo_decoding_text
 from .uploads import CappedDropper, UploadReader
 from .state import ANGLE_MAX_DEG, THICKNESS_LIMITS_NM, compute_strip, parse_number
 
@@ -155,7 +155,7 @@ class ColourToThickness:
         self.dropper = CappedDropper(MAX_UPLOAD_BYTES, locked(lambda name, data: self.load_photo(data, name)),
                                      locked(self.photo_reader.refuse), what="The photo",
                                      accepted_filetypes=["image/jpeg", "image/png", "image/tiff", ".tif", ".tiff",
-                                                         ".jpg", ".jpeg", ".png"],
+                                                         ".jpg", ".jpeg", ".png", *RAW_TYPES],
                                      height=110, sizing_mode="stretch_width", margin=(2, 5),
                                      css_classes=["fg-photo-drop"])
         self.mode = pn.widgets.RadioBoxGroup(options={"calibration box": "calib", "region of interest": "roi",
@@ -943,7 +943,7 @@ class ColourToThickness:
                             pn.pane.Bokeh(self.strip_fig, sizing_mode="stretch_width"), sizing_mode="stretch_width")
         photo_controls = pn.Column(
             pn.pane.HTML("<h3 style='margin:6px 5px 2px'>A photo to a thickness map</h3>"),
-            _label("Photo (JPEG, PNG or TIFF, 8 or 16 bit)"), self.dropper, self.photo_msg.message,
+            _label(f"Photo ({PHOTO_KINDS_TEXT})"), self.dropper, self.photo_msg.message,
             _label("Dragging or tapping on the photo sets"), self.mode,
             self.camcal.panel(quick=pn.Column(_label("The calibration box shows"), self.reference, self.grey.view(),
                                               self.box_info, margin=0)),
