@@ -267,8 +267,12 @@ def test_tiff_8bit_jpeg_compressed():
     assert np.abs(photo.rgb.astype(int) - a).max() <= 4
 
 
-def test_tiff_16bit_planar_refused_with_advice():
-    refused(tiff(rgb16(), planar=True), "plane", "interleaved", "16-bit PNG")
+@pytest.mark.parametrize("deflate", [False, True])
+def test_tiff_16bit_planar_is_read_by_tifffile(deflate):
+    a = np.random.default_rng(21).integers(0, 65536, (6, 9, 3), dtype=np.uint16)   # leaves RNG's sequence alone
+    photo = load_image(tiff(a, planar=True, deflate=deflate))
+    _check(photo, a, "TIFF")
+    assert "tifffile" in photo.decoding and photo.linear
 
 
 @pytest.mark.parametrize("extra", [0, 1, 2])
