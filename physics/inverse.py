@@ -751,7 +751,7 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
         path = _true_colour_path(path) if calibrated else path       # calibrated XYZ is not gamut-clipped
         what = "pixels"
     else:
-        codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth)
+        codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth, photo.linear)
         lab = _lab_from_linear(lin * gains, illuminant, observer)
         what = "distinct colours"
     n = len(lab)
