@@ -56,7 +56,8 @@ PARAMETER_LABELS = {
 NK_TITLE = "Fitted n and k of the film"
 #: The fit's API words and how the page says them (the page has a model list and tick boxes, not keywords).
 PAGE_WORDS = (("(model='fixed' with a known material)",
-               "(film model “fixed constants”, with the film's known material in the film explorer)"),
+               "(untick the index's parameters in the table under “Film model” and type their known values, or "
+               "choose the film model “fixed constants” with the film's known material in the film explorer)"),
               ("(model='fixed', no roughness or spread, no free scale or offset)",
                "(film model “fixed constants”, no surface roughness or thickness spread, no free scale or offset)"),
               ("fit the top layer (layer=0) with roughness=True",
@@ -98,6 +99,16 @@ def fit_film_reporting(reporter, **kwargs):
     return fit_film_curves(**kwargs, progress=reporter.report)
 
 
+#: Each model's formula, said above its parameter table (as the models are defined in physics.filmfit).
+MODEL_FORMULAS = {
+    "cauchy": "n = A + B/λ² + C/λ⁴ (λ in µm), k = 0.",
+    "cauchy-urbach": "n = A + B/λ² + C/λ⁴ (λ in µm); k = k₀·exp(s·(E − E₀)), k₀ its value at the band's short "
+                     "end (photon energy E₀), s the Urbach slope (1/eV).",
+    "sellmeier": "n² = 1 + B₁λ²/(λ² − C₁) (λ in µm), k = 0.",
+    "sellmeier-2": "n² = 1 + B₁λ²/(λ² − C₁) + B₂λ²/(λ² − C₂) (λ in µm), k = 0.",
+    "tauc-lorentz": "ε₂: a Tauc absorption edge at Eg times a Lorentz peak (amplitude A at E₀, broadening C); "
+                    "ε₁ = ε∞ + its Kramers-Kronig integral.",
+}
 #: Link key of the parameter table's edits, and the longest text it takes (five rows of four numbers fit in 200).
 PARAMS_LINK_KEY = "s_fp"
 PARAMS_LINK_MAX = 400
@@ -208,9 +219,12 @@ class ParameterTable:
         else:
             self.message.object, self.message.visible = "", False
         held = [PARAMETER_LABELS.get(nm, (nm,))[0] for nm in names if not self.rows_of()[nm][0]]
-        self.note.object = (("Unticked: held at the start value, not fitted (" + ", ".join(held) + "). ")
-                            if held else "Untick a parameter to hold it at its start value. ") + \
-            "The search also tries starts spread between each lowest and highest."
+        self.note.object = (MODEL_FORMULAS.get(self.model, "") + " "
+                            + (("Unticked: held at the start value, not fitted (" + ", ".join(held) + "). ") if held
+                               else "Untick a parameter to hold it at its start value (a thin film's index: A and "
+                                    "B at known values). " if self.model.startswith("cauchy") else
+                               "Untick a parameter to hold it at its start value. ")
+                            + "The search also tries starts spread between each lowest and highest.")
 
     def values(self):
         """(fixed, start, bounds) for :func:`physics.fit_film` from the rows; raises ValueError with the sentence."""
@@ -316,7 +330,7 @@ class FilmModelEditor:
                                        margin=(2, 5), css_classes=["fg-fit-model"])
         self.roughness = TickBox("Surface roughness (50 % void top layer)")
         self.spread = TickBox("Thickness spread in the spot")
-        self.bandwidth = Field("Instrument bandwidth, FWHM (nm)", width=140, css="fg-fit-bandwidth")
+        self.bandwidth = Field("Bandwidth, FWHM (nm)", width=140, css="fg-fit-bandwidth")
         self.bandwidth.set_text("0")
         self.slit = pn.widgets.Select(label="Slit shape", options=SLIT_SHAPES, value="gaussian", width=150,
                                       margin=(2, 5), css_classes=["fg-fit-slit"])
