@@ -87,3 +87,15 @@ def test_the_point_count_check_counts_only_free_parameters():
         fit_film(wl, np.full(wl.size, 0.3), START, model="cauchy")
     r = fit_film(wl, np.full(wl.size, 0.3), START, model="cauchy", fixed={"C_um4": 0.0})
     assert r.fixed == ("C_um4",)
+
+
+def test_a_wafer_map_holds_a_parameter_shared_by_its_points():
+    """Two points of one wafer (invented: a Cauchy film n = 1.98 + 0.018/λ², λ in µm, 300 and 320 nm on Si, no
+    noise) sharing a dispersion whose C is held at 0: each point's thickness back, C reported as held."""
+    wl = np.linspace(400.0, 1000.0, 150)
+    spectra = [Stack([Layer(CauchyMaterial(1.98, 0.018), d)], "Si", ambient=1.0).reflectance(wl) for d in (300, 320)]
+    r = fit_film([wl, wl], spectra, START, model="cauchy", thickness_per_spectrum=True, fixed={"C_um4": 0.0},
+                 free_scale=True)
+    assert r.thicknesses_nm == pytest.approx((300.0, 320.0), abs=0.01)
+    assert r.fixed == ("C_um4",) and r.parameter_names[:3] == ("A", "B_um2", "C_um4")
+    assert r.correlation.shape == (7, 7) and r.uncertainties["C_um4"] == 0.0
