@@ -78,8 +78,11 @@ MAX_SEEDS = 16
 MAX_CORRECTION_NM = 0.75
 #: Largest first-order move (path points) of a seed from a cell centre to a vertex before the descent.
 MAX_SHIFT = 16
-#: Colours per chunk of the per-colour pass (a few MB of working arrays; a 50,000-colour call is shared by two threads).
-CHUNK = 32_768
+#: Colours per chunk of the per-colour pass (a few MB of working arrays).
+CHUNK = 65_536
+#: Chunks from which the per-colour pass runs in threads (below, thread start-up and the interpreter lock
+#: cost more than a second core gives).
+PARALLEL_SPANS = 4
 #: Tables kept (one per colour path, least recently used dropped first); each holds at most a few hundred MB.
 TABLES_CACHED = 3
 #: Step (CIELAB units) of the finite differences of ΔE00² (the metric and the gradients).
@@ -163,14 +166,16 @@ def delta_e_2000_fast(lab1, lab2, dtype=np.float64) -> np.ndarray:
 
 def lab_from_linear(lin, matrix, white_xyz, dtype=np.float32) -> np.ndarray:
     """CIELAB of linear RGB (n, 3) through a 3x3 matrix to XYZ, relative to a white: :func:`lab_from_xyz`
-    of ``lin @ matrix.T``, channel by channel in ``dtype`` and in chunks (fast and lean on millions)."""
+    of ``lin @ matrix.T``, channel by channel in ``dtype``, in chunks shared by two threads (fast and lean on
+    millions of pixels)."""
     lin = np.asarray(lin).reshape(-1, 3)
     M = np.asarray(matrix, dtype=float)
     white = np.asarray(white_xyz, dtype=float)
     white = white / white[1]
     out = np.empty(lin.shape, dtype=dtype)
     eps, k, c = (6.0 / 29.0) ** 3, 1.0 / (3 * (6.0 / 29.0) ** 2), 4.0 / 29.0
-    for a in range(0, lin.shape[0], 1 << 18):
+
+    def part(a):
         x = lin[a:a + (1 << 18)].astype(dtype, copy=False)
         f = []
         for row in range(3):
@@ -181,6 +186,14 @@ def lab_from_linear(lin, matrix, white_xyz, dtype=np.float32) -> np.ndarray:
         o[:, 0] = 116.0 * f[1] - 16.0
         o[:, 1] = 500.0 * (f[0] - f[1])
         o[:, 2] = 200.0 * (f[1] - f[2])
+
+    starts = range(0, lin.shape[0], 1 << 18)
+    if len(starts) > 1:                                         # numpy releases the GIL: two cores share it
+        with ThreadPoolExecutor(2) as pool:
+            list(pool.map(part, starts))
+    else:
+        for a in starts:
+            part(a)
     return out
 
 
@@ -375,8 +388,9 @@ class ColourTable:
     def _records(self, q, i1, i2):
         """Answers at colours q (m, 3) with best path index i1 and best-other index i2 (-1 = none): (m, 33).
 
-        Layout: q (3); then for best and other: thickness τ (nm, parabola-refined), ΔE00² at q (refined),
-        gradient g of ΔE00² in the observed colour (3, central differences), w (3), A (6: xx xy xz yy yz zz), order.
+        Layout: q (3); then for best and other: thickness τ (nm, parabola-refined), w (3), ΔE00² at q
+        (refined), its gradient g in the observed colour (3, central differences), A as the coefficients of
+        dx², dx dy, dx dz, dy², dy dz, dz² (6), order: so that ΔE00² = [1, Δ, products of Δ] · record[4:14].
         """
         m = q.shape[0]
         out = np.zeros((m, 33))
@@ -403,11 +417,12 @@ class ColourTable:
                 e = np.zeros(3)
                 e[k] = FD_STEP
                 g[:, k] = (self._f(q + e, p) - self._f(q - e, p)) / (2 * FD_STEP)
+            A = self.A6[i] * np.array([1.0, 2.0, 2.0, 1.0, 2.0, 1.0])      # coefficients of the products
             out[:, base] = np.where(none, np.nan, tau)
-            out[:, base + 1] = np.where(none, np.inf, fmin)
-            out[:, base + 2:base + 5] = np.where(none[:, None], 0.0, g)
-            out[:, base + 5:base + 8] = np.where(none[:, None], 0.0, self.w[i])
-            out[:, base + 8:base + 14] = np.where(none[:, None], 0.0, self.A6[i])
+            out[:, base + 1:base + 4] = np.where(none[:, None], 0.0, self.w[i])
+            out[:, base + 4] = np.where(none, np.inf, fmin)
+            out[:, base + 5:base + 8] = np.where(none[:, None], 0.0, g)
+            out[:, base + 8:base + 14] = np.where(none[:, None], 0.0, A)
             out[:, base + 14] = np.where(none, 0, self.order[i])
         return out.astype(np.float32)
 
@@ -462,7 +477,7 @@ class ColourTable:
     def _slots(self, lab):
         """Slot of every colour (m, 3) in the table, building what is missing; -1 for colours outside it."""
         # vertices sit at _LO + v * FINE_STEP; vertex v belongs to coarse cell v // FINE_PER_COARSE
-        v = np.floor((lab - _LO) / FINE_STEP + 0.5).astype(np.int64)
+        v = np.floor((lab - _LO.astype(lab.dtype)) * lab.dtype.type(1 / FINE_STEP) + 0.5).astype(np.int64)
         inside = np.all((v >= 0) & (v < self.shape * FINE_PER_COARSE), axis=1)
         v[~inside] = 0
         c = v // FINE_PER_COARSE
@@ -480,7 +495,7 @@ class ColourTable:
             key = blk[miss].astype(np.int64) * FINE_PER_COARSE ** 3 + sub[miss]
             uk, first = np.unique(key, return_index=True)
             ub, us = uk // FINE_PER_COARSE ** 3, uk % FINE_PER_COARSE ** 3
-            vq = v[np.flatnonzero(miss)[first]]
+            vq = v[np.flatnonzero(miss)[first]]                         # vertices solved in float64
             q = _LO + vq * FINE_STEP
             z = _LO + ((vq // FINE_PER_COARSE) * FINE_PER_COARSE + (FINE_PER_COARSE - 1) / 2) * FINE_STEP
             i1, i2 = _in_chunks(self._solve, q, 16384, self.seeds[ub], z)
@@ -494,14 +509,18 @@ class ColourTable:
         """(t1, de1, o1, t2, de2, o2) of colours lab (m, 3) from their records (m, 33)."""
         d = lab.astype(np.float32) - rec[:, :3]
         dx, dy, dz = d[:, 0], d[:, 1], d[:, 2]
+        X = np.empty((d.shape[0], 10), dtype=np.float32)                   # 1, Δ, and the products of Δ
+        X[:, 0] = 1.0
+        X[:, 1:4] = d
+        X[:, 4], X[:, 5], X[:, 6] = dx * dx, dx * dy, dx * dz
+        X[:, 7], X[:, 8], X[:, 9] = dy * dy, dy * dz, dz * dz
         out = []
         for b in range(2):
-            r = rec[:, 3 + 15 * b:18 + 15 * b]
-            t = r[:, 0] + np.clip(r[:, 5] * dx + r[:, 6] * dy + r[:, 7] * dz, -MAX_CORRECTION_NM, MAX_CORRECTION_NM)
-            q = (r[:, 8] * dx * dx + r[:, 11] * dy * dy + r[:, 13] * dz * dz
-                 + 2 * (r[:, 9] * dx * dy + r[:, 10] * dx * dz + r[:, 12] * dy * dz))
-            f = r[:, 1] + r[:, 2] * dx + r[:, 3] * dy + r[:, 4] * dz + q
-            out += [t, np.sqrt(np.maximum(f, 0)), r[:, 14].astype(np.int16)]
+            base = 3 + 15 * b
+            corr = np.einsum("ij,ij->i", d, rec[:, base + 1:base + 4])
+            t = rec[:, base] + np.clip(corr, -MAX_CORRECTION_NM, MAX_CORRECTION_NM)
+            f = np.einsum("ij,ij->i", X, rec[:, base + 4:base + 14])
+            out += [t, np.sqrt(np.maximum(f, 0)), rec[:, base + 14].astype(np.int16)]
         swap = out[4] < out[1]                     # the other order's basin is the better one at this colour
         if swap.any():
             for k in range(3):
@@ -522,6 +541,8 @@ class ColourTable:
         (NaN, inf, 0 when the path has one order). Non-finite colours get NaN, inf, 0 for both.
         """
         lab = np.asarray(lab).reshape(-1, 3)
+        if lab.dtype not in (np.float32, np.float64):
+            lab = lab.astype(np.float64)
         U = lab.shape[0]
         t1, t2 = np.full(U, np.nan, np.float32), np.full(U, np.nan, np.float32)
         de1, de2 = np.full(U, np.inf, np.float32), np.full(U, np.inf, np.float32)
@@ -529,26 +550,30 @@ class ColourTable:
         lo, hi = float(self.t[0]), float(self.t[-1])
 
         def work(a, b):
-            x = lab[a:b].astype(np.float64)
-            good = np.all(np.isfinite(x), axis=1)
+            x = lab[a:b]
+            good = np.isfinite(x).all(axis=1)
+            every = bool(good.all())
+            if not every:
+                x = np.where(good[:, None], x, 0.0)
             with self.lock:
-                slot = self._slots(np.where(good[:, None], x, 0.0))
+                slot = self._slots(x)
                 records = self.records                                  # the array as grown so far
-            out = np.flatnonzero(good & (slot < 0))
+            out = np.flatnonzero(good & (slot < 0)) if not every else np.flatnonzero(slot < 0)
             rec = records[np.maximum(slot, 0)]
             if out.size:                                               # outside the table: solved one by one
+                xo = x[out].astype(np.float64)
                 with self.lock:
-                    i1, i2, _, _ = _in_chunks(self._centre, x[out], 2048)
-                rec[out] = _in_chunks(self._records, x[out], 16384, i1, i2)
+                    i1, i2, _, _ = _in_chunks(self._centre, xo, 2048)
+                rec[out] = _in_chunks(self._records, xo, 16384, i1, i2)
             ans = self._answer(x, rec)
-            ans[0] = np.clip(ans[0], lo, hi)
-            ans[3] = np.clip(ans[3], lo, hi)
+            np.clip(ans[0], lo, hi, out=ans[0])
+            np.clip(ans[3], lo, hi, out=ans[3])
             g = slice(a, b)
             for dst, val in zip((t1, de1, o1, t2, de2, o2), ans):
-                dst[g] = np.where(good, val, dst[g])
+                dst[g] = val if every else np.where(good, val, dst[g])
 
         spans = [(a, min(a + CHUNK, U)) for a in range(0, U, CHUNK)]
-        if workers > 1 and len(spans) > 1:
+        if workers > 1 and len(spans) >= PARALLEL_SPANS:
             with ThreadPoolExecutor(workers) as pool:
                 list(pool.map(lambda s: work(*s), spans))
         else:
