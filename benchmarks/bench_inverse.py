@@ -64,6 +64,7 @@ WIDTH, HEIGHT, BARE_PX = 4000, 3000, 100
 GAINS, EXPOSURE, NOISE_DN = (1.15, 1.0, 0.85), 0.7, 3.0
 SAMPLE = 2000
 KDTREE_SHARE_DISTINCT = 0.1
+KDTREE_CHUNK = 50_000
 GOAL_NOISE_S, GOAL_DISTINCT_S, GOAL_PEAK_GB, GOAL_AGREE = 1.5, 3.0, 2.0, 0.999
 GOAL_TYPED_S = 0.050
 AGREE_NM = 0.5
@@ -161,9 +162,9 @@ def traced(fn, *args, **kw):
 
 
 def kdtree_in_chunks(lab, path):
-    """Today's matcher as thickness_map ran it: in chunks of MATCH_CHUNK_COLOURS colours."""
-    parts = [match_kdtree(lab[a:a + inverse.MATCH_CHUNK_COLOURS], path)
-             for a in range(0, lab.shape[0], inverse.MATCH_CHUNK_COLOURS)]
+    """Today's matcher as thickness_map ran it: in chunks of 50,000 colours."""
+    parts = [match_kdtree(lab[a:a + KDTREE_CHUNK], path)
+             for a in range(0, lab.shape[0], KDTREE_CHUNK)]
     return tuple(np.concatenate(p) for p in zip(*parts))
 
 

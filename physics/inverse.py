@@ -66,9 +66,10 @@ AMBIGUOUS_DE = 1.0
 READING_ERROR_MAX_DE = 30.0
 #: Thickness step of the colour path (nm): fine enough that the path's ΔE00 steps stay well below 1.
 LUT_STEP_NM = 0.5
-#: Distinct photo colours matched per chunk: progress is reported (and a cancel noticed) between
-#: chunks, and the working arrays stay a few tens of MB.
-MATCH_CHUNK_COLOURS = 50_000
+#: Colours matched per chunk: progress is reported (and a cancel noticed) between chunks, each about a tenth of
+#: a second with the colour table (which shares a chunk between two threads from 262,144 colours), and the
+#: working arrays stay a few tens of MB.
+MATCH_CHUNK_COLOURS = 500_000
 #: Most points on a colour path (a wide window gets a coarser step, and the verdict says so).
 LUT_MAX_POINTS = 20_001
 #: Widest window scanned at the full :data:`LUT_STEP_NM` step (nm).
