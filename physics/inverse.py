@@ -748,7 +748,7 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
         from .camera import pixel_lab
         values, calibrated = pixel_lab(photo, (x0, y0, x1, y1), calibration, flat, denoise, illuminant, observer, say)
         lab = values if calibrated else _lab_from_linear(values * gains, illuminant, observer)
-        inverse = np.arange(lab.shape[0])
+        inverse = None                                               # the identity: no gathers
         path = _true_colour_path(path) if calibrated else path       # calibrated XYZ is not gamut-clipped
         what = "pixels"
     else:
@@ -756,19 +756,21 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
         lab = _lab_from_linear(lin * gains, illuminant, observer)
         what = "distinct colours"
     n = len(lab)
-    parts = []
+    matched = None
     for start in range(0, max(n, 1), MATCH_CHUNK_COLOURS):           # in chunks: progress, and less memory
         say(0.35 + 0.4 * start / max(n, 1), f"matching {n:,} {what}")
-        parts.append(_match(lab[start:start + MATCH_CHUNK_COLOURS], path))
-    t1, de1, o1, t2, de2, o2 = (np.concatenate(a) for a in zip(*parts))
+        part = _match(lab[start:start + MATCH_CHUNK_COLOURS], path)
+        if matched is None:                                          # written in place, not joined at the end
+            matched = tuple(np.empty(n, dtype=a.dtype) for a in part)
+        for out, a in zip(matched, part):
+            out[start:start + a.size] = a
+    t1, de1, o1, t2, de2, o2 = matched
     say(0.75, "resolving orders by continuity")
     shape = (y1 - y0, x1 - x0)
-    T, D, O, M = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margin_de)
+    T, D, O, M, undecided = _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margin_de)
     full = lambda a, fill: _embed(a, (H, W), (x0, y0, x1, y1), fill)  # noqa: E731
     thick = full(T, np.nan)
     outlier = _order_outliers(O, np.isfinite(T))
-    viable2 = (de2 <= max_de)[inverse].reshape(shape)
-    undecided = np.isfinite(T) & viable2 & (M < margin_de)
     stats = _stats(T, outlier)
     stats["undecided"] = int(np.count_nonzero(undecided))
     stats["undecided_fraction"] = stats["undecided"] / stats["pixels"] if stats["pixels"] else 0.0
@@ -940,16 +942,27 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
     Per distinct colour: the two candidates and whether the best is confident (its
     margin over any other order is at least ``margin_de``, the colour reading error). Per pixel,
     only the non-confident ones consult the smoothed reference field of confident neighbours.
+    ``inverse`` maps pixels to colours; None when every pixel is its own colour (nothing is gathered).
+
+    Returns ``(T, D, O, M, undecided)``, each (h, w): thickness, ΔE00, order, |margin| and the matched
+    pixels whose other order is acceptable and within ``margin_de`` (see ``ThicknessMap.undecided``).
     """
+    def per_pixel(a):                                                   # a per-colour array, per pixel
+        return (a if inverse is None else a[inverse]).reshape(shape)
+
     margin_u = (de2 - de1).astype(np.float32)
+    M_u = np.abs(margin_u)
+    M_u[~np.isfinite(margin_u)] = np.nan
     confident_u = (de1 <= max_de) & (margin_u >= margin_de)
-    T = t1.astype(np.float32)[inverse].reshape(shape)
-    D = de1.astype(np.float32)[inverse].reshape(shape)
-    O = o1.astype(np.int16)[inverse].reshape(shape)
-    confident = confident_u[inverse].reshape(shape)
-    unsure = ~confident
-    if unsure.any() and np.any(de2 <= max_de):
-        iu = np.flatnonzero(unsure.ravel())
+    maybe_u = (de2 <= max_de) & (M_u < margin_de)                       # the other order acceptable and close
+    copy = inverse is None                                              # per_pixel(a) is then `a` itself
+    T = per_pixel(t1.astype(np.float32, copy=copy))
+    D = per_pixel(de1.astype(np.float32, copy=copy))
+    O = per_pixel(o1.astype(np.int16, copy=copy))
+    M = per_pixel(M_u)
+    confident = per_pixel(confident_u)
+    if not confident.all() and np.any(de2 <= max_de):
+        iu = np.flatnonzero(~confident.ravel())
         if confident.any():
             ref_small, step = _smooth_reference(T, confident)
             r = ref_small[(iu // shape[1]) // step, (iu % shape[1]) // step]
@@ -957,18 +970,20 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
             r = np.full(iu.size, np.nan)
         if nominal_nm is not None:
             r = np.where(np.isnan(r), float(nominal_nm), r)
-        idx = inverse[iu]
+        idx = iu if inverse is None else inverse[iu]
         a, b = t1[idx], t2[idx]
-        use2 = (de2[idx] <= max_de) & np.isfinite(r) & (np.abs(b - r) < np.abs(a - r))
+        d2 = de2[idx]
+        use2 = (d2 <= max_de) & np.isfinite(r) & (np.abs(b - r) < np.abs(a - r))
         pick = iu[use2]
         T.ravel()[pick] = b[use2]
-        D.ravel()[pick] = de2[idx][use2]
-        O.ravel()[pick] = o2[idx][use2]
-    M = np.where(np.isfinite(margin_u), np.abs(margin_u), np.nan).astype(np.float32)[inverse].reshape(shape)
+        D.ravel()[pick] = d2[use2]
+        O.ravel()[pick] = o2[idx[use2]]
     bad = D > max_de
     T[bad] = np.nan
     O[bad] = 0
-    return T, D, O, M
+    undecided = per_pixel(maybe_u)
+    undecided &= np.isfinite(T)
+    return T, D, O, M, undecided
 
 
 def _embed(a, shape, box, fill):
