@@ -1004,32 +1004,41 @@ def _order_outliers(O: np.ndarray, valid: np.ndarray) -> np.ndarray:
     it, so a pixel beside a true order boundary is not flagged, and a stray one inside a region is.
     """
     h, w = O.shape
-    out = np.zeros((h, w), dtype=bool)
-    orders, counts = np.unique(O[valid], return_counts=True)
+    if not valid.any():
+        return np.zeros((h, w), dtype=bool)
+    lo = int(O[valid].min())
+    counts = np.bincount((O[valid].astype(np.int32) - lo).ravel())
+    orders = np.flatnonzero(counts) + lo                               # as np.unique would give them
+    counts = counts[orders - lo]
     if orders.size < 2:
-        return out
+        return np.zeros((h, w), dtype=bool)
     size = max(3, int(round(CONTINUITY_WINDOW_FRACTION * max(h, w))))
     step = max(1, size // 6)
     k = max(1, size // step)
-    hh, ww = -(-h // step) * step, -(-w // step) * step
-    best = np.full((hh // step, ww // step), -1.0)
-    dominant = np.zeros((hh // step, ww // step), dtype=O.dtype)
-    for o in orders[np.argsort(counts)[::-1]]:
-        ind = np.zeros((hh, ww), dtype=np.float32)
-        ind[:h, :w] = valid & (O == o)
-        if step > 1:
-            ind = ind.reshape(hh // step, step, ww // step, step).sum(axis=(1, 3))
-        c = ndimage.uniform_filter(ind.astype(np.float64), k, mode="nearest")
+    gh, gw, no = -(-h // step), -(-w // step), orders.size
+    rank = np.zeros(int(orders[-1]) - lo + 1, dtype=np.intp)          # order -> its index in `orders`
+    rank[orders - lo] = np.arange(no)
+    cell = ((np.arange(h, dtype=np.intp) // step)[:, None] * gw + (np.arange(w, dtype=np.intp) // step)[None, :])
+    code = cell * no                                                    # (cell, order) of each matched pixel
+    code[valid] += rank[O[valid].astype(np.intp) - lo]
+    # the matched pixels of each order in each cell of the reduced grid, counted exactly (as the block sums
+    # of 0/1 indicators were), then averaged over the window
+    per_cell = np.bincount(code[valid], minlength=gh * gw * no).reshape(gh, gw, no)
+    best = np.full((gh, gw), -1.0)
+    dominant = np.zeros((gh, gw), dtype=np.intp)                        # index in `orders`
+    for j in np.argsort(counts)[::-1]:                                  # the most common first: it wins ties
+        c = ndimage.uniform_filter(per_cell[:, :, j].astype(np.float64), k, mode="nearest")
         take = c > best + 1e-12
         best = np.where(take, c, best)
-        dominant = np.where(take, o, dominant)
+        dominant = np.where(take, j, dominant)
     padded = np.pad(dominant, 1, mode="edge")
-    gh, gw = dominant.shape
-    out[:] = valid
+    allowed = np.zeros((gh, gw, no), dtype=bool)                        # the dominant orders around each cell
+    cells = np.arange(gh * gw).reshape(gh, gw)
     for dy in (0, 1, 2):
         for dx in (0, 1, 2):
-            cell = np.repeat(np.repeat(padded[dy:dy + gh, dx:dx + gw], step, axis=0), step, axis=1)[:h, :w]
-            out &= O != cell
+            allowed.reshape(-1)[cells * no + padded[dy:dy + gh, dx:dx + gw]] = True
+    out = ~allowed.reshape(-1)[code]
+    out &= valid
     return out
 
 
