@@ -753,6 +753,8 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
         what = "pixels"
     else:
         codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth, photo.linear)
+        if photo.bit_depth == 16 and inverse.size > UNIQUE_16BIT_MAX_PIXELS:
+            inverse = None                                           # kept pixel by pixel: the identity
         lab = _lab_from_linear(lin * gains, illuminant, observer)
         what = "distinct colours"
     n = len(lab)
@@ -942,7 +944,8 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
     Per distinct colour: the two candidates and whether the best is confident (its
     margin over any other order is at least ``margin_de``, the colour reading error). Per pixel,
     only the non-confident ones consult the smoothed reference field of confident neighbours.
-    ``inverse`` maps pixels to colours; None when every pixel is its own colour (nothing is gathered).
+    ``inverse`` maps pixels to colours; None when every pixel is its own colour (nothing is gathered, and
+    ``t1``, ``de1`` and ``o1`` become the returned maps, changed in place).
 
     Returns ``(T, D, O, M, undecided)``, each (h, w): thickness, ΔE00, order, |margin| and the matched
     pixels whose other order is acceptable and within ``margin_de`` (see ``ThicknessMap.undecided``).
@@ -955,10 +958,9 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
     M_u[~np.isfinite(margin_u)] = np.nan
     confident_u = (de1 <= max_de) & (margin_u >= margin_de)
     maybe_u = (de2 <= max_de) & (M_u < margin_de)                       # the other order acceptable and close
-    copy = inverse is None                                              # per_pixel(a) is then `a` itself
-    T = per_pixel(t1.astype(np.float32, copy=copy))
-    D = per_pixel(de1.astype(np.float32, copy=copy))
-    O = per_pixel(o1.astype(np.int16, copy=copy))
+    T = per_pixel(t1.astype(np.float32, copy=False))                   # with inverse None: t1, de1 and o1
+    D = per_pixel(de1.astype(np.float32, copy=False))                  # themselves, overwritten below
+    O = per_pixel(o1.astype(np.int16, copy=False))
     M = per_pixel(M_u)
     confident = per_pixel(confident_u)
     if not confident.all() and np.any(de2 <= max_de):
@@ -1004,42 +1006,46 @@ def _order_outliers(O: np.ndarray, valid: np.ndarray) -> np.ndarray:
     it, so a pixel beside a true order boundary is not flagged, and a stray one inside a region is.
     """
     h, w = O.shape
-    if not valid.any():
-        return np.zeros((h, w), dtype=bool)
-    lo = int(O[valid].min())
-    counts = np.bincount((O[valid].astype(np.int32) - lo).ravel())
-    orders = np.flatnonzero(counts) + lo                               # as np.unique would give them
-    counts = counts[orders - lo]
-    if orders.size < 2:
-        return np.zeros((h, w), dtype=bool)
+    lo, hi = (int(O.min()), int(O.max())) if O.size else (0, 0)
+    if hi - lo < 256:                                                   # fringe orders: a short range
+        values = np.arange(lo, hi + 1)
+        r = np.subtract(O, lo, dtype=np.int32)
+    else:
+        values, r = np.unique(O, return_inverse=True)
+        r = r.reshape(h, w).astype(np.int32)
+    nv = values.size                                                    # bin nv: unmatched pixels
+    np.putmask(r, ~valid, nv)
     size = max(3, int(round(CONTINUITY_WINDOW_FRACTION * max(h, w))))
     step = max(1, size // 6)
     k = max(1, size // step)
-    gh, gw, no = -(-h // step), -(-w // step), orders.size
-    rank = np.zeros(int(orders[-1]) - lo + 1, dtype=np.intp)          # order -> its index in `orders`
-    rank[orders - lo] = np.arange(no)
-    cell = ((np.arange(h, dtype=np.intp) // step)[:, None] * gw + (np.arange(w, dtype=np.intp) // step)[None, :])
-    code = cell * no                                                    # (cell, order) of each matched pixel
-    code[valid] += rank[O[valid].astype(np.intp) - lo]
-    # the matched pixels of each order in each cell of the reduced grid, counted exactly (as the block sums
-    # of 0/1 indicators were), then averaged over the window
-    per_cell = np.bincount(code[valid], minlength=gh * gw * no).reshape(gh, gw, no)
+    gh, gw = -(-h // step), -(-w // step)
+    # each pixel's (cell of the reduced grid, order) bin; the matched pixels of each order in each cell are
+    # counted exactly (as the block sums of 0/1 indicators were) and then averaged over the window
+    code = np.add.outer((np.arange(h, dtype=np.int32) // step) * np.int32(gw * (nv + 1)),
+                        (np.arange(w, dtype=np.int32) // step) * np.int32(nv + 1))
+    code += r
+    del r
+    per_cell = np.bincount(code.ravel(), minlength=gh * gw * (nv + 1)).reshape(gh, gw, nv + 1)
+    total = per_cell[:, :, :nv].sum(axis=(0, 1))
+    present = np.flatnonzero(total)                                     # as np.unique of the matched orders
+    if present.size < 2:
+        return np.zeros((h, w), dtype=bool)
+    counts = total[present]
     best = np.full((gh, gw), -1.0)
-    dominant = np.zeros((gh, gw), dtype=np.intp)                        # index in `orders`
-    for j in np.argsort(counts)[::-1]:                                  # the most common first: it wins ties
+    dominant = np.zeros((gh, gw), dtype=np.intp)                        # bin of the dominant order
+    for j in present[np.argsort(counts)[::-1]]:                         # the most common first: it wins ties
         c = ndimage.uniform_filter(per_cell[:, :, j].astype(np.float64), k, mode="nearest")
         take = c > best + 1e-12
         best = np.where(take, c, best)
         dominant = np.where(take, j, dominant)
     padded = np.pad(dominant, 1, mode="edge")
-    allowed = np.zeros((gh, gw, no), dtype=bool)                        # the dominant orders around each cell
-    cells = np.arange(gh * gw).reshape(gh, gw)
+    allowed = np.zeros((gh, gw, nv + 1), dtype=bool)                    # the dominant orders around each cell
+    allowed[:, :, nv] = True                                            # (unmatched pixels are never flagged)
+    cells = np.arange(gh * gw).reshape(gh, gw) * (nv + 1)
     for dy in (0, 1, 2):
         for dx in (0, 1, 2):
-            allowed.reshape(-1)[cells * no + padded[dy:dy + gh, dx:dx + gw]] = True
-    out = ~allowed.reshape(-1)[code]
-    out &= valid
-    return out
+            allowed.reshape(-1)[cells + padded[dy:dy + gh, dx:dx + gw]] = True
+    return ~allowed.reshape(-1)[code]
 
 
 def _stats(T, outlier=None):
