@@ -200,3 +200,16 @@ def test_map_pixels_whose_order_colour_cannot_decide_are_flagged():
     assert default.stats["reading_error_de"] == pytest.approx(2.0)
     assert not (loose.undecided & ~np.isfinite(loose.thickness_nm)).any()
     assert "cannot decide the fringe order" in loose.message
+
+
+def test_histogram_percentiles_equal_numpys():
+    """The maps' percentiles (a histogram, then a partition of one bin) are np.percentile's to the bit."""
+    from physics.inverse import _percentiles
+    rng = np.random.default_rng(5)
+    for dt in (np.float32, np.float64):
+        for n in (1, 2, 3, 10, 999, 100_003):
+            for x in (rng.normal(300, 100, n), rng.integers(0, 40, n) * 0.37, np.full(n, 5.0)):
+                x = x.astype(dt)
+                for q in ([1.0, 50.0, 99.0], [50.0, 95.0], [0.0, 12.345, 100.0]):
+                    assert np.array_equal(_percentiles(x, q), np.percentile(x, q))
+                    assert np.array_equal(_percentiles(x, q, np.float64), np.percentile(x.astype(np.float64), q))
