@@ -57,8 +57,11 @@ from pathlib import Path
 __all__ = ["run_batch", "process_photo", "main", "build_parser", "DEFAULT_PATTERNS", "SUMMARY_FIELDS",
            "OUT_SUBDIR", "NOT_METROLOGY"]
 
-#: File-name patterns matched by default (case-insensitive).
-DEFAULT_PATTERNS = ("*.jpg", "*.jpeg", "*.png", "*.tif", "*.tiff")
+#: File-name patterns matched by default (case-insensitive): JPEG, PNG, TIFF and the camera RAW/DNG endings of
+#: physics.imageio.RAW_EXTENSIONS (written out, so that importing this module stays light; a test keeps them equal).
+DEFAULT_PATTERNS = ("*.jpg", "*.jpeg", "*.png", "*.tif", "*.tiff",
+                    "*.dng", "*.nef", "*.nrw", "*.cr2", "*.cr3", "*.crw", "*.arw", "*.srf", "*.sr2", "*.raf", "*.orf",
+                    "*.rw2", "*.rwl", "*.pef", "*.srw", "*.3fr", "*.iiq", "*.erf", "*.kdc", "*.dcr", "*.mrw", "*.x3f")
 #: Columns of summary.csv, in order; also the keys of each row returned by :func:`run_batch`.
 SUMMARY_FIELDS = ("file", "status", "message", "mean_nm", "std_nm", "min_nm", "max_nm", "uniformity",
                   "valid_fraction", "gains_r", "gains_g", "gains_b", "seconds",

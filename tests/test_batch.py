@@ -190,3 +190,10 @@ def test_cli_bad_arguments_exit_2(photos_dir, tmp_path, capsys):
     assert main([str(photos_dir), "--stack", str(tmp_path / "missing.json"), "--box", *map(str, BOX)]) == 2
     err = capsys.readouterr().err
     assert "does not exist" in err and "not found" in err
+
+
+def test_default_patterns_cover_the_raw_formats():
+    """The batch finds every RAW/DNG file the image reader reads, beside JPEG, PNG and TIFF."""
+    from batch import DEFAULT_PATTERNS
+    from physics.imageio import RAW_EXTENSIONS
+    assert set(DEFAULT_PATTERNS) == {"*.jpg", "*.jpeg", "*.png", "*.tif", "*.tiff"} | {"*" + e for e in RAW_EXTENSIONS}
