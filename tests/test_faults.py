@@ -32,6 +32,9 @@ from tests.support.loadclient import CROWD_SERVER_ARGS
 from tests.support.server import served_lab
 from views.limits import WEBSOCKET_MESSAGE_CAP_BYTES
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 ROOT = Path(__file__).resolve().parents[1]
 #: The websocket message cap serve.py sets (4 MiB: one upload chunk with room around it).
 WS_CAP_BYTES = WEBSOCKET_MESSAGE_CAP_BYTES

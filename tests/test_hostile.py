@@ -48,7 +48,10 @@ STACK_PRESETS = [p.read_bytes() for p in sorted((REPO / "presets").glob("*.json"
 GRATING_PRESETS = [p.read_bytes() for p in sorted((REPO / "presets" / "gratings").glob("*.json"))]
 CALIBRATION = json.dumps({"name": "Invented wafer corner", "box": [10, 20, 110, 220], "reference": "substrate",
                           "note": "invented for the tests"}).encode()
-MARKER = Path(tempfile.gettempdir()) / f"fringegauge-hostile-marker-{os.getpid()}"
+#: A file a shell injection would create. Named the same in every process of one run (parallel workers
+#: must collect the same test ids), and apart from other runs.
+MARKER = Path(tempfile.gettempdir()) / ("fringegauge-hostile-marker-"
+                                        + os.environ.get("PYTEST_XDIST_TESTRUNUID", str(os.getpid()))[:12])
 HYP = dict(deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture,
                                                  HealthCheck.data_too_large, HealthCheck.filter_too_much])
 

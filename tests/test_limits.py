@@ -15,6 +15,9 @@ from views.fit import SpectrumFitSection
 from views.grating import GratingSection
 from views.state import MAP_ANGLE_POINTS, MAP_THICKNESS_POINTS, compute_map, map_grid_counts
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 WL = np.linspace(400.0, 1000.0, 250)
 
 

@@ -32,6 +32,9 @@ import pytest
 from tests.support.loadclient import (Crowd, ExplorerUser, fetch_json, log_problems, rss_kb, serve,
                                       synthetic_wedge_png)
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 ROOT = Path(__file__).resolve().parents[1]
 #: Longest the scenario may take before the test gives up (s); about a minute on an idle 2-core machine.
 SCENARIO_TIMEOUT_S = 300

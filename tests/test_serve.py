@@ -17,6 +17,9 @@ import pytest
 from tests.support.server import served_lab
 from views.limits import Limits
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 ROOT = Path(__file__).resolve().parents[1]
 SERVE = ROOT / "serve.py"
 OPTIONS = ["--host", "--port", "--allow-origin", "--threads", "--library", "--basic-auth", "--cookie-secret-file",

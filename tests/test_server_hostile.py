@@ -30,6 +30,9 @@ from tests.support.loadclient import PageSession, RssSampler, log_problems, rss_
 from labserver.sessions import SessionLimits
 from tests.support.server import served_lab
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 #: Every /health answer within this, whatever the attack (s).
 HEALTH_MAX_S = 1.0
 #: Memory the attacks may add to the server and its workers (MB), and how close to its start it must

@@ -27,6 +27,9 @@ from tests.support.loadclient import CROWD_SERVER_ARGS, PageError, PageSession
 from tests.support.server import served_lab
 from tests.test_faults import _assert_serving
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 #: Every /health answer during an upload must come within this many seconds.
 HEALTH_MAX_S = 1.0
 #: Pause between two /health requests (s).

@@ -25,6 +25,9 @@ from tests.support.loadclient import _descendants
 from views import workers
 from views.limits import JobCancelled
 
+#: Times the server: in a parallel run, each test runs while no other test does (tests/conftest.py).
+pytestmark = pytest.mark.exclusive
+
 #: Slots of the pool under test: the default ``max_jobs_server``.
 POOL = 2
 #: Longest any one scenario may take before the test gives up (s): generous for a busy 2-core machine.
