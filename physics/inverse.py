@@ -826,13 +826,25 @@ def _uncertainty_nm(T, D, path: _Path, floor_de: float, cap_nm: float) -> np.nda
     t = path.thickness_nm
     step = float(t[1] - t[0]) if t.size > 1 else 1.0
     slope = _nm_per_de(path).astype(np.float32)
-    u = np.full(T.shape, np.nan, dtype=np.float32)
-    ok = np.isfinite(T)
-    i = np.clip(np.rint((T[ok] - np.float32(t[0])) / np.float32(step)), 0, t.size - 1).astype(np.intp)
-    s = slope[i]                                                    # the nearest path point's slope
-    d = D[ok].astype(np.float32)
-    u[ok] = np.minimum(np.sqrt(s * s * (d * d + np.float32(floor_de) ** 2) + np.float32(step ** 2 / 12.0)),
-                       np.float32(cap_nm))
+    unmatched = ~np.isfinite(T)
+    x = T - np.float32(t[0])                                        # whole maps in float32, in place, no masks
+    x /= np.float32(step)
+    np.rint(x, out=x)
+    np.clip(x, 0, t.size - 1, out=x)
+    np.putmask(x, unmatched, 0)
+    u = slope[x.astype(np.int32)]                                   # the nearest path point's slope
+    del x
+    u *= u
+    d = D.astype(np.float32)                                        # a copy: squared in place
+    with np.errstate(invalid="ignore", over="ignore"):              # unmatched pixels, set NaN below
+        d *= d
+        d += np.float32(floor_de) ** 2
+        u *= d
+        del d
+        u += np.float32(step ** 2 / 12.0)
+        np.sqrt(u, out=u)
+    np.minimum(u, np.float32(cap_nm), out=u)
+    u[unmatched] = np.nan
     return u
 
 
