@@ -937,13 +937,21 @@ def _smooth_reference(T1, confident):
     size = max(3, int(round(CONTINUITY_WINDOW_FRACTION * max(h, w))))
     step = max(1, size // 6)                                            # work on a reduced grid for speed
     hh, ww = -(-h // step) * step, -(-w // step) * step
-    wgt = np.zeros((hh, ww), dtype=np.float32)
-    val = np.zeros((hh, ww), dtype=np.float32)
-    wgt[:h, :w] = confident
-    val[:h, :w] = np.where(confident, T1, np.float32(0))
-    if step > 1:
-        wgt = wgt.reshape(hh // step, step, ww // step, step).sum(axis=(1, 3))
-        val = val.reshape(hh // step, step, ww // step, step).sum(axis=(1, 3))
+    if step > 1:                                                        # band by band of `step` rows: the
+        gh, gw = hh // step, ww // step                                 # same block sums, no full-size arrays
+        wgt, val = np.empty((gh, gw), dtype=np.float32), np.empty((gh, gw), dtype=np.float32)
+        bw, bv = np.zeros((step, ww), dtype=np.float32), np.zeros((step, ww), dtype=np.float32)
+        for g in range(gh):
+            a, b = g * step, min(g * step + step, h)
+            if b - a < step:                                            # the last band, padded with zeros
+                bw[:], bv[:] = 0, 0
+            bw[:b - a, :w] = confident[a:b]
+            bv[:b - a, :w] = np.where(confident[a:b], T1[a:b], np.float32(0))
+            wgt[g] = bw.reshape(1, step, gw, step).sum(axis=(1, 3))[0]
+            val[g] = bv.reshape(1, step, gw, step).sum(axis=(1, 3))[0]
+    else:
+        wgt = confident.astype(np.float32)
+        val = np.where(confident, T1, np.float32(0))
     k = max(1, size // step)
     num = ndimage.uniform_filter(val.astype(np.float64), k, mode="nearest")
     den = ndimage.uniform_filter(wgt.astype(np.float64), k, mode="nearest")
