@@ -39,8 +39,6 @@ model="matrix", flat_field=None, dark=None, ...) -> CameraCalibration``
     ``check_photo(photo)`` refuses a photo of another size; ``with_metadata(**fields)`` sets camera,
     lamp, objective, objective_na, date; ``to_dict()`` / ``CameraCalibration.from_dict()``
     round-trip through plain JSON types (the flat field inside, about 20 kB in all).
-``linear_rgb(photo)``
-    float32 (H, W, 3) linear-light values of a photo, whatever its decode.
 ``read_target(source, *, illuminant="D65", observer="2") -> ColourTarget`` and
 ``builtin_target(name="BabelColor Average", *, illuminant="D65", observer="2") -> ColourTarget``
     ``ColourTarget.lab_of(names)`` gives the patches' CIELAB in the order named, refusing a
@@ -107,7 +105,7 @@ with warnings.catch_warnings():
                                          polynomial_expansion_Finlayson2015)
 
 __all__ = ["CameraCalibration", "FlatField", "ColourTarget", "calibrate_from_reference", "calibrate_from_target",
-           "flat_field", "read_target", "builtin_target", "linear_rgb", "pixel_lab", "check_flat", "MODELS",
+           "flat_field", "read_target", "builtin_target", "pixel_lab", "check_flat", "MODELS",
            "MIN_BOXES",
            "DENOISE_FILTERS"]
 
@@ -173,25 +171,6 @@ FORMAT_VERSION = 1
 def _photo(image):
     from .imageio import Photo, load_image
     return image if isinstance(image, Photo) else load_image(image)
-
-
-def linear_rgb(photo) -> np.ndarray:
-    """float32 (H, W, 3) linear-light RGB of a photo: ``Photo.linear_rgb()`` where the photo has it
-    (linear TIFF and RAW decode as linear light), else the sRGB decode of its code values.
-
-    References
-    ----------
-    IEC 61966-2-1:1999 (the sRGB transfer function).
-    """
-    fn = getattr(photo, "linear_rgb", None)
-    if callable(fn):
-        return np.asarray(fn(), dtype=np.float32)
-    return np.asarray(photo.linear(), dtype=np.float32)
-
-
-def _is_linear(photo) -> bool:
-    flag = getattr(photo, "linear", False)
-    return isinstance(flag, (bool, np.bool_)) and bool(flag)
 
 
 def _clipped(photo, y0=0, y1=None, x0=0, x1=None) -> np.ndarray:
@@ -386,7 +365,7 @@ def flat_field(image, *, degree: int = FLAT_POLY_DEGREE) -> FlatField:
     b = max(1, int(math.ceil(max(H, W) / FLAT_BLOCKS)))
     nby, nbx = H // b, W // b
     deg = int(min(degree, nby - 1, nbx - 1))
-    lin = linear_rgb(photo)
+    lin = photo.linear_rgb()
     crop = lin[:nby * b, :nbx * b].reshape(nby, b, nbx, b, 3)
     means = crop.mean(axis=(1, 3), dtype=np.float64)                     # (nby, nbx, 3)
     clip = _clipped(photo, 0, nby * b, 0, nbx * b).reshape(nby, b, nbx, b).mean(axis=(1, 3))
@@ -719,7 +698,6 @@ def _box_pixels(photo, boxes, flat):
         raise InputError(f"{len(boxes)} boxes given; a calibration takes at most {MAX_BOXES}.")
     if flat is not None:
         check_flat(flat, photo)
-    lin = linear_rgb(photo)
     checked, rgb, fs = [], [], []
     for k, box in enumerate(boxes):
         x0, y0, x1, y1 = _check_box(photo, box, f"calibration box {k + 1}")
@@ -728,7 +706,7 @@ def _box_pixels(photo, boxes, flat):
             raise InputError(f"Calibration box {k + 1} ({x0}, {y0}, {x1}, {y1}) is overexposed: {sat:.0%} of its "
                              "pixels are clipped. Draw it on an area that is not blown out, or take the photo with "
                              "less exposure.")
-        p = lin[y0:y1, x0:x1].reshape(-1, 3).astype(np.float64)
+        p = photo.linear_rgb((x0, y0, x1, y1)).reshape(-1, 3).astype(np.float64)
         if np.any(p.mean(axis=0) < MIN_BOX_LINEAR):
             raise InputError(f"Calibration box {k + 1} ({x0}, {y0}, {x1}, {y1}) is too dark to read its colour; "
                              "draw it on a lit area or expose the photo longer.")
@@ -981,7 +959,7 @@ def calibrate_from_target(image, boxes, reference_lab, *, illuminant="D65", obse
 def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, progress=None):
     """Per-pixel CIELAB of a photo's region ``roi`` (x0, y0, x1, y1), for the map's matcher.
 
-    Pixels are read as linear light (:func:`linear_rgb`), the flat field divided out (with the
+    Pixels are read as linear light (``Photo.linear_rgb``), the flat field divided out (with the
     calibration's dark offset), optionally denoised (:data:`DENOISE_FILTERS`), then turned to XYZ by the
     calibration; without one, the caller applies its gains to the returned linear values.
 
@@ -1010,7 +988,7 @@ def pixel_lab(photo, roi, calibration, flat, denoise, illuminant, observer, prog
     if denoise is not None and (not isinstance(denoise, str) or denoise not in DENOISE_FILTERS):
         raise InputError(f"denoise must be None or one of {', '.join(repr(k) for k in DENOISE_FILTERS)}; "
                          f"got {denoise!r}.")
-    lin = linear_rgb(photo)[y0:y1, x0:x1]
+    lin = photo.linear_rgb((x0, y0, x1, y1))
     dark = calibration.dark if calibration is not None else None
     if calibration is not None and denoise is None:                  # band by band: no whole-image temporaries
         h, w = lin.shape[:2]

@@ -231,13 +231,18 @@ class Photo:
         """Largest code value: 255 for 8 bits, 65535 for 16 bits."""
         return 2**self.bit_depth - 1
 
-    def linear_rgb(self) -> np.ndarray:
-        """Linear-light RGB of every pixel.
+    def linear_rgb(self, box=None) -> np.ndarray:
+        """Linear-light RGB of every pixel, or of the pixels of one box.
+
+        Parameters
+        ----------
+        box : (x0, y0, x1, y1) or None
+            Pixel box (x right, y down, ends exclusive) to decode alone; None = the whole photo.
 
         Returns
         -------
         numpy.ndarray
-            New float32 (height, width, 3) array of values 0..1: code / max_code
+            New float32 (height, width, 3) array (the box's size with ``box``) of values 0..1: code / max_code
             when :attr:`linear`, else each code value decoded with the sRGB
             transfer function through a 256- or 65536-entry lookup table
             (:func:`srgb_decode_lut`).
@@ -246,7 +251,8 @@ class Photo:
         ----------
         IEC 61966-2-1:1999, the sRGB transfer function.
         """
-        return self.decode_lut(np.float32)[self.rgb]
+        rgb = self.rgb if box is None else self.rgb[box[1]:box[3], box[0]:box[2]]
+        return self.decode_lut(np.float32)[rgb]
 
     def decode_lut(self, dtype=np.float32) -> np.ndarray:
         """(max_code + 1,) table from code value to linear light 0..1 for this photo:

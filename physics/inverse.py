@@ -654,10 +654,10 @@ def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminan
         raise InputError(f"The calibration box is overexposed: {sat:.0%} of its pixels are clipped. Draw it on an "
                          "area that is not blown out, or take the photo with less exposure.")
     if flat is not None:                                              # the box as flat-fielded
-        from .camera import check_flat, linear_rgb
+        from .camera import check_flat
         check_flat(flat, photo)
         bx0, by0, bx1, by1 = b = _check_box(photo, box)
-        measured = flat.apply(linear_rgb(photo)[by0:by1, bx0:bx1], None, b).reshape(-1, 3).mean(axis=0, dtype=float)
+        measured = flat.apply(photo.linear_rgb(b), None, b).reshape(-1, 3).mean(axis=0, dtype=float)
     else:
         measured = box_mean_linear(photo, box)
     if np.any(measured < MIN_BOX_LINEAR):

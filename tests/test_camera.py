@@ -15,7 +15,7 @@ import pytest
 from physics import InputError
 from physics.appearance import color_map
 from physics.camera import (MIN_BOXES, CameraCalibration, FlatField, builtin_target, calibrate_from_reference,
-                            calibrate_from_target, flat_field, linear_rgb, read_target)
+                            calibrate_from_target, flat_field, read_target)
 from physics.color import _linear_srgb
 from physics.inverse import thickness_map
 from physics.stackfile import load_preset
@@ -72,7 +72,7 @@ def test_flat_field_follows_the_fall_off_and_flattens(flat):
     np.testing.assert_allclose(g / g.mean(), f / f.mean(), rtol=0.02)     # the dark level bends it slightly
     img = _shoot(np.zeros(W))
     from physics.imageio import load_image
-    flat_img = flat.apply(linear_rgb(load_image(img)))
+    flat_img = flat.apply(load_image(img).linear_rgb())
     assert flat_img[:, :, 1].std() / flat_img[:, :, 1].mean() < 0.01
 
 

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 
 import outside_pipeline as op
-from physics.camera import CameraCalibration, calibrate_from_reference, calibrate_from_target, flat_field, linear_rgb
+from physics.camera import CameraCalibration, calibrate_from_reference, calibrate_from_target, flat_field
 from physics.imageio import load_image
 from physics.inverse import thickness_map
 from physics.stackfile import load_preset
@@ -239,7 +239,7 @@ def test_target_calibration_on_held_out_patches(model, flat):
     held = np.arange(len(boxes)) % 4 == 3
     cal = calibrate_from_target(photo, [b for b, h in zip(boxes, held) if not h], lab[~held], model=model,
                                 flat_field=flat)
-    lin = linear_rgb(photo)
+    lin = photo.linear_rgb()
     got = []
     for x0, y0, x1, y1 in np.array(boxes)[held]:
         xyz = cal.xyz_from_linear(lin[y0:y1, x0:x1], flat, (x0, y0, x1, y1)).reshape(-1, 3).mean(axis=0)
@@ -307,7 +307,7 @@ def test_real_camera_sensitivities():
     for model in ("matrix", "root-polynomial"):
         tcal = calibrate_from_target(photo, [b for b, h in zip(tboxes, held) if not h], lab[~held], model=model,
                                      flat_field=flat)
-        got = [tcal.xyz_from_linear(linear_rgb(photo)[y0:y1, x0:x1], flat, (x0, y0, x1, y1)).reshape(-1, 3).mean(0)
+        got = [tcal.xyz_from_linear(photo.linear_rgb((x0, y0, x1, y1)), flat, (x0, y0, x1, y1)).reshape(-1, 3).mean(0)
                for x0, y0, x1, y1 in np.array(tboxes)[held]]
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

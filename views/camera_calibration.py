@@ -752,10 +752,8 @@ class CameraCalibrationPanel:
         args = self.map_arguments()
         if not args:
             return None
-        from physics.camera import linear_rgb
-        x0, y0, x1, y1 = box
         cal, flat = args["calibration"], args["flat_field"]
-        lab = cal.lab_from_linear(linear_rgb(self.sec.photo)[y0:y1, x0:x1], flat, box if flat is not None else None)
+        lab = cal.lab_from_linear(self.sec.photo.linear_rgb(box), flat, box if flat is not None else None)
         return np.asarray(lab, dtype=float).reshape(-1, 3).mean(axis=0)
 
     # ------------------------------------------------------------------ the map's uncertainty

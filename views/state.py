@@ -261,12 +261,8 @@ class ExplorerState(param.Parameterized):
         """The measured lamp as [[nm], [power]] when the illuminant is 'custom', else None."""
         if self.illuminant != "custom":
             return None
-        try:
-            wl, power = json.loads(self.spd_json)
-        except (TypeError, ValueError):
-            raise InputError("Illuminant 'custom' has no lamp spectrum to save: upload a CSV of wavelength (nm), "
-                             "value, or choose another lamp.") from None
-        return [wl, power]
+        wl, power = self.illuminant_spec()
+        return [wl.tolist(), power.tolist()]
 
     # ------------------------------------------------------------------ light
     def illuminant_spec(self):
