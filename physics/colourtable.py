@@ -51,6 +51,8 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
+from .colourkernel import kernel
+
 __all__ = ["ColourTable", "colour_table", "delta_e_2000_fast", "lab_from_xyz", "lab_from_linear", "COARSE_STEP", "FINE_STEP",
            "FAR_DE", "DE00_LIPSCHITZ", "SCAN_STRIDE", "TABLES_CACHED"]
 
@@ -78,8 +80,10 @@ MAX_SEEDS = 16
 MAX_CORRECTION_NM = 0.75
 #: Largest first-order move (path points) of a seed from a cell centre to a vertex before the descent.
 MAX_SHIFT = 16
-#: Colours per chunk of the per-colour pass (a few MB of working arrays).
+#: Colours per chunk of the numpy per-colour pass (a few MB of working arrays).
 CHUNK = 65_536
+#: Fewest colours for which the compiled pass (:mod:`physics.colourkernel`) runs, and per thread of it.
+KERNEL_MIN_COLOURS = 4096
 #: Chunks from which the per-colour pass runs in threads (below, thread start-up and the interpreter lock
 #: cost more than a second core gives).
 PARALLEL_SPANS = 4
@@ -92,6 +96,10 @@ _LO = np.array([-8.0, -160.0, -160.0])
 _HI = np.array([120.0, 160.0, 160.0])
 
 _25_7 = 25.0 ** 7
+
+#: Column order of a stored record (see ColourTable._records): q (3); the ten ΔE00² coefficients (value,
+#: gradient, metric) of the best answer, then of the other order's; w of each (3 + 3); τ of each; order of each.
+_ANSWER_LAYOUT = np.r_[0:3, 7:17, 22:32, 4:7, 19:22, 3, 18, 17, 32]
 
 
 # ---------------------------------------------------------------------- CIEDE2000 and CIELAB
@@ -388,9 +396,11 @@ class ColourTable:
     def _records(self, q, i1, i2):
         """Answers at colours q (m, 3) with best path index i1 and best-other index i2 (-1 = none): (m, 33).
 
-        Layout: q (3); then for best and other: thickness τ (nm, parabola-refined), w (3), ΔE00² at q
+        Built as: q (3); then for best and other: thickness τ (nm, parabola-refined), w (3), ΔE00² at q
         (refined), its gradient g in the observed colour (3, central differences), A as the coefficients of
-        dx², dx dy, dx dz, dy², dy dz, dz² (6), order: so that ΔE00² = [1, Δ, products of Δ] · record[4:14].
+        dx², dx dy, dx dz, dy², dy dz, dz² (6), order; so that ΔE00² = [1, Δ, products of Δ] · (ΔE00², g, A).
+        Returned with the columns regrouped as :data:`_ANSWER_LAYOUT` says (both answers' like parts side by
+        side, for :meth:`_answer`).
         """
         m = q.shape[0]
         out = np.zeros((m, 33))
@@ -424,7 +434,7 @@ class ColourTable:
             out[:, base + 5:base + 8] = np.where(none[:, None], 0.0, g)
             out[:, base + 8:base + 14] = np.where(none[:, None], 0.0, A)
             out[:, base + 14] = np.where(none, 0, self.order[i])
-        return out.astype(np.float32)
+        return out[:, _ANSWER_LAYOUT].astype(np.float32)
 
     def _append(self, recs):
         n = recs.shape[0]
@@ -506,26 +516,51 @@ class ColourTable:
 
     # -- answering ----------------------------------------------------------
     def _answer(self, lab, rec):
-        """(t1, de1, o1, t2, de2, o2) of colours lab (m, 3) from their records (m, 33)."""
-        d = lab.astype(np.float32) - rec[:, :3]
-        dx, dy, dz = d[:, 0], d[:, 1], d[:, 2]
-        X = np.empty((d.shape[0], 10), dtype=np.float32)                   # 1, Δ, and the products of Δ
+        """(t1, de1, o1, t2, de2, o2) of colours lab (m, 3) from their records (m, 33, :data:`_ANSWER_LAYOUT`)."""
+        m = rec.shape[0]
+        d = lab.astype(np.float32, copy=False) - rec[:, :3]
+        X = np.empty((m, 10), dtype=np.float32)                          # 1, Δ, and the products of Δ
         X[:, 0] = 1.0
         X[:, 1:4] = d
-        X[:, 4], X[:, 5], X[:, 6] = dx * dx, dx * dy, dx * dz
-        X[:, 7], X[:, 8], X[:, 9] = dy * dy, dy * dz, dz * dz
-        out = []
-        for b in range(2):
-            base = 3 + 15 * b
-            corr = np.einsum("ij,ij->i", d, rec[:, base + 1:base + 4])
-            t = rec[:, base] + np.clip(corr, -MAX_CORRECTION_NM, MAX_CORRECTION_NM)
-            f = np.einsum("ij,ij->i", X, rec[:, base + 4:base + 14])
-            out += [t, np.sqrt(np.maximum(f, 0)), rec[:, base + 14].astype(np.int16)]
-        swap = out[4] < out[1]                     # the other order's basin is the better one at this colour
+        np.multiply(d, d[:, :1], out=X[:, 4:7])                           # dx dx, dx dy, dx dz
+        np.multiply(d[:, 1:], d[:, 1:2], out=X[:, 7:9])                   # dy dy, dy dz
+        np.multiply(d[:, 2], d[:, 2], out=X[:, 9])
+        f = np.einsum("ij,ikj->ik", X, rec[:, 3:23].reshape(m, 2, 10))     # ΔE00² of both answers
+        corr = np.einsum("ij,ikj->ik", d, rec[:, 23:29].reshape(m, 2, 3))  # their thickness corrections
+        np.clip(corr, -MAX_CORRECTION_NM, MAX_CORRECTION_NM, out=corr)
+        corr += rec[:, 29:31]
+        np.maximum(f, 0, out=f)
+        np.sqrt(f, out=f)
+        o = rec[:, 31:33].astype(np.int16)
+        swap = f[:, 1] < f[:, 0]                   # the other order's basin is the better one at this colour
         if swap.any():
-            for k in range(3):
-                out[k], out[k + 3] = np.where(swap, out[k + 3], out[k]), np.where(swap, out[k], out[k + 3])
-        return out
+            for a in (corr, f, o):
+                a[swap] = a[swap, ::-1]
+        return corr[:, 0], f[:, 0], o[:, 0], corr[:, 1], f[:, 1], o[:, 1]
+
+    def _lookup(self, x, blocks, n_blocks, n_slots):
+        """Slots of colours x (m, 3) in the table as it stood (``blocks``, ``n_blocks``, ``n_slots`` read
+        together under the lock): read without the lock, so two threads answer at once; -1 where the colour
+        is outside the table or its cell or vertex was not built by then (:meth:`_slots` builds those)."""
+        v = x - _LO.astype(x.dtype)
+        v *= x.dtype.type(1 / FINE_STEP)
+        v += x.dtype.type(0.5)
+        np.floor(v, out=v)                                               # as _slots: the nearest vertex
+        inside = ((v >= 0) & (v < (self.shape * FINE_PER_COARSE).astype(v.dtype))).all(axis=1)
+        v = v.astype(np.int32)
+        v[~inside] = 0
+        c = v // FINE_PER_COARSE
+        cell = (c[:, 0] * np.int32(self.shape[1]) + c[:, 1]) * np.int32(self.shape[2]) + c[:, 2]
+        v -= c * FINE_PER_COARSE
+        sub = (v[:, 0] * FINE_PER_COARSE + v[:, 1]) * FINE_PER_COARSE + v[:, 2]
+        blk = self.block_of.take(cell)
+        ok = inside & (blk >= 0) & (blk < n_blocks)
+        if n_blocks == 0:                                                # nothing built yet
+            return np.full(x.shape[0], -1, dtype=np.int32)
+        slot = blocks.reshape(-1).take(np.where(ok, blk, 0) * FINE_PER_COARSE ** 3 + sub)
+        ok &= slot < n_slots
+        slot[~ok] = -1
+        return slot
 
     def match(self, lab, workers: int = 2):
         """Best path match and best match of another order for each colour.
@@ -543,6 +578,41 @@ class ColourTable:
         lab = np.asarray(lab).reshape(-1, 3)
         if lab.dtype not in (np.float32, np.float64):
             lab = lab.astype(np.float64)
+        kern = kernel()
+        if kern is None or lab.shape[0] < KERNEL_MIN_COLOURS:
+            return self._match_numpy(lab, workers)
+        lab = np.ascontiguousarray(lab)
+        U = lab.shape[0]
+        out = (np.empty(U, np.float32), np.empty(U, np.float32), np.empty(U, np.int16),
+               np.empty(U, np.float32), np.empty(U, np.float32), np.empty(U, np.int16))
+        miss = np.empty(U, dtype=np.int64)
+        with self.lock:                                                 # the table as it stands
+            blocks, n_blocks, n_slots, records = self.blocks, self.n_blocks, self.n_slots, self.records
+        dt = lab.dtype.type
+        const = (_LO.astype(lab.dtype), dt(1 / FINE_STEP), dt(0.5), (self.shape * FINE_PER_COARSE).astype(lab.dtype),
+                 np.int64(self.shape[1]), np.int64(self.shape[2]), np.int64(FINE_PER_COARSE), self.block_of, blocks,
+                 np.int64(n_blocks), np.int64(n_slots), records, np.float32(self.t[0]), np.float32(self.t[-1]),
+                 np.float32(MAX_CORRECTION_NM))
+
+        def run(a, b):
+            n = kern(lab[a:b], *const, *(o[a:b] for o in out), miss[a:b])
+            return miss[a:a + n] + a
+
+        parts = max(1, min(workers, U // KERNEL_MIN_COLOURS))
+        edges = np.linspace(0, U, parts + 1).astype(int)
+        if parts > 1:
+            with ThreadPoolExecutor(parts) as pool:
+                missed = list(pool.map(lambda k: run(edges[k], edges[k + 1]), range(parts)))
+        else:
+            missed = [run(0, U)]
+        idx = np.concatenate(missed)
+        if idx.size:                                                    # not built yet, or outside the table
+            for o, v in zip(out, self._match_numpy(lab[idx], workers)):
+                o[idx] = v
+        return out
+
+    def _match_numpy(self, lab, workers):
+        """:meth:`match` in numpy (chunks of :data:`CHUNK` colours, in threads): the path that builds the table."""
         U = lab.shape[0]
         t1, t2 = np.full(U, np.nan, np.float32), np.full(U, np.nan, np.float32)
         de1, de2 = np.full(U, np.inf, np.float32), np.full(U, np.inf, np.float32)
@@ -551,25 +621,33 @@ class ColourTable:
 
         def work(a, b):
             x = lab[a:b]
-            good = np.isfinite(x).all(axis=1)
-            every = bool(good.all())
+            every = bool(np.isfinite(np.add.reduce(x, axis=None)))     # a NaN or an inf anywhere makes the sum one
+            good = None if every else np.isfinite(x).all(axis=1)
             if not every:
                 x = np.where(good[:, None], x, 0.0)
-            with self.lock:
-                slot = self._slots(x)
-                records = self.records                                  # the array as grown so far
-            out = np.flatnonzero(good & (slot < 0)) if not every else np.flatnonzero(slot < 0)
-            rec = records[np.maximum(slot, 0)]
-            if out.size:                                               # outside the table: solved one by one
-                xo = x[out].astype(np.float64)
+            with self.lock:                                             # the table as it stands
+                snapshot = self.blocks, self.n_blocks, self.n_slots, self.records
+            slot = self._lookup(x, *snapshot[:3])
+            rec = (snapshot[3].take(np.maximum(slot, 0), axis=0) if snapshot[2]
+                   else np.zeros((x.shape[0], snapshot[3].shape[1]), dtype=np.float32))
+            miss = np.flatnonzero(slot < 0)
+            if miss.size:                                              # cells and vertices not built yet
                 with self.lock:
-                    i1, i2, _, _ = _in_chunks(self._centre, xo, 2048)
-                rec[out] = _in_chunks(self._records, xo, 16384, i1, i2)
+                    built = self._slots(x[miss])
+                    records = self.records                             # the array as grown so far
+                got = built >= 0
+                rec[miss[got]] = records.take(built[got], axis=0)
+                out = miss[~got] if every else miss[~got & good[miss]]
+                if out.size:                                           # outside the table: solved one by one
+                    xo = x[out].astype(np.float64)
+                    with self.lock:
+                        i1, i2, _, _ = _in_chunks(self._centre, xo, 2048)
+                    rec[out] = _in_chunks(self._records, xo, 16384, i1, i2)
             ans = self._answer(x, rec)
-            np.clip(ans[0], lo, hi, out=ans[0])
-            np.clip(ans[3], lo, hi, out=ans[3])
             g = slice(a, b)
-            for dst, val in zip((t1, de1, o1, t2, de2, o2), ans):
+            for k, (dst, val) in enumerate(zip((t1, de1, o1, t2, de2, o2), ans)):
+                if k % 3 == 0:
+                    val = np.clip(val, lo, hi)
                 dst[g] = val if every else np.where(good, val, dst[g])
 
         spans = [(a, min(a + CHUNK, U)) for a in range(0, U, CHUNK)]

@@ -635,12 +635,40 @@ class ThicknessMap:
     uncertainty_nm: np.ndarray | None = None
 
 
-def _lab_from_linear(lin: np.ndarray, illuminant, observer) -> np.ndarray:
+def _lab_from_linear(lin: np.ndarray, illuminant, observer, gains=None) -> np.ndarray:
+    """CIELAB (float32) of linear sRGB (n, 3), each channel first multiplied by ``gains`` when given."""
     from .colourtable import lab_from_linear               # the CIE formula in float32, fast on millions of pixels
 
     white = illuminant_white_xyz(illuminant, observer)
     M = np.linalg.inv(_xyz_to_linear_srgb_matrix(white.tobytes()))
-    return lab_from_linear(lin, M, white)
+    return lab_from_linear(lin, M if gains is None else M * np.asarray(gains, dtype=float)[None, :], white)
+
+
+def _lab_of_codes(region: np.ndarray, linear: bool, gains, illuminant, observer) -> np.ndarray:
+    """CIELAB (n, 3) float32 of every pixel of a 16-bit region (h, w, 3): decoded (sRGB, or code / 65535 when
+    ``linear``), multiplied by the gains and turned into CIELAB, without the full-size linear copy (compiled,
+    in two threads; :func:`_unique_linear` and :func:`_lab_from_linear` where numba is not at hand)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from .colourkernel import kernels
+
+    k = kernels()
+    if k is None:
+        codes, _, lin = _unique_linear(region, 16, linear)
+        return _lab_from_linear(lin, illuminant, observer, gains)
+    table = (np.arange(65536, dtype=np.float32) / np.float32(65535) if linear else srgb_decode_table(16))
+    table = np.ascontiguousarray(table, dtype=np.float32)
+    white = illuminant_white_xyz(illuminant, observer)
+    white = white / white[1]
+    M = np.linalg.inv(_xyz_to_linear_srgb_matrix(illuminant_white_xyz(illuminant, observer).tobytes()))
+    coef = np.ascontiguousarray((M * np.asarray(gains, dtype=float)[None, :]) / white[:, None], dtype=np.float32)
+    codes = np.ascontiguousarray(region.reshape(-1, 3))
+    lab = np.empty(codes.shape, dtype=np.float32)
+    edges = np.linspace(0, codes.shape[0], 3).astype(int)
+    with ThreadPoolExecutor(2) as pool:                          # the loop holds no interpreter lock
+        list(pool.map(lambda j: k[1](codes[edges[j]:edges[j + 1]], table, coef, lab[edges[j]:edges[j + 1]]),
+                      range(2)))
+    return lab
 
 
 def _calibration_gains(photo, box, reference, stack, layer, angle_deg, illuminant, observer, polarization, na,
@@ -752,10 +780,13 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
         path = _true_colour_path(path) if calibrated else path       # calibrated XYZ is not gamut-clipped
         what = "pixels"
     else:
-        codes, inverse, lin = _unique_linear(photo.rgb[y0:y1, x0:x1], photo.bit_depth, photo.linear)
-        if photo.bit_depth == 16 and inverse.size > UNIQUE_16BIT_MAX_PIXELS:
+        region = photo.rgb[y0:y1, x0:x1]
+        if photo.bit_depth == 16 and region.shape[0] * region.shape[1] > UNIQUE_16BIT_MAX_PIXELS:
+            lab = _lab_of_codes(region, photo.linear, gains, illuminant, observer)
             inverse = None                                           # kept pixel by pixel: the identity
-        lab = _lab_from_linear(lin * gains, illuminant, observer)
+        else:
+            codes, inverse, lin = _unique_linear(region, photo.bit_depth, photo.linear)
+            lab = _lab_from_linear(lin, illuminant, observer, gains)
         what = "distinct colours"
     n = len(lab)
     matched = None
@@ -970,6 +1001,12 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
     Returns ``(T, D, O, M, undecided)``, each (h, w): thickness, ΔE00, order, |margin| and the matched
     pixels whose other order is acceptable and within ``margin_de`` (see ``ThicknessMap.undecided``).
     """
+    if inverse is None:
+        from .colourkernel import kernels
+        k = kernels()
+        if k is not None:                                               # one compiled pass, no temporaries
+            return _resolve_compiled(k, t1, de1, o1, t2, de2, o2, shape, max_de, nominal_nm, margin_de)
+
     def per_pixel(a):                                                   # a per-colour array, per pixel
         return (a if inverse is None else a[inverse]).reshape(shape)
 
@@ -1006,6 +1043,31 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
     undecided = per_pixel(maybe_u)
     undecided &= np.isfinite(T)
     return T, D, O, M, undecided
+
+
+def _resolve_compiled(k, t1, de1, o1, t2, de2, o2, shape, max_de, nominal_nm, margin_de):
+    """:func:`_resolve` for a photo whose every pixel is its own colour, in the compiled loops of
+    :mod:`physics.colourkernel` (the same choices; t1, de1 and o1 become the maps)."""
+    margins, choose = k[2], k[3]
+    n = t1.size
+    t1 = np.ascontiguousarray(t1, dtype=np.float32)
+    de1 = np.ascontiguousarray(de1, dtype=np.float32)
+    o1 = np.ascontiguousarray(o1, dtype=np.int16)
+    t2, de2 = np.ascontiguousarray(t2, dtype=np.float32), np.ascontiguousarray(de2, dtype=np.float32)
+    o2 = np.ascontiguousarray(o2, dtype=np.int16)
+    M = np.empty(n, dtype=np.float32)
+    confident = np.empty(n, dtype=bool)
+    max32, margin32 = np.float32(max_de), np.float32(margin_de)
+    n_conf, any_other = margins(de1, de2, max32, margin32, M, confident)
+    use_ref = n_conf < n and any_other
+    ref, step = np.full((1, 1), np.nan), max(shape)                 # no confident pixel: no reference
+    if use_ref and n_conf:
+        ref, step = _smooth_reference(t1.reshape(shape), confident.reshape(shape))
+    undecided = np.empty(n, dtype=bool)
+    nominal = float("nan") if nominal_nm is None else float(nominal_nm)
+    choose(t1, de1, o1, t2, de2, o2, M, confident, np.ascontiguousarray(ref, dtype=np.float64), int(step),
+           int(shape[1]), bool(use_ref), nominal, max32, margin32, undecided)
+    return (t1.reshape(shape), de1.reshape(shape), o1.reshape(shape), M.reshape(shape), undecided.reshape(shape))
 
 
 def _embed(a, shape, box, fill):

@@ -213,3 +213,37 @@ def test_histogram_percentiles_equal_numpys():
                 for q in ([1.0, 50.0, 99.0], [50.0, 95.0], [0.0, 12.345, 100.0]):
                     assert np.array_equal(_percentiles(x, q), np.percentile(x, q))
                     assert np.array_equal(_percentiles(x, q, np.float64), np.percentile(x.astype(np.float64), q))
+
+
+@pytest.mark.parametrize("kw", [{}, {"nominal_nm": 700.0, "roi": (3, 2, 1197, 878)}, {"reading_error_de": 5.0}])
+def test_a_16_bit_map_is_the_same_compiled_or_not(kw, monkeypatch):
+    """A 16-bit photo of more than UNIQUE_16BIT_MAX_PIXELS pixels (every pixel its own colour) maps through the
+    compiled loops of physics.colourkernel; without numba through numpy. The same map but for float32
+    rounding: a pixel on a vertex boundary or a tie of two orders to 1e-6 ΔE00 may go the other way."""
+    import physics.colourkernel as ck
+    import physics.colourtable as ct
+    from physics import thickness_map
+    from physics.appearance import color_map
+    from physics.inverse import UNIQUE_16BIT_MAX_PIXELS
+    if ck.kernels() is None:
+        pytest.skip("numba is not installed here")
+    d = np.linspace(0.0, 950.0, 400)                                   # an invented bevel, 0 → 950 nm
+    rgb = color_map(OXIDE, 0, d, [0.0]).rgb[:, 0, :]
+    rng = np.random.default_rng(5)
+    x = np.arange(1200) * (d.size - 1) / 1199
+    row = np.stack([np.interp(x, np.arange(d.size), rgb[:, c]) for c in range(3)], axis=-1)
+    img = np.clip(np.rint(row[None] * 65535 + rng.normal(0, 300, (880, 1200, 3))), 0, 65535).astype(np.uint16)
+    assert img.shape[0] * img.shape[1] > UNIQUE_16BIT_MAX_PIXELS
+    img[5, 7] = 0                                                      # a black pixel: no match
+    fast = thickness_map(img, OXIDE, 0, (0, 1000), **kw)
+    monkeypatch.setattr(ck, "kernels", lambda: None)
+    monkeypatch.setattr(ct, "kernel", lambda: None)
+    plain = thickness_map(img, OXIDE, 0, (0, 1000), **kw)
+    for name in ("thickness_nm", "delta_e", "margin", "order", "undecided", "order_outlier"):
+        a, b = getattr(fast, name).astype(float), getattr(plain, name).astype(float)
+        assert np.array_equal(np.isnan(a), np.isnan(b)), name
+        close = np.isclose(a, b, rtol=0, atol=1e-3, equal_nan=True)
+        assert close.mean() > 0.9998, name
+    assert fast.stats["pixels"] == plain.stats["pixels"]
+    assert fast.stats["mean_nm"] == pytest.approx(plain.stats["mean_nm"], abs=0.01)
+    assert fast.stats["undecided"] == pytest.approx(plain.stats["undecided"], rel=0.01, abs=3)

@@ -1,0 +1,192 @@
+"""Compiled per-pixel loops of the photo map: colour-table answers, CIELAB of 16-bit codes, order choice.
+
+The colour-table pass of :class:`physics.colourtable.ColourTable` (lookup and answer in one loop) is the
+main one:
+
+The numpy pass (``ColourTable._lookup`` then ``ColourTable._answer``) makes a dozen temporary arrays per chunk
+of colours and gathers 132-byte records; on a 12 MP photo whose every pixel is its own colour it is memory
+bound at about 1.5 s per core. This loop does the same arithmetic (float32, the same formulas) one colour at a
+time in registers, compiled by numba (BSD-2-Clause) without the interpreter lock, so two threads share the
+photo. Colours whose cell or vertex is not built yet, or that lie outside the table, are handed back as
+misses: the numpy pass answers them (and builds what they need).
+
+The other loops do in one pass what :func:`physics.colourtable.lab_from_linear` (on decoded 16-bit codes) and
+:func:`physics.inverse._resolve` (pixel by pixel, when every pixel is its own colour) do with a dozen full-size
+numpy temporaries, each of which costs its page faults on a 12 MP map.
+
+:func:`kernels` returns the compiled functions, or None where numba is not installed or is switched off by
+the environment variable ``FRINGEGAUGE_NO_JIT=1`` (the numpy code then runs: the same answers to float32
+rounding, checked in tests/test_colourtable.py and tests/test_inverse.py).
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+
+_lock = threading.Lock()
+_compiled = None
+_tried = False
+
+
+def _build():
+    import numba
+    import numpy as np
+
+    @numba.njit(nogil=True, cache=True, fastmath=False, boundscheck=False)
+    def answer_span(x, lo3, inv_step, half, nv, s1, s2, fine, block_of, blocks, n_blocks, n_slots, rec, t_lo, t_hi,
+                    max_corr, t1, de1, o1, t2, de2, o2, miss):
+        """Answer colours x (m, 3) found in the table into the outputs; their row numbers that are not found
+        go to ``miss`` (returned: how many). Non-finite colours get NaN, inf, 0 (not misses)."""
+        n_miss = 0
+        for i in range(x.shape[0]):
+            c0, c1, c2 = x[i, 0], x[i, 1], x[i, 2]
+            if not (np.isfinite(c0) and np.isfinite(c1) and np.isfinite(c2)):
+                t1[i] = np.nan
+                t2[i] = np.nan
+                de1[i] = np.inf
+                de2[i] = np.inf
+                o1[i] = 0
+                o2[i] = 0
+                continue
+            u0 = np.floor((c0 - lo3[0]) * inv_step + half)
+            u1 = np.floor((c1 - lo3[1]) * inv_step + half)
+            u2 = np.floor((c2 - lo3[2]) * inv_step + half)
+            if not (u0 >= 0 and u0 < nv[0] and u1 >= 0 and u1 < nv[1] and u2 >= 0 and u2 < nv[2]):
+                miss[n_miss] = i
+                n_miss += 1
+                continue
+            v0, v1, v2 = np.int64(u0), np.int64(u1), np.int64(u2)
+            cell = ((v0 // fine) * s1 + v1 // fine) * s2 + v2 // fine
+            blk = block_of[cell]
+            if blk < 0 or blk >= n_blocks:
+                miss[n_miss] = i
+                n_miss += 1
+                continue
+            slot = blocks[blk, ((v0 % fine) * fine + v1 % fine) * fine + v2 % fine]
+            if slot < 0 or slot >= n_slots:
+                miss[n_miss] = i
+                n_miss += 1
+                continue
+            r = rec[slot]
+            dx = np.float32(c0) - r[0]
+            dy = np.float32(c1) - r[1]
+            dz = np.float32(c2) - r[2]
+            xx, xy, xz, yy, yz, zz = dx * dx, dx * dy, dx * dz, dy * dy, dy * dz, dz * dz
+            fa = (r[3] + r[4] * dx + r[5] * dy + r[6] * dz + r[7] * xx + r[8] * xy + r[9] * xz + r[10] * yy
+                  + r[11] * yz + r[12] * zz)
+            fb = (r[13] + r[14] * dx + r[15] * dy + r[16] * dz + r[17] * xx + r[18] * xy + r[19] * xz + r[20] * yy
+                  + r[21] * yz + r[22] * zz)
+            ca = r[23] * dx + r[24] * dy + r[25] * dz
+            cb = r[26] * dx + r[27] * dy + r[28] * dz
+            if ca < -max_corr:
+                ca = -max_corr
+            elif ca > max_corr:
+                ca = max_corr
+            if cb < -max_corr:
+                cb = -max_corr
+            elif cb > max_corr:
+                cb = max_corr
+            ta = r[29] + ca
+            tb = r[30] + cb
+            da = np.sqrt(fa) if fa > 0 else np.float32(0.0)
+            db = np.sqrt(fb) if fb > 0 else np.float32(0.0)
+            oa, ob = np.int16(r[31]), np.int16(r[32])
+            if db < da:                       # the other order's basin is the better one at this colour
+                ta, tb = tb, ta
+                da, db = db, da
+                oa, ob = ob, oa
+            if ta < t_lo:
+                ta = t_lo
+            elif ta > t_hi:
+                ta = t_hi
+            if tb < t_lo:
+                tb = t_lo
+            elif tb > t_hi:
+                tb = t_hi
+            t1[i], de1[i], o1[i] = ta, da, oa
+            t2[i], de2[i], o2[i] = tb, db, ob
+        return n_miss
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def lab_of_codes(codes, table, coef, lab):
+        """CIELAB (float32) of pixel codes (n, 3) decoded by ``table`` (code -> linear value), through the
+        3x3 ``coef`` (linear RGB -> XYZ / white, float32): as physics.colourtable.lab_from_linear."""
+        eps = np.float32((6.0 / 29.0) ** 3)
+        k = np.float32(1.0 / (3 * (6.0 / 29.0) ** 2))
+        c = np.float32(4.0 / 29.0)
+        for i in range(codes.shape[0]):
+            r, g, b = table[codes[i, 0]], table[codes[i, 1]], table[codes[i, 2]]
+            fx = r * coef[0, 0] + g * coef[0, 1] + b * coef[0, 2]
+            fy = r * coef[1, 0] + g * coef[1, 1] + b * coef[1, 2]
+            fz = r * coef[2, 0] + g * coef[2, 1] + b * coef[2, 2]
+            fx = np.cbrt(fx) if fx > eps else fx * k + c
+            fy = np.cbrt(fy) if fy > eps else fy * k + c
+            fz = np.cbrt(fz) if fz > eps else fz * k + c
+            lab[i, 0] = np.float32(116.0) * fy - np.float32(16.0)
+            lab[i, 1] = np.float32(500.0) * (fx - fy)
+            lab[i, 2] = np.float32(200.0) * (fy - fz)
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def margins(de1, de2, max_de, margin_de, margin, confident):
+        """|ΔE00 margin| (NaN where not finite) and the confident flag of every pixel (as inverse._resolve);
+        returns (how many are confident, whether any other-order match is acceptable)."""
+        n_conf = 0
+        any_other = False
+        for i in range(de1.shape[0]):
+            m = de2[i] - de1[i]
+            margin[i] = abs(m) if np.isfinite(m) else np.nan
+            ok = de1[i] <= max_de and m >= margin_de
+            confident[i] = ok
+            n_conf += ok
+            if de2[i] <= max_de:
+                any_other = True
+        return n_conf, any_other
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def choose(t1, de1, o1, t2, de2, o2, margin, confident, ref, step, width, use_ref, nominal, max_de,
+               margin_de, undecided):
+        """Per pixel, as inverse._resolve: the other order where the pixel is not confident and it lies nearer
+        the smoothed reference (``ref`` on a grid ``step`` coarser; NaN there falls back to ``nominal``, itself
+        NaN when none); then unmatched pixels emptied. t1, de1 and o1 become the map (in place)."""
+        for i in range(t1.shape[0]):
+            d2 = de2[i]
+            maybe = d2 <= max_de and margin[i] < margin_de
+            if use_ref and not confident[i]:
+                r = ref[(i // width) // step, (i % width) // step]
+                if np.isnan(r):
+                    r = nominal
+                if d2 <= max_de and np.isfinite(r) and abs(t2[i] - r) < abs(t1[i] - r):
+                    t1[i] = t2[i]
+                    de1[i] = d2
+                    o1[i] = o2[i]
+            if de1[i] > max_de:
+                t1[i] = np.nan
+                o1[i] = 0
+            undecided[i] = maybe and np.isfinite(t1[i])
+
+    return answer_span, lab_of_codes, margins, choose
+
+
+def kernel():
+    """The compiled per-colour pass (see the module docstring), or None."""
+    k = kernels()
+    return None if k is None else k[0]
+
+
+def kernels():
+    """(answer_span, lab_of_codes, margins, choose) compiled, or None (see the module docstring)."""
+    global _compiled, _tried
+    if _tried:
+        return _compiled
+    with _lock:
+        if not _tried:
+            if os.environ.get("FRINGEGAUGE_NO_JIT", "") not in ("", "0"):
+                _compiled = None
+            else:
+                try:
+                    _compiled = _build()
+                except Exception:                      # numba missing or unusable here: the numpy pass
+                    _compiled = None
+            _tried = True
+    return _compiled
