@@ -190,3 +190,28 @@ def kernels():
                     _compiled = None
             _tried = True
     return _compiled
+
+
+def warm() -> bool:
+    """Compile (or load from numba's cache) every loop once on a few values, so that the first photo map of
+    a new process does not pay for it; True when the compiled loops are in use."""
+    import numpy as np
+
+    k = kernels()
+    if k is None:
+        return False
+    answer_span, lab_of_codes, margins, choose = k
+    f32 = np.zeros(2, np.float32)
+    i16 = np.zeros(2, np.int16)
+    for dt in (np.float32, np.float64):
+        answer_span(np.zeros((2, 3), dt), np.zeros(3, dt), dt(2.0), dt(0.5), np.ones(3, dt), np.int64(1), np.int64(1),
+                    np.int64(4), np.full(1, -1, np.int32), np.full((1, 64), -1, np.int32), np.int64(0), np.int64(0),
+                    np.zeros((1, 33), np.float32), np.float32(0), np.float32(1), np.float32(0.75),
+                    f32.copy(), f32.copy(), i16.copy(), f32.copy(), f32.copy(), i16.copy(), np.zeros(2, np.int64))
+    lab_of_codes(np.zeros((2, 3), np.uint16), np.zeros(65536, np.float32), np.eye(3, dtype=np.float32),
+                 np.zeros((2, 3), np.float32))
+    conf = np.zeros(2, bool)
+    margins(f32, f32, np.float32(6), np.float32(2), f32.copy(), conf)
+    choose(f32.copy(), f32.copy(), i16.copy(), f32, f32, i16, f32, conf, np.zeros((1, 1)), 2, 2, True, float("nan"),
+           np.float32(6), np.float32(2), conf.copy())
+    return True

@@ -158,6 +158,11 @@ def _init_worker(memory_bytes: int) -> None:
     _share_cores()
     import physics.fit  # noqa: F401  (import the numerics once per worker, not per job)
     import physics.inverse  # noqa: F401
+    from physics.colourkernel import warm
+    try:
+        warm()                                   # the photo map's compiled loops, from numba's cache
+    except Exception:                            # noqa: BLE001 - the numpy passes serve without them
+        pass
 
 
 #: What a new worker process runs first, given :func:`worker_memory_bytes`.
