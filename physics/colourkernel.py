@@ -165,17 +165,111 @@ def _build():
                 o1[i] = 0
             undecided[i] = maybe and np.isfinite(t1[i])
 
-    return answer_span, lab_of_codes, margins, choose
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def lab_of_linear(lin, coef, lab):
+        """CIELAB (float32) of linear values (n, 3), each first rounded to float32, through ``coef`` (linear ->
+        XYZ / white, float32): as physics.colourtable.lab_from_linear."""
+        eps = np.float32((6.0 / 29.0) ** 3)
+        k = np.float32(1.0 / (3 * (6.0 / 29.0) ** 2))
+        c = np.float32(4.0 / 29.0)
+        for i in range(lin.shape[0]):
+            r, g, b = np.float32(lin[i, 0]), np.float32(lin[i, 1]), np.float32(lin[i, 2])
+            fx = r * coef[0, 0] + g * coef[0, 1] + b * coef[0, 2]
+            fy = r * coef[1, 0] + g * coef[1, 1] + b * coef[1, 2]
+            fz = r * coef[2, 0] + g * coef[2, 1] + b * coef[2, 2]
+            fx = np.cbrt(fx) if fx > eps else fx * k + c
+            fy = np.cbrt(fy) if fy > eps else fy * k + c
+            fz = np.cbrt(fz) if fz > eps else fz * k + c
+            lab[i, 0] = np.float32(116.0) * fy - np.float32(16.0)
+            lab[i, 1] = np.float32(500.0) * (fx - fy)
+            lab[i, 2] = np.float32(200.0) * (fy - fz)
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def histogram(x, lo, scale, nbins, counts):
+        """counts[j] += values of x in bin j = min(int((x - lo) * scale), nbins - 1) (x >= lo, in x's dtype),
+        as inverse._order_statistics bins them."""
+        for i in range(x.shape[0]):
+            b = np.int64((x[i] - lo) * scale)
+            if b > nbins - 1:
+                b = nbins - 1
+            counts[b] += 1
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def in_bin(x, lo, scale, nbins, j, out):
+        """The values of x in bin j (as :func:`histogram`) into out, in order; returns how many."""
+        n = 0
+        for i in range(x.shape[0]):
+            b = np.int64((x[i] - lo) * scale)
+            if b > nbins - 1:
+                b = nbins - 1
+            if b == j:
+                out[n] = x[i]
+                n += 1
+        return n
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def order_counts(order, valid, lo, nv, step, gw, per_cell):
+        """Count the pixels of a (h, w) order map into bins ((row // step) * gw + col // step) * (nv + 1) +
+        (order - lo), or + nv where not valid (as inverse._order_outliers bins them)."""
+        h, w = order.shape
+        for y in range(h):
+            base = (y // step) * gw
+            for x in range(w):
+                r = np.int64(order[y, x]) - lo if valid[y, x] else nv
+                per_cell[(base + x // step) * (nv + 1) + r] += 1
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def order_flags(order, valid, lo, nv, step, gw, allowed, flags):
+        """flags (h, w) = not allowed[bin] of each pixel, its bin as in :func:`order_counts`."""
+        h, w = order.shape
+        for y in range(h):
+            base = (y // step) * gw
+            for x in range(w):
+                r = np.int64(order[y, x]) - lo if valid[y, x] else nv
+                flags[y, x] = not allowed[(base + x // step) * (nv + 1) + r]
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def finite_values(x, out):
+        """The finite values of x (1-D) into out, in order; returns how many."""
+        n = 0
+        for i in range(x.shape[0]):
+            if np.isfinite(x[i]):
+                out[n] = x[i]
+                n += 1
+        return n
+
+    @numba.njit(nogil=True, cache=True, boundscheck=False)
+    def moments(v):
+        """(sum, sum of squares, min, max) of v (1-D, finite, not empty), summed in float64."""
+        s = 0.0
+        ss = 0.0
+        lo = v[0]
+        hi = v[0]
+        for i in range(v.shape[0]):
+            a = np.float64(v[i])
+            s += a
+            ss += a * a
+            if v[i] < lo:
+                lo = v[i]
+            if v[i] > hi:
+                hi = v[i]
+        return s, ss, lo, hi
+
+    from types import SimpleNamespace
+    return SimpleNamespace(answer_span=answer_span, lab_of_codes=lab_of_codes, lab_of_linear=lab_of_linear,
+                           margins=margins, choose=choose, histogram=histogram, in_bin=in_bin, order_counts=order_counts,
+                           order_flags=order_flags, finite_values=finite_values, moments=moments)
 
 
 def kernel():
     """The compiled per-colour pass (see the module docstring), or None."""
     k = kernels()
-    return None if k is None else k[0]
+    return None if k is None else k.answer_span
 
 
 def kernels():
-    """(answer_span, lab_of_codes, margins, choose) compiled, or None (see the module docstring)."""
+    """The compiled loops (a namespace: answer_span, lab_of_codes, lab_of_linear, margins, choose, histogram,
+    in_bin, order_counts, order_flags, finite_values, moments), or None (see the module docstring)."""
     global _compiled, _tried
     if _tried:
         return _compiled
@@ -200,18 +294,17 @@ def warm() -> bool:
     k = kernels()
     if k is None:
         return False
-    answer_span, lab_of_codes, margins, choose = k
     f32 = np.zeros(2, np.float32)
     i16 = np.zeros(2, np.int16)
     for dt in (np.float32, np.float64):
-        answer_span(np.zeros((2, 3), dt), np.zeros(3, dt), dt(2.0), dt(0.5), np.ones(3, dt), np.int64(1), np.int64(1),
+        k.answer_span(np.zeros((2, 3), dt), np.zeros(3, dt), dt(2.0), dt(0.5), np.ones(3, dt), np.int64(1), np.int64(1),
                     np.int64(4), np.full(1, -1, np.int32), np.full((1, 64), -1, np.int32), np.int64(0), np.int64(0),
                     np.zeros((1, 33), np.float32), np.float32(0), np.float32(1), np.float32(0.75),
                     f32.copy(), f32.copy(), i16.copy(), f32.copy(), f32.copy(), i16.copy(), np.zeros(2, np.int64))
-    lab_of_codes(np.zeros((2, 3), np.uint16), np.zeros(65536, np.float32), np.eye(3, dtype=np.float32),
+    k.lab_of_codes(np.zeros((2, 3), np.uint16), np.zeros(65536, np.float32), np.eye(3, dtype=np.float32),
                  np.zeros((2, 3), np.float32))
     conf = np.zeros(2, bool)
-    margins(f32, f32, np.float32(6), np.float32(2), f32.copy(), conf)
-    choose(f32.copy(), f32.copy(), i16.copy(), f32, f32, i16, f32, conf, np.zeros((1, 1)), 2, 2, True, float("nan"),
+    k.margins(f32, f32, np.float32(6), np.float32(2), f32.copy(), conf)
+    k.choose(f32.copy(), f32.copy(), i16.copy(), f32, f32, i16, f32, conf, np.zeros((1, 1)), 2, 2, True, float("nan"),
            np.float32(6), np.float32(2), conf.copy())
     return True

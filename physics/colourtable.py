@@ -51,7 +51,7 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
-from .colourkernel import kernel
+from .colourkernel import kernel, kernels
 
 __all__ = ["ColourTable", "colour_table", "delta_e_2000_fast", "lab_from_xyz", "lab_from_linear", "COARSE_STEP", "FINE_STEP",
            "FAR_DE", "DE00_LIPSCHITZ", "SCAN_STRIDE", "TABLES_CACHED"]
@@ -195,6 +195,18 @@ def lab_from_linear(lin, matrix, white_xyz, dtype=np.float32) -> np.ndarray:
         o[:, 1] = 500.0 * (f[0] - f[1])
         o[:, 2] = 200.0 * (f[1] - f[2])
 
+    jit = kernels() if dtype == np.float32 and lin.dtype in (np.float32, np.float64) else None
+    if jit is not None:                                         # compiled: one pass, no temporaries
+        coef = np.ascontiguousarray(M / white[:, None], dtype=np.float32)
+        lin = np.ascontiguousarray(lin)
+        edges = np.linspace(0, lin.shape[0], 3).astype(int) if lin.shape[0] > 1 << 18 else np.array([0, lin.shape[0]])
+        run = lambda j: jit.lab_of_linear(lin[edges[j]:edges[j + 1]], coef, out[edges[j]:edges[j + 1]])  # noqa: E731
+        if edges.size > 2:
+            with ThreadPoolExecutor(2) as pool:
+                list(pool.map(run, range(edges.size - 1)))
+        else:
+            run(0)
+        return out
     starts = range(0, lin.shape[0], 1 << 18)
     if len(starts) > 1:                                         # numpy releases the GIL: two cores share it
         with ThreadPoolExecutor(2) as pool:
@@ -289,6 +301,7 @@ class ColourTable:
         w = np.where(ok[:, None], Mt / np.where(ok, tMt, 1.0)[:, None], 0.0)
         A = M - np.where(ok[:, None, None], Mt[:, :, None] * Mt[:, None, :] / np.where(ok, tMt, 1.0)[:, None, None], 0)
         self.tan, self.w, self.M = tan, w, M
+        self.M6 = np.stack([M[:, 0, 0], M[:, 0, 1], M[:, 0, 2], M[:, 1, 1], M[:, 1, 2], M[:, 2, 2]], axis=1)
         self.A6 = np.stack([A[:, 0, 0], A[:, 0, 1], A[:, 0, 2], A[:, 1, 1], A[:, 1, 2], A[:, 2, 2]], axis=1)
 
     @staticmethod
@@ -427,9 +440,12 @@ class ColourTable:
                 e = np.zeros(3)
                 e[k] = FD_STEP
                 g[:, k] = (self._f(q + e, p) - self._f(q - e, p)) / (2 * FD_STEP)
-            A = self.A6[i] * np.array([1.0, 2.0, 2.0, 1.0, 2.0, 1.0])      # coefficients of the products
+            # A minimum at an end of its order (the window's end, or where the order changes) is not a
+            # stationary point of the path: the nearest point stays there as the colour moves, so its thickness
+            # takes no first-order correction and ΔE00² grows with the full metric M, not the one across the path.
+            A = np.where(inner[:, None], self.A6[i], self.M6[i]) * np.array([1.0, 2.0, 2.0, 1.0, 2.0, 1.0])
             out[:, base] = np.where(none, np.nan, tau)
-            out[:, base + 1:base + 4] = np.where(none[:, None], 0.0, self.w[i])
+            out[:, base + 1:base + 4] = np.where(none[:, None] | ~inner[:, None], 0.0, self.w[i])
             out[:, base + 4] = np.where(none, np.inf, fmin)
             out[:, base + 5:base + 8] = np.where(none[:, None], 0.0, g)
             out[:, base + 8:base + 14] = np.where(none[:, None], 0.0, A)
@@ -562,13 +578,14 @@ class ColourTable:
         slot[~ok] = -1
         return slot
 
-    def match(self, lab, workers: int = 2):
+    def match(self, lab, workers: int = 2, out=None):
         """Best path match and best match of another order for each colour.
 
         Parameters
         ----------
         lab : (U, 3) CIELAB colours
         workers : threads for the per-colour pass (the table is built in one thread)
+        out : optional six arrays of the returned dtypes and length U to write the answers into
 
         Returns
         -------
@@ -580,11 +597,18 @@ class ColourTable:
             lab = lab.astype(np.float64)
         kern = kernel()
         if kern is None or lab.shape[0] < KERNEL_MIN_COLOURS:
-            return self._match_numpy(lab, workers)
+            answers = self._match_numpy(lab, workers)
+            if out is None:
+                return answers
+            for o, a in zip(out, answers):
+                o[...] = a
+            return tuple(out)
         lab = np.ascontiguousarray(lab)
         U = lab.shape[0]
-        out = (np.empty(U, np.float32), np.empty(U, np.float32), np.empty(U, np.int16),
-               np.empty(U, np.float32), np.empty(U, np.float32), np.empty(U, np.int16))
+        if out is None:
+            out = (np.empty(U, np.float32), np.empty(U, np.float32), np.empty(U, np.int16),
+                   np.empty(U, np.float32), np.empty(U, np.float32), np.empty(U, np.int16))
+        out = tuple(out)
         miss = np.empty(U, dtype=np.int64)
         with self.lock:                                                 # the table as it stands
             blocks, n_blocks, n_slots, records = self.blocks, self.n_blocks, self.n_slots, self.records

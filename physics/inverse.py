@@ -666,7 +666,7 @@ def _lab_of_codes(region: np.ndarray, linear: bool, gains, illuminant, observer)
     lab = np.empty(codes.shape, dtype=np.float32)
     edges = np.linspace(0, codes.shape[0], 3).astype(int)
     with ThreadPoolExecutor(2) as pool:                          # the loop holds no interpreter lock
-        list(pool.map(lambda j: k[1](codes[edges[j]:edges[j + 1]], table, coef, lab[edges[j]:edges[j + 1]]),
+        list(pool.map(lambda j: k.lab_of_codes(codes[edges[j]:edges[j + 1]], table, coef, lab[edges[j]:edges[j + 1]]),
                       range(2)))
     return lab
 
@@ -789,14 +789,11 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
             lab = _lab_from_linear(lin, illuminant, observer, gains)
         what = "distinct colours"
     n = len(lab)
-    matched = None
+    matched = tuple(np.empty(n, dtype=dt) for dt in (np.float32, np.float32, np.int16) * 2)
     for start in range(0, max(n, 1), MATCH_CHUNK_COLOURS):           # in chunks: progress, and less memory
         say(0.35 + 0.4 * start / max(n, 1), f"matching {n:,} {what}")
-        part = _match(lab[start:start + MATCH_CHUNK_COLOURS], path)
-        if matched is None:                                          # written in place, not joined at the end
-            matched = tuple(np.empty(n, dtype=a.dtype) for a in part)
-        for out, a in zip(matched, part):
-            out[start:start + a.size] = a
+        g = slice(start, start + MATCH_CHUNK_COLOURS)                # answers written in place
+        _match(lab[g], path, out=tuple(a[g] for a in matched))
     t1, de1, o1, t2, de2, o2 = matched
     say(0.75, "resolving orders by continuity")
     shape = (y1 - y0, x1 - x0)
@@ -809,7 +806,7 @@ def thickness_map(image, stack: Stack, layer: int = 0, thickness_nm=(0, 1000), r
     stats["undecided_fraction"] = stats["undecided"] / stats["pixels"] if stats["pixels"] else 0.0
     stats["reading_error_de"] = margin_de
     U = _uncertainty_nm(T, D, path, calibration.colour_error_de if calibration is not None else AMBIGUOUS_DE, hi - lo)
-    u = U[np.isfinite(U)]
+    u = _finite(U)
     p50, p95 = (float(v) for v in _percentiles(u, [50.0, 95.0])) if u.size else (float("nan"),) * 2
     stats["median_uncertainty_nm"], stats["p95_uncertainty_nm"] = p50, p95
     stats["calibrated"], stats["flat_fielded"], stats["denoise"] = calibration is not None, flat is not None, denoise
@@ -942,7 +939,7 @@ def _unique_linear(rgb: np.ndarray, bit_depth: int, linear: bool = False):
     return codes, inverse.ravel(), lin
 
 
-def _match(lab: np.ndarray, path: _Path):
+def _match(lab: np.ndarray, path: _Path, out=None):
     """Best match overall and best match of any other order, for each colour (by ΔE00).
 
     Returns ``(t1, de1, o1, t2, de2, o2)``: thickness (nm), ΔE00 and fringe order of the best path match,
@@ -955,7 +952,7 @@ def _match(lab: np.ndarray, path: _Path):
     """
     from .colourtable import colour_table
 
-    return colour_table(path.lab_display, path.thickness_nm, path.order).match(lab)
+    return colour_table(path.lab_display, path.thickness_nm, path.order).match(lab, out=out)
 
 
 def _smooth_reference(T1, confident):
@@ -1048,7 +1045,7 @@ def _resolve(t1, de1, o1, t2, de2, o2, inverse, shape, max_de, nominal_nm, margi
 def _resolve_compiled(k, t1, de1, o1, t2, de2, o2, shape, max_de, nominal_nm, margin_de):
     """:func:`_resolve` for a photo whose every pixel is its own colour, in the compiled loops of
     :mod:`physics.colourkernel` (the same choices; t1, de1 and o1 become the maps)."""
-    margins, choose = k[2], k[3]
+    margins, choose = k.margins, k.choose
     n = t1.size
     t1 = np.ascontiguousarray(t1, dtype=np.float32)
     de1 = np.ascontiguousarray(de1, dtype=np.float32)
@@ -1089,25 +1086,34 @@ def _order_outliers(O: np.ndarray, valid: np.ndarray) -> np.ndarray:
     """
     h, w = O.shape
     lo, hi = (int(O.min()), int(O.max())) if O.size else (0, 0)
-    if hi - lo < 256:                                                   # fringe orders: a short range
-        values = np.arange(lo, hi + 1)
-        r = np.subtract(O, lo, dtype=np.int32)
-    else:
-        values, r = np.unique(O, return_inverse=True)
-        r = r.reshape(h, w).astype(np.int32)
-    nv = values.size                                                    # bin nv: unmatched pixels
-    np.putmask(r, ~valid, nv)
     size = max(3, int(round(CONTINUITY_WINDOW_FRACTION * max(h, w))))
     step = max(1, size // 6)
     k = max(1, size // step)
     gh, gw = -(-h // step), -(-w // step)
-    # each pixel's (cell of the reduced grid, order) bin; the matched pixels of each order in each cell are
-    # counted exactly (as the block sums of 0/1 indicators were) and then averaged over the window
-    code = np.add.outer((np.arange(h, dtype=np.int32) // step) * np.int32(gw * (nv + 1)),
-                        (np.arange(w, dtype=np.int32) // step) * np.int32(nv + 1))
-    code += r
-    del r
-    per_cell = np.bincount(code.ravel(), minlength=gh * gw * (nv + 1)).reshape(gh, gw, nv + 1)
+    from .colourkernel import kernels
+    jit = kernels() if hi - lo < 256 and O.size > UNIQUE_16BIT_MAX_PIXELS else None
+    if jit is not None:                                                 # the same bins, without full-size copies
+        values, nv = np.arange(lo, hi + 1), hi - lo + 1
+        O, valid = np.ascontiguousarray(O), np.ascontiguousarray(valid)
+        per_cell = np.zeros(gh * gw * (nv + 1), dtype=np.int64)
+        jit.order_counts(O, valid, lo, nv, step, gw, per_cell)
+        per_cell = per_cell.reshape(gh, gw, nv + 1)
+    else:
+        if hi - lo < 256:                                               # fringe orders: a short range
+            values = np.arange(lo, hi + 1)
+            r = np.subtract(O, lo, dtype=np.int32)
+        else:
+            values, r = np.unique(O, return_inverse=True)
+            r = r.reshape(h, w).astype(np.int32)
+        nv = values.size                                                # bin nv: unmatched pixels
+        np.putmask(r, ~valid, nv)
+        # each pixel's (cell of the reduced grid, order) bin; the matched pixels of each order in each cell are
+        # counted exactly (as the block sums of 0/1 indicators were) and then averaged over the window
+        code = np.add.outer((np.arange(h, dtype=np.int32) // step) * np.int32(gw * (nv + 1)),
+                            (np.arange(w, dtype=np.int32) // step) * np.int32(nv + 1))
+        code += r
+        del r
+        per_cell = np.bincount(code.ravel(), minlength=gh * gw * (nv + 1)).reshape(gh, gw, nv + 1)
     total = per_cell[:, :, :nv].sum(axis=(0, 1))
     present = np.flatnonzero(total)                                     # as np.unique of the matched orders
     if present.size < 2:
@@ -1127,6 +1133,10 @@ def _order_outliers(O: np.ndarray, valid: np.ndarray) -> np.ndarray:
     for dy in (0, 1, 2):
         for dx in (0, 1, 2):
             allowed.reshape(-1)[cells + padded[dy:dy + gh, dx:dx + gw]] = True
+    if jit is not None:
+        flags = np.empty((h, w), dtype=bool)
+        jit.order_flags(O, valid, lo, nv, step, gw, allowed.reshape(-1), flags)
+        return flags
     return ~allowed.reshape(-1)[code]
 
 
@@ -1143,13 +1153,25 @@ def _order_statistics(x: np.ndarray, ks: np.ndarray) -> np.ndarray:
     if not hi > lo:
         return np.full(ks.shape, lo, dtype=x.dtype)
     scale = np.float64(PERCENTILE_BINS) / (np.float64(hi) - np.float64(lo))
-    b = ((x - lo) * x.dtype.type(scale)).astype(np.int32)             # >= 0: truncation is the floor
-    np.minimum(b, PERCENTILE_BINS - 1, out=b)
-    below = np.concatenate(([0], np.cumsum(np.bincount(b, minlength=PERCENTILE_BINS))))
+    from .colourkernel import kernels
+    jit = kernels() if x.size > UNIQUE_16BIT_MAX_PIXELS and x.dtype in (np.float32, np.float64) else None
+    if jit is not None:                                                 # the same bins, in one compiled pass
+        x = np.ascontiguousarray(x)
+        counts = np.zeros(PERCENTILE_BINS, dtype=np.int64)
+        jit.histogram(x, lo, x.dtype.type(scale), PERCENTILE_BINS, counts)
+    else:
+        b = ((x - lo) * x.dtype.type(scale)).astype(np.int32)         # >= 0: truncation is the floor
+        np.minimum(b, PERCENTILE_BINS - 1, out=b)
+        counts = np.bincount(b, minlength=PERCENTILE_BINS)
+    below = np.concatenate(([0], np.cumsum(counts)))
     out = np.empty(ks.shape, dtype=x.dtype)
     bins = np.searchsorted(below, ks, side="right") - 1                # below[j] <= k < below[j + 1]
     for j in np.unique(bins):
-        inside = x[b == j]
+        if jit is not None:
+            inside = np.empty(int(counts[j]), dtype=x.dtype)
+            jit.in_bin(x, lo, x.dtype.type(scale), PERCENTILE_BINS, int(j), inside)
+        else:
+            inside = x[b == j]
         rank = ks[bins == j] - below[j]
         out[bins == j] = np.partition(inside, np.unique(rank))[rank]
     return out
@@ -1174,9 +1196,20 @@ def _percentiles(x: np.ndarray, q, dtype=None) -> np.ndarray:
     return r
 
 
+def _finite(x: np.ndarray) -> np.ndarray:
+    """The finite values of an array, flattened (``x[np.isfinite(x)]``; compiled past a million values)."""
+    from .colourkernel import kernels
+    flat = x.reshape(-1)
+    jit = kernels() if flat.size > UNIQUE_16BIT_MAX_PIXELS and flat.dtype in (np.float32, np.float64) else None
+    if jit is None:
+        return flat[np.isfinite(flat)]
+    out = np.empty(flat.size, dtype=flat.dtype)
+    return out[:jit.finite_values(np.ascontiguousarray(flat), out)]
+
+
 def _stats(T, outlier=None):
     """Statistics of a thickness region (nm), NaN = unmatched; ``outlier`` flags stray-order pixels."""
-    v = T[np.isfinite(T)]
+    v = _finite(T)
     if v.size == 0:
         nan = float("nan")
         return {"mean_nm": nan, "median_nm": nan, "std_nm": nan, "min_nm": nan, "max_nm": nan, "p_low_nm": nan,
@@ -1184,13 +1217,19 @@ def _stats(T, outlier=None):
                 "order_outliers": 0, "order_outlier_fraction": 0.0}
     p_low, median, p_high = (float(x) for x in _percentiles(v, [ROBUST_PERCENTILES[0], 50.0, ROBUST_PERCENTILES[1]],
                                                             np.float64))
-    v = v.astype(np.float64)
-    mean = float(v.sum() / v.size)
-    std = float(np.sqrt(max(float(np.dot(v, v)) / v.size - mean * mean, 0.0)))
+    from .colourkernel import kernels
+    jit = kernels() if v.size > UNIQUE_16BIT_MAX_PIXELS else None
+    if jit is not None:                                                 # one pass, no float64 copy
+        total, squares, v_min, v_max = (float(a) for a in jit.moments(v))
+    else:
+        v = v.astype(np.float64)
+        total, squares, v_min, v_max = float(v.sum()), float(np.dot(v, v)), float(v.min()), float(v.max())
+    mean = total / v.size
+    std = float(np.sqrt(max(squares / v.size - mean * mean, 0.0)))
     n_out = int(np.count_nonzero(outlier)) if outlier is not None else 0
-    return {"mean_nm": mean, "median_nm": median, "std_nm": std, "min_nm": float(v.min()), "max_nm": float(v.max()),
+    return {"mean_nm": mean, "median_nm": median, "std_nm": std, "min_nm": v_min, "max_nm": v_max,
             "p_low_nm": p_low, "p_high_nm": p_high,
-            "uniformity": float((v.max() - v.min()) / (2 * mean)) if mean > 0 else float("nan"),
+            "uniformity": float((v_max - v_min) / (2 * mean)) if mean > 0 else float("nan"),
             "uniformity_robust": float((p_high - p_low) / (2 * mean)) if mean > 0 else float("nan"),
             "valid_fraction": float(v.size / T.size), "pixels": int(v.size),
             "order_outliers": n_out, "order_outlier_fraction": n_out / v.size}

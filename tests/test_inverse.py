@@ -213,6 +213,9 @@ def test_histogram_percentiles_equal_numpys():
                 for q in ([1.0, 50.0, 99.0], [50.0, 95.0], [0.0, 12.345, 100.0]):
                     assert np.array_equal(_percentiles(x, q), np.percentile(x, q))
                     assert np.array_equal(_percentiles(x, q, np.float64), np.percentile(x.astype(np.float64), q))
+    for dt in (np.float32, np.float64):                                # past 1 M values: the compiled histogram
+        x = rng.normal(300, 100, 1_200_007).astype(dt)
+        assert np.array_equal(_percentiles(x, [2.0, 50.0, 98.0]), np.percentile(x, [2.0, 50.0, 98.0]))
 
 
 @pytest.mark.parametrize("kw", [{}, {"nominal_nm": 700.0, "roi": (3, 2, 1197, 878)}, {"reading_error_de": 5.0}])
@@ -245,5 +248,8 @@ def test_a_16_bit_map_is_the_same_compiled_or_not(kw, monkeypatch):
         close = np.isclose(a, b, rtol=0, atol=1e-3, equal_nan=True)
         assert close.mean() > 0.9998, name
     assert fast.stats["pixels"] == plain.stats["pixels"]
+    for key in ("median_nm", "p_low_nm", "p_high_nm", "median_uncertainty_nm"):
+        assert fast.stats[key] == pytest.approx(plain.stats[key], abs=0.02), key
+    assert fast.stats["order_outliers"] == pytest.approx(plain.stats["order_outliers"], abs=5)
     assert fast.stats["mean_nm"] == pytest.approx(plain.stats["mean_nm"], abs=0.01)
     assert fast.stats["undecided"] == pytest.approx(plain.stats["undecided"], rel=0.01, abs=3)
