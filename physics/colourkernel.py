@@ -27,6 +27,7 @@ import threading
 _lock = threading.Lock()
 _compiled = None
 _tried = False
+_disabled = False
 
 
 def _build():
@@ -261,6 +262,14 @@ def _build():
                            order_flags=order_flags, finite_values=finite_values, moments=moments)
 
 
+def disable() -> None:
+    """No compiled loops in this process (the numpy code throughout) until :func:`warm` is called: for the web
+    page's own process, whose heavy work runs in worker processes and whose event loop must never wait for
+    numba's import or a first compilation."""
+    global _disabled
+    _disabled = True
+
+
 def kernel():
     """The compiled per-colour pass (see the module docstring), or None."""
     k = kernels()
@@ -271,6 +280,8 @@ def kernels():
     """The compiled loops (a namespace: answer_span, lab_of_codes, lab_of_linear, margins, choose, histogram,
     in_bin, order_counts, order_flags, finite_values, moments), or None (see the module docstring)."""
     global _compiled, _tried
+    if _disabled:
+        return None
     if _tried:
         return _compiled
     with _lock:
@@ -288,9 +299,11 @@ def kernels():
 
 def warm() -> bool:
     """Compile (or load from numba's cache) every loop once on a few values, so that the first photo map of
-    a new process does not pay for it; True when the compiled loops are in use."""
+    a new process does not pay for it (and undo :func:`disable`); True when the compiled loops are in use."""
     import numpy as np
 
+    global _disabled
+    _disabled = False
     k = kernels()
     if k is None:
         return False

@@ -82,6 +82,9 @@ MAX_CORRECTION_NM = 0.75
 MAX_SHIFT = 16
 #: Colours per chunk of the numpy per-colour pass (a few MB of working arrays).
 CHUNK = 65_536
+#: Fewest pixels for which :func:`lab_from_linear` runs compiled (a photo map's bands; the page's own process
+#: never runs compiled loops, see physics.colourkernel.disable).
+COMPILED_MIN_PIXELS = 1 << 18
 #: Fewest colours for which the compiled pass (:mod:`physics.colourkernel`) runs, and per thread of it.
 KERNEL_MIN_COLOURS = 4096
 #: Chunks from which the per-colour pass runs in threads (below, thread start-up and the interpreter lock
@@ -195,7 +198,8 @@ def lab_from_linear(lin, matrix, white_xyz, dtype=np.float32) -> np.ndarray:
         o[:, 1] = 500.0 * (f[0] - f[1])
         o[:, 2] = 200.0 * (f[1] - f[2])
 
-    jit = kernels() if dtype == np.float32 and lin.dtype in (np.float32, np.float64) else None
+    jit = (kernels() if lin.shape[0] > COMPILED_MIN_PIXELS and dtype == np.float32
+           and lin.dtype in (np.float32, np.float64) else None)
     if jit is not None:                                         # compiled: one pass, no temporaries
         coef = np.ascontiguousarray(M / white[:, None], dtype=np.float32)
         lin = np.ascontiguousarray(lin)

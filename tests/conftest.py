@@ -58,6 +58,16 @@ def pytest_configure(config):
     config.addinivalue_line("markers", "exclusive: times a server; runs while no other test runs (parallel runs)")
 
 
+def pytest_sessionstart(session):
+    """Compile the photo map's loops once, before any test process or server worker needs them (a fresh clone
+    has no numba cache: each process would otherwise compile them itself, seconds of CPU in the middle of
+    tests that time the server)."""
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        return
+    from physics.colourkernel import warm
+    warm()
+
+
 @pytest.hookimpl(hookwrapper=True)
 def pytest_runtest_protocol(item, nextitem):
     if not os.environ.get("PYTEST_XDIST_WORKER"):
