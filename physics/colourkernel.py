@@ -290,34 +290,47 @@ def kernels():
                 _compiled = None
             else:
                 try:
-                    _compiled = _build()
-                except Exception:                      # numba missing or unusable here: the numpy pass
+                    built = _build()
+                    _exercise(built)
+                    _compiled = built
+                except Exception:                      # numba missing or unusable here: the numpy passes
                     _compiled = None
             _tried = True
     return _compiled
 
 
 def warm() -> bool:
-    """Compile (or load from numba's cache) every loop once on a few values, so that the first photo map of
-    a new process does not pay for it (and undo :func:`disable`); True when the compiled loops are in use."""
-    import numpy as np
-
+    """Compile (or load from numba's cache) every loop, so that the first photo map of a new process does not
+    pay for it, and undo :func:`disable`; True when the compiled loops are in use."""
     global _disabled
     _disabled = False
-    k = kernels()
-    if k is None:
-        return False
+    return kernels() is not None
+
+
+def _exercise(k) -> None:
+    """Run every loop once on a few values, with the argument types the map passes (numba compiles one
+    version per type signature): a loop that cannot compile or run here fails now, not in a user's map."""
+    import numpy as np
+
     f32 = np.zeros(2, np.float32)
     i16 = np.zeros(2, np.int16)
     for dt in (np.float32, np.float64):
         k.answer_span(np.zeros((2, 3), dt), np.zeros(3, dt), dt(2.0), dt(0.5), np.ones(3, dt), np.int64(1), np.int64(1),
-                    np.int64(4), np.full(1, -1, np.int32), np.full((1, 64), -1, np.int32), np.int64(0), np.int64(0),
-                    np.zeros((1, 33), np.float32), np.float32(0), np.float32(1), np.float32(0.75),
-                    f32.copy(), f32.copy(), i16.copy(), f32.copy(), f32.copy(), i16.copy(), np.zeros(2, np.int64))
+                      np.int64(4), np.full(1, -1, np.int32), np.full((1, 64), -1, np.int32), np.int64(0), np.int64(0),
+                      np.zeros((1, 33), np.float32), np.float32(0), np.float32(1), np.float32(0.75),
+                      f32.copy(), f32.copy(), i16.copy(), f32.copy(), f32.copy(), i16.copy(), np.zeros(2, np.int64))
+        x = np.array([1.0, 2.0], dt)
+        k.lab_of_linear(np.zeros((2, 3), dt), np.eye(3, dtype=np.float32), np.zeros((2, 3), np.float32))
+        k.histogram(x, x.min(), dt(1.0), 4096, np.zeros(4096, np.int64))
+        k.in_bin(x, x.min(), dt(1.0), 4096, 0, np.empty(2, dt))
+        k.finite_values(x, np.empty(2, dt))
+        k.moments(x)
     k.lab_of_codes(np.zeros((2, 3), np.uint16), np.zeros(65536, np.float32), np.eye(3, dtype=np.float32),
-                 np.zeros((2, 3), np.float32))
+                   np.zeros((2, 3), np.float32))
     conf = np.zeros(2, bool)
     k.margins(f32, f32, np.float32(6), np.float32(2), f32.copy(), conf)
     k.choose(f32.copy(), f32.copy(), i16.copy(), f32, f32, i16, f32, conf, np.zeros((1, 1)), 2, 2, True, float("nan"),
-           np.float32(6), np.float32(2), conf.copy())
-    return True
+             np.float32(6), np.float32(2), conf.copy())
+    order, valid = np.zeros((2, 2), np.int16), np.ones((2, 2), bool)
+    k.order_counts(order, valid, 0, 1, 1, 2, np.zeros(16, np.int64))
+    k.order_flags(order, valid, 0, 1, 1, 2, np.ones(16, bool), np.zeros((2, 2), bool))

@@ -159,3 +159,21 @@ def test_a_photo_map_marks_pixels_whose_order_colour_cannot_decide(section):
         assert section.result.undecided.shape == (20, 180)
     assert counts["by eye / on a display"] > counts["calibrated camera"]
     assert "order not decided by colour" in section.stats.object
+
+
+def test_a_linear_photo_is_previewed_as_a_display_would_show_it():
+    """A 16-bit linear TIFF is drawn sRGB-encoded (IEC 61966-2-1, colour-science's encoding), an 8-bit sRGB
+    photo as its codes: neither looks darker on the page than the part photographed."""
+    import tifffile
+    from views.inverse import _decode_photo
+    lin = np.full((8, 10, 3), 0.2)
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, np.round(lin * 65535).astype(np.uint16), photometric="rgb")
+    photo, preview = _decode_photo(buf.getvalue(), max_pixels=10_000)
+    assert photo.linear
+    red = int(preview.view(np.uint8).reshape(8, 10, 4)[0, 0, 0])
+    assert red == pytest.approx(255 * (1.055 * 0.2 ** (1 / 2.4) - 0.055), abs=1.0)      # 124, not 51
+    png = io.BytesIO()
+    Image.fromarray(np.full((8, 10, 3), 124, np.uint8)).save(png, format="PNG")
+    photo8, preview8 = _decode_photo(png.getvalue(), max_pixels=10_000)
+    assert not photo8.linear and int(preview8.view(np.uint8).reshape(8, 10, 4)[0, 0, 0]) == 124

@@ -1018,8 +1018,11 @@ def _decode_photo(data: bytes, progress=None, *, max_pixels: int):
     part of an upload, run off the event loop. Raises InputError for a file that is not a usable photo."""
     photo = load_image(data, max_pixels=max_pixels)
     step = max(1, int(np.ceil(max(photo.width, photo.height) / DISPLAY_MAX_SIDE)))
-    small = photo.rgb[::step, ::step]
-    return photo, _rgba(small.astype(float) / (65535.0 if photo.bit_depth == 16 else 255.0))
+    small = photo.rgb[::step, ::step].astype(float) / (65535.0 if photo.bit_depth == 16 else 255.0)
+    if photo.linear:                                      # linear light (16-bit linear TIFF, RAW): shown as a
+        import colour                                     # display would show it, sRGB-encoded, else it looks dark
+        small = np.asarray(colour.models.eotf_inverse_sRGB(np.clip(small, 0.0, 1.0)), dtype=float)
+    return photo, _rgba(small)
 
 
 def _image_ranges():
