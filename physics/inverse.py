@@ -380,10 +380,8 @@ def thickness_candidates(color, stack: Stack, layer: int = 0, thickness_nm=(0, 1
     de = np.sqrt(np.mean(de_each ** 2, axis=0))
     minima = _refine_minima(de)[:max(MINIMA_REFINED_MIN, MINIMA_REFINED_PER_TOP * int(top))]
     path = paths[0]
-    result = Candidates()
-    for i in minima:
-        result.append(_candidate_at(i, de, path, stack, layer, angles, observed, display, illuminant,
-                                    observer, polarization, na, nominal_nm, tolerance_nm))
+    result = Candidates(_candidates_at(minima, de, path, stack, layer, angles, observed, display, illuminant,
+                                       observer, polarization, na, nominal_nm, tolerance_nm))
     result.sort(key=lambda c: c.delta_e)
     result = _break_ties_by_nominal(result, nominal_nm, err, limit)
     best = result[0]
@@ -491,6 +489,78 @@ def _candidate_at(i, de, path, stack, layer, angles, observed, display, illumina
         in_tol = bool(abs(t - nominal_nm) <= tolerance_nm)
     return Candidate(t, d_e, order, (float(d[r0]), float(d[r1])), lab0, rgb0,
                      srgb_to_hex(rgb0), tuple(per_angle), in_tol)
+
+
+def _candidates_at(minima, de, path, stack, layer, angles, observed, display, illuminant, observer,
+                   polarization, na, nominal_nm, tolerance_nm) -> list:
+    """:func:`_candidate_at` of every local minimum, with the colours computed together: one colour map
+    per angle for all the minima's local paths and one for all their vertices (a dozen small colour maps
+    cost far more than one of the same points). A minimum whose basin reaches an end of its local path is
+    refined on its own by :func:`_candidate_at`, which widens the path."""
+    d_scan = path.thickness_nm
+    lo_w, hi_w = float(d_scan[0]), float(d_scan[-1])
+    spans = []
+    for i in minima:
+        j0, j1 = _contiguous(de <= de[i] + AMBIGUOUS_DE, i)
+        a, b = float(d_scan[max(j0 - 1, 0)]), float(d_scan[min(j1 + 1, d_scan.size - 1)])
+        spans.append((a, b, int(np.clip(np.ceil((b - a) / REFINE_STEP_NM) + 1, 3, REFINE_MAX_POINTS))))
+    if not spans:
+        return []
+    grids = [np.linspace(a, b, n) for a, b, n in spans]
+    d_all = np.concatenate(grids)
+    cut = np.cumsum([g.size for g in grids])[:-1]
+    de_all = []
+    for q, ang in enumerate(angles):
+        cm = color_map(stack, layer, d_all, [ang], illuminant=illuminant, observer=observer,
+                       polarization=polarization, na=na)
+        lab = (xyz_to_lab(srgb_to_xyz(cm.rgb[:, 0, :], illuminant, observer), illuminant, observer)
+               if display[q] else cm.lab[:, 0, :])
+        de_all.append(delta_e_2000(lab, observed[q][None, :]))
+    de_each_all = np.stack(de_all)                                      # (n_angles, points)
+    out, vertices = [None] * len(spans), []
+    for m, (i, (a, b, n), d, de_each) in enumerate(zip(minima, spans, grids, np.split(de_each_all, cut, axis=1))):
+        de_loc = np.sqrt(np.mean(de_each ** 2, axis=0))
+        k = int(np.argmin(de_loc))
+        k0, k1 = _contiguous(de_loc <= de_loc[k] + AMBIGUOUS_DE, k)
+        if (k0 == 0 and a > lo_w) or (k1 == n - 1 and b < hi_w):       # the basin goes on: widen, alone
+            out[m] = _candidate_at(i, de, path, stack, layer, angles, observed, display, illuminant, observer,
+                                   polarization, na, nominal_nm, tolerance_nm)
+        else:
+            vertices.append((m, d, de_each, de_loc, k, _parabolic_min(d, de_loc, k)))
+    if vertices:
+        t_all = np.array([v[5] for v in vertices])
+        per_angle, lab0, rgb0 = [], None, None
+        for q, ang in enumerate(angles):
+            cm = color_map(stack, layer, t_all, [ang], illuminant=illuminant, observer=observer,
+                           polarization=polarization, na=na)
+            lab_q = (xyz_to_lab(srgb_to_xyz(cm.rgb[:, 0, :], illuminant, observer), illuminant, observer)
+                     if display[q] else cm.lab[:, 0, :])
+            per_angle.append(np.atleast_1d(delta_e_2000(lab_q, observed[q][None, :])))
+            if q == 0:
+                lab0, rgb0 = cm.lab[:, 0, :], cm.rgb[:, 0, :]
+        per_angle = np.stack(per_angle)                                 # (n_angles, vertices)
+        d_e = np.sqrt(np.mean(np.square(per_angle), axis=0))
+        worse = [j for j, v in enumerate(vertices) if d_e[j] > v[3][v[4]]]   # the vertex no better than the sample
+        if worse:
+            t_all[worse] = [vertices[j][1][vertices[j][4]] for j in worse]
+            cm = color_map(stack, layer, t_all[worse], [angles[0]], illuminant=illuminant, observer=observer,
+                           polarization=polarization, na=na)
+            lab0, rgb0 = lab0.copy(), rgb0.copy()
+            lab0[worse], rgb0[worse] = cm.lab[:, 0, :], cm.rgb[:, 0, :]
+        orders = np.floor(np.atleast_1d(interference_order(stack, layer, t_all, angles[0]))).astype(int) + 1
+        for j, (m, d, de_each, de_loc, k, _) in enumerate(vertices):
+            t = float(t_all[j])
+            if j in worse:
+                dj, pa = float(de_loc[k]), tuple(float(x[k]) for x in de_each)
+            else:
+                dj, pa = float(d_e[j]), tuple(float(x) for x in per_angle[:, j])
+            r0, r1 = _contiguous(de_loc <= dj + AMBIGUOUS_DE, k)
+            in_tol = None
+            if nominal_nm is not None and tolerance_nm is not None:
+                in_tol = bool(abs(t - nominal_nm) <= tolerance_nm)
+            out[m] = Candidate(t, dj, int(orders[j]), (float(d[r0]), float(d[r1])), lab0[j], rgb0[j],
+                               srgb_to_hex(rgb0[j]), pa, in_tol)
+    return out
 
 
 def _distinct(cands):
